@@ -1,0 +1,3 @@
+"""drawledger.replay: verify, audit and estimate from a ledger (the analysis side)."""
+
+__all__: list[str] = []

@@ -1,0 +1,117 @@
+"""Row layouts of the three ledger tables, JSON encoding, and the integrity hash.
+
+Rows travel as plain tuples in the column order below, from the serving thread through the
+writer to every sink, so that all sinks store the same values bit for bit.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import struct
+from typing import Any
+
+import orjson
+
+from drawledger.exceptions import NotSerializableError
+
+DECISION_COLUMNS = (
+    "decision_id",
+    "stream",
+    "unit",
+    "ts",
+    "fn",
+    "code_hash",
+    "inputs",
+    "params",
+    "action",
+    "propensity",
+    "propensity_kind",
+    "seed",
+    "writer",
+    "seq",
+    "prev_hash",
+    "hash",
+)
+DRAW_COLUMNS = ("decision_id", "idx", "name", "kind", "args", "u", "value", "prob", "is_density")
+OUTCOME_COLUMNS = ("decision_id", "name", "value", "ts", "writer", "seq", "prev_hash", "hash")
+
+HASH_PERSON = b"drawledger.h1"
+_DOUBLE = struct.Struct(">d")
+
+
+def _default(obj: Any) -> Any:
+    dump = getattr(obj, "model_dump", None)  # pydantic models, without importing pydantic
+    if callable(dump):
+        return dump(mode="json")
+    if isinstance(obj, (set, frozenset)):
+        raise TypeError("sets have no order; pass a sorted list")
+    raise TypeError(f"{type(obj).__name__} is not JSON serializable")
+
+
+_OPTS = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NON_STR_KEYS
+
+
+def _has_non_finite(obj: Any) -> bool:
+    if isinstance(obj, float):
+        return not math.isfinite(obj)
+    if isinstance(obj, dict):
+        return any(_has_non_finite(v) for v in obj.values())
+    if isinstance(obj, (list, tuple)):
+        return any(_has_non_finite(v) for v in obj)
+    dump = getattr(obj, "model_dump", None)
+    if callable(dump):
+        return _has_non_finite(dump(mode="python"))
+    return False
+
+
+def to_json(obj: Any, what: str) -> str:
+    """Encode ``obj`` as compact JSON text; ``what`` names it in the error."""
+    try:
+        raw = orjson.dumps(obj, default=_default, option=_OPTS)
+    except (TypeError, orjson.JSONEncodeError) as exc:
+        raise NotSerializableError(f"{what} cannot be recorded as JSON: {exc}") from None
+    # orjson writes NaN and infinities as null; JSON has no such numbers, so refuse them.
+    if b"null" in raw and _has_non_finite(obj):
+        raise NotSerializableError(f"{what} contains NaN or an infinity, which JSON cannot hold")
+    return raw.decode()
+
+
+def from_json(text: str) -> Any:
+    return orjson.loads(text)
+
+
+def float_hex(x: float) -> str:
+    """A float in the canonical encoding: the 16 hex digits of its IEEE-754 binary64 bits."""
+    return _DOUBLE.pack(x).hex()
+
+
+def _digest(canonical: bytes, key: bytes) -> str:
+    return hashlib.blake2b(canonical, digest_size=32, key=key, person=HASH_PERSON).hexdigest()
+
+
+def decision_canonical(row: tuple[Any, ...], draws: list[tuple[Any, ...]]) -> bytes:
+    """Canonical bytes of a decision row (without its hash) and its draw rows (docs/ledger.md)."""
+    (did, stream, unit, ts, fn, code_hash, inputs, params, action, prop, kind, seed, writer,
+     seq, prev) = row[:15]  # fmt: skip
+    body = [
+        "drawledger.decision.v1", did, stream, unit, float_hex(ts), fn, code_hash, inputs,
+        params, action, float_hex(prop), kind, seed, writer, seq, prev,
+        [[d[1], d[2], d[3], d[4], d[5], d[6], float_hex(d[7]), bool(d[8])] for d in draws],
+    ]  # fmt: skip
+    return orjson.dumps(body)
+
+
+def outcome_canonical(row: tuple[Any, ...]) -> bytes:
+    """Canonical bytes of an outcome row without its hash (docs/ledger.md)."""
+    did, name, value, ts, writer, seq, prev = row[:7]
+    body = ["drawledger.outcome.v1", did, name, float_hex(value), float_hex(ts), writer, seq, prev]
+    return orjson.dumps(body)
+
+
+def decision_hash(row: tuple[Any, ...], draws: list[tuple[Any, ...]], key: bytes = b"") -> str:
+    return _digest(decision_canonical(row, draws), key)
+
+
+def outcome_hash(row: tuple[Any, ...], key: bytes = b"") -> str:
+    return _digest(outcome_canonical(row), key)

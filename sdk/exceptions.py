@@ -1,0 +1,48 @@
+"""Every error drawledger raises on purpose.
+
+Each class subclasses the builtin that matches the kind of mistake, so callers can catch
+either the drawledger class or the builtin they already handle.
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "DecisionDefinitionError",
+    "DrawArgumentError",
+    "DrawledgerError",
+    "LedgerClosedError",
+    "LedgerError",
+    "NotSerializableError",
+    "ReplayError",
+]
+
+
+class DrawledgerError(Exception):
+    """Base class of every drawledger error."""
+
+
+class DrawArgumentError(DrawledgerError, ValueError):
+    """A draw was called with arguments that do not define a valid distribution.
+
+    The message names the draw (its kind and name) and the problem.
+    """
+
+
+class NotSerializableError(DrawledgerError, TypeError):
+    """A decision input, policy parameter, option or action cannot be recorded as JSON."""
+
+
+class DecisionDefinitionError(DrawledgerError, TypeError):
+    """A function cannot be registered as a decision (for example a reserved parameter name)."""
+
+
+class LedgerError(DrawledgerError, OSError):
+    """The ledger cannot be opened, read or written (bad path or URL, missing table, I/O)."""
+
+
+class LedgerClosedError(LedgerError):
+    """A record was offered to a ledger that was already closed."""
+
+
+class ReplayError(DrawledgerError, RuntimeError):
+    """Replay, audit or estimation could not run on the given ledger or arguments."""
