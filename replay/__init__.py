@@ -1,3 +1,37 @@
 """drawledger.replay: verify, audit and estimate from a ledger (the analysis side)."""
 
-__all__: list[str] = []
+from drawledger.replay._audit import AuditFigure, AuditReport, AuditTest, audit, audit_tables
+from drawledger.replay._demo import DemoResult, run_demo
+from drawledger.replay._enumerate import Propensity, action_distribution, propensity
+from drawledger.replay._estimate import EstimateReport, SweepReport, estimate, sweep
+from drawledger.replay._integrity import IntegrityReport, check_integrity
+from drawledger.replay._io import LedgerTables, iter_decision_chunks, read_tables
+from drawledger.replay._report import HtmlReport, WhatIf, write_report
+from drawledger.replay._verify import VerifyReport, verify
+
+__all__: list[str] = [
+    "AuditFigure",
+    "AuditReport",
+    "AuditTest",
+    "DemoResult",
+    "EstimateReport",
+    "HtmlReport",
+    "IntegrityReport",
+    "LedgerTables",
+    "Propensity",
+    "SweepReport",
+    "VerifyReport",
+    "WhatIf",
+    "action_distribution",
+    "audit",
+    "audit_tables",
+    "check_integrity",
+    "estimate",
+    "iter_decision_chunks",
+    "propensity",
+    "read_tables",
+    "run_demo",
+    "sweep",
+    "verify",
+    "write_report",
+]

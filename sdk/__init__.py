@@ -4,6 +4,7 @@ The serving-side SDK. It imports nothing from the analysis stack (numpy, pandas,
 replay, audit and estimates live in ``drawledger.replay``.
 """
 
+from drawledger._ingest import IngestReport, ingest
 from drawledger.draw import Draw
 from drawledger.exceptions import (
     DecisionDefinitionError,
@@ -24,10 +25,12 @@ __all__ = [
     "Draw",
     "DrawArgumentError",
     "DrawledgerError",
+    "IngestReport",
     "Ledger",
     "LedgerClosedError",
     "LedgerError",
     "NotSerializableError",
     "ReplayError",
     "__version__",
+    "ingest",
 ]

@@ -72,7 +72,7 @@ def to_json(obj: Any, what: str) -> str:
     except (TypeError, orjson.JSONEncodeError) as exc:
         raise NotSerializableError(f"{what} cannot be recorded as JSON: {exc}") from None
     # orjson writes NaN and infinities as null; JSON has no such numbers, so refuse them.
-    if b"null" in raw and _has_non_finite(obj):
+    if raw.find(b"null") != -1 and _has_non_finite(obj):  # find: "in" costs an exception
         raise NotSerializableError(f"{what} contains NaN or an infinity, which JSON cannot hold")
     return raw.decode()
 
@@ -86,18 +86,28 @@ def float_hex(x: float) -> str:
     return _DOUBLE.pack(x).hex()
 
 
+# A keyed, personalized blake2b state per integrity key; copying it is cheaper than a new one.
+_HASHERS: dict[bytes, Any] = {}
+
+
 def _digest(canonical: bytes, key: bytes) -> str:
-    return hashlib.blake2b(canonical, digest_size=32, key=key, person=HASH_PERSON).hexdigest()
+    base = _HASHERS.get(key)
+    if base is None:
+        base = _HASHERS[key] = hashlib.blake2b(digest_size=32, key=key, person=HASH_PERSON)
+    h = base.copy()
+    h.update(canonical)
+    return h.hexdigest()
 
 
 def decision_canonical(row: tuple[Any, ...], draws: list[tuple[Any, ...]]) -> bytes:
     """Canonical bytes of a decision row (without its hash) and its draw rows (docs/ledger.md)."""
     (did, stream, unit, ts, fn, code_hash, inputs, params, action, prop, kind, seed, writer,
      seq, prev) = row[:15]  # fmt: skip
+    pack = _DOUBLE.pack  # float_hex, inlined: this runs once per decision on the serving path
     body = [
-        "drawledger.decision.v1", did, stream, unit, float_hex(ts), fn, code_hash, inputs,
-        params, action, float_hex(prop), kind, seed, writer, seq, prev,
-        [[d[1], d[2], d[3], d[4], d[5], d[6], float_hex(d[7]), bool(d[8])] for d in draws],
+        "drawledger.decision.v1", did, stream, unit, pack(ts).hex(), fn, code_hash, inputs,
+        params, action, pack(prop).hex(), kind, seed, writer, seq, prev,
+        [[d[1], d[2], d[3], d[4], d[5], d[6], pack(d[7]).hex(), bool(d[8])] for d in draws],
     ]  # fmt: skip
     return orjson.dumps(body)
 

@@ -7,6 +7,7 @@ not at all.
 from __future__ import annotations
 
 import os
+import time
 from pathlib import Path
 from typing import Any, Protocol
 
@@ -19,9 +20,22 @@ from drawledger.exceptions import LedgerError
 Row = tuple[Any, ...]
 
 
+DURABILITY = ("normal", "full")
+
+
 class Sink(Protocol):
-    def write(self, decisions: list[Row], draws: list[Row], outcomes: list[Row]) -> None:
-        """Store one batch atomically; raise on failure (the writer then retries or spills)."""
+    def write(self, decisions: list[Row], draws: list[list[Row]], outcomes: list[Row]) -> None:
+        """Store one batch; ``draws[i]`` are the draw rows of ``decisions[i]``.
+
+        Raise on failure (the writer then retries or spills). Writing the same batch again
+        after a failure must not leave two copies of a record.
+        """
+
+    def present_seqs(self, table: str, writer: str, low: int, high: int) -> set[int]:
+        """The seqs of ``writer`` between ``low`` and ``high`` already in ``table``."""
+
+    def present_ids(self, ids: list[str], streams: set[str]) -> set[str]:
+        """Which of these decision ids are already among the decisions of ``streams``."""
 
     def close(self) -> None: ...
 
@@ -38,20 +52,38 @@ def sqlalchemy_url(target: str | os.PathLike[str]) -> str:
     return f"sqlite:///{Path(text).expanduser()}"
 
 
-def create_engine(url: str) -> sa.Engine:
-    """An engine for ``url``; SQLite files get WAL, synchronous NORMAL and a busy timeout."""
+def guess_format(target: str | os.PathLike[str]) -> str | None:
+    """``"parquet"`` for an existing directory, else None (a path or URL of a SQL ledger)."""
+    text = os.fspath(target)
+    return "parquet" if not is_url(text) and Path(text).expanduser().is_dir() else None
+
+
+def create_engine(url: str, durability: str = "normal") -> sa.Engine:
+    """An engine for ``url``.
+
+    SQLite files get WAL, a busy timeout, and synchronous NORMAL (``durability="normal"``) or
+    FULL (``"full"``), see docs/operations.md. PostgreSQL gets a 10 s connect timeout unless the
+    URL sets one.
+    """
+    if durability not in DURABILITY:
+        raise LedgerError(f"unknown durability {durability!r}; use 'normal' or 'full'")
     try:
-        engine = sa.create_engine(url)
-    except (sa.exc.ArgumentError, sa.exc.NoSuchModuleError, ImportError) as exc:
+        parsed = sa.engine.make_url(url)
+        args: dict[str, Any] = {}
+        if parsed.get_backend_name() == "postgresql" and "connect_timeout" not in parsed.query:
+            args["connect_args"] = {"connect_timeout": 10}
+        engine = sa.create_engine(parsed, **args)
+    except (sa.exc.ArgumentError, sa.exc.NoSuchModuleError, ImportError, ValueError) as exc:
         raise LedgerError(f"cannot use ledger URL {url!r}: {exc}") from None
     if engine.dialect.name == "sqlite":
+        synchronous = durability.upper()
 
         @sa.event.listens_for(engine, "connect")
         def _pragmas(dbapi_conn: Any, _record: Any) -> None:
             cur = dbapi_conn.cursor()
-            cur.execute("PRAGMA journal_mode=WAL")
-            cur.execute("PRAGMA synchronous=NORMAL")
             cur.execute("PRAGMA busy_timeout=60000")
+            cur.execute("PRAGMA journal_mode=WAL")
+            cur.execute(f"PRAGMA synchronous={synchronous}")
             cur.close()
 
     return engine
@@ -62,31 +94,112 @@ def _insert_sql(engine: sa.Engine, table: str, columns: tuple[str, ...]) -> str:
     return f"INSERT INTO {table} ({', '.join(columns)}) VALUES ({', '.join([mark] * len(columns))})"
 
 
-class SqlSink:
-    """SQLite (the embedded default) or any SQLAlchemy database, PostgreSQL included."""
-
-    def __init__(self, url: str) -> None:
-        self.url = url
-        self.engine = create_engine(url)
+def _ensure_schema(engine: sa.Engine, url: str) -> None:
+    """Create the missing tables; tolerate another process creating them at the same time."""
+    for attempt in range(5):
         try:
-            _schema.metadata.create_all(self.engine)
+            _schema.metadata.create_all(engine)
+            break
         except sa.exc.SQLAlchemyError as exc:
+            try:
+                names = set(sa.inspect(engine).get_table_names())
+            except sa.exc.SQLAlchemyError:
+                names = set()
+            if {t.name for t in _schema.TABLES} <= names:
+                break  # another writer created them first
+            if attempt == 4 or not _is_race(exc):
+                raise LedgerError(f"cannot open ledger {url!r}: {_first_line(exc)}") from None
+            time.sleep(0.05 * (attempt + 1))
+    try:
+        inspector = sa.inspect(engine)
+        columns = {
+            t.name: {c["name"] for c in inspector.get_columns(t.name)} for t in _schema.TABLES
+        }
+    except sa.exc.SQLAlchemyError as exc:
+        raise LedgerError(f"cannot open ledger {url!r}: {_first_line(exc)}") from None
+    for table in _schema.TABLES:
+        have = columns[table.name]
+        missing = [c.name for c in table.columns if c.name not in have]
+        if missing:
+            raise LedgerError(
+                f"{url!r} is not a drawledger ledger: its table {table.name} has no column "
+                f"{', '.join(missing)}"
+            )
+
+
+def _is_race(exc: Exception) -> bool:
+    text = str(exc).lower()
+    return "already exists" in text or "locked" in text or "duplicate key" in text
+
+
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip().splitlines()
+    return f"{exc.__class__.__name__}: {text[0] if text else ''}"
+
+
+class SqlSink:
+    """SQLite (the embedded default) or any SQLAlchemy database, PostgreSQL included.
+
+    One batch is one transaction. PostgreSQL batches go through COPY; other databases through
+    the driver's ``executemany``. The unique (writer, seq) indexes refuse a second copy of a
+    record.
+    """
+
+    def __init__(self, url: str, *, durability: str = "normal") -> None:
+        self.url = url
+        self.engine = create_engine(url, durability)
+        try:
+            _ensure_schema(self.engine, url)
+        except BaseException:
             self.engine.dispose()
-            raise LedgerError(f"cannot open ledger {url!r}: {exc.__class__.__name__}: {exc}") from None
+            raise
+        self._copy = self.engine.dialect.name == "postgresql" and \
+            self.engine.dialect.driver == "psycopg"  # fmt: skip
         self._sql = {
             "decisions": _insert_sql(self.engine, "decisions", DECISION_COLUMNS),
             "draws": _insert_sql(self.engine, "draws", DRAW_COLUMNS),
             "outcomes": _insert_sql(self.engine, "outcomes", OUTCOME_COLUMNS),
         }
 
-    def write(self, decisions: list[Row], draws: list[Row], outcomes: list[Row]) -> None:
+    def write(self, decisions: list[Row], draws: list[list[Row]], outcomes: list[Row]) -> None:
+        flat = [d for rows in draws for d in rows]
         with self.engine.begin() as conn:
-            if decisions:
-                conn.exec_driver_sql(self._sql["decisions"], decisions)
-            if draws:
-                conn.exec_driver_sql(self._sql["draws"], draws)
-            if outcomes:
-                conn.exec_driver_sql(self._sql["outcomes"], outcomes)
+            for table, rows in (("decisions", decisions), ("draws", flat), ("outcomes", outcomes)):
+                if not rows:
+                    continue
+                if self._copy:
+                    self._copy_rows(conn, table, rows)
+                else:
+                    conn.exec_driver_sql(self._sql[table], rows)
+
+    @staticmethod
+    def _copy_rows(conn: sa.Connection, table: str, rows: list[Row]) -> None:
+        columns = ", ".join(_COLUMNS[table])
+        cursor = conn.connection.driver_connection.cursor()  # type: ignore[union-attr]
+        try:
+            with cursor.copy(f"COPY {table} ({columns}) FROM STDIN") as copy:
+                for row in rows:
+                    copy.write_row(row)
+        finally:
+            cursor.close()
+
+    def present_seqs(self, table: str, writer: str, low: int, high: int) -> set[int]:
+        """The seqs of ``writer`` between ``low`` and ``high`` already in ``table``."""
+        sql = sa.text(f"SELECT seq FROM {table} WHERE writer = :w AND seq BETWEEN :lo AND :hi")
+        with self.engine.connect() as conn:
+            return {s for (s,) in conn.execute(sql, {"w": writer, "lo": low, "hi": high})}
+
+    def present_ids(self, ids: list[str], streams: set[str]) -> set[str]:
+        """Which of these decision ids are already among the decisions of ``streams``."""
+        found: set[str] = set()
+        sql = sa.text(
+            "SELECT decision_id FROM decisions WHERE decision_id IN :ids AND stream IN :streams"
+        ).bindparams(sa.bindparam("ids", expanding=True), sa.bindparam("streams", expanding=True))
+        with self.engine.connect() as conn:
+            for start in range(0, len(ids), 500):
+                params = {"ids": ids[start : start + 500], "streams": sorted(streams)}
+                found.update(d for (d,) in conn.execute(sql, params))
+        return found
 
     def after_fork(self) -> None:
         """Forget connections inherited from the parent process (they belong to it)."""
@@ -96,12 +209,17 @@ class SqlSink:
         self.engine.dispose()
 
 
-def open_sink(target: str | os.PathLike[str], format: str | None = None) -> Sink:
+_COLUMNS = {"decisions": DECISION_COLUMNS, "draws": DRAW_COLUMNS, "outcomes": OUTCOME_COLUMNS}
+
+
+def open_sink(
+    target: str | os.PathLike[str], format: str | None = None, *, durability: str = "normal"
+) -> Sink:
     """The sink for a ledger target: a path (SQLite), a SQLAlchemy URL, or a Parquet directory."""
     if format in (None, "sql", "sqlite"):
-        return SqlSink(sqlalchemy_url(target))
+        return SqlSink(sqlalchemy_url(target), durability=durability)
     if format == "parquet":
         from drawledger._parquet import ParquetSink
 
-        return ParquetSink(os.fspath(target))
+        return ParquetSink(os.fspath(target), durability=durability)
     raise LedgerError(f"unknown ledger format {format!r}; use 'parquet' or leave it out")

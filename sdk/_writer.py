@@ -1,12 +1,25 @@
 """The background writer: a bounded in-memory queue drained in batches into a sink.
 
-The serving thread only appends to the queue. The writer thread takes everything queued,
-writes it in one transaction, retries a failing sink, and spills what it cannot write to a
-local JSON Lines file (fsynced) so that no acknowledged record is lost.
+The serving thread only appends to the queue (``Writer.put``). The writer thread takes what is
+queued, writes it in one transaction, retries a failing sink, and spills what it cannot write to
+a local JSON Lines file (fsynced) so that no acknowledged record is lost. The policies
+(docs/operations.md):
+
+- queue full: the caller waits up to ``block_timeout`` for room, then the record is spilled by
+  the caller itself; while the queue stays full later records are spilled at once, without
+  waiting again;
+- sink failure: ``retries`` more attempts with growing delays, then the batch is spilled; for
+  the next ``cooldown`` seconds (doubling up to a minute while failures go on) batches go
+  straight to the spill file without trying the sink;
+- spill failure too (disk full, directory not writable): the batch goes back to the front of
+  the queue and is tried again later; ``flush()`` raises ``LedgerError`` naming the error; the
+  thread never dies of it. Only a record that finds both the queue full and the spill file
+  failing is dropped, and counted (``dropped``), and logged.
 """
 
 from __future__ import annotations
 
+import logging
 import os
 import threading
 import time
@@ -18,24 +31,37 @@ from typing import Any
 import orjson
 
 from drawledger._sinks import Sink
+from drawledger.exceptions import LedgerError
 
-# A queued item: ("d", decision_row, draw_rows) or ("o", outcome_row) or a flush marker (Event).
+log = logging.getLogger("drawledger")
+
+# A queued record: ("d", decision_row, draw_rows) or ("o", outcome_row); or a flush marker.
 Item = Any
+
+MAX_COOLDOWN = 60.0
 
 
 class Stats:
     """Counters of one ledger in one process (see ``Ledger.stats``)."""
 
-    __slots__ = ("recorded", "retried", "spilled", "written")
+    __slots__ = ("dropped", "recorded", "retried", "spilled", "written")
 
     def __init__(self) -> None:
         self.recorded = 0
         self.written = 0
         self.spilled = 0
         self.retried = 0
+        self.dropped = 0
 
     def as_dict(self) -> dict[str, int]:
         return {name: getattr(self, name) for name in self.__slots__}
+
+
+def spill_line(item: Item) -> bytes:
+    """One record as a line of the spill file (docs/ledger.md, "Spill files")."""
+    if item[0] == "d":
+        return orjson.dumps({"decision": list(item[1]), "draws": item[2]})
+    return orjson.dumps({"outcome": list(item[1])})
 
 
 class SpillFile:
@@ -46,13 +72,7 @@ class SpillFile:
         self._lock = threading.Lock()
 
     def write(self, items: list[Item]) -> None:
-        lines = []
-        for item in items:
-            if item[0] == "d":
-                lines.append(orjson.dumps({"decision": list(item[1]), "draws": item[2]}))
-            else:
-                lines.append(orjson.dumps({"outcome": list(item[1])}))
-        data = b"\n".join(lines) + b"\n"
+        data = b"".join(spill_line(item) + b"\n" for item in items)
         with self._lock:
             self.path.parent.mkdir(parents=True, exist_ok=True)
             fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o600)
@@ -61,6 +81,16 @@ class SpillFile:
                 os.fsync(fd)
             finally:
                 os.close(fd)
+
+
+class _Flush:
+    """A flush marker in the queue: set once everything before it is written or spilled."""
+
+    __slots__ = ("done", "error")
+
+    def __init__(self) -> None:
+        self.done = threading.Event()
+        self.error: BaseException | None = None
 
 
 class Writer:
@@ -73,25 +103,40 @@ class Writer:
         stats: Stats,
         *,
         batch_size: int,
+        queue_size: int = 100_000,
+        block_timeout: float = 1.0,
         retries: int = 2,
         retry_delay: float = 0.05,
+        cooldown: float = 1.0,
     ) -> None:
         self._open_sink = open_sink
         self._sink: Sink | None = None
         self.spill = spill
         self.stats = stats
         self.batch_size = batch_size
+        self.queue_size = queue_size
+        self.block_timeout = block_timeout
         self.retries = retries
         self.retry_delay = retry_delay
+        self.cooldown = cooldown
         self.queue: deque[Item] = deque()
         self._wake = threading.Event()
         self._stop = False
         self._thread: threading.Thread | None = None
+        self._start_lock = threading.Lock()
+        self._overflowing = False
+        self._down_until = 0.0
+        self._down_for = cooldown
         self.last_error: BaseException | None = None
 
     def start(self) -> None:
-        self._thread = threading.Thread(target=self._run, name="drawledger-writer", daemon=True)
-        self._thread.start()
+        """Start the writer thread unless it runs already."""
+        with self._start_lock:
+            if self.running:
+                return
+            self._thread = threading.Thread(target=self._run, name="drawledger-writer",
+                                            daemon=True)  # fmt: skip
+            self._thread.start()
 
     @property
     def running(self) -> bool:
@@ -100,18 +145,48 @@ class Writer:
     def wake(self) -> None:
         self._wake.set()
 
+    def put(self, item: Item) -> None:
+        """Queue one record; when the queue stays full, spill it (the policy above)."""
+        q = self.queue
+        if not self.running:
+            self.start()
+        if len(q) >= self.queue_size:
+            self._wake.set()
+            if not self._overflowing:
+                deadline = time.monotonic() + self.block_timeout
+                while len(q) >= self.queue_size and time.monotonic() < deadline:
+                    time.sleep(0.001)
+            if len(q) >= self.queue_size:
+                self._overflowing = True
+                try:
+                    self.spill_items([item])
+                except Exception as exc:  # the decision call must still return
+                    self.last_error = exc
+                    self.stats.dropped += 1
+                    log.error("drawledger: record dropped: queue full and spill failed: %s", exc)
+                return
+        q.append(item)
+
     def flush(self, timeout: float | None) -> bool:
-        marker = threading.Event()
+        """Wait until everything queued before now is written or spilled; False on timeout."""
+        marker = _Flush()
         self.queue.append(marker)
         self._wake.set()
-        return marker.wait(timeout)
+        if not marker.done.wait(timeout):
+            return False
+        if marker.error is not None:
+            raise LedgerError(
+                f"records could neither be written nor spilled to {str(self.spill.path)!r} "
+                f"(they stay queued and are retried): {marker.error}"
+            )
+        return True
 
     def stop(self, timeout: float | None) -> None:
         self._stop = True
         self._wake.set()
         if self._thread is not None:
             self._thread.join(timeout)
-        if self._sink is not None:
+        if self._sink is not None and not self.running:
             self._sink.close()
             self._sink = None
 
@@ -119,6 +194,7 @@ class Writer:
         """In a forked child: drop the parent's queue, thread and connections."""
         self.queue = deque()
         self._wake = threading.Event()
+        self._start_lock = threading.Lock()
         self._thread = None
         if self._sink is not None and hasattr(self._sink, "after_fork"):
             self._sink.after_fork()
@@ -135,39 +211,65 @@ class Writer:
                 self._wake.clear()
                 continue
             items: list[Item] = []
-            markers: list[threading.Event] = []
+            markers: list[_Flush] = []
             while q and len(items) < self.batch_size:
                 item = q.popleft()
-                if isinstance(item, threading.Event):
+                if isinstance(item, _Flush):
                     markers.append(item)
                     break  # commit what came before the marker, then release it
                 items.append(item)
-            if items:
-                self._write(items)
+            if len(q) < self.queue_size:
+                self._overflowing = False
+            error = self._write(items) if items else None
+            if error is not None:
+                if self._stop:  # closing, and neither sink nor disk takes the records
+                    self.stats.dropped += len(items)
+                    log.error("drawledger: %d records dropped at close: %s", len(items), error)
+                else:
+                    q.extendleft(reversed(items))
             for m in markers:
-                m.set()
+                m.error = error
+                m.done.set()
+            if error is not None and not self._stop:
+                self._wake.wait(min(self._down_for, MAX_COOLDOWN))
+                self._wake.clear()
 
-    def _write(self, items: list[Item]) -> None:
+    def _write(self, items: list[Item]) -> BaseException | None:
+        """Write a batch to the sink or the spill file; the error when neither took it."""
         decisions, draws, outcomes = [], [], []
         for item in items:
             if item[0] == "d":
                 decisions.append(item[1])
-                draws.extend(item[2])
+                draws.append(item[2])
             else:
                 outcomes.append(item[1])
-        for attempt in range(self.retries + 1):
+        down = time.monotonic() < self._down_until
+        attempts = 0 if down else self.retries + 1
+        for attempt in range(attempts):
             try:
                 if self._sink is None:
                     self._sink = self._open_sink()
                 self._sink.write(decisions, draws, outcomes)
                 self.stats.written += len(items)
-                return
+                self._down_for = self.cooldown
+                return None
             except Exception as exc:  # any sink failure: retry, then spill
                 self.last_error = exc
                 if attempt < self.retries:
                     self.stats.retried += 1
                     time.sleep(self.retry_delay * (4**attempt))
-        self.spill_items(items)
+        if not down:
+            self._down_until = time.monotonic() + self._down_for
+            self._down_for = min(2 * self._down_for, MAX_COOLDOWN)
+            log.warning("drawledger: sink failed (%s); spilling to %s", self.last_error,
+                        self.spill.path)  # fmt: skip
+        try:
+            self.spill_items(items)
+        except Exception as exc:  # disk full, directory gone: keep the thread alive
+            self.last_error = exc
+            log.error("drawledger: spill to %s failed: %s", self.spill.path, exc)
+            return exc
+        return None
 
     def spill_items(self, items: list[Item]) -> None:
         self.spill.write(items)

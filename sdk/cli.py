@@ -26,6 +26,223 @@ def _not_yet(command: str) -> Handler:
     return run
 
 
+def _ingest(args: argparse.Namespace) -> int:
+    """Load a spill file or declared draws; exit 2 when a line or record could not be loaded."""
+    import os
+
+    from drawledger import ingest
+
+    key = os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None
+    report = ingest(args.file, args.ledger, integrity_key=key)
+    print(report.render())
+    if report.malformed:
+        n, reason = report.malformed[0]
+        print(f"drawledger ingest: error: {len(report.malformed)} malformed lines skipped "
+              f"(first: line {n}: {reason})", file=sys.stderr)  # fmt: skip
+    elif report.spilled:
+        print(f"drawledger ingest: error: {report.spilled} declared draws could not be written "
+              "and were spilled; ingest that spill file again", file=sys.stderr)  # fmt: skip
+    return EXIT_OK if report.ok else EXIT_USAGE
+
+
+def _verify(args: argparse.Namespace) -> int:
+    """Replay every decision; exit 1 when one is not verified or the integrity check fails."""
+    import os
+
+    import orjson
+    from rich.console import Console
+
+    from drawledger.replay import verify
+
+    report = verify(
+        args.ledger, path=args.path, allow=args.allow, jobs=args.jobs, budget=args.budget,
+        mc_samples=args.mc_samples, export=args.export, keep_rows=args.export is not None,
+        progress=True,
+        integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None, engine=args.engine,
+        scheduler=args.scheduler,
+    )  # fmt: skip
+    if args.json:
+        with open(args.json, "wb") as out:
+            out.write(orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n")
+    Console(highlight=False).print(report)
+    return EXIT_OK if report.ok else EXIT_FOUND
+
+
+def _audit(args: argparse.Namespace) -> int:
+    """Test the randomization of every stream; exit 1 when an alarm fires."""
+    import orjson
+    from rich.console import Console
+
+    from drawledger.replay import audit
+
+    report = audit(args.ledger, progress=True, engine=args.engine, scheduler=args.scheduler)
+    if args.json:
+        with open(args.json, "wb") as out:
+            out.write(orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n")
+    Console(highlight=False).print(report)
+    return EXIT_OK if report.ok else EXIT_FOUND
+
+
+def _assignments(items: Sequence[str], flag: str) -> dict[str, Any]:
+    """``K=V`` pairs; V is read as JSON when it parses (0.3, true, "x", [1, 2]), else as text."""
+    import orjson
+
+    out: dict[str, Any] = {}
+    for item in items:
+        key, sep, text = item.partition("=")
+        if not sep or not key:
+            raise ValueError(f"{flag} {item!r}: expected NAME=VALUE, for example temperature=0.3")
+        try:
+            out[key] = orjson.loads(text)
+        except orjson.JSONDecodeError:
+            out[key] = text
+    return out
+
+
+def _sweep_grid(text: str) -> tuple[str, list[float]]:
+    """``K=START:STOP:STEPS`` as the parameter name and STEPS evenly spaced values."""
+    key, sep, spec = text.partition("=")
+    parts = spec.split(":")
+    try:
+        if not sep or not key or len(parts) != 3:
+            raise ValueError
+        start, stop, steps = float(parts[0]), float(parts[1]), int(parts[2])
+    except ValueError:
+        raise ValueError(f"--sweep {text!r}: expected NAME=START:STOP:STEPS, for example "
+                         "temperature=0.2:1.0:9") from None  # fmt: skip
+    if steps < 2:
+        raise ValueError(f"--sweep {text!r}: STEPS must be at least 2")
+    return key, [round(start + (stop - start) * i / (steps - 1), 12) for i in range(steps)]
+
+
+def _estimate(args: argparse.Namespace) -> int:
+    """Estimate a target policy; exit 1 when the data cannot answer (support deficit, tiny ESS)."""
+    import os
+
+    import orjson
+    from rich.console import Console
+
+    from drawledger.replay import estimate, sweep
+
+    if args.sweep is None and args.plot:
+        raise ValueError("--plot draws the curve of --sweep; add --sweep NAME=START:STOP:STEPS")
+    if args.sweep is not None and (args.by or args.target):
+        raise ValueError("--sweep varies --set parameters; it cannot be combined with --by "
+                         "or --target")  # fmt: skip
+    if args.baseline_set and args.baseline_target:
+        raise ValueError("give either --baseline-set or --baseline-target, not both")
+    overrides = _assignments(args.overrides, "--set")
+    if overrides and args.target:
+        raise ValueError("give either --set (changed parameters) or --target (a callable)")
+    baseline = _assignments(args.baseline_set, "--baseline-set") or args.baseline_target
+    reward_range = None
+    if args.reward_range is not None:
+        lo, sep, hi = args.reward_range.partition(":")
+        try:
+            reward_range = (float(lo), float(hi))
+        except ValueError:
+            sep = ""
+        if not sep:
+            raise ValueError(f"--reward-range {args.reward_range!r}: expected LOW:HIGH, "
+                             "for example 0:1")  # fmt: skip
+    missing: float | None = None
+    if args.missing_reward != "exclude":
+        try:
+            missing = float(args.missing_reward)
+        except ValueError:
+            raise ValueError(f"--missing-reward {args.missing_reward!r}: a number or "
+                             "'exclude'") from None  # fmt: skip
+    common: dict[str, Any] = dict(
+        reward=args.reward, stream=args.stream, path=args.path, allow=args.allow,
+        baseline=baseline or None, clip=args.clip, interval=args.interval,
+        bootstrap=args.bootstrap, level=args.level, seed=args.seed, reward_range=reward_range,
+        missing_reward=missing, progress=sys.stderr.isatty(), jobs=args.jobs,
+        integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None,
+        engine=args.engine, scheduler=args.scheduler,
+    )  # fmt: skip
+    report: Any
+    if args.sweep is not None:
+        param, values = _sweep_grid(args.sweep)
+        report = sweep(args.ledger, param=param, values=values, overrides=overrides or None,
+                       **common)  # fmt: skip
+        if args.plot:
+            report.figure().savefig(args.plot)
+    else:
+        report = estimate(args.ledger, overrides=overrides or None, target=args.target,
+                          by=args.by, **common)  # fmt: skip
+    if args.json:
+        with open(args.json, "wb") as out:
+            out.write(orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n")
+    Console(highlight=False).print(report)
+    return EXIT_OK if report.ok else EXIT_FOUND
+
+
+def _estimate_options(p: argparse.ArgumentParser) -> None:
+    p.description = (
+        "Verify the ledger, then estimate the mean reward of a target policy (the logged\n"
+        "decision function with --set parameters, or a --target callable) from the verified\n"
+        "records: IPS, SNIPS, clipped IPS and doubly robust, each with an interval, the paired\n"
+        "difference to a baseline (default: the logging policy), and overlap diagnostics.\n"
+        "Exit 0 when the data can answer, 1 when the target has a support deficit or a small\n"
+        "effective sample size (docs/estimators.md)."
+    )
+    p.add_argument("--target", metavar="MODULE:FUNCTION",
+                   help="target policy as a callable f(inputs, action) -> probability, "
+                   "imported under the --path/--allow rules")  # fmt: skip
+    p.add_argument("--baseline-set", action="append", default=[], metavar="K=V",
+                   help="compare with these parameters, not logging (repeatable)")  # fmt: skip
+    p.add_argument("--baseline-target", metavar="MODULE:FUNCTION",
+                   help="compare with this callable, not the logging policy")  # fmt: skip
+    p.add_argument("--sweep", metavar="K=START:STOP:STEPS",
+                   help="a curve of estimates over STEPS values of policy parameter K")  # fmt: skip
+    p.add_argument("--plot", metavar="FILE", help="with --sweep: save the curve (.png, .svg, .pdf)")
+    p.add_argument("--by", metavar="FIELD",
+                   help="estimates per segment: a column of verify's export or an input "
+                   "field such as ctx.segment")  # fmt: skip
+    p.add_argument("--clip", type=float, metavar="R",
+                   help="cap of clipped IPS: weights >= R count as 0 (default 10)")  # fmt: skip
+    p.add_argument("--interval", choices=("clt", "bootstrap", "bernstein"), default="clt",
+                   help="interval method (default clt: normal / delta method)")  # fmt: skip
+    p.add_argument("--bootstrap", type=int, default=0, metavar="B",
+                   help="bootstrap resamples with --interval bootstrap (default 1000)")  # fmt: skip
+    p.add_argument("--level", type=float, default=0.95, help="confidence level (default 0.95)")
+    p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap and sampled checks")
+    p.add_argument("--reward-range", metavar="LOW:HIGH",
+                   help="reward bounds (default: observed, widened to include 0)")  # fmt: skip
+    p.add_argument("--missing-reward", default="0", metavar="VALUE",
+                   help="reward when the outcome is missing, or 'exclude' (default 0)")  # fmt: skip
+    p.add_argument("--jobs", type=int, default=1, metavar="N",
+                   help="verify in N processes (default 1)")  # fmt: skip
+
+
+# The default demo size: the whole demo finishes in well under a minute on a laptop.
+DEMO_SESSIONS = 4_000
+
+
+def _demo(args: argparse.Namespace) -> int:
+    """Run the grocery-delivery demo; exit 1 when verification or the audit found a problem."""
+    from drawledger.replay import run_demo
+
+    result = run_demo(args.decisions, args.out, progress=True)
+    print(result.render())
+    return EXIT_OK if result.ok else EXIT_FOUND
+
+
+def _report(args: argparse.Namespace) -> int:
+    """Write the HTML report; exit 1 when verification or the audit found a problem."""
+    import os
+
+    from drawledger.replay import write_report
+
+    report = write_report(
+        args.ledger, args.html, path=args.path, allow=args.allow, reward=args.reward,
+        overrides=_assignments(args.overrides, "--set") or None, stream=args.stream,
+        progress=True, integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None,
+    )  # fmt: skip
+    print(report.render())
+    return EXIT_OK if report.ok else EXIT_FOUND
+
+
 def _engine_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--engine", choices=("local", "dask"), default="local",
                    help="where the work runs (default: local)")  # fmt: skip
@@ -37,7 +254,7 @@ def _replay_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--path", action="append", default=[], metavar="DIR",
                    help="directory decision code may be imported from (repeatable)")  # fmt: skip
     p.add_argument("--allow", action="append", default=[], metavar="PREFIX",
-                   help="module prefix decision code may be imported from (repeatable)")  # fmt: skip
+                   help="module prefix decision code may come from (repeatable)")  # fmt: skip
 
 
 class _Formatter(argparse.RawDescriptionHelpFormatter):
@@ -64,31 +281,47 @@ def build_parser() -> argparse.ArgumentParser:
         return p
 
     p = add("demo", "run the grocery-delivery demo end to end",
-            "drawledger demo --decisions 5000 --out demo-out", _not_yet("demo"))  # fmt: skip
-    p.add_argument("--decisions", type=int, default=20_000, metavar="N",
-                   help="number of shopper sessions to simulate (default 20000)")  # fmt: skip
+            "drawledger demo --decisions 2000 --out demo-out", _demo)  # fmt: skip
+    p.description = (
+        "Simulate the shoppers of an invented grocery-delivery app, record two randomized\n"
+        "decisions (recipe-card, reminder-delay) through the SDK into DIR/decisions.db, verify\n"
+        "and audit the ledger, estimate two what-if policies beside the simulator's true\n"
+        "values, and write DIR/report.html. Exit 0 when every check passed, 1 when verification\n"
+        "or the audit found a problem."
+    )
+    p.add_argument("--decisions", type=int, default=DEMO_SESSIONS, metavar="N",
+                   help="number of shopper sessions to simulate, each making one recipe-card "
+                   f"and one reminder-delay decision (default {DEMO_SESSIONS})")  # fmt: skip
     p.add_argument("--out", default="drawledger-demo", metavar="DIR",
-                   help="output directory (default drawledger-demo)")  # fmt: skip
+                   help="output directory for decisions.db and report.html; a previous demo "
+                   "ledger there is replaced (default drawledger-demo)")  # fmt: skip
 
     p = add("verify", "replay every decision and check the ledger's integrity",
             "drawledger verify decisions.db --path . --json verify.json --export props.parquet",
-            _not_yet("verify"))  # fmt: skip
+            _verify)  # fmt: skip
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     _replay_options(p)
     p.add_argument("--json", metavar="FILE", help="write the result as JSON")
     p.add_argument("--export", metavar="FILE",
                    help="write one row per decision (.csv or .parquet)")  # fmt: skip
+    p.add_argument("--jobs", type=int, default=1, metavar="N",
+                   help="replay in N processes (default 1)")  # fmt: skip
+    p.add_argument("--budget", type=int, default=4096, metavar="PATHS",
+                   help="most branches enumerated per decision before Monte Carlo "
+                   "(default 4096)")  # fmt: skip
+    p.add_argument("--mc-samples", type=int, default=2000, metavar="N",
+                   help="Monte Carlo runs per decision past the budget (default 2000)")  # fmt: skip
     _engine_options(p)
 
     p = add("audit", "test statistically that randomization happened as declared",
-            "drawledger audit decisions.db --json audit.json", _not_yet("audit"))  # fmt: skip
+            "drawledger audit decisions.db --json audit.json", _audit)  # fmt: skip
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     p.add_argument("--json", metavar="FILE", help="write the result as JSON")
     _engine_options(p)
 
     p = add("estimate", "estimate the reward of a changed policy from verified records",
             "drawledger estimate decisions.db --reward checkout --set temperature=0.3 --path .",
-            _not_yet("estimate"))  # fmt: skip
+            _estimate)  # fmt: skip
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     p.add_argument("--reward", required=True, metavar="NAME", help="outcome name to estimate")
     p.add_argument("--set", action="append", default=[], metavar="K=V", dest="overrides",
@@ -96,15 +329,29 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--stream", metavar="S", help="only this decision stream")
     _replay_options(p)
     p.add_argument("--json", metavar="FILE", help="write the result as JSON")
+    _estimate_options(p)
     _engine_options(p)
 
     p = add("report", "write a self-contained HTML report of a ledger",
-            "drawledger report decisions.db --html report.html", _not_yet("report"))  # fmt: skip
+            "drawledger report decisions.db --html report.html --path . --reward checkout "
+            "--set temperature=0.3 --stream recipe-card", _report)  # fmt: skip
+    p.description = (
+        "Write one self-contained HTML file (no external requests, figures inline): integrity\n"
+        "and verification with reasons, the randomization audit with its figures and, with\n"
+        "--reward and --set, the estimate of a target policy with its weights. Exit 0 when\n"
+        "verification and the audit passed, 1 when they found a problem."
+    )
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     p.add_argument("--html", required=True, metavar="FILE", help="where to write the report")
+    _replay_options(p)
+    p.add_argument("--reward", metavar="NAME",
+                   help="outcome name: add the estimate of the --set target policy")  # fmt: skip
+    p.add_argument("--set", action="append", default=[], metavar="K=V", dest="overrides",
+                   help="policy parameter of the target policy (repeatable)")  # fmt: skip
+    p.add_argument("--stream", metavar="S", help="decision stream of the estimate")
 
     p = add("ingest", "load declared draws or spill files into a ledger",
-            "drawledger ingest legacy-draws.jsonl decisions.db", _not_yet("ingest"))  # fmt: skip
+            "drawledger ingest legacy-draws.jsonl decisions.db", _ingest)  # fmt: skip
     p.add_argument("file", metavar="FILE", help="JSON Lines: declared draws or a spill file")
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     return parser

@@ -7,11 +7,14 @@ either the drawledger class or the builtin they already handle.
 from __future__ import annotations
 
 __all__ = [
+    "BadRecordError",
     "DecisionDefinitionError",
     "DrawArgumentError",
     "DrawledgerError",
     "LedgerClosedError",
     "LedgerError",
+    "MissingFunctionError",
+    "NotADecisionError",
     "NotSerializableError",
     "ReplayError",
 ]
@@ -46,3 +49,19 @@ class LedgerClosedError(LedgerError):
 
 class ReplayError(DrawledgerError, RuntimeError):
     """Replay, audit or estimation could not run on the given ledger or arguments."""
+
+
+class MissingFunctionError(ReplayError):
+    """A ledger names a decision function that replay cannot find.
+
+    Its module is not under a ``--path`` directory or an ``--allow`` prefix (so it was not
+    imported), does not exist, or has no such function.
+    """
+
+
+class NotADecisionError(ReplayError):
+    """A ledger names an object that is not registered with ``@ledger.decision``; never called."""
+
+
+class BadRecordError(ReplayError):
+    """A ledger record cannot be decoded: corrupt JSON, NaN, wrong types, a malformed seed."""

@@ -3,15 +3,18 @@
 from __future__ import annotations
 
 import atexit
+import contextlib
 import functools
 import hashlib
 import inspect
 import itertools
+import math
 import os
 import socket
 import textwrap
 import threading
 import time
+import tokenize
 import weakref
 from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
@@ -55,7 +58,8 @@ def code_hash(fn: Callable[..., Any]) -> str:
     """Hash of a function's source text (or of its bytecode when the source is not available)."""
     try:
         data = textwrap.dedent(inspect.getsource(fn)).encode()
-    except (OSError, TypeError):
+    except (OSError, TypeError, SyntaxError, tokenize.TokenError):
+        # No readable source (REPL, exec'd code, a file changed on disk): hash the bytecode.
         code = fn.__code__
         data = code.co_code + repr(code.co_consts).encode()
     return hashlib.blake2b(data, digest_size=16).hexdigest()
@@ -69,6 +73,12 @@ class Decision(Generic[R]):
     """
 
     def __init__(self, ledger: Ledger, stream: str, fn: Callable[..., R]) -> None:
+        if inspect.iscoroutinefunction(fn) or inspect.isasyncgenfunction(fn) or \
+                inspect.isgeneratorfunction(fn):  # fmt: skip
+            raise DecisionDefinitionError(
+                f"{fn.__qualname__}: a decision must be a plain function that returns its action "
+                "(not async, not a generator); await what it needs before calling it"
+            )
         sig = inspect.signature(fn)
         self.inputs: list[str] = []
         self.params: dict[str, Any] = {}
@@ -96,11 +106,16 @@ class Decision(Generic[R]):
                 self.inputs.append(p.name)
         if self._draw_index < 0:
             raise DecisionDefinitionError(f"{fn.__qualname__}: a decision needs a 'draw' parameter")
-        _records.to_json(self.params, f"{fn.__qualname__}: policy parameter defaults")
+        params_json = _records.to_json(self.params, f"{fn.__qualname__}: policy parameter defaults")
+        # Defaults that cannot change are encoded once; a call that keeps them reuses this.
+        self._params_json = params_json if all(
+            v is None or type(v) in (str, int, float, bool) for v in self.params.values()
+        ) else None  # fmt: skip
         self.ledger = ledger
         self.stream = stream
         self.fn = fn
         self.name = f"{fn.__module__}:{fn.__qualname__}"
+        self._action_what = f"{self.name}: action"
         self.code_hash = code_hash(fn)
         functools.update_wrapper(self, fn)
         REGISTRY[self.name] = self
@@ -117,12 +132,14 @@ class Decision(Generic[R]):
         args.insert(self._draw_index, draw)
         return self.fn(*args, **{**self.params, **params})
 
-    def __call__(self, *args: Any, unit: str | None = None, decision_id: str | None = None,
-                 **kwargs: Any) -> R:  # fmt: skip
+    def _bind(
+        self, args: tuple[Any, ...], kwargs: dict[str, Any]
+    ) -> tuple[dict[str, Any], dict[str, Any]]:
+        """Inputs and policy parameters of a call, by name (TypeError as Python would)."""
         names = self.inputs
         if len(args) > len(names):
             raise TypeError(f"{self.name} takes {len(names)} inputs, got {len(args)}")
-        inputs = dict(zip(names, args))
+        inputs = dict(zip(names, args, strict=False))
         params = dict(self.params)
         for key, value in kwargs.items():
             if key in params:
@@ -134,15 +151,48 @@ class Decision(Generic[R]):
         if len(inputs) != len(names):
             missing = [n for n in names if n not in inputs]
             raise TypeError(f"{self.name} is missing inputs: {', '.join(missing)}")
+        return inputs, params
+
+    def __call__(self, *args: Any, unit: str | None = None, decision_id: str | None = None,
+                 **kwargs: Any) -> R:  # fmt: skip
+        params_json = self._params_json
+        if kwargs or len(args) != len(self.inputs) or params_json is None:
+            inputs, params = self._bind(args, kwargs)
+            params_json = _records.to_json(params, f"{self.name}: policy parameters")
+            call = [inputs[name] for name in self.inputs]
+        else:  # the common call: every input positional, the default policy parameters
+            inputs = dict(zip(self.inputs, args, strict=True))
+            params = None  # the function's own defaults apply
+            call = list(args)
         ledger = self.ledger
         inputs_json = ledger._inputs_json(inputs, self.name)
-        params_json = _records.to_json(params, f"{self.name}: policy parameters")
         draw = Draw(ledger._seed_source())
-        action = self.run(draw, inputs, params)
-        ledger._record_decision(
-            self, draw, inputs_json, params_json, action, unit, decision_id
-        )
+        call.insert(self._draw_index, draw)
+        action = self.fn(*call) if params is None else self.fn(*call, **params)
+        ledger._record_decision(self, draw, inputs_json, params_json, action, unit, decision_id)
         return action
+
+
+def _json_or_none(obj: Any) -> str | None:
+    """JSON of ``obj``, or None when it has none (the draw rows then report the error)."""
+    try:
+        return _records.to_json(obj, "value")
+    except NotSerializableError:
+        return None
+
+
+def _timestamp(ts: Any) -> float:
+    """A given ``ts`` as a float; a bad one is refused here rather than failing a whole batch."""
+    if isinstance(ts, bool) or not isinstance(ts, (int, float)) or not math.isfinite(ts):
+        raise NotSerializableError(f"ts must be a finite number of seconds, got {ts!r}")
+    return float(ts) + 0.0  # + 0.0: -0.0 becomes 0.0 (docs/ledger.md)
+
+
+def _no_nul(*texts: str | None) -> None:
+    """Refuse NUL characters in plain text columns: PostgreSQL text cannot hold them."""
+    for text in texts:
+        if text is not None and "\x00" in text:
+            raise NotSerializableError(f"{text!r} contains a NUL character, which cannot be stored")
 
 
 def _redact_value(value: Any, key: bytes) -> str:
@@ -169,7 +219,8 @@ class Ledger:
     ``target`` is a path (an SQLite file, the embedded default), a SQLAlchemy URL such as
     ``postgresql+psycopg://host/db``, or a directory with ``format="parquet"``. Records are
     queued and written in batches by a background thread; ``flush()`` waits until everything
-    recorded before it is committed.
+    recorded before it is committed. ``durability="full"`` makes every commit survive power
+    loss, at a cost in throughput (docs/operations.md).
     """
 
     def __init__(
@@ -184,6 +235,7 @@ class Ledger:
         batch_size: int = 10_000,
         block_timeout: float = 1.0,
         spill_dir: str | os.PathLike[str] | None = None,
+        durability: str = "normal",
     ) -> None:
         if queue_size < 1 or batch_size < 1:
             raise ValueError("queue_size and batch_size must be at least 1")
@@ -192,18 +244,29 @@ class Ledger:
         if format not in (None, "sql", "sqlite", "parquet"):
             raise LedgerError(f"unknown ledger format {format!r}; use 'parquet' or leave it out")
         if format != "parquet":
-            _sinks.create_engine(_sinks.sqlalchemy_url(self.target)).dispose()  # URL check
-        self._key = integrity_key.encode() if isinstance(integrity_key, str) else (integrity_key or b"")
+            _sinks.create_engine(_sinks.sqlalchemy_url(self.target), durability).dispose()
+        elif durability not in _sinks.DURABILITY:
+            raise LedgerError(f"unknown durability {durability!r}; use 'normal' or 'full'")
+        self.durability = durability
+        self._key = (
+            integrity_key.encode() if isinstance(integrity_key, str) else (integrity_key or b"")
+        )
         if len(self._key) > 64:
             raise ValueError("integrity_key must be at most 64 bytes")
         rkey = redact_key if redact_key is not None else self._key
         self._redact_key = rkey.encode() if isinstance(rkey, str) else rkey
+        if isinstance(redact, str) or any(not p or "" in p.split(".") for p in redact):
+            raise ValueError("redact takes a list of dotted field paths such as ['shopper.email']")
+        if redact and not 1 <= len(self._redact_key) <= 64:
+            raise ValueError(  # an unkeyed hash of an e-mail address is reversed by guessing
+                "redact needs a secret redact_key (or integrity_key) of 1 to 64 bytes"
+            )
         self._redact_paths = [field.split(".") for field in redact]
         self.queue_size = queue_size
         self.block_timeout = block_timeout
         self._spill_dir = Path(spill_dir) if spill_dir is not None else self._default_spill_dir()
         self._seed_source: Callable[[], bytes] = _stream.new_seed
-        self._taps: list[Callable[[Any], None]] = []
+        self._taps: list[Callable[[Any], bool]] = []
         self._batch_size = batch_size
         self._closed = False
         self._init_process()
@@ -227,10 +290,17 @@ class Ledger:
         self._ids = itertools.count()
         self._stats = Stats()
         spill = SpillFile(self._spill_dir / f"drawledger-spill-{self.writer}.jsonl")
-        self._writer = Writer(self._open_sink, spill, self._stats, batch_size=self._batch_size)
+        self._writer = Writer(
+            self._open_sink,
+            spill,
+            self._stats,
+            batch_size=self._batch_size,
+            queue_size=self.queue_size,
+            block_timeout=self.block_timeout,
+        )
 
     def _open_sink(self) -> _sinks.Sink:
-        return _sinks.open_sink(self.target, self.format)
+        return _sinks.open_sink(self.target, self.format, durability=self.durability)
 
     def _after_fork(self) -> None:
         old = self._writer
@@ -279,12 +349,13 @@ class Ledger:
         unit: str | None,
         decision_id: str | None,
     ) -> None:
-        what = decision.name
-        action_json = _records.to_json(action, f"{what}: action")
+        action_json = _records.to_json(action, decision._action_what)
         draws = draw.records
         if not draws:
             prop, kind = 1.0, "exact"
-        elif len(draws) == 1 and _records.to_json(draws[0].value, "value") == action_json:
+        elif len(draws) == 1 and (
+            draws[0].value is action or _json_or_none(draws[0].value) == action_json
+        ):
             prop, kind = draws[0].prob, "exact"
         else:
             prop = 1.0
@@ -293,24 +364,34 @@ class Ledger:
             kind = "path"
         self._append_decision(
             decision_id, decision.stream, unit, None, decision.name, decision.code_hash,
-            inputs, params, action_json, prop, kind, draw.seed.hex(), draws,
+            inputs, params, action_json, prop, kind, draw.seed.hex(), draws, (action, action_json),
         )  # fmt: skip
 
-    def _draw_rows(self, did: str, draws: Sequence[DrawRecord]) -> list[tuple[Any, ...]]:
+    def _draw_rows(
+        self, did: str, draws: Sequence[DrawRecord], encoded: tuple[Any, str] | None = None
+    ) -> list[tuple[Any, ...]]:
+        """Rows of the draws table; ``encoded`` = (object, its JSON) spares encoding it twice."""
         rows = []
+        to_json = _records.to_json
         for d in draws:
-            where = f"{d.kind} draw {d.idx}"
-            rows.append((
-                did, d.idx, d.name, d.kind, _records.to_json(d.args, f"{where}: arguments"),
-                _records.to_json(d.u, f"{where}: uniforms"),
-                _records.to_json(d.value, f"{where}: value"), d.prob, int(d.is_density),
-            ))  # fmt: skip
+            if d.name is not None and "\x00" in d.name:
+                _no_nul(d.name)
+            try:
+                value = encoded[1] if encoded is not None and d.value is encoded[0] else \
+                    to_json(d.value, "its value")  # fmt: skip
+                rows.append((did, d.idx, d.name, d.kind, to_json(d.args, "its arguments"),
+                             to_json(d.u, "its uniforms"), value, d.prob + 0.0,
+                             int(d.is_density)))  # fmt: skip
+            except NotSerializableError as exc:
+                label = f"{d.kind} draw {d.name!r}" if d.name is not None else f"{d.kind} draw"
+                raise NotSerializableError(f"{label} (#{d.idx}): {exc}") from None
         return rows
 
     def _append_decision(
         self, decision_id: str | None, stream: str, unit: str | None, ts: float | None,
         fn: str | None, chash: str | None, inputs: str, params: str, action: str, prop: float,
         kind: str, seed: str | None, draws: Sequence[DrawRecord],
+        encoded: tuple[Any, str] | None = None,
     ) -> str:  # fmt: skip
         if self._closed:
             raise LedgerClosedError(f"ledger {self.target!r} is closed")
@@ -319,8 +400,10 @@ class Ledger:
         did = self._next_id() if decision_id is None else decision_id
         if not isinstance(did, str) or not did:
             raise NotSerializableError("decision_id must be a non-empty string")
-        draw_rows = self._draw_rows(did, draws)
-        stamp = time.time() if ts is None else ts
+        _no_nul(did, stream, unit)  # draw names: in _draw_rows
+        draw_rows = self._draw_rows(did, draws, encoded)
+        stamp = time.time() if ts is None else _timestamp(ts)
+        prop += 0.0
         with self._lock:
             row = (did, stream, unit, stamp, fn, chash, inputs, params, action, prop, kind, seed,
                    self.writer, self._seq, self._prev)  # fmt: skip
@@ -331,38 +414,38 @@ class Ledger:
         return did
 
     def _enqueue(self, item: Any) -> None:
-        """Queue one record (caller holds the lock); spill it when the queue stays full."""
+        """Queue one record (the caller holds the lock); ``Writer.put`` handles a full queue."""
         self._stats.recorded += 1
-        for tap in self._taps:
-            tap(item)
-        w = self._writer
-        if not w.running:
-            w.start()
-        if len(w.queue) >= self.queue_size:
-            deadline = time.monotonic() + self.block_timeout
-            w.wake()
-            while len(w.queue) >= self.queue_size and time.monotonic() < deadline:
-                time.sleep(0.001)
-            if len(w.queue) >= self.queue_size:
-                w.spill_items([item])
-                return
-        w.queue.append(item)
+        held = False
+        for tap in self._taps:  # drawledger.testing: a tap returning True holds the record back
+            held = tap(item) or held
+        if not held:
+            self._writer.put(item)
 
-    def outcome(self, decision_id: str, name: str, value: float, *, ts: float | None = None) -> None:
+    def outcome(
+        self, decision_id: str, name: str, value: float, *, ts: float | None = None
+    ) -> None:
         """Record an outcome (a reward) of a decision, by its decision id."""
         if not isinstance(decision_id, str) or not decision_id:
             raise NotSerializableError("outcome: decision_id must be a non-empty string")
         if not isinstance(name, str) or not name:
             raise NotSerializableError("outcome: name must be a non-empty string")
+        _no_nul(decision_id, name)
         if isinstance(value, bool):
             value = float(value)
-        if not isinstance(value, (int, float)) or value != value or value in (float("inf"), float("-inf")):
-            raise NotSerializableError(f"outcome {name!r}: value must be a finite number, got {value!r}")
+        if (
+            not isinstance(value, (int, float))
+            or value != value
+            or value in (float("inf"), float("-inf"))
+        ):
+            raise NotSerializableError(
+                f"outcome {name!r}: value must be a finite number, got {value!r}"
+            )
         if self._closed:
             raise LedgerClosedError(f"ledger {self.target!r} is closed")
-        stamp = time.time() if ts is None else float(ts)
+        stamp = time.time() if ts is None else _timestamp(ts)
         with self._lock:
-            row = (decision_id, name, float(value), stamp, self.writer, self._seq, self._prev)
+            row = (decision_id, name, float(value) + 0.0, stamp, self.writer, self._seq, self._prev)
             digest = _records.outcome_hash(row, self._key)
             self._enqueue(("o", (*row, digest)))
             self._seq += 1
@@ -384,7 +467,7 @@ class Ledger:
         """
         arm, u, prob, arms, probs = bucket_assign(unit, shares, salt)
         salt_text = salt if isinstance(salt, str) else salt.hex()
-        args = {"unit": unit, "shares": dict(zip(arms, probs)), "salt": salt_text}
+        args = {"unit": unit, "shares": dict(zip(arms, probs, strict=True)), "salt": salt_text}
         record = DrawRecord(0, None, "bucket", args, [u], arm, prob, False)
         action = _records.to_json(arm, "bucket arm")
         self._append_decision(decision_id, stream or salt_text, unit, None, None, None, "{}",
@@ -448,7 +531,7 @@ class Ledger:
             self._writer.stop(timeout=30.0)
 
     def stats(self) -> dict[str, int]:
-        """Counters of this process: recorded, written, spilled, retried, queued."""
+        """Counters of this process: recorded, written, spilled, retried, dropped, queued."""
         out = self._stats.as_dict()
         out["queued"] = sum(1 for item in list(self._writer.queue) if isinstance(item, tuple))
         return out
@@ -461,10 +544,8 @@ class Ledger:
 
 def _close_all() -> None:
     for ledger in list(_LEDGERS):
-        try:
+        with contextlib.suppress(Exception):  # interpreter exit: never raise from here
             ledger.close()
-        except Exception:  # interpreter exit: never raise from here
-            pass
 
 
 def _after_fork_in_child() -> None:

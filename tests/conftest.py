@@ -3,10 +3,13 @@
 from __future__ import annotations
 
 import os
+import re
+import subprocess
 import sys
 import uuid
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -56,3 +59,43 @@ def postgres_url() -> Iterator[str]:
     with admin.begin() as conn:
         conn.exec_driver_sql(f"DROP SCHEMA {schema} CASCADE")
     admin.dispose()
+
+
+@pytest.fixture(scope="session")
+def demo_run(tmp_path_factory: pytest.TempPathFactory) -> Any:
+    """The grocery-delivery demo at a small size (300 sessions), run once per test session.
+
+    Returns the ``DemoResult``: its ledger, report.html and the verify, audit and estimate
+    reports, for the report tests.
+    """
+    from drawledger.replay import run_demo
+
+    return run_demo(300, tmp_path_factory.mktemp("demo"))
+
+
+ROOT = TESTS.parent
+
+
+@pytest.fixture
+def run_markdown(tmp_path: Path) -> Callable[..., subprocess.CompletedProcess[str]]:
+    """Run the ```python blocks of a Markdown page, in order, as one script in a new interpreter.
+
+    The script runs in ``tmp_path`` (so files it writes land there); returns the finished
+    process, whose exit code and output the test checks.
+    """
+
+    def run(page: str | Path, timeout: float = 120) -> subprocess.CompletedProcess[str]:
+        text = (ROOT / page).read_text(encoding="utf-8")
+        blocks = re.findall(r"^```python\n(.*?)^```$", text, flags=re.S | re.M)
+        assert blocks, f"{page} has no python blocks"
+        script = tmp_path / (Path(page).stem + "_blocks.py")
+        script.write_text("\n\n".join(blocks), encoding="utf-8")
+        return subprocess.run(
+            [sys.executable, str(script)],
+            cwd=tmp_path,
+            capture_output=True,
+            text=True,
+            timeout=timeout,
+        )
+
+    return run

@@ -1,0 +1,544 @@
+"""Off-policy estimators over importance weights (numpy only).
+
+Every estimate is a smooth function of the means of a few per-record columns. For one policy
+the columns are (``POLICY_COLUMNS``)::
+
+    w    importance weight  pi(a | x) / mu(a | x) of the logged action
+    wr   w * r
+    k    clipped weight     w if w < cap else 0        (Bottou et al. 2013)
+    kr   k * r
+    dr   doubly robust term sum_a pi(a | x) q(x, a) + w (r - q(x, a_logged))
+
+A paired comparison puts the columns of a second policy beside them. A pass over the data
+therefore only keeps ``Moments`` (count, means, centred cross-products, extremes) per chunk;
+chunks combine with the pairwise update of Chan, Golub & LeVeque (1979), so any partitioning
+gives the same result up to float rounding. Point estimates, delta-method variances, Kish's
+effective sample size and the empirical Bernstein bound all follow from the combined moments;
+only the bootstrap and the weight quantiles need the records themselves.
+
+The reward model of the doubly robust estimator (Dudik, Langford & Li 2011) is a ridge
+regression per action on standardized features, cross-fitted over folds; its sufficient
+statistics (Gram matrices per fold and action) combine across chunks in the same way.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from statistics import NormalDist
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from drawledger.exceptions import ReplayError
+
+__all__ = [
+    "DR",
+    "KR",
+    "POLICY_COLUMNS",
+    "WIDTH",
+    "WR",
+    "Estimand",
+    "K",
+    "Moments",
+    "RewardModel",
+    "RidgeStats",
+    "Term",
+    "W",
+    "bernstein_halfwidth",
+    "bernstein_interval",
+    "bootstrap_means",
+    "clt_interval",
+    "column_spans",
+    "delta_variance",
+    "dr_terms",
+    "estimands",
+    "kish_ess",
+    "percentile_interval",
+    "policy_columns",
+    "scaling",
+    "summarize",
+    "support_deficit",
+    "weight_quantiles",
+]
+
+Array = NDArray[np.float64]
+
+POLICY_COLUMNS = ("w", "wr", "k", "kr", "dr")
+W, WR, K, KR, DR = range(len(POLICY_COLUMNS))
+WIDTH = len(POLICY_COLUMNS)
+QUANTILES = (0.5, 0.9, 0.99, 0.999)
+
+# Block sizes (memory and speed, not results): bootstrap indices drawn at once, and rows of a
+# record matrix reduced at once by ``Moments.of``.
+_BOOTSTRAP_BLOCK = 4_000_000
+_MOMENT_BLOCK = 131_072
+
+
+def _floats(x: ArrayLike, what: str) -> Array:
+    a = np.asarray(x, dtype=np.float64)
+    if not np.all(np.isfinite(a)):
+        raise ReplayError(f"{what} contains NaN or an infinity")
+    return a
+
+
+def policy_columns(w: ArrayLike, r: ArrayLike, *, cap: float, dr: ArrayLike | None = None) -> Array:
+    """The per-record columns of one policy, shape (n, WIDTH); ``dr`` is 0 when not given."""
+    wt = _floats(w, "weights")
+    rt = _floats(r, "rewards")
+    if wt.ndim != 1 or wt.shape != rt.shape:
+        raise ReplayError(f"weights {wt.shape} and rewards {rt.shape} must be 1-d of one length")
+    if np.any(wt < 0.0):
+        raise ReplayError("weights must be >= 0 (a probability ratio)")
+    if not cap > 0.0:
+        raise ReplayError(f"the clipping cap must be > 0, got {cap!r}")
+    z = np.empty((wt.size, WIDTH))
+    z[:, W] = wt
+    np.multiply(wt, rt, out=z[:, WR])
+    np.multiply(wt, wt < cap, out=z[:, K])
+    np.multiply(z[:, K], rt, out=z[:, KR])
+    if dr is None:
+        z[:, DR] = 0.0
+    else:
+        d = _floats(dr, "doubly robust terms")
+        if d.shape != wt.shape:
+            raise ReplayError("doubly robust terms must have one entry per record")
+        z[:, DR] = d
+    return z
+
+
+@dataclass(frozen=True)
+class Moments:
+    """Sufficient statistics of the columns of a record matrix, combinable across chunks.
+
+    ``m2`` is the matrix of centred cross-products sum (z - mean)(z - mean)^T; two chunks
+    combine by the pairwise update of Chan, Golub & LeVeque (1979).
+    """
+
+    n: int
+    mean: Array
+    m2: Array
+    low: Array
+    high: Array
+
+    @classmethod
+    def empty(cls, width: int) -> Moments:
+        return cls(0, np.zeros(width), np.zeros((width, width)),
+                   np.full(width, np.inf), np.full(width, -np.inf))  # fmt: skip
+
+    @classmethod
+    def of(cls, z: ArrayLike) -> Moments:
+        a = np.asarray(z, dtype=np.float64)
+        if a.ndim != 2:
+            raise ReplayError(f"moments need a 2-d record matrix, got shape {a.shape}")
+        if a.shape[0] == 0:
+            return cls.empty(a.shape[1])
+        if a.shape[0] > _MOMENT_BLOCK:  # blocks that stay in cache, combined pairwise
+            return cls.combine(cls.of(a[s : s + _MOMENT_BLOCK])
+                               for s in range(0, a.shape[0], _MOMENT_BLOCK))  # fmt: skip
+        mean = a.mean(axis=0)
+        c = a - mean
+        return cls(a.shape[0], mean, c.T @ c, a.min(axis=0), a.max(axis=0))
+
+    def __add__(self, other: Moments) -> Moments:
+        if self.mean.shape != other.mean.shape:
+            raise ReplayError("cannot combine moments of different column sets")
+        if other.n == 0:
+            return self
+        if self.n == 0:
+            return other
+        n = self.n + other.n
+        delta = other.mean - self.mean
+        mean = self.mean + delta * (other.n / n)
+        m2 = self.m2 + other.m2 + np.outer(delta, delta) * (self.n * other.n / n)
+        return Moments(n, mean, m2, np.minimum(self.low, other.low),
+                       np.maximum(self.high, other.high))  # fmt: skip
+
+    @staticmethod
+    def combine(parts: Iterable[Moments]) -> Moments:
+        """The moments of the union of the chunks (pairwise, so rounding stays balanced)."""
+        items = list(parts)
+        if not items:
+            raise ReplayError("nothing to combine")
+        while len(items) > 1:
+            items = [items[i] + items[i + 1] if i + 1 < len(items) else items[i]
+                     for i in range(0, len(items), 2)]  # fmt: skip
+        return items[0]
+
+    @property
+    def cov(self) -> Array:
+        """Covariance matrix with divisor n (the plug-in estimate used by the delta method)."""
+        return self.m2 / self.n
+
+
+# -- estimands: smooth functions of the column means ---------------------------------------
+@dataclass(frozen=True)
+class Term:
+    """sign * mean[num] / mean[den] (or sign * mean[num] when den is None)."""
+
+    sign: float
+    num: int
+    den: int | None = None
+
+
+@dataclass(frozen=True)
+class Estimand:
+    """A sum of terms; a paired difference is the terms of one policy minus the other's."""
+
+    terms: tuple[Term, ...]
+
+    def value(self, mean: Array) -> Array:
+        """Value at column means of shape (..., k); vectorized over leading axes."""
+        out = np.zeros(mean.shape[:-1])
+        for t in self.terms:
+            top = mean[..., t.num]
+            if t.den is None:
+                out = out + t.sign * top
+            else:
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    out = out + t.sign * top / mean[..., t.den]
+        return out
+
+    def grad(self, mean: Array) -> Array:
+        g = np.zeros(mean.shape[-1])
+        for t in self.terms:
+            if t.den is None:
+                g[t.num] += t.sign
+            else:
+                d = mean[t.den]
+                g[t.num] += t.sign / d
+                g[t.den] -= t.sign * mean[t.num] / (d * d)
+        return g
+
+    def minus(self, other: Estimand) -> Estimand:
+        return Estimand(self.terms + tuple(Term(-t.sign, t.num, t.den) for t in other.terms))
+
+
+def estimands(offset: int = 0) -> dict[str, Estimand]:
+    """IPS, SNIPS, clipped IPS and DR of the policy whose columns start at ``offset``."""
+    return {
+        "ips": Estimand((Term(1.0, offset + WR),)),
+        "snips": Estimand((Term(1.0, offset + WR, offset + W),)),
+        "clipped": Estimand((Term(1.0, offset + KR),)),
+        "dr": Estimand((Term(1.0, offset + DR),)),
+    }
+
+
+def delta_variance(est: Estimand, m: Moments) -> float:
+    """grad^T Cov grad / n: the CLT variance of a mean, the delta method for a ratio."""
+    g = est.grad(m.mean)
+    return float(g @ m.cov @ g) / m.n
+
+
+def _z(level: float) -> float:
+    return NormalDist().inv_cdf(0.5 + level / 2.0)
+
+
+def clt_interval(est: Estimand, m: Moments, level: float = 0.95) -> tuple[float, float]:
+    v = float(est.value(m.mean))
+    half = _z(level) * math.sqrt(max(delta_variance(est, m), 0.0))
+    return v - half, v + half
+
+
+def bootstrap_means(z: ArrayLike, b: int, seed: int = 0) -> Array:
+    """Column means of ``b`` nonparametric bootstrap resamples of the rows, shape (b, k).
+
+    Resampling indices are drawn in blocks (numpy Generator seeded with ``seed``) and turned
+    into counts, so every estimand shares the same resamples (paired comparisons stay paired).
+    """
+    a = np.asarray(z, dtype=np.float64)
+    n = a.shape[0]
+    if b < 1:
+        raise ReplayError(f"the bootstrap needs at least one resample, got B={b}")
+    if n == 0:
+        raise ReplayError("cannot bootstrap an empty sample")
+    rng = np.random.default_rng(seed)
+    block = max(1, _BOOTSTRAP_BLOCK // n)
+    out = np.empty((b, a.shape[1]))
+    for start in range(0, b, block):
+        m = min(block, b - start)
+        idx = rng.integers(0, n, size=(m, n))
+        idx += (np.arange(m) * n)[:, None]
+        counts = np.bincount(idx.ravel(), minlength=m * n).reshape(m, n)
+        out[start : start + m] = (counts @ a) / n
+    return out
+
+
+def percentile_interval(est: Estimand, boot: Array, level: float = 0.95) -> tuple[float, float]:
+    values = est.value(boot)
+    values = values[np.isfinite(values)]
+    if values.size == 0:
+        return math.nan, math.nan
+    lo, hi = np.quantile(values, [0.5 - level / 2.0, 0.5 + level / 2.0])
+    return float(lo), float(hi)
+
+
+def bernstein_halfwidth(var: float, n: int, span: float, delta: float) -> float:
+    """Two-sided empirical Bernstein half-width for a mean of n values in a range of ``span``.
+
+    Maurer & Pontil (2009), Theorem 4, with ln(2/delta) replaced by ln(4/delta) for the two
+    sides: sqrt(2 V ln(4/delta) / n) + 7 span ln(4/delta) / (3 (n - 1)), V the sample variance.
+    """
+    if n < 2:
+        return math.inf
+    log = math.log(4.0 / delta)
+    return math.sqrt(2.0 * max(var, 0.0) * log / n) + 7.0 * span * log / (3.0 * (n - 1))
+
+
+def _bernstein_mean(coef: Array, m: Moments, spans: Array, delta: float) -> tuple[float, float]:
+    mean = float(coef @ m.mean)
+    var = float(coef @ m.m2 @ coef) / (m.n - 1) if m.n > 1 else 0.0
+    half = bernstein_halfwidth(var, m.n, float(np.abs(coef) @ spans), delta)
+    return mean - half, mean + half
+
+
+def bernstein_interval(
+    est: Estimand, m: Moments, spans: ArrayLike, level: float = 0.95
+) -> tuple[float, float]:
+    """Empirical Bernstein interval holding with probability >= level (union bound).
+
+    Linear estimands are bounded as one mean; a ratio term bounds its numerator and
+    denominator separately and divides the bounds (needs a positive lower denominator).
+    """
+    s = np.asarray(spans, dtype=np.float64)
+    width = m.mean.size
+    delta = 1.0 - level
+    if all(t.den is None for t in est.terms):
+        coef = np.zeros(width)
+        for t in est.terms:
+            coef[t.num] += t.sign
+        return _bernstein_mean(coef, m, s, delta)
+    share = delta / len(est.terms)
+    low = high = 0.0
+    for t in est.terms:
+        top = np.zeros(width)
+        top[t.num] = 1.0
+        if t.den is None:
+            lo, hi = _bernstein_mean(top, m, s, share)
+        else:
+            bottom = np.zeros(width)
+            bottom[t.den] = 1.0
+            a_lo, a_hi = _bernstein_mean(top, m, s, share / 2.0)
+            b_lo, b_hi = _bernstein_mean(bottom, m, s, share / 2.0)
+            if not b_lo > 0.0:
+                return -math.inf, math.inf
+            corners = (a_lo / b_lo, a_lo / b_hi, a_hi / b_lo, a_hi / b_hi)
+            lo, hi = min(corners), max(corners)
+        if t.sign > 0:
+            low, high = low + lo, high + hi
+        else:
+            low, high = low - hi, high - lo
+    return low, high
+
+
+def column_spans(weight_bound: float, cap: float, reward_range: tuple[float, float]) -> Array:
+    """Ranges of the policy columns for the Bernstein bound, given the largest weight."""
+    lo, hi = reward_range
+    reach = max(hi, 0.0) - min(lo, 0.0)
+    kept = min(cap, weight_bound)
+    return np.array([
+        weight_bound, weight_bound * reach, kept, kept * reach,
+        (hi - lo) * (1.0 + 2.0 * weight_bound),
+    ])  # fmt: skip
+
+
+# -- diagnostics ------------------------------------------------------------------------------
+def kish_ess(m: Moments, column: int = W) -> float:
+    """Kish's effective sample size (sum w)^2 / sum w^2, from the moments of the weights."""
+    scale = float(m.high[column])  # in units of the largest weight: no underflow when squared
+    if not scale > 0.0:
+        return 0.0
+    mu = float(m.mean[column]) / scale
+    second = float(m.cov[column, column]) / scale / scale + mu * mu
+    return m.n * mu * mu / second if second > 0.0 else 0.0
+
+
+def weight_quantiles(w: ArrayLike) -> dict[str, float]:
+    a = np.asarray(w, dtype=np.float64)
+    if a.size == 0:
+        return {}
+    return {str(q): float(v) for q, v in zip(QUANTILES, np.quantile(a, QUANTILES), strict=True)}
+
+
+def support_deficit(target: ArrayLike, logging: ArrayLike) -> Array:
+    """Per record, the target's probability on actions the logging policy could not take.
+
+    Both arguments are (n, actions) probability matrices over a common action index.
+    """
+    t = _floats(target, "target probabilities")
+    lg = _floats(logging, "logging probabilities")
+    if t.shape != lg.shape:
+        raise ReplayError("target and logging probabilities must have the same shape")
+    return np.where(lg > 0.0, 0.0, t).sum(axis=1)
+
+
+# -- doubly robust reward model -------------------------------------------------------------
+def scaling(m: Moments) -> tuple[Array, Array]:
+    """Centre and scale of features from their moments (constant features keep scale 1)."""
+    sd = np.sqrt(np.maximum(np.diag(m.cov), 0.0))
+    return m.mean.copy(), np.where(sd > 0.0, sd, 1.0)
+
+
+def _design(x: Array) -> Array:
+    return np.hstack([np.ones((x.shape[0], 1)), x])
+
+
+@dataclass(frozen=True)
+class RidgeStats:
+    """Gram matrices and cross-products of [1, x] per (fold, action), combinable by addition."""
+
+    gram: Array  # (folds, actions, p + 1, p + 1)
+    xr: Array  # (folds, actions, p + 1)
+
+    @classmethod
+    def of(
+        cls, x: ArrayLike, action: ArrayLike, r: ArrayLike, fold: ArrayLike, *, folds: int,
+        actions: int,
+    ) -> RidgeStats:  # fmt: skip
+        xs = _floats(x, "features")
+        if xs.ndim != 2:
+            raise ReplayError("features must be a 2-d matrix")
+        rs = _floats(r, "rewards")
+        a = np.asarray(action, dtype=np.int64)
+        f = np.asarray(fold, dtype=np.int64)
+        if not (a.shape == f.shape == rs.shape == (xs.shape[0],)):
+            raise ReplayError("features, actions, rewards and folds must have one row per record")
+        if a.size and (a.min() < 0 or a.max() >= actions or f.min() < 0 or f.max() >= folds):
+            raise ReplayError("action or fold index out of range")
+        phi = _design(xs)
+        p = phi.shape[1]
+        gram = np.zeros((folds, actions, p, p))
+        xr = np.zeros((folds, actions, p))
+        key = f * actions + a
+        order = np.argsort(key, kind="stable")
+        keys, starts = np.unique(key[order], return_index=True)
+        ends = np.append(starts[1:], order.size)
+        for k, s, e in zip(keys, starts, ends, strict=True):
+            rows = order[s:e]
+            block = phi[rows]
+            gram[k // actions, k % actions] = block.T @ block
+            xr[k // actions, k % actions] = block.T @ rs[rows]
+        return cls(gram, xr)
+
+    def __add__(self, other: RidgeStats) -> RidgeStats:
+        return RidgeStats(self.gram + other.gram, self.xr + other.xr)
+
+    def fit(self, ridge: float = 1.0) -> RewardModel:
+        """Per fold, a ridge regression per action fitted on the other folds.
+
+        Rewards are centred on the training folds' mean and every coefficient (intercept
+        included) is shrunk, so an action never logged in training predicts that mean.
+        """
+        if not ridge > 0.0:
+            raise ReplayError(f"the ridge penalty must be > 0, got {ridge!r}")
+        folds, actions, p, _ = self.gram.shape
+        total_g = self.gram.sum(axis=0)
+        total_b = self.xr.sum(axis=0)
+        coef = np.zeros((folds, actions, p))
+        base = np.zeros(folds)
+        eye = np.eye(p) * ridge
+        for f in range(folds):
+            g = total_g - self.gram[f] if folds > 1 else total_g
+            b = total_b - self.xr[f] if folds > 1 else total_b
+            count = g[:, 0, 0].sum()
+            base[f] = b[:, 0].sum() / count if count > 0 else 0.0
+            centred = b - base[f] * g[:, :, 0]
+            coef[f] = np.linalg.solve(g + eye, centred[..., None])[..., 0]
+        return RewardModel(coef, base)
+
+
+@dataclass(frozen=True)
+class RewardModel:
+    """Cross-fitted predictions q(x, a) = [1, x] . coef[fold, a] + base[fold]."""
+
+    coef: Array  # (folds, actions, p + 1)
+    base: Array  # (folds,)
+
+    def predict(self, x: ArrayLike, fold: ArrayLike) -> Array:
+        """Predicted reward of every action for each record, shape (n, actions)."""
+        phi = _design(_floats(x, "features"))
+        f = np.asarray(fold, dtype=np.int64)
+        out = np.empty((phi.shape[0], self.coef.shape[1]))
+        for k in range(self.coef.shape[0]):
+            rows = f == k
+            out[rows] = phi[rows] @ self.coef[k].T + self.base[k]
+        return out
+
+
+def dr_terms(
+    q: ArrayLike, target: ArrayLike, action: ArrayLike, w: ArrayLike, r: ArrayLike,
+    reward_range: tuple[float, float] | None = None,
+) -> Array:  # fmt: skip
+    """sum_a pi(a|x) q(x, a) + w (r - q(x, a_logged)) per record (Dudik, Langford & Li 2011).
+
+    ``q`` and ``target`` are (n, actions); predictions are clipped into ``reward_range``.
+    """
+    qa = _floats(q, "reward predictions")
+    if reward_range is not None:
+        qa = np.clip(qa, reward_range[0], reward_range[1])
+    pi = _floats(target, "target probabilities")
+    a = np.asarray(action, dtype=np.int64)
+    logged = qa[np.arange(a.size), a]
+    return (pi * qa).sum(axis=1) + _floats(w, "weights") * (_floats(r, "rewards") - logged)
+
+
+# -- the summary of one policy or of a paired difference ------------------------------------
+def _clean(x: float) -> float | None:
+    return float(x) if math.isfinite(x) else None
+
+
+def summarize(
+    m: Moments,
+    *,
+    reward_range: tuple[float, float],
+    level: float = 0.95,
+    interval: str = "clt",
+    boot: Array | None = None,
+    spans: Sequence[float] | Array | None = None,
+    offset: int = 0,
+    baseline: int | None = None,
+    names: Sequence[str] = ("ips", "snips", "clipped", "dr"),
+) -> dict[str, dict[str, float | None]]:
+    """Estimates with intervals of the policy at ``offset`` (minus the one at ``baseline``).
+
+    ``interval`` is "clt" (delta method), "bootstrap" (percentiles of ``boot``, the output of
+    ``bootstrap_means``) or "bernstein" (needs ``spans``, see ``column_spans``). The clipped
+    entry carries the bias interval [bias_low, bias_bound] of Bottou et al. (2013): the target
+    mass on clipped records is 1 - W (W the mean kept weight) and the rewards lie in
+    ``reward_range``, so the clipped-away value lies in [lo (1 - W), hi (1 - W)].
+    """
+    if m.n == 0:
+        raise ReplayError("no records to estimate from")
+    if not 0.0 < level < 1.0:
+        raise ReplayError(f"the confidence level must lie in (0, 1), got {level!r}")
+    lo_r, hi_r = reward_range
+    ests = estimands(offset)
+    base = estimands(baseline) if baseline is not None else None
+    out: dict[str, dict[str, float | None]] = {}
+    for name in names:
+        est = ests[name] if base is None else ests[name].minus(base[name])
+        value = float(est.value(m.mean))
+        if interval == "clt":
+            low, high = clt_interval(est, m, level)
+        elif interval == "bootstrap":
+            if boot is None:
+                raise ReplayError("the bootstrap interval needs bootstrap resamples")
+            low, high = percentile_interval(est, boot, level)
+        elif interval == "bernstein":
+            if spans is None:
+                raise ReplayError("the Bernstein interval needs the ranges of the columns")
+            low, high = bernstein_interval(est, m, spans, level)
+        else:
+            raise ReplayError(f"unknown interval {interval!r}; use clt, bootstrap or bernstein")
+        entry = {"value": _clean(value), "low": _clean(low), "high": _clean(high)}
+        if name == "clipped":
+            lost = max(0.0, 1.0 - float(m.mean[offset + K]))
+            b_low, b_high = lo_r * lost, hi_r * lost
+            if baseline is not None:
+                lost_b = max(0.0, 1.0 - float(m.mean[baseline + K]))
+                b_low, b_high = b_low - hi_r * lost_b, b_high - lo_r * lost_b
+            entry["bias_low"] = b_low
+            entry["bias_bound"] = b_high
+        out[name] = entry
+    return out

@@ -1,0 +1,131 @@
+"""The export of verify: one row per decision, outcomes as columns, scalar inputs flattened.
+
+Columns: decision_id, stream, unit, ts, action (canonical JSON), propensity (the replayed
+probability or density of the action), propensity_method, propensity_stderr (Monte Carlo
+only), logged_propensity, logged_kind, verified, reason (reasons joined by ";"), detail (what
+differed first), then one column per outcome name (the sum of that outcome's values for the
+decision; empty when none was recorded) and one ``input.<path>`` column per scalar input field
+(``input.ctx.user_tier``; lists are left out).
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterator, Mapping
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+import sqlalchemy as sa
+
+from drawledger.exceptions import ReplayError
+from drawledger.replay._io import is_parquet, open_engine
+
+__all__ = ["BASE_COLUMNS", "flatten_inputs", "join_outcomes", "read_outcomes", "write_export"]
+
+BASE_COLUMNS = (
+    "decision_id",
+    "stream",
+    "unit",
+    "ts",
+    "action",
+    "propensity",
+    "propensity_method",
+    "propensity_stderr",
+    "logged_propensity",
+    "logged_kind",
+    "verified",
+    "reason",
+    "detail",
+)
+SUFFIXES = (".csv", ".parquet")
+
+
+def _leaves(prefix: str, value: Any) -> Iterator[tuple[str, Any]]:
+    if isinstance(value, dict):
+        for key, inner in value.items():
+            yield from _leaves(f"{prefix}.{key}", inner)
+    elif not isinstance(value, list):
+        yield prefix, value
+
+
+def flatten_inputs(inputs: Mapping[str, Any]) -> dict[str, Any]:
+    """Scalar fields of recorded inputs as ``input.<name>.<field>`` columns (lists left out)."""
+    out: dict[str, Any] = {}
+    for name, value in inputs.items():
+        out.update(_leaves(f"input.{name}", value))
+    return out
+
+
+def check_export_path(path: str | os.PathLike[str]) -> Path:
+    """The export path, if its extension names a format and its folder exists."""
+    target = Path(path).expanduser()
+    if target.suffix.lower() not in SUFFIXES:
+        raise ReplayError(f"export file {os.fspath(path)!r} must end in .csv or .parquet")
+    if not target.parent.is_dir():
+        raise ReplayError(f"export folder {os.fspath(target.parent)!r} does not exist")
+    return target
+
+
+def read_outcomes(target: str | os.PathLike[str], *, format: str | None = None) -> pd.DataFrame:
+    """Outcome totals: one row per decision id, one column per outcome name (sum of values)."""
+    if is_parquet(target, format):
+        from drawledger._parquet import read_table
+
+        raw = read_table(os.fspath(target), "outcomes")[["decision_id", "name", "value"]]
+        totals = raw.groupby(["decision_id", "name"], sort=False)["value"].sum().reset_index()
+    else:
+        engine = open_engine(target)
+        try:
+            with engine.connect() as conn:
+                totals = pd.read_sql_query(
+                    sa.text(
+                        "SELECT decision_id, name, SUM(value) AS value FROM outcomes "
+                        "GROUP BY decision_id, name"
+                    ),
+                    conn,
+                )
+        finally:
+            engine.dispose()
+    if totals.empty:
+        return pd.DataFrame(index=pd.Index([], name="decision_id"))
+    wide = totals.pivot(index="decision_id", columns="name", values="value")
+    wide.columns = [str(c) for c in wide.columns]
+    return wide
+
+
+def join_outcomes(rows: pd.DataFrame, outcomes: pd.DataFrame) -> pd.DataFrame:
+    """Outcome columns after the base columns, before the input columns."""
+    taken = set(rows.columns)
+    renamed = {c: (f"outcome.{c}" if c in taken else c) for c in outcomes.columns}
+    joined = rows.join(outcomes.rename(columns=renamed), on="decision_id")
+    inputs = sorted(c for c in rows.columns if c.startswith("input."))
+    base = [c for c in rows.columns if not c.startswith("input.")]
+    return joined[[*base, *renamed.values(), *inputs]]
+
+
+def _parquet_ready(rows: pd.DataFrame) -> pd.DataFrame:
+    """Input columns holding mixed types (a number here, text there) become text."""
+    out = rows.copy()
+    for col in out.columns:
+        if not col.startswith("input.") or out[col].dtype != object:
+            continue
+        kinds = {type(v) for v in out[col].dropna()}
+        if len(kinds) > 1:
+            out[col] = out[col].map(lambda v: v if v is None else str(v))
+    return out
+
+
+def write_export(rows: pd.DataFrame, path: str | os.PathLike[str]) -> Path:
+    """Write the rows as CSV or Parquet (by extension), whole or not at all."""
+    target = check_export_path(path)
+    partial = target.with_name(f".{target.name}.partial")
+    try:
+        if target.suffix.lower() == ".csv":
+            rows.to_csv(partial, index=False)
+        else:
+            _parquet_ready(rows).to_parquet(partial, index=False)
+        os.replace(partial, target)
+    finally:
+        partial.unlink(missing_ok=True)
+    return target

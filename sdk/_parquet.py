@@ -1,0 +1,328 @@
+"""The Parquet directory ledger: one subdirectory per table, part files partitioned by stream/date.
+
+Layout (docs/ledger.md)::
+
+    LEDGER/decisions/<stream>/<YYYY-MM-DD>/<first>-<last>-<writer>.parquet
+    LEDGER/draws/<stream>/<YYYY-MM-DD>/<same name as its decisions part>.parquet
+    LEDGER/outcomes/<YYYY-MM-DD>/<first>-<last>-<writer>.parquet
+
+``<stream>`` is the percent-encoded stream name, ``<YYYY-MM-DD>`` the UTC date of the record's
+``ts``, ``<first>``/``<last>`` the zero-padded first and last ``seq`` in the part, and
+``<writer>`` 16 hex digits of a hash of the writer id: every part holds the records of one writer.
+A part is written to a hidden temporary name and renamed into place, so readers (this module,
+pandas, pyarrow) never see half a file. The draws part of a batch is renamed before its decisions
+part: a decisions part in place means its draws are in place too.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import time
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+from urllib.parse import quote
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from drawledger._records import DECISION_COLUMNS, DRAW_COLUMNS, OUTCOME_COLUMNS
+from drawledger.exceptions import LedgerError
+
+if TYPE_CHECKING:
+    import pandas as pd
+
+Row = tuple[Any, ...]
+
+
+def _schema(columns: Sequence[str], floats: Sequence[str], ints: Sequence[str]) -> pa.Schema:
+    kind = {**{c: pa.float64() for c in floats}, **{c: pa.int64() for c in ints}}
+    return pa.schema([(c, kind.get(c, pa.string())) for c in columns])
+
+
+SCHEMAS = {
+    "decisions": _schema(DECISION_COLUMNS, ("ts", "propensity"), ("seq",)),
+    "draws": _schema(DRAW_COLUMNS, ("prob",), ("idx", "is_density")),
+    "outcomes": _schema(OUTCOME_COLUMNS, ("value", "ts"), ("seq",)),
+}
+TABLES = tuple(SCHEMAS)
+
+# Dictionary encoding only where values repeat, statistics only on numbers (what readers filter
+# on): unique text such as ids and hashes costs time in both and gains nothing.
+_REPEATING = {"stream", "unit", "fn", "code_hash", "params", "action", "propensity_kind",
+              "writer", "name", "kind", "args", "value"}  # fmt: skip
+_WRITE_OPTIONS: dict[str, dict[str, Any]] = {
+    table: {
+        "use_dictionary": [f.name for f in schema if f.name in _REPEATING],
+        "write_statistics": [f.name for f in schema if not pa.types.is_string(f.type)],
+    }
+    for table, schema in SCHEMAS.items()
+}
+SUFFIX = ".parquet"
+
+
+def writer_tag(writer: str) -> str:
+    """16 hex digits naming a writer in part file names."""
+    return hashlib.blake2b(writer.encode(), digest_size=8).hexdigest()
+
+
+MAX_DIR_NAME = 120
+
+
+def stream_dir(stream: str) -> str:
+    """A stream name as one directory name: percent-encoded, never hidden from readers.
+
+    A name longer than 120 characters once encoded is cut to about 100 and followed by ``~``
+    and 16 hex digits of a hash of the full stream name (file systems limit names to 255 bytes).
+    """
+    text = quote(stream, safe="")
+    if text[:1] in (".", "_"):  # readers skip names starting with "." or "_"
+        text = f"%{ord(text[0]):02X}{text[1:]}"
+    if len(text) > MAX_DIR_NAME:
+        head = text[:100]
+        cut = head.rfind("%")
+        if cut >= 98:  # do not split a %XX escape
+            head = head[:cut]
+        text = f"{head}~{hashlib.blake2b(stream.encode(), digest_size=8).hexdigest()}"
+    return text
+
+
+_DAYS: dict[int, str] = {}
+
+
+def day(ts: float) -> str:
+    """The UTC date of a timestamp as YYYY-MM-DD (partition directory name).
+
+    Timestamps outside the years 1000 to 9999 go to the partition ``out-of-range``.
+    """
+    key = int(ts // 86400)
+    name = _DAYS.get(key)
+    if name is None:
+        try:
+            name = time.strftime("%Y-%m-%d", time.gmtime(key * 86400))
+        except (OverflowError, OSError, ValueError):
+            name = "out-of-range"
+        if len(name) != 10 or not name[:4].isdigit():
+            name = "out-of-range"
+        _DAYS[key] = name
+    return name
+
+
+@dataclass(frozen=True)
+class Part:
+    """One committed part file of a table."""
+
+    path: Path
+    first: int
+    last: int
+    tag: str
+
+
+def parse_part(path: Path) -> Part | None:
+    """The part described by a file name, or None for anything else (temporary files)."""
+    name = path.name
+    if name.startswith(".") or not name.endswith(SUFFIX):
+        return None
+    fields = name[: -len(SUFFIX)].split("-")
+    if len(fields) != 3 or not (fields[0].isdigit() and fields[1].isdigit()):
+        return None
+    return Part(path, int(fields[0]), int(fields[1]), fields[2])
+
+
+def parts(root: str | os.PathLike[str], table: str) -> list[Part]:
+    """Committed part files of ``table``, sorted by path (stream, date, first seq)."""
+    base = Path(root) / table
+    if not base.is_dir():
+        return []
+    found = (parse_part(p) for p in base.rglob(f"*{SUFFIX}"))
+    return sorted((p for p in found if p is not None), key=lambda p: p.path)
+
+
+def draws_sibling(root: str | os.PathLike[str], part: Part) -> Path:
+    """The draws part written together with a decisions part."""
+    rel = part.path.relative_to(Path(root) / "decisions")
+    return Path(root) / "draws" / rel
+
+
+def check_ledger_dir(root: str | os.PathLike[str]) -> None:
+    """Raise LedgerError unless ``root`` is a Parquet ledger directory with its three tables."""
+    base = Path(root)
+    if not base.is_dir():
+        raise LedgerError(f"no Parquet ledger at {os.fspath(root)!r} (no such directory)")
+    missing = [t for t in TABLES if not (base / t).is_dir()]
+    if missing:
+        raise LedgerError(
+            f"{os.fspath(root)!r} is not a drawledger Parquet ledger: no table {', '.join(missing)}"
+        )
+
+
+def read_part(path: Path, table: str) -> pa.Table:
+    """One part file as an Arrow table with the table's schema."""
+    try:
+        return pq.read_table(path, schema=SCHEMAS[table])
+    except (OSError, pa.ArrowException) as exc:
+        raise LedgerError(f"cannot read ledger part {os.fspath(path)!r}: {exc}") from None
+
+
+def part_rows(path: Path, table: str) -> list[Row]:
+    """The rows of a part file as tuples in the table's column order (values bit for bit)."""
+    data = read_part(path, table)
+    return list(zip(*(col.to_pylist() for col in data.columns), strict=True))
+
+
+def iter_part_pairs(root: str | os.PathLike[str]) -> Iterator[tuple[Part, Path | None]]:
+    """Each decisions part with its draws part (None when the batch had no draws)."""
+    for part in parts(root, "decisions"):
+        sibling = draws_sibling(root, part)
+        yield part, sibling if sibling.exists() else None
+
+
+def read_table(root: str | os.PathLike[str], table: str) -> pd.DataFrame:
+    """One table of a Parquet ledger as a DataFrame (decisions and outcomes sorted by writer, seq).
+
+    Reads only committed part files; safe while writers are running. Draws parts without their
+    decisions part (a writer stopped between the renames of a batch) are left out.
+    """
+    if table not in SCHEMAS:
+        raise LedgerError(f"no table {table!r} in a drawledger ledger")
+    check_ledger_dir(root)
+    if table == "draws":
+        paths = [d for _, d in iter_part_pairs(root) if d is not None]
+    else:
+        paths = [p.path for p in parts(root, table)]
+    return to_frame([read_part(p, table) for p in paths], table)
+
+
+def read_tables(root: str | os.PathLike[str]) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    """Decisions, draws and outcomes; the draws are those of exactly the decisions read."""
+    check_ledger_dir(root)
+    pairs = list(iter_part_pairs(root))
+    decisions = to_frame([read_part(p.path, "decisions") for p, _ in pairs], "decisions")
+    draws = to_frame([read_part(d, "draws") for _, d in pairs if d is not None], "draws")
+    return decisions, draws, read_table(root, "outcomes")
+
+
+def to_frame(tables: list[pa.Table], table: str) -> pd.DataFrame:
+    """Arrow tables of one ledger table as one DataFrame, in the readers' row order."""
+    data = pa.concat_tables(tables) if tables else SCHEMAS[table].empty_table()
+    keys = ["decision_id", "idx"] if table == "draws" else ["writer", "seq"]
+    frame: pd.DataFrame = data.sort_by([(k, "ascending") for k in keys]).to_pandas()
+    return frame
+
+
+def rows_to_table(rows: Sequence[Row], table: str) -> pa.Table:
+    """Row tuples in the table's column order as an Arrow table (converted in one pass in C++)."""
+    schema = SCHEMAS[table]
+    return pa.Table.from_struct_array(pa.array(rows, type=pa.struct(list(schema))))
+
+
+class ParquetSink:
+    """Writes each batch as part files; ``durability="full"`` also fsyncs files and directories."""
+
+    def __init__(self, root: str, *, durability: str = "normal") -> None:
+        self.root = Path(root).expanduser()
+        self.full = durability == "full"
+        self._ids: dict[str, set[str]] = {}  # decision ids by stream directory (present_ids)
+        try:
+            for table in TABLES:
+                (self.root / table).mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise LedgerError(f"cannot create Parquet ledger {root!r}: {exc}") from None
+
+    def write(self, decisions: list[Row], draws: list[list[Row]], outcomes: list[Row]) -> None:
+        """Write a batch: every part to a temporary file first, then all the renames.
+
+        Renames run draws, then decisions, then outcomes, right after each other, so a crash
+        leaves none of a batch or nearly all of it (docs/operations.md). Part names are a
+        function of their rows (writer and seq range): a retried batch replaces its own parts.
+        """
+        groups: dict[tuple[str, str, int], tuple[list[Row], list[Row]]] = {}
+        for row, its_draws in zip(decisions, draws, strict=True):
+            key = (row[12], row[1], int(row[3] // 86400))  # writer, stream, UTC day
+            group = groups.get(key)
+            if group is None:
+                group = groups[key] = ([], [])
+            group[0].append(row)
+            group[1].extend(its_draws)
+        planned: list[tuple[Path, str, list[Row], str]] = []
+        for (writer, stream, days), (rows, draw_rows) in groups.items():
+            if draw_rows:
+                folder = self.root / "draws" / stream_dir(stream) / day(days * 86400)
+                planned.append((folder, _part_name(writer, rows, 13), draw_rows, "draws"))
+        for (writer, stream, days), (rows, _) in groups.items():
+            folder = self.root / "decisions" / stream_dir(stream) / day(days * 86400)
+            planned.append((folder, _part_name(writer, rows, 13), rows, "decisions"))
+        ogroups: dict[tuple[str, int], list[Row]] = {}
+        for row in outcomes:
+            ogroups.setdefault((row[4], int(row[3] // 86400)), []).append(row)
+        for (writer, days), rows in ogroups.items():
+            folder = self.root / "outcomes" / day(days * 86400)
+            planned.append((folder, _part_name(writer, rows, 5), rows, "outcomes"))
+        staged: list[tuple[Path, Path]] = []
+        try:
+            for folder, name, rows, table in planned:
+                folder.mkdir(parents=True, exist_ok=True)
+                tmp = folder / f".{name}.{os.getpid()}.{os.urandom(4).hex()}.tmp"
+                staged.append((tmp, folder / name))
+                pq.write_table(rows_to_table(rows, table), tmp, **_WRITE_OPTIONS[table])
+                if self.full:
+                    _fsync_path(tmp)
+            for tmp, final in staged:
+                os.replace(tmp, final)
+        finally:
+            for tmp, _ in staged:
+                tmp.unlink(missing_ok=True)
+        if self.full:
+            for folder in {final.parent for _, final in staged}:
+                _fsync_path(folder, directory=True)
+
+    def present_seqs(self, table: str, writer: str, low: int, high: int) -> set[int]:
+        """The seqs of ``writer`` between ``low`` and ``high`` already in ``table``."""
+        tag = writer_tag(writer)
+        found: set[int] = set()
+        for part in parts(self.root, table):
+            if part.tag == tag and part.first <= high and part.last >= low:
+                data = pq.read_table(part.path, columns=["writer", "seq"]).to_pydict()
+                found.update(
+                    s for w, s in zip(data["writer"], data["seq"], strict=True)
+                    if w == writer and low <= s <= high
+                )  # fmt: skip
+        return found
+
+    def present_ids(self, ids: list[str], streams: set[str]) -> set[str]:
+        """Which of these decision ids are already among the decisions of ``streams``.
+
+        Reads each stream's ids once per sink (ingest opens a sink of its own for this).
+        """
+        todo = {stream_dir(s) for s in streams} - set(self._ids)
+        if todo:
+            for sdir in todo:
+                self._ids[sdir] = set()
+            for part in parts(self.root, "decisions"):
+                sdir = part.path.parent.parent.name
+                if sdir in todo:
+                    column = pq.read_table(part.path, columns=["decision_id"]).column(0)
+                    self._ids[sdir].update(column.to_pylist())
+        found = set()
+        for s in streams:
+            found |= self._ids[stream_dir(s)].intersection(ids)
+        return found
+
+    def close(self) -> None:
+        """Nothing to release: every part is complete once ``write`` returns."""
+
+
+def _part_name(writer: str, rows: list[Row], seq: int) -> str:
+    first = min(r[seq] for r in rows)
+    last = max(r[seq] for r in rows)
+    return f"{first:012d}-{last:012d}-{writer_tag(writer)}{SUFFIX}"
+
+
+def _fsync_path(path: Path, *, directory: bool = False) -> None:
+    fd = os.open(path, os.O_RDONLY | (os.O_DIRECTORY if directory else 0))
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)

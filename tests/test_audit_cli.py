@@ -1,0 +1,100 @@
+"""`drawledger audit LEDGER [--json FILE]`: exit codes, the JSON gate, the terminal table."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import orjson
+import pytest
+
+import drawledger as dl
+from drawledger._sinks import open_sink
+from drawledger.cli import main
+
+DISCOUNTS = {"options": [0, 5, 10], "probs": [0.6, 0.3, 0.1]}
+
+
+def legacy_ledger(path: Path, drawn: list[float], n: int = 3000) -> Path:
+    """Declared discount draws of a legacy service that really draws with ``drawn``."""
+    import numpy as np
+
+    led = dl.Ledger(path)
+    u = np.random.default_rng(21).random(n)
+    for i, j in enumerate(np.searchsorted(np.cumsum(drawn), u, side="right")):
+        led.record_draw(
+            "slot-discount",
+            "categorical",
+            DISCOUNTS,
+            [0, 5, 10][j],
+            DISCOUNTS["probs"][j],
+            decision_id=f"legacy-{i}",
+            u=[float(u[i])],
+            ts=1_767_225_600.0 + 60 * i,
+        )
+    led.close()
+    return path
+
+
+def test_passing_ledger_exits_0_and_writes_the_json(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Exit 0 with no alarm; the JSON file holds ok=true and the design's test keys."""
+    ledger = legacy_ledger(tmp_path / "ok.db", [0.6, 0.3, 0.1])
+    out = tmp_path / "audit.json"
+    assert 0 == main(["audit", str(ledger), "--json", str(out)])
+    data = orjson.loads(out.read_bytes())
+    assert data["ok"] is True
+    assert {"stream", "test", "statistic", "p_value", "verdict"} <= set(data["tests"][0])
+    shown = capsys.readouterr().out
+    assert "slot-discount" in shown
+    assert "as declared" in shown
+
+
+def test_alarm_exits_1_and_the_json_names_the_failing_test(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Declared 0.6/0.3/0.1 but drawn 0.5/0.3/0.2: exit 1, the ratio test alarms."""
+    ledger = legacy_ledger(tmp_path / "drift.db", [0.5, 0.3, 0.2])
+    out = tmp_path / "audit.json"
+    assert 1 == main(["audit", str(ledger), "--json", str(out)])
+    data = orjson.loads(out.read_bytes())
+    assert data["ok"] is False
+    alarms = {(t["stream"], t["test"]) for t in data["tests"] if t["alarm"]}
+    assert ("slot-discount", "ratio") in alarms
+    assert "not as declared" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize(
+    ("args", "message"),
+    [
+        (["audit", "{tmp}/missing.db"], "no such file"),
+        (["audit", "{tmp}/ok.db", "--scheduler", "tcp://127.0.0.1:1"], "needs the dask engine"),
+        (["audit", "{tmp}/ok.db", "--json", "{tmp}/no/such/dir/audit.json"], "No such file"),
+    ],
+)
+def test_bad_usage_exits_2_with_one_line(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], args: list[str], message: str
+) -> None:
+    """A missing ledger, a scheduler without the dask engine or an unwritable JSON path: exit
+    2 and one line on stderr naming the problem, no traceback."""
+    legacy_ledger(tmp_path / "ok.db", [0.6, 0.3, 0.1], n=50)
+    assert 2 == main([a.replace("{tmp}", str(tmp_path)) for a in args])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert 1 == len(err)
+    assert err[0].startswith("drawledger audit: error:")
+    assert message in err[0]
+
+
+def test_unreadable_file_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """A file that is not a ledger is unreadable input: exit 2."""
+    junk = tmp_path / "junk.db"
+    junk.write_bytes(b"not a database" * 200)
+    assert 2 == main(["audit", str(junk)])
+    assert "junk.db" in capsys.readouterr().err
+
+
+def test_empty_ledger_passes(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """An empty ledger has nothing to alarm about: exit 0 and says so."""
+    open_sink(tmp_path / "empty.db").close()  # the three tables, no rows
+    assert 0 == main(["audit", str(tmp_path / "empty.db")])
+    assert "No draws to audit" in capsys.readouterr().out

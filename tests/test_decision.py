@@ -1,0 +1,391 @@
+"""``@ledger.decision``: what a decision call records, its propensity, and its failures."""
+
+from __future__ import annotations
+
+import math
+import threading
+from typing import Any
+
+import pytest
+from pydantic import BaseModel
+
+import drawledger as dl
+from drawledger.exceptions import (
+    DecisionDefinitionError,
+    DrawArgumentError,
+    LedgerClosedError,
+    LedgerError,
+    NotSerializableError,
+)
+from drawledger.ledger import REGISTRY
+from drawledger.testing import capture
+
+CARDS = ["one-pot-pasta", "green-curry", "sheet-pan-salmon", "taco-night", "lentil-soup",
+         "overnight-oats"]  # fmt: skip
+SCORES = [1.6, 0.7, 1.2, 1.8, 0.5, 0.4]
+
+
+def register_card(ledger: dl.Ledger) -> dl.Decision[str]:
+    @ledger.decision("recipe-card")
+    def feature_card(
+        cards: list[str], scores: list[float], draw: dl.Draw, *, temperature: float = 0.7
+    ) -> str:
+        return draw.softmax(cards, scores, temperature=temperature, name="card")
+
+    return feature_card
+
+
+def test_call_records_inputs_params_action_and_the_draw(ledger: dl.Ledger) -> None:
+    """A call returns the plain action and records inputs, params, fn, code hash and seed."""
+    feature_card = register_card(ledger)
+    with capture(ledger) as cap:
+        card = feature_card(CARDS, SCORES, unit="shopper-000017", decision_id="req-8c1")
+    (d,) = cap.decisions
+    assert card in CARDS and card == d.action
+    assert ("req-8c1", "recipe-card", "shopper-000017") == (d.decision_id, d.stream, d.unit)
+    assert {"cards": CARDS, "scores": SCORES} == d.inputs
+    assert {"temperature": 0.7} == d.params
+    assert f"{__name__}:register_card.<locals>.feature_card" == d.fn == feature_card.name
+    assert feature_card.code_hash == d.code_hash
+    assert 32 == len(d.seed or "")
+    assert ("exact", d.draws[0].prob) == (d.propensity_kind, d.propensity)
+    assert ("card", "softmax", [card]) == (d.draws[0].name, d.draws[0].kind, [d.draws[0].value])
+    assert REGISTRY[d.fn] is feature_card
+
+
+def test_decision_exposes_its_signature(ledger: dl.Ledger) -> None:
+    """inputs are the positional parameters; params the keyword-only defaults."""
+    feature_card = register_card(ledger)
+    assert ["cards", "scores"] == feature_card.inputs
+    assert {"temperature": 0.7} == feature_card.params
+    assert "recipe-card" == feature_card.stream
+    assert "feature_card" == feature_card.__name__
+
+
+def test_policy_parameter_override_and_keyword_inputs(ledger: dl.Ledger) -> None:
+    """temperature=0.3 is recorded and used; inputs may be passed by keyword."""
+    feature_card = register_card(ledger)
+    with capture(ledger, seed=1) as cap:
+        feature_card(CARDS, scores=SCORES, temperature=0.3)
+    (d,) = cap.decisions
+    assert {"temperature": 0.3} == d.params
+    assert 0.3 == d.draws[0].args["temperature"]
+
+
+def test_unit_and_decision_id_are_optional(ledger: dl.Ledger) -> None:
+    """Without decision_id each call gets a unique id; unit stays empty."""
+    feature_card = register_card(ledger)
+    with capture(ledger) as cap:
+        for _ in range(3):
+            feature_card(CARDS, SCORES)
+    ids = [d.decision_id for d in cap.decisions]
+    assert 3 == len(set(ids))
+    assert [None, None, None] == [d.unit for d in cap.decisions]
+
+
+def test_code_hash_follows_the_source(ledger: dl.Ledger) -> None:
+    """Two functions with different bodies have different code hashes; the hash is stable."""
+
+    @ledger.decision("a")
+    def one(draw: dl.Draw) -> bool:
+        return draw.bernoulli(0.5)
+
+    @ledger.decision("b")
+    def two(draw: dl.Draw) -> bool:
+        return draw.bernoulli(0.25)
+
+    assert one.code_hash != two.code_hash
+    assert dl.ledger.code_hash(one.fn) == one.code_hash
+
+
+def test_draw_found_by_annotation(ledger: dl.Ledger) -> None:
+    """The injected parameter may have another name when annotated as dl.Draw."""
+
+    @ledger.decision("coin")
+    def coin(p: float, d: dl.Draw) -> bool:
+        return d.bernoulli(p)
+
+    with capture(ledger) as cap:
+        coin(0.5)
+    assert ["p"] == coin.inputs
+    assert {"p": 0.5} == cap.decisions[0].inputs
+
+
+@pytest.mark.parametrize(
+    ("source", "problem"),
+    [
+        ("def f(unit, draw): pass", "'unit' is reserved"),
+        ("def f(draw, decision_id=None): pass", "'decision_id' is reserved"),
+        ("def f(draw, *args): pass", r"\*args and \*\*kwargs"),
+        ("def f(draw, **kw): pass", r"\*args and \*\*kwargs"),
+        ("def f(draw, *, t): pass", "needs a default"),
+        ("def f(x): pass", "needs a 'draw' parameter"),
+        ("async def f(draw): pass", "not async"),
+        ("def f(draw):\n    yield 1", "not a generator"),
+    ],
+)
+def test_definition_errors(ledger: dl.Ledger, source: str, problem: str) -> None:
+    """Functions that cannot be recorded are refused at registration (a TypeError)."""
+    namespace: dict[str, Any] = {}
+    exec(source, namespace)
+    with pytest.raises(DecisionDefinitionError, match=problem) as info:
+        ledger.decision("s")(namespace["f"])
+    assert isinstance(info.value, TypeError)
+
+
+def test_definition_refuses_unrecordable_defaults_and_stream_names(ledger: dl.Ledger) -> None:
+    """A policy default that is not JSON, or an empty stream name, is refused."""
+
+    def f(draw: dl.Draw, *, level: object = object()) -> None:
+        pass
+
+    with pytest.raises(NotSerializableError, match="policy parameter defaults"):
+        ledger.decision("s")(f)
+    with pytest.raises(DecisionDefinitionError, match="stream name"):
+        ledger.decision("")
+
+
+@pytest.mark.parametrize(
+    ("args", "kwargs", "problem"),
+    [
+        ((CARDS, SCORES, "extra"), {}, "takes 2 inputs, got 3"),
+        ((CARDS,), {}, "missing inputs: scores"),
+        ((CARDS, SCORES), {"colour": "red"}, "unexpected keyword argument 'colour'"),
+        ((CARDS, SCORES), {"cards": CARDS}, "unexpected keyword argument 'cards'"),
+    ],
+)
+def test_call_errors_are_type_errors_and_record_nothing(
+    ledger: dl.Ledger, args: tuple, kwargs: dict, problem: str
+) -> None:
+    """Calls Python itself would refuse raise TypeError; nothing is recorded."""
+    feature_card = register_card(ledger)
+    with capture(ledger) as cap, pytest.raises(TypeError, match=problem):
+        feature_card(*args, **kwargs)
+    assert [] == cap.decisions
+
+
+@pytest.mark.parametrize(
+    ("bad_input", "problem"),
+    [
+        (object(), "inputs cannot be recorded as JSON"),
+        ([1.0, math.nan], "NaN or an infinity"),
+        ({3, 1, 2}, "not JSON serializable: set"),
+        (b"bytes", "inputs cannot be recorded as JSON"),
+    ],
+)
+def test_non_serializable_inputs_raise_and_record_nothing(
+    ledger: dl.Ledger, bad_input: object, problem: str
+) -> None:
+    """An input JSON cannot hold raises NotSerializableError (a TypeError) before any draw."""
+
+    @ledger.decision("echo")
+    def echo(x: Any, draw: dl.Draw) -> bool:
+        return draw.bernoulli(0.5)
+
+    with capture(ledger) as cap:
+        with pytest.raises(NotSerializableError, match=problem) as info:
+            echo(bad_input)
+        assert isinstance(info.value, TypeError)
+        echo([1, 2])  # the ledger is still usable
+    assert 1 == len(cap.decisions)
+    assert 0 == cap.decisions[0].seq
+
+
+def test_a_raising_decision_records_nothing(ledger_path: Any) -> None:
+    """An exception inside the function propagates; nothing of it is written; the ledger
+    stays usable and the sequence has no gap."""
+    ledger = dl.Ledger(ledger_path)
+
+    @ledger.decision("fragile")
+    def fragile(fail: bool, draw: dl.Draw) -> int:
+        value = draw.integers(0, 10)
+        if fail:
+            raise RuntimeError("downstream service unavailable")
+        return value
+
+    with pytest.raises(RuntimeError, match="downstream"):
+        fragile(True)
+    with pytest.raises(DrawArgumentError, match="integers draw"):
+        ledger.decision("broken")(lambda draw: draw.integers(3, 3))()
+    fragile(False)
+    ledger.close()
+    import sqlite3
+
+    with sqlite3.connect(ledger_path) as con:
+        rows = con.execute("SELECT seq, inputs FROM decisions").fetchall()
+        draws = con.execute("SELECT COUNT(*) FROM draws").fetchone()[0]
+    assert [(0, '{"fail":false}')] == rows
+    assert 1 == draws
+
+
+def test_unrecordable_actions_and_options_name_the_culprit(ledger: dl.Ledger) -> None:
+    """An action or an option JSON cannot hold raises NotSerializableError; nothing recorded."""
+
+    class Card:
+        pass
+
+    @ledger.decision("objects")
+    def pick(draw: dl.Draw) -> str:
+        draw.categorical([Card(), Card()], [0.5, 0.5], name="card")
+        return "picked"
+
+    @ledger.decision("action")
+    def act(draw: dl.Draw) -> Any:
+        draw.bernoulli(0.5)
+        return Card()
+
+    with capture(ledger) as cap:
+        with pytest.raises(NotSerializableError, match="categorical draw 'card'"):
+            pick()
+        with pytest.raises(NotSerializableError, match="action cannot be recorded"):
+            act()
+    assert [] == cap.decisions
+
+
+def test_unit_and_decision_id_must_be_text(ledger: dl.Ledger) -> None:
+    """A non-string unit or an empty decision id is refused; nothing is recorded."""
+    feature_card = register_card(ledger)
+    with capture(ledger) as cap:
+        with pytest.raises(NotSerializableError, match="unit must be a string"):
+            feature_card(CARDS, SCORES, unit=17)  # type: ignore[arg-type]
+        with pytest.raises(NotSerializableError, match="decision_id"):
+            feature_card(CARDS, SCORES, decision_id="")
+    assert [] == cap.decisions
+
+
+def test_propensity_exact_and_path(ledger: dl.Ledger) -> None:
+    """exact: the action is one draw's value; path: the product over the draws made."""
+
+    @ledger.decision("shown")
+    def shown(draw: dl.Draw) -> str:
+        return draw.categorical(["a", "b"], [0.25, 0.75])
+
+    @ledger.decision("transformed")
+    def transformed(draw: dl.Draw) -> str:
+        return draw.categorical(["a", "b"], [0.25, 0.75]).upper()
+
+    @ledger.decision("two-steps")
+    def two_steps(draw: dl.Draw) -> float:
+        if draw.bernoulli(0.2, name="explore"):
+            return draw.uniform(0.0, 10.0)
+        return 5.0
+
+    @ledger.decision("fixed")
+    def fixed(draw: dl.Draw) -> str:
+        return "always"
+
+    @ledger.decision("slate")
+    def slate(draw: dl.Draw) -> list[str]:
+        return draw.slate(["a", "b", "c"], [1.0, 2.0, 3.0], 2)
+
+    with capture(ledger) as cap:
+        shown(), transformed(), fixed(), slate()
+        for _ in range(200):  # both branches appear but for 0.8**200, about 4e-20
+            two_steps()
+    by = {d.stream: d for d in cap.decisions}
+    assert ("exact", by["shown"].draws[0].prob) == (
+        by["shown"].propensity_kind,
+        by["shown"].propensity,
+    )
+    assert ("path", by["transformed"].draws[0].prob) == (
+        by["transformed"].propensity_kind, by["transformed"].propensity)  # fmt: skip
+    assert ("exact", 1.0) == (by["fixed"].propensity_kind, by["fixed"].propensity)
+    assert ("exact", by["slate"].draws[0].prob) == (
+        by["slate"].propensity_kind,
+        by["slate"].propensity,
+    )
+    assert {1, 2} == {len(d.draws) for d in cap.stream("two-steps")}
+    for d in cap.stream("two-steps"):  # 5.0 is not the bernoulli's value: a path either way
+        product = 1.0
+        for r in d.draws:
+            product *= r.prob
+        assert ("path", product) == (d.propensity_kind, d.propensity)
+
+
+def test_pydantic_model_inputs_are_recorded_as_objects(ledger: dl.Ledger) -> None:
+    """A pydantic model input is recorded as its JSON object."""
+
+    class CardContext(BaseModel):
+        segment: str
+        scores: list[float]
+
+    @ledger.decision("recipe-card")
+    def feature(ctx: CardContext, draw: dl.Draw) -> str:
+        return draw.softmax(CARDS, ctx.scores, temperature=0.7)
+
+    with capture(ledger) as cap:
+        feature(CardContext(segment="family", scores=SCORES))
+    assert {"ctx": {"segment": "family", "scores": SCORES}} == cap.decisions[0].inputs
+
+
+def test_run_reexecutes_without_recording(ledger: dl.Ledger) -> None:
+    """Decision.run with a Draw of the recorded seed gives the recorded action and draws."""
+    feature_card = register_card(ledger)
+    with capture(ledger) as cap:
+        feature_card(CARDS, SCORES)
+        (d,) = cap.decisions
+        draw = dl.Draw(bytes.fromhex(d.seed or ""))
+        assert d.action == feature_card.run(draw, d.inputs, d.params)
+        assert 1 == len(cap.decisions)  # run records nothing
+    assert d.draws[0].u == draw.records[0].u
+    assert d.draws[0].prob == draw.records[0].prob
+
+
+def test_outcomes_are_recorded_and_checked(ledger: dl.Ledger) -> None:
+    """outcome() records (decision_id, name, value); bad values are refused."""
+    with capture(ledger) as cap:
+        ledger.outcome("req-8c1", "checkout", 1.0)
+        ledger.outcome("req-8c1", "basket-value", True)
+        with pytest.raises(NotSerializableError, match="finite number"):
+            ledger.outcome("req-8c1", "checkout", math.nan)
+        with pytest.raises(NotSerializableError, match="decision_id"):
+            ledger.outcome("", "checkout", 1.0)
+    assert [("req-8c1", "checkout", 1.0), ("req-8c1", "basket-value", 1.0)] == [
+        (o.decision_id, o.name, o.value) for o in cap.outcomes
+    ]
+
+
+def test_calls_after_close_raise(ledger_path: Any) -> None:
+    """A closed ledger refuses new records with LedgerClosedError (an OSError)."""
+    ledger = dl.Ledger(ledger_path)
+    feature_card = register_card(ledger)
+    ledger.close()
+    ledger.close()  # twice is fine
+    with pytest.raises(LedgerClosedError, match="closed") as info:
+        feature_card(CARDS, SCORES)
+    assert isinstance(info.value, LedgerError) and isinstance(info.value, OSError)
+    with pytest.raises(LedgerClosedError):
+        ledger.outcome("req-8c1", "checkout", 1.0)
+
+
+def test_threads_record_without_losing_or_reordering(ledger: dl.Ledger) -> None:
+    """Four threads x 300 calls: every decision recorded once, seq 0..1199 without gaps."""
+    feature_card = register_card(ledger)
+    with capture(ledger) as cap:
+        threads = [
+            threading.Thread(target=lambda: [feature_card(CARDS, SCORES) for _ in range(300)])
+            for _ in range(4)
+        ]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join()
+    assert list(range(1200)) == [d.seq for d in cap.decisions]
+    assert 1200 == len({d.decision_id for d in cap.decisions})
+    assert 1200 == len({d.seed for d in cap.decisions})
+
+
+def test_bucket_assignment_is_recorded_and_stable(ledger: dl.Ledger) -> None:
+    """ledger.bucket records one bucket draw (no seed); the same unit always gets the same arm."""
+    shares = {"control": 0.5, "treatment": 0.5}
+    with capture(ledger) as cap:
+        arms = [ledger.bucket("shopper-000017", shares, "reminder-test") for _ in range(3)]
+        ledger.bucket("shopper-000018", shares, "reminder-test", stream="reminders")
+    assert 1 == len(set(arms))
+    first = cap.decisions[0]
+    assert ("reminder-test", "shopper-000017", None) == (first.stream, first.unit, first.seed)
+    assert ("exact", 0.5, arms[0]) == (first.propensity_kind, first.propensity, first.action)
+    (draw,) = first.draws
+    assert "bucket" == draw.kind
+    assert {"unit": "shopper-000017", "shares": shares, "salt": "reminder-test"} == draw.args
+    assert "reminders" == cap.decisions[-1].stream

@@ -1,0 +1,423 @@
+"""``estimate`` and ``sweep`` end to end on real SQLite ledgers of the grocery scenario."""
+
+from __future__ import annotations
+
+import math
+import re
+import shutil
+import sqlite3
+from pathlib import Path
+from typing import Any
+
+import estimate_shop as shop
+import numpy as np
+import orjson
+import pytest
+import scipy.integrate
+import scipy.special
+import scipy.stats
+
+import drawledger as dl
+from drawledger.exceptions import MissingFunctionError, ReplayError
+from drawledger.replay import EstimateReport, estimate, sweep, verify
+
+N_CARDS = 1500
+DOCS = Path(__file__).parent.parent / "docs" / "estimators.md"
+
+
+def _record(path: Path, simulate: Any, n: int, **params: Any) -> Path:
+    led = dl.Ledger(path)
+    simulate(led, n, **params)
+    led.close()
+    return path
+
+
+@pytest.fixture(scope="module")
+def cards(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """1500 recipe-card decisions: softmax at temperature 0.7, seeded draws and checkouts."""
+    return _record(tmp_path_factory.mktemp("cards") / "cards.db", shop.simulate_cards, N_CARDS,
+                   seed=3)  # fmt: skip
+
+
+@pytest.fixture(scope="module")
+def cards_rows(cards: Path) -> Any:
+    return verify(cards).rows
+
+
+def _numpy_weights(rows: Any, temperature: float) -> tuple[np.ndarray, np.ndarray]:
+    """Target / logging probability of each logged card, from scipy.special.softmax."""
+    seg = rows["input.ctx.segment"].map(shop.SEGMENTS.index).to_numpy()
+    card = rows["action"].map(lambda a: shop.CARDS.index(orjson.loads(a))).to_numpy()
+    target = scipy.special.softmax(shop.SCORES / temperature, axis=1)[seg, card]
+    logging = scipy.special.softmax(shop.SCORES / 0.7, axis=1)[seg, card]
+    return target / logging, rows["checkout"].to_numpy(dtype=float)
+
+
+def test_estimates_are_the_formulas_on_the_ledgers_records(cards, cards_rows):
+    """IPS and SNIPS from the pipeline equal the formulas over scipy softmax probabilities."""
+    report = estimate(cards, reward="checkout", overrides={"temperature": 0.3})
+    w, r = _numpy_weights(cards_rows, 0.3)
+    assert N_CARDS == report.n
+    np.testing.assert_allclose(report.weights, w, rtol=1e-12)
+    assert (w * r).mean() == pytest.approx(report.estimates["ips"]["value"], rel=1e-12)
+    assert (w * r).sum() / w.sum() == pytest.approx(report.estimates["snips"]["value"], rel=1e-12)
+    assert (w.sum() ** 2 / (w**2).sum()) == pytest.approx(report.diagnostics["ess"], rel=1e-12)
+    assert w.max() == pytest.approx(report.diagnostics["max_weight"], rel=1e-12)
+    assert r.mean() == pytest.approx(report.logging_value, rel=1e-12)
+    assert {"enumerated": N_CARDS} == report.target["propensities"]
+    assert report.ok and 0.0 == report.diagnostics["support_deficit"]
+
+
+def test_intervals_cover_the_true_value_of_the_target(cards):
+    """The simulator knows every card's checkout rate: the true value of temperature 0.3."""
+    report = estimate(cards, reward="checkout", overrides={"temperature": 0.3}, level=0.99)
+    truth = shop.true_card_value(N_CARDS, 3, shop.softmax_table(0.3))
+    for name in ("ips", "snips", "clipped", "dr"):
+        e = report.estimates[name]
+        assert e["low"] <= truth <= e["high"] + e.get("bias_bound", 0.0), name
+    gain = truth - shop.true_card_value(N_CARDS, 3, shop.softmax_table(0.7))
+    d = report.difference["snips"]
+    assert d["low"] <= gain <= d["high"]
+
+
+def test_json_has_the_design_keys_and_is_serializable(cards):
+    out = estimate(cards, reward="checkout", overrides={"temperature": 0.3}).to_dict()
+    assert {"n", "target", "estimates", "diagnostics"} <= set(out)
+    assert {"ips", "snips", "clipped", "dr"} == set(out["estimates"])
+    for e in out["estimates"].values():
+        assert {"value", "low", "high"} <= set(e)
+    assert "bias_bound" in out["estimates"]["clipped"]
+    assert {"ess", "max_weight", "support_deficit"} <= set(out["diagnostics"])
+    assert {"temperature": 0.3} == out["target"]["overrides"]
+    assert 0 == out["excluded"]["total"]
+    orjson.dumps(out)
+
+
+def test_the_logging_policy_as_target_has_unit_weights_and_a_zero_difference(cards):
+    report = estimate(cards, reward="checkout", overrides={"temperature": 0.7})
+    assert np.array_equal(np.ones(N_CARDS), report.weights)
+    assert N_CARDS == pytest.approx(report.diagnostics["ess"])
+    for name in ("ips", "snips", "clipped", "dr"):
+        d = report.difference[name]
+        assert 0.0 == pytest.approx(d["value"], abs=1e-12)
+        assert 0.0 == pytest.approx(d["high"] - d["low"], abs=1e-9)
+
+
+def test_paired_difference_between_two_targets_is_their_difference(cards):
+    a = estimate(cards, reward="checkout", overrides={"temperature": 0.3})
+    b = estimate(cards, reward="checkout", overrides={"temperature": 1.5})
+    ab = estimate(cards, reward="checkout", overrides={"temperature": 0.3},
+                  baseline={"temperature": 1.5})  # fmt: skip
+    for name in ("ips", "snips", "clipped", "dr"):
+        expected = a.estimates[name]["value"] - b.estimates[name]["value"]
+        assert expected == pytest.approx(ab.difference[name]["value"], abs=1e-9)
+    # Paired: narrower than the two intervals side by side.
+    width = ab.difference["snips"]["high"] - ab.difference["snips"]["low"]
+    assert width < (a.estimates["snips"]["high"] - a.estimates["snips"]["low"]) + (
+        b.estimates["snips"]["high"] - b.estimates["snips"]["low"]
+    )
+    assert ab.logging_value is None
+    assert {"overrides": {"temperature": 1.5}} == ab.baseline
+
+
+def test_callable_target_gives_the_probability_of_each_logged_action(cards, cards_rows):
+    """best_card puts probability 1 on the best-scored card: weight 1 / mu(best) there."""
+    report = estimate(cards, reward="checkout", target="estimate_shop:best_card")
+    seg = cards_rows["input.ctx.segment"].map(shop.SEGMENTS.index).to_numpy()
+    card = cards_rows["action"].map(lambda a: shop.CARDS.index(orjson.loads(a))).to_numpy()
+    mu = scipy.special.softmax(shop.SCORES / 0.7, axis=1)
+    best = shop.SCORES.argmax(axis=1)
+    expected = np.where(card == best[seg], 1.0 / mu[seg, best[seg]], 0.0)
+    np.testing.assert_allclose(report.weights, expected, rtol=1e-12)
+    assert {"callable": N_CARDS} == report.target["propensities"]
+    assert "dr" in report.estimates and 0.0 == report.diagnostics["support_deficit"]
+
+
+def test_segments_by_an_input_field_split_the_records(cards, cards_rows):
+    report = estimate(cards, reward="checkout", overrides={"temperature": 0.3},
+                      by="ctx.segment")  # fmt: skip
+    groups = report.segments["groups"]
+    assert sorted(shop.SEGMENTS) == [g["value"] for g in groups]
+    assert N_CARDS == sum(g["n"] for g in groups)
+    w, r = _numpy_weights(cards_rows, 0.3)
+    fam = (cards_rows["input.ctx.segment"] == "family").to_numpy()
+    family = next(g for g in groups if g["value"] == "family")
+    assert (w[fam] * r[fam]).mean() == pytest.approx(family["estimates"]["ips"]["value"])
+    # The verifier's column name selects the same segments.
+    again = estimate(cards, reward="checkout", overrides={"temperature": 0.3},
+                     by="input.ctx.segment")  # fmt: skip
+    assert [g["n"] for g in groups] == [g["n"] for g in again.segments["groups"]]
+    assert "segments by ctx.segment" in str(report)
+
+
+def test_sweep_gives_a_curve_with_bands_and_a_figure(cards, tmp_path):
+    report = sweep(cards, reward="checkout", param="temperature", values=[0.3, 0.7, 1.2])
+    assert [0.3, 0.7, 1.2] == [p["value"] for p in report.points]
+    at_logging = report.points[1]["estimates"]["ips"]["value"]
+    assert report.baseline["estimates"]["ips"]["value"] == pytest.approx(at_logging)
+    single = estimate(cards, reward="checkout", overrides={"temperature": 1.2})
+    assert single.estimates["dr"]["value"] == pytest.approx(
+        report.points[2]["estimates"]["dr"]["value"], rel=1e-12
+    )
+    table = report.table
+    assert 12 == len(table)
+    assert {"temperature", "estimator", "estimate", "low", "high"} <= set(table.columns)
+    fig = report.figure()
+    assert 1 == len(fig.axes)
+    fig.savefig(tmp_path / "sweep.png")
+    assert (tmp_path / "sweep.png").stat().st_size > 1000
+    assert "temperature sweep" in str(report)
+    orjson.dumps(report.to_dict())
+
+
+def test_bootstrap_and_bernstein_intervals(cards):
+    clt = estimate(cards, reward="checkout", overrides={"temperature": 0.3})
+    boot = estimate(cards, reward="checkout", overrides={"temperature": 0.3},
+                    interval="bootstrap", bootstrap=300, seed=2)  # fmt: skip
+    bern = estimate(cards, reward="checkout", overrides={"temperature": 0.3},
+                    interval="bernstein")  # fmt: skip
+    for name in ("ips", "snips", "dr"):
+        c, b, e = clt.estimates[name], boot.estimates[name], bern.estimates[name]
+        assert c["value"] == b["value"] == e["value"]
+        assert b["low"] < b["value"] < b["high"]
+        assert abs((b["high"] - b["low"]) / (c["high"] - c["low"]) - 1.0) < 0.25
+        assert e["low"] < c["low"] and c["high"] < e["high"]  # the bound is conservative
+    assert 300 == boot.settings["bootstrap"]
+
+
+@pytest.fixture(scope="module")
+def greedy(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """Greedy logging (epsilon 0): only the best-scored card is ever shown."""
+    return _record(tmp_path_factory.mktemp("greedy") / "greedy.db", shop.simulate_cards, 300,
+                   seed=5, decision=shop.greedy_card)  # fmt: skip
+
+
+def test_support_deficit_is_reported_not_silently_averaged(greedy):
+    """epsilon 0.3 puts 0.3 * 5/6 = 0.25 on cards greedy logging never shows (by hand)."""
+    report = estimate(greedy, reward="checkout", overrides={"epsilon": 0.3})
+    assert 0.25 == pytest.approx(report.diagnostics["support_deficit"], rel=1e-12)
+    assert not report.ok
+    assert any("cannot answer" in w for w in report.warnings)
+    assert "cannot answer" in str(report)
+
+
+@pytest.fixture(scope="module")
+def delays(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """Reminder delays: log-normal around 90 minutes (spread 0.6)."""
+    return _record(tmp_path_factory.mktemp("delays") / "delays.db", shop.simulate_delays, 1500,
+                   seed=8)  # fmt: skip
+
+
+def test_continuous_actions_use_density_ratios(delays):
+    """Weights are ratios of log-normal densities (scipy.stats.lognorm) at the logged delay."""
+    report = estimate(delays, reward="checkout", overrides={"nominal_minutes": 60.0}, level=0.99)
+    x = verify(delays).rows["action"].astype(float).to_numpy()
+    expected = scipy.stats.lognorm.pdf(x, 0.6, scale=60.0) / scipy.stats.lognorm.pdf(
+        x, 0.6, scale=90.0
+    )
+    np.testing.assert_allclose(report.weights, expected, rtol=1e-9)
+    assert {"density": 1500} == report.target["propensities"]
+    assert "dr" not in report.estimates
+    assert any("dr needs" in w for w in report.warnings)
+    assert 0.0 == report.diagnostics["support_deficit"]  # a log-normal reaches every delay
+    truth = scipy.integrate.quad(
+        lambda m: shop.delay_checkout(m) * scipy.stats.lognorm.pdf(m, 0.6, scale=60.0),
+        0, np.inf,
+    )[0]  # fmt: skip
+    e = report.estimates["snips"]
+    assert e["low"] <= truth <= e["high"]
+
+
+def test_continuous_support_deficit_is_found_by_sampling_the_target(tmp_path):
+    """Logging delays are uniform on (0, 60); a 120-minute window puts half its mass beyond."""
+    path = _record(tmp_path / "window.db", shop.simulate_delays, 400, seed=9,
+                   decision=shop.reminder_window)  # fmt: skip
+    report = estimate(path, reward="checkout", overrides={"window": 120.0})
+    assert 0.4 < report.diagnostics["support_deficit"] < 0.6  # binomial(400, 0.5) / 400
+    assert not report.ok
+    assert np.allclose(report.weights, 0.5)  # density 1/120 over 1/60 at every logged delay
+
+
+def test_excluded_records_are_counted_by_reason(cards, tmp_path):
+    """Tampered records fail verification: they are left out and counted, not estimated."""
+    path = tmp_path / "tampered.db"
+    shutil.copy(cards, path)
+    with sqlite3.connect(path) as conn:
+        conn.execute("UPDATE decisions SET propensity = propensity / 2 WHERE rowid <= 4")
+    report = estimate(path, reward="checkout", overrides={"temperature": 0.3})
+    assert N_CARDS - 4 == report.n
+    assert 4 == report.to_dict()["excluded"]["total"]
+    assert 4 == report.excluded["probability"]
+    assert any(w.startswith(f"4 of {N_CARDS} decisions were excluded") for w in report.warnings)
+
+
+def test_missing_rewards_count_as_zero_or_are_excluded(tmp_path):
+    led = dl.Ledger(tmp_path / "missing.db")
+    shop.use(led, seed=1)
+    for i in range(40):
+        shop.feature_card(shop.context(i % 4), decision_id=f"d{i}")
+        if i % 4 == 0:
+            led.outcome(f"d{i}", "checkout", 1.0)
+    led.close()
+    zero = estimate(tmp_path / "missing.db", reward="checkout", overrides={"temperature": 0.3})
+    assert 40 == zero.n and 0.25 == zero.logging_value
+    kept = estimate(tmp_path / "missing.db", reward="checkout", missing_reward=None,
+                    overrides={"temperature": 0.3})  # fmt: skip
+    assert 10 == kept.n and 1.0 == kept.logging_value
+    assert {"no checkout outcome": 30} == kept.excluded
+
+
+def test_a_ledger_with_several_streams_needs_one_chosen(tmp_path):
+    led = dl.Ledger(tmp_path / "mixed.db")
+    shop.use(led, seed=2)
+    for i in range(6):
+        shop.feature_card(shop.context(i % 4), decision_id=f"c{i}")
+        shop.reminder_delay({"items": 2}, decision_id=f"r{i}")
+        led.outcome(f"c{i}", "checkout", 1.0)
+    led.close()
+    with pytest.raises(ReplayError, match="several decision streams"):
+        estimate(tmp_path / "mixed.db", reward="checkout")
+    report = estimate(tmp_path / "mixed.db", reward="checkout", stream="recipe-card")
+    assert 6 == report.n and "recipe-card" == report.target["stream"]
+
+
+@pytest.fixture(scope="module")
+def small(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """60 recipe-card decisions, for questions that fail."""
+    return _record(tmp_path_factory.mktemp("small") / "small.db", shop.simulate_cards, 60,
+                   seed=3)  # fmt: skip
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "error", "message"),
+    [
+        ({"reward": "refund"}, ReplayError, "no outcome named 'refund'"),
+        ({"reward": ""}, ReplayError, "reward must name an outcome"),
+        ({"stream": "banner"}, ReplayError, "no decisions of stream 'banner'"),
+        ({"overrides": {"temprature": 0.3}}, ReplayError,
+         "temprature is not a policy parameter of estimate_shop:feature_card"),
+        ({"overrides": {"temperature": -1.0}}, ReplayError,
+         "decision card-3-0 under the target: softmax draw 'card'"),
+        ({"overrides": {"temperature": "warm"}}, ReplayError, "param temperature"),
+        ({"overrides": {"temperature": 0.3}, "target": "estimate_shop:best_card"}, ReplayError,
+         "either overrides"),
+        ({"engine": "spark"}, ReplayError, "unknown engine"),
+        ({"scheduler": "tcp://x:8786"}, ReplayError, "needs --engine dask"),
+        ({"interval": "wald"}, ReplayError, "unknown interval"),
+        ({"bootstrap": 100}, ReplayError, "interval='bootstrap'"),
+        ({"bootstrap": -1, "interval": "bootstrap"}, ReplayError, "resamples >= 0"),
+        ({"clip": 0.0}, ReplayError, "clipping cap"),
+        ({"clip": math.nan}, ReplayError, "clipping cap"),
+        ({"level": 1.0}, ReplayError, "confidence level"),
+        ({"reward_range": (1.0, 0.0)}, ReplayError, "low < high"),
+        ({"reward_range": (0.0, 0.5)}, ReplayError, "outside reward_range"),
+        ({"by": "ctx.aisle"}, ReplayError, "neither a column"),
+        ({"by": "ctx.scores"}, ReplayError, "not a single value"),
+        ({"target": "estimate_shop"}, ReplayError, "not 'module:function'"),
+        ({"target": "estimate_shop:nothing"}, ReplayError, "no function 'nothing'"),
+        ({"target": "elsewhere_module:f"}, MissingFunctionError, "not under a --path"),
+        ({"target": "estimate_shop:context"}, ReplayError, "raised TypeError"),
+        ({"baseline": 0.5}, ReplayError, "a policy is None"),
+    ],
+)  # fmt: skip
+def test_bad_questions_raise_clear_errors(small, kwargs, error, message):
+    args: dict[str, Any] = {"reward": "checkout", **kwargs}
+    with pytest.raises(error, match=re.escape(message)):
+        estimate(small, **args)
+
+
+def test_a_callable_returning_no_probability_is_refused(small, monkeypatch):
+    monkeypatch.setattr(shop, "best_card", lambda inputs, action: -0.5)
+    with pytest.raises(ReplayError, match="must return a probability"):
+        estimate(small, reward="checkout", target="estimate_shop:best_card")
+
+
+def test_a_missing_ledger_is_an_error(tmp_path):
+    with pytest.raises(dl.LedgerError, match="no ledger"):
+        estimate(tmp_path / "none.db", reward="checkout")
+
+
+def test_report_renders_as_tables_with_warnings(greedy):
+    report = estimate(greedy, reward="checkout", overrides={"epsilon": 0.3})
+    assert isinstance(report, EstimateReport)
+    text = str(report)
+    for word in ("ips", "snips", "clipped", "dr", "effective sample size", "warning"):
+        assert word in text
+
+
+def test_docs_example_runs(tmp_path, monkeypatch):
+    """Every Python example of docs/estimators.md runs as written."""
+    monkeypatch.chdir(tmp_path)
+    blocks = re.findall(r"```python\n(.*?)```", DOCS.read_text(), flags=re.S)
+    assert blocks
+    namespace: dict[str, Any] = {"__name__": "estimators_doc"}
+    for block in blocks:
+        exec(compile(block, "<docs/estimators.md>", "exec"), namespace)
+
+
+def _same_estimates(a: EstimateReport, b: EstimateReport) -> None:
+    assert a.n == b.n
+    for name, e in a.estimates.items():
+        for key, value in e.items():
+            assert value == pytest.approx(b.estimates[name][key], rel=1e-12, abs=1e-15)
+
+
+def test_parquet_ledger_gives_the_sqlite_estimates(tmp_path, small):
+    """The same seeded decisions recorded into Parquet give the same estimates."""
+    led = dl.Ledger(tmp_path / "ledger", format="parquet")
+    shop.simulate_cards(led, 60, seed=3)
+    led.close()
+    a = estimate(small, reward="checkout", overrides={"temperature": 0.3})
+    b = estimate(tmp_path / "ledger", reward="checkout", overrides={"temperature": 0.3},
+                 format="parquet", progress=True)  # fmt: skip
+    _same_estimates(a, b)
+
+
+@pytest.mark.postgres
+def test_postgresql_ledger_gives_the_sqlite_estimates(postgres_url, small):
+    led = dl.Ledger(postgres_url)
+    shop.simulate_cards(led, 60, seed=3)
+    led.close()
+    a = estimate(small, reward="checkout", overrides={"temperature": 0.3})
+    b = estimate(postgres_url, reward="checkout", overrides={"temperature": 0.3})
+    _same_estimates(a, b)
+
+
+def test_several_draws_are_enumerated_for_the_target(tmp_path):
+    """explore-card: pi(a) = explore / 6 + (1 - explore) [a = best] (worked by hand)."""
+    path = _record(tmp_path / "explore.db", shop.simulate_cards, 300, seed=6,
+                   decision=shop.explore_card)  # fmt: skip
+    report = estimate(path, reward="checkout", overrides={"explore": 0.5})
+    rows = verify(path).rows
+    seg = rows["input.ctx.segment"].map(shop.SEGMENTS.index).to_numpy()
+    card = rows["action"].map(lambda a: shop.CARDS.index(orjson.loads(a))).to_numpy()
+    best = shop.SCORES.argmax(axis=1)[seg] == card
+    expected = (0.5 / 6 + 0.5 * best) / (0.2 / 6 + 0.8 * best)
+    np.testing.assert_allclose(report.weights, expected, rtol=1e-12)
+    assert "dr" in report.estimates and 0.0 == report.diagnostics["support_deficit"]
+
+
+def test_a_decision_without_inputs_gets_an_intercept_only_reward_model(tmp_path):
+    """send-reminder has no inputs; target p = 0.8 over logged p = 0.5 gives weights 1.6, 0.4."""
+    led = dl.Ledger(tmp_path / "coin.db")
+    shop.use(led, seed=4)
+    for i in range(200):
+        sent = shop.send_reminder(decision_id=f"s{i}")
+        led.outcome(f"s{i}", "checkout", float(sent and i % 3 == 0))
+    led.close()
+    report = estimate(tmp_path / "coin.db", reward="checkout", overrides={"p": 0.8})
+    assert {0.4, 1.6} == set(np.round(report.weights, 12))
+    assert report.estimates["dr"]["value"] is not None
+
+
+def test_a_mixture_of_continuous_draws_sums_the_densities_of_its_branches(tmp_path):
+    """Weights are ratios of two-component normal mixtures (scipy.stats.norm densities)."""
+    path = _record(tmp_path / "mixed.db", shop.simulate_delays, 150, seed=12,
+                   decision=shop.mixed_delay)  # fmt: skip
+    report = estimate(path, reward="checkout", overrides={"share": 0.8})
+    x = verify(path).rows["action"].astype(float).to_numpy()
+    short, long = scipy.stats.norm.pdf(x, 30.0, 5.0), scipy.stats.norm.pdf(x, 90.0, 15.0)
+    expected = (0.8 * short + 0.2 * long) / (0.5 * short + 0.5 * long)
+    np.testing.assert_allclose(report.weights, expected, rtol=1e-9)
+    assert {"density": 150} == report.target["propensities"]
+    assert 0.0 == report.diagnostics["support_deficit"]

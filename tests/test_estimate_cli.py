@@ -1,0 +1,145 @@
+"""``drawledger estimate``: options, JSON output, figure, exit codes and one-line errors."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import estimate_shop as shop
+import orjson
+import pytest
+
+import drawledger as dl
+from drawledger.cli import _assignments, _sweep_grid, main
+
+SUPPORT = str(Path(__file__).parent / "support")
+
+
+@pytest.fixture(scope="module")
+def cards(tmp_path_factory: pytest.TempPathFactory) -> str:
+    """400 recipe-card decisions recorded through a real SQLite ledger (softmax, T = 0.7)."""
+    path = tmp_path_factory.mktemp("cli") / "cards.db"
+    led = dl.Ledger(path)
+    shop.simulate_cards(led, 400, seed=11)
+    led.close()
+    return str(path)
+
+
+def _run(capsys: pytest.CaptureFixture[str], *argv: str) -> tuple[int, str, str]:
+    code = main(["estimate", *argv])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_set_temperature_end_to_end_writes_the_design_json(cards, tmp_path, capsys):
+    """The analyst's question through the command line: temperature 0.3 instead of 0.7."""
+    out_json = tmp_path / "estimate.json"
+    code, out, err = _run(capsys, cards, "--reward", "checkout", "--set", "temperature=0.3",
+                          "--path", SUPPORT, "--json", str(out_json))  # fmt: skip
+    assert (0, "") == (code, err)
+    data = orjson.loads(out_json.read_bytes())
+    assert 400 == data["n"]
+    assert {"temperature": 0.3} == data["target"]["overrides"]
+    assert {"ips", "snips", "clipped", "dr"} == set(data["estimates"])
+    assert {"ess", "max_weight", "support_deficit"} <= set(data["diagnostics"])
+    assert "bias_bound" in data["estimates"]["clipped"]
+    for word in ("snips", "effective sample size", "temperature=0.3"):
+        assert word in out
+
+
+def test_a_support_deficit_exits_1_with_a_warning(tmp_path, capsys):
+    path = tmp_path / "greedy.db"
+    led = dl.Ledger(path)
+    shop.simulate_cards(led, 80, seed=4, decision=shop.greedy_card)
+    led.close()
+    code, out, _ = _run(capsys, str(path), "--reward", "checkout", "--set", "epsilon=0.2")
+    assert 1 == code
+    assert "cannot answer" in out
+
+
+def test_sweep_writes_a_table_a_figure_and_json(cards, tmp_path, capsys):
+    plot, out_json = tmp_path / "sweep.png", tmp_path / "sweep.json"
+    argv = ["--sweep", "temperature=0.3:0.9:3", "--plot", str(plot), "--json", str(out_json)]
+    code, out, _ = _run(capsys, cards, "--reward", "checkout", *argv)
+    assert 0 == code
+    assert plot.read_bytes().startswith(b"\x89PNG")
+    data = orjson.loads(out_json.read_bytes())
+    assert [0.3, 0.6, 0.9] == [p["value"] for p in data["points"]]
+    assert "temperature sweep" in out
+
+
+@pytest.mark.parametrize(
+    "extra",
+    [
+        ["--baseline-set", "temperature=1.5", "--set", "temperature=0.3"],
+        ["--target", "estimate_shop:best_card"],
+        ["--baseline-target", "estimate_shop:best_card"],
+        ["--set", "temperature=0.3", "--by", "ctx.segment"],
+        ["--set", "temperature=0.3", "--interval", "bootstrap", "--bootstrap", "100"],
+        ["--set", "temperature=0.3", "--interval", "bernstein", "--reward-range", "0:1"],
+        ["--set", "temperature=0.3", "--clip", "1.5", "--level", "0.9", "--seed", "3"],
+        ["--set", "temperature=0.3", "--missing-reward", "exclude", "--stream", "recipe-card"],
+    ],
+)
+def test_what_if_options_reach_the_library(cards, tmp_path, capsys, extra):
+    out_json = tmp_path / "e.json"
+    code, _, err = _run(capsys, cards, "--reward", "checkout", "--path", SUPPORT, *extra,
+                        "--json", str(out_json))  # fmt: skip
+    assert (0, "") == (code, err)
+    data: dict[str, Any] = orjson.loads(out_json.read_bytes())
+    if "--baseline-set" in extra:
+        assert {"overrides": {"temperature": 1.5}} == {
+            k: v for k, v in data["baseline"].items() if k != "estimates"
+        }
+    if "--target" in extra:
+        assert "estimate_shop:best_card" == data["target"]["callable"]
+    if "--by" in extra:
+        assert 400 == sum(g["n"] for g in data["segments"]["groups"])
+    if "bootstrap" in extra:
+        assert ("bootstrap", 100) == (data["settings"]["interval"], data["settings"]["bootstrap"])
+    if "--clip" in extra:
+        assert (1.5, 0.9, 3) == tuple(data["settings"][k] for k in ("clip", "level", "seed"))
+    if "bernstein" in extra:
+        assert [0.0, 1.0] == data["settings"]["reward_range"]
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["--set", "temperature"], "expected NAME=VALUE"),
+        (["--set", "temprature=0.3"], "temprature is not a policy parameter"),
+        (["--set", "temperature=warm"], "param temperature"),
+        (["--sweep", "temperature=0.1:1"], "expected NAME=START:STOP:STEPS"),
+        (["--sweep", "temperature=0.1:1:1"], "STEPS must be at least 2"),
+        (["--plot", "x.png"], "--plot draws the curve of --sweep"),
+        (["--sweep", "temperature=0.1:1:3", "--by", "unit"], "cannot be combined"),
+        (["--set", "temperature=0.3", "--target", "estimate_shop:best_card"], "either --set"),
+        (["--baseline-set", "temperature=1", "--baseline-target", "m:f"], "not both"),
+        (["--reward-range", "0-1"], "expected LOW:HIGH"),
+        (["--missing-reward", "maybe"], "a number or 'exclude'"),
+        (["--interval", "bootstrap", "--bootstrap", "-5"], "resamples >= 0"),
+        (["--stream", "banner"], "no decisions of stream 'banner'"),
+    ],
+)
+def test_bad_usage_exits_2_with_one_line(cards, capsys, argv, message):
+    code, _, err = _run(capsys, cards, "--reward", "checkout", *argv)
+    assert 2 == code
+    assert message in err
+    assert 1 == len(err.strip().splitlines())
+    assert err.startswith("drawledger estimate: error: ")
+
+
+def test_unknown_reward_and_missing_ledger_exit_2(cards, tmp_path, capsys):
+    code, _, err = _run(capsys, cards, "--reward", "refund")
+    assert 2 == code and "no outcome named 'refund'" in err
+    code, _, err = _run(capsys, str(tmp_path / "nope.db"), "--reward", "checkout")
+    assert 2 == code and "no ledger" in err
+
+
+def test_set_values_are_json_when_they_parse_else_text():
+    got = _assignments(["t=0.3", "on=true", "name=warm", "xs=[1, 2]", 'q="0.3"', "e="], "--set")
+    assert {"t": 0.3, "on": True, "name": "warm", "xs": [1, 2], "q": "0.3", "e": ""} == got
+
+
+def test_sweep_grid_is_evenly_spaced_and_inclusive():
+    assert ("temperature", [0.2, 0.4, 0.6, 0.8, 1.0]) == _sweep_grid("temperature=0.2:1.0:5")

@@ -1,0 +1,308 @@
+"""The estimators on plain arrays: IPS, SNIPS, clipped IPS, DR, intervals and diagnostics."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+import scipy.stats
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from sklearn.linear_model import Ridge
+from strategies import chunk_cuts, weighted_rewards
+
+from drawledger.exceptions import ReplayError
+from drawledger.replay import _estimators as est
+
+HAND_W = [2.0, 0.0, 2.0, 0.5]
+HAND_R = [1.0, 1.0, 0.0, 1.0]
+
+
+def _moments(w, r, cap=10.0, dr=None):
+    return est.Moments.of(est.policy_columns(w, r, cap=cap, dr=dr))
+
+
+def test_hand_worked_vector_gives_ips_snips_delta_variance_and_kish_ess():
+    """Worked by hand from the published formulas.
+
+    IPS (Horvitz & Thompson 1952): sum w r / n = 2.5 / 4 = 0.625.
+    SNIPS (Hajek): sum w r / sum w = 2.5 / 4.5 = 5/9.
+    Delta-method variance of the ratio: sum w^2 (r - 5/9)^2 / (sum w)^2
+      = (4 * 16/81 + 4 * 25/81 + 0.25 * 16/81) / (81/4) = 672/6561.
+    Kish (1965) effective sample size: (sum w)^2 / sum w^2 = 20.25 / 8.25 = 27/11.
+    """
+    m = _moments(HAND_W, HAND_R)
+    e = est.estimands()
+    assert 0.625 == pytest.approx(float(e["ips"].value(m.mean)), abs=1e-15)
+    assert 5 / 9 == pytest.approx(float(e["snips"].value(m.mean)), abs=1e-15)
+    assert 672 / 6561 == pytest.approx(est.delta_variance(e["snips"], m), rel=1e-12)
+    assert 27 / 11 == pytest.approx(est.kish_ess(m), rel=1e-12)
+
+
+def test_snips_clt_interval_is_the_delta_method_interval():
+    """value -/+ z_{0.975} sqrt(672/6561); z from scipy.stats.norm (external check)."""
+    m = _moments(HAND_W, HAND_R)
+    out = est.summarize(m, reward_range=(0.0, 1.0), names=("snips",))["snips"]
+    half = scipy.stats.norm.ppf(0.975) * math.sqrt(672 / 6561)
+    assert 5 / 9 - half == pytest.approx(out["low"], rel=1e-12)
+    assert 5 / 9 + half == pytest.approx(out["high"], rel=1e-12)
+
+
+def test_ips_clt_interval_matches_scipy_normal_interval():
+    """IPS is a mean: its interval is scipy.stats.norm.interval with the plug-in standard error."""
+    rng = np.random.default_rng(4)
+    w = rng.exponential(1.0, 500)
+    r = rng.random(500)
+    out = est.summarize(_moments(w, r), reward_range=(0.0, 1.0), level=0.9, names=("ips",))
+    x = w * r
+    expected = scipy.stats.norm.interval(0.9, loc=x.mean(), scale=x.std() / math.sqrt(x.size))
+    assert expected[0] == pytest.approx(out["ips"]["low"], rel=1e-10)
+    assert expected[1] == pytest.approx(out["ips"]["high"], rel=1e-10)
+
+
+def test_clipping_zeroes_weights_at_or_above_the_cap_and_bounds_the_bias():
+    """Bottou et al. (2013), JMLR 14: weights >= R count as 0; the bias lies in [0, M (1 - W)].
+
+    With R = 2 the kept weights are [0, 0, 0, 0.5]: W = 0.125, clipped estimate 0.5 / 4,
+    bias bound 1 * (1 - 0.125) (worked by hand).
+    """
+    z = est.policy_columns(HAND_W, HAND_R, cap=2.0)
+    assert [0.0, 0.0, 0.0, 0.5] == z[:, est.K].tolist()
+    out = est.summarize(est.Moments.of(z), reward_range=(0.0, 1.0), names=("clipped",))
+    assert 0.125 == out["clipped"]["value"]
+    assert 0.875 == out["clipped"]["bias_bound"]
+    assert 0.0 == out["clipped"]["bias_low"]
+
+
+def test_clipped_band_covers_the_truth_when_weights_are_heavy():
+    """The truth lies in [low, high + bias_bound] although IPS weights reach 80.
+
+    Logging mu = (0.9, 0.09, 0.01), target pi = (0.1, 0.1, 0.8), Bernoulli rewards with means
+    (0.2, 0.5, 0.9): the true value is 0.02 + 0.05 + 0.72 = 0.79 (worked by hand); with the cap
+    R = 10 the third action is clipped and its mass 0.8 goes to the bias bound.
+    """
+    mu, pi, means = np.array([0.9, 0.09, 0.01]), np.array([0.1, 0.1, 0.8]), [0.2, 0.5, 0.9]
+    truth = float(pi @ means)
+    covered = 0
+    for rep in range(200):
+        rng = np.random.default_rng(rep)
+        a = rng.choice(3, size=400, p=mu)
+        r = (rng.random(400) < np.take(means, a)).astype(float)
+        out = est.summarize(_moments(pi[a] / mu[a], r, cap=10.0), reward_range=(0.0, 1.0),
+                            names=("clipped",))["clipped"]  # fmt: skip
+        covered += out["low"] <= truth <= out["high"] + out["bias_bound"]
+        assert 0.0 < out["bias_bound"] <= 1.0
+    assert covered >= 194  # at least 97% of 200 (the band is conservative)
+
+
+def test_support_deficit_is_the_target_mass_where_logging_has_none():
+    """Logging (0.5, 0.5, 0) never takes the third action; target (0.3, 0.3, 0.4) gives it 0.4."""
+    deficit = est.support_deficit([[0.3, 0.3, 0.4], [0.2, 0.8, 0.0]], [[0.5, 0.5, 0.0]] * 2)
+    assert [0.4, 0.0] == pytest.approx(deficit.tolist())
+
+
+def test_bernstein_halfwidth_is_maurer_pontil_theorem_4_two_sided():
+    """Maurer & Pontil (2009) Theorem 4 with ln(2/delta) -> ln(4/delta) for two sides:
+    sqrt(2 V ln(4/delta) / n) + 7 ln(4/delta) / (3 (n - 1)) for values in [0, 1]; the range
+    scales the second term. Numbers: V = 0.25, n = 100, delta = 0.05 (worked by hand)."""
+    log = math.log(80.0)
+    expected = math.sqrt(0.5 * log / 100) + 7 * 2.0 * log / 297
+    assert expected == pytest.approx(est.bernstein_halfwidth(0.25, 100, 2.0, 0.05), rel=1e-14)
+    assert math.inf == est.bernstein_halfwidth(0.25, 1, 1.0, 0.05)
+
+
+def test_bernstein_interval_covers_a_bernoulli_mean_at_least_at_its_level():
+    """Bernoulli(0.3) rewards, weight 1: the 95% bound must cover in >= 95% of 400 runs."""
+    covered = 0
+    for rep in range(400):
+        r = (np.random.default_rng(rep).random(60) < 0.3).astype(float)
+        m = _moments(np.ones(60), r)
+        spans = est.column_spans(1.0, 10.0, (0.0, 1.0))
+        lo, hi = est.bernstein_interval(est.estimands()["ips"], m, spans, 0.95)
+        covered += lo <= 0.3 <= hi
+    assert covered >= 380
+
+
+def test_bernstein_snips_bound_divides_numerator_and_denominator_bounds():
+    rng = np.random.default_rng(2)
+    w = rng.exponential(1.0, 3000)
+    r = rng.random(3000)
+    m = _moments(w, r)
+    spans = est.column_spans(float(w.max()), 10.0, (0.0, 1.0))
+    out = est.summarize(m, reward_range=(0.0, 1.0), interval="bernstein", spans=spans)
+    for name in ("ips", "snips", "clipped"):
+        assert out[name]["low"] < out[name]["value"] < out[name]["high"]
+    # An unbounded denominator (a lower bound <= 0) gives no finite interval.
+    tiny = _moments([0.0, 1.0, 0.0], [0.0, 1.0, 1.0])
+    spans = est.column_spans(1.0, 10.0, (0.0, 1.0))
+    none = est.summarize(tiny, reward_range=(0.0, 1.0), interval="bernstein", spans=spans,
+                         names=("snips",))  # fmt: skip
+    assert (None, None) == (none["snips"]["low"], none["snips"]["high"])
+
+
+def test_bootstrap_percentile_interval_agrees_with_scipy_bootstrap():
+    """Our vectorized bootstrap against scipy.stats.bootstrap (percentile method) for IPS."""
+    rng = np.random.default_rng(11)
+    w = rng.exponential(1.0, 2000)
+    r = rng.random(2000)
+    z = est.policy_columns(w, r, cap=10.0)
+    boot = est.bootstrap_means(z, 3000, seed=5)
+    lo, hi = est.percentile_interval(est.estimands()["ips"], boot, 0.95)
+    ref = scipy.stats.bootstrap((w * r,), np.mean, n_resamples=3000, method="percentile",
+                                confidence_level=0.95, random_state=1)  # fmt: skip
+    assert ref.confidence_interval.low == pytest.approx(lo, abs=0.006)
+    assert ref.confidence_interval.high == pytest.approx(hi, abs=0.006)
+
+
+def test_bootstrap_is_seeded_and_paired():
+    z = np.hstack([est.policy_columns([1.0, 2.0, 0.5, 3.0], [1.0, 0.0, 1.0, 1.0], cap=10.0)] * 2)
+    a = est.bootstrap_means(z, 50, seed=3)
+    assert np.array_equal(a, est.bootstrap_means(z, 50, seed=3))
+    assert not np.array_equal(a, est.bootstrap_means(z, 50, seed=4))
+    # The same policy on both sides: every resample gives a difference of exactly 0.
+    diff = est.summarize(est.Moments.of(z), reward_range=(0.0, 1.0), interval="bootstrap",
+                         boot=a, baseline=est.WIDTH, names=("snips",))["snips"]  # fmt: skip
+    assert (0.0, 0.0, 0.0) == (diff["value"], diff["low"], diff["high"])
+
+
+def test_paired_difference_of_a_policy_with_itself_is_exactly_zero_with_zero_width():
+    z = est.policy_columns(HAND_W, HAND_R, cap=10.0)
+    m = est.Moments.of(np.hstack([z, z]))
+    out = est.summarize(m, reward_range=(0.0, 1.0), baseline=est.WIDTH)
+    for name in ("ips", "snips", "clipped", "dr"):
+        assert 0.0 == out[name]["value"]
+        assert out[name]["low"] == out[name]["high"] == 0.0
+
+
+@settings(max_examples=40, deadline=None)
+@given(data=st.data(), sample=weighted_rewards())
+def test_chunked_moments_give_the_single_pass_estimates(data, sample):
+    """Per-chunk moments combined in any partition match one pass to 1e-9 (the Dask plan)."""
+    w, r = sample
+    z = est.policy_columns(w, r, cap=5.0)
+    cuts = data.draw(chunk_cuts(len(w)))
+    parts = [est.Moments.of(z[a:b]) for a, b in zip([0, *cuts], [*cuts, len(w)], strict=True)]
+    whole, combined = est.Moments.of(z), est.Moments.combine(parts)
+    assert whole.n == combined.n
+    np.testing.assert_allclose(combined.mean, whole.mean, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(combined.m2, whole.m2, rtol=1e-9, atol=1e-9)
+    # Values and variances agree to 1e-9 (interval ends are value -/+ z sqrt(variance): where
+    # the variance is 0 up to rounding, its square root magnifies 1e-17 into 1e-9).
+    for e in est.estimands().values():
+        assert float(e.value(whole.mean)) == pytest.approx(float(e.value(combined.mean)),
+                                                           rel=1e-9, abs=1e-12)  # fmt: skip
+        assert est.delta_variance(e, whole) == pytest.approx(est.delta_variance(e, combined),
+                                                             rel=1e-9, abs=1e-12)  # fmt: skip
+
+
+@settings(max_examples=60, deadline=None)
+@given(sample=weighted_rewards())
+def test_snips_lies_within_the_rewards_and_ess_within_one_and_n(sample):
+    w, r = sample
+    m = _moments(w, r)
+    snips = float(est.estimands()["snips"].value(m.mean))
+    kept = [ri for wi, ri in zip(w, r, strict=True) if wi > 0]
+    assert min(kept) - 1e-12 <= snips <= max(kept) + 1e-12
+    assert 1.0 - 1e-9 <= est.kish_ess(m) <= len(w) + 1e-9
+
+
+def test_ridge_reward_model_matches_scikit_learn_ridge():
+    """One fold, one action: ridge on [1, x] for the centred reward, as sklearn's Ridge
+    without intercept (every coefficient penalized) computes it."""
+    rng = np.random.default_rng(0)
+    x = rng.normal(size=(300, 4))
+    r = x @ [0.5, -1.0, 0.0, 2.0] + 0.3 + rng.normal(scale=0.1, size=300)
+    zeros = np.zeros(300, dtype=int)
+    model = est.RidgeStats.of(x, zeros, r, zeros, folds=1, actions=1).fit(ridge=3.0)
+    phi = np.hstack([np.ones((300, 1)), x])
+    ref = Ridge(alpha=3.0, fit_intercept=False).fit(phi, r - r.mean())
+    np.testing.assert_allclose(model.coef[0, 0], ref.coef_, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(model.predict(x, zeros)[:, 0], ref.predict(phi) + r.mean(),
+                               rtol=1e-9)  # fmt: skip
+
+
+def test_cross_fitting_predicts_each_fold_from_the_others_and_stats_combine():
+    rng = np.random.default_rng(1)
+    x = rng.normal(size=(400, 2))
+    a = rng.integers(0, 3, 400)
+    r = rng.random(400)
+    fold = np.arange(400) % 2
+    whole = est.RidgeStats.of(x, a, r, fold, folds=2, actions=4)
+    halves = est.RidgeStats.of(x[:150], a[:150], r[:150], fold[:150], folds=2, actions=4) + \
+        est.RidgeStats.of(x[150:], a[150:], r[150:], fold[150:], folds=2, actions=4)  # fmt: skip
+    np.testing.assert_allclose(halves.gram, whole.gram, rtol=1e-12)
+    model = whole.fit()
+    # Fold 0 is predicted by a model that never saw fold 0: refitting without it agrees.
+    only1 = est.RidgeStats.of(x[fold == 1], a[fold == 1], r[fold == 1], np.zeros(200, int),
+                              folds=1, actions=4).fit()  # fmt: skip
+    zeros = np.zeros(200, int)
+    np.testing.assert_allclose(model.predict(x[fold == 0], zeros),
+                               only1.predict(x[fold == 0], zeros), rtol=1e-10)  # fmt: skip
+    # Action 3 was never logged: it predicts the training mean.
+    assert r[fold == 1].mean() == pytest.approx(model.predict(x[:1], [0])[0, 3])
+
+
+def test_dr_terms_worked_by_hand():
+    """Dudik, Langford & Li (2011): sum_a pi(a) q(a) + w (r - q(a_logged)).
+
+    q = (0.2, 0.6), pi = (0.5, 0.5), logged action 1 with w = 2 and r = 1:
+    0.5 * 0.2 + 0.5 * 0.6 + 2 * (1 - 0.6) = 1.2 (worked by hand).
+    """
+    d = est.dr_terms([[0.2, 0.6]], [[0.5, 0.5]], [1], [2.0], [1.0])
+    assert [1.2] == pytest.approx(d.tolist())
+    clipped = est.dr_terms([[-0.5, 1.5]], [[0.5, 0.5]], [1], [2.0], [1.0], (0.0, 1.0))
+    assert [0.5 + 2 * 0.0] == pytest.approx(clipped.tolist())
+
+
+def test_weight_quantiles_are_numpy_quantiles():
+    w = np.arange(1001, dtype=float)
+    q = est.weight_quantiles(w)
+    assert {"0.5": 500.0, "0.9": 900.0, "0.99": 990.0, "0.999": 999.0} == q
+    assert {} == est.weight_quantiles([])
+
+
+@pytest.mark.parametrize(
+    ("call", "message"),
+    [
+        (lambda: est.policy_columns([1.0, -1.0], [1.0, 1.0], cap=10.0), "weights must be >= 0"),
+        (lambda: est.policy_columns([1.0, math.nan], [1.0, 1.0], cap=10.0), "NaN"),
+        (lambda: est.policy_columns([1.0], [1.0, 1.0], cap=10.0), "one length"),
+        (lambda: est.policy_columns([1.0], [1.0], cap=0.0), "cap must be > 0"),
+        (lambda: est.policy_columns([1.0], [math.inf], cap=1.0), "rewards contains NaN"),
+        (lambda: est.policy_columns([1.0], [1.0], cap=1.0, dr=[1.0, 2.0]), "one entry per"),
+        (lambda: est.Moments.of([1.0, 2.0]), "2-d"),
+        (lambda: est.Moments.of(np.ones((2, 2))) + est.Moments.of(np.ones((2, 3))), "different"),
+        (lambda: est.Moments.combine([]), "nothing to combine"),
+        (lambda: est.summarize(est.Moments.empty(5), reward_range=(0, 1)), "no records"),
+        (lambda: est.summarize(_moments([1.0], [1.0]), reward_range=(0, 1), level=1.5), "level"),
+        (lambda: est.summarize(_moments([1.0], [1.0]), reward_range=(0, 1), interval="x"),
+         "unknown interval"),
+        (lambda: est.summarize(_moments([1.0], [1.0]), reward_range=(0, 1),
+                               interval="bootstrap"), "resamples"),
+        (lambda: est.summarize(_moments([1.0], [1.0]), reward_range=(0, 1),
+                               interval="bernstein"), "ranges"),
+        (lambda: est.bootstrap_means(np.ones((3, 2)), 0), "at least one"),
+        (lambda: est.bootstrap_means(np.ones((0, 2)), 5), "empty"),
+        (lambda: est.support_deficit([[0.5, 0.5]], [[1.0]]), "same shape"),
+        (lambda: est.RidgeStats.of([[1.0]], [0], [1.0], [0], folds=1, actions=1).fit(0.0),
+         "ridge penalty"),
+        (lambda: est.RidgeStats.of([[1.0]], [3], [1.0], [0], folds=1, actions=2), "range"),
+        (lambda: est.RidgeStats.of([1.0], [0], [1.0], [0], folds=1, actions=1), "2-d"),
+        (lambda: est.RidgeStats.of([[1.0]], [0, 1], [1.0], [0], folds=1, actions=2), "one row"),
+    ],
+)  # fmt: skip
+def test_bad_inputs_raise_a_replay_error_naming_the_problem(call, message):
+    with pytest.raises(ReplayError, match=message):
+        call()
+
+
+def test_moments_of_a_long_matrix_match_numpy_mean_and_covariance():
+    """Blocked reduction (rows beyond one block) against numpy.cov with divisor n."""
+    z = np.random.default_rng(5).normal(size=(300_000, 3)) + np.array([1e3, 0.0, -5.0])
+    m = est.Moments.of(z)
+    assert 300_000 == m.n
+    np.testing.assert_allclose(m.mean, z.mean(axis=0), rtol=1e-12)
+    np.testing.assert_allclose(m.cov, np.cov(z, rowvar=False, bias=True), rtol=1e-9)
+    assert z.min(axis=0).tolist() == m.low.tolist()
+    assert z.max(axis=0).tolist() == m.high.tolist()

@@ -1,0 +1,227 @@
+"""The HTML report: one self-contained file with every section, figure and verdict."""
+
+from __future__ import annotations
+
+import base64
+import re
+import shutil
+import sqlite3
+import xml.etree.ElementTree as ET
+from html.parser import HTMLParser
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+import drawledger as dl
+from drawledger.cli import main
+from drawledger.exceptions import ReplayError
+from drawledger.replay import verify, write_report
+
+ALLOW = "drawledger.replay._grocery"
+LEGACY = Path(__file__).resolve().parent.parent / "examples" / "legacy-draws.jsonl"
+
+
+class _Page(HTMLParser):
+    """Collects tags and attributes; the standard library's parser checks the markup nests."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.tags: list[tuple[str, dict[str, str | None]]] = []
+        self.open: list[str] = []
+        self.rows = 0
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        self.tags.append((tag, dict(attrs)))
+        if tag not in ("meta", "img", "br", "link", "input"):
+            self.open.append(tag)
+
+    def handle_endtag(self, tag: str) -> None:
+        assert self.open and self.open[-1] == tag, f"</{tag}> closes <{self.open[-1:]}>"
+        self.open.pop()
+
+
+def parse(html: str) -> _Page:
+    page = _Page()
+    page.feed(html)
+    page.close()
+    assert [] == page.open
+    return page
+
+
+def images(page: _Page) -> list[dict[str, str | None]]:
+    return [attrs for tag, attrs in page.tags if tag == "img"]
+
+
+@pytest.fixture(scope="module")
+def demo_html(demo_run: Any) -> str:
+    return Path(demo_run.report).read_text(encoding="utf-8")
+
+
+def test_report_makes_no_external_request(demo_html: str) -> None:
+    """No script, stylesheet link, font or remote image: every src is a data: URI, every href
+    an in-page anchor, and a Content-Security-Policy forbids loading anything else."""
+    page = parse(demo_html)
+    assert not [t for t, _ in page.tags if t in ("script", "link", "iframe", "object")]
+    for tag, attrs in page.tags:
+        if "src" in attrs:
+            assert (attrs["src"] or "").startswith("data:image/svg+xml;base64,"), tag
+        if "href" in attrs:
+            assert (attrs["href"] or "").startswith("#"), attrs["href"]
+    assert "@import" not in demo_html
+    assert "url(" not in demo_html
+    csp = [
+        a for t, a in page.tags if t == "meta" and a.get("http-equiv") == "Content-Security-Policy"
+    ]
+    assert 1 == len(csp)
+    assert "default-src 'none'" in (csp[0]["content"] or "")
+
+
+def test_every_figure_is_an_svg_with_a_size(demo_run: Any, demo_html: str) -> None:
+    """One figure for verification, one per audited draw, two for the estimate (intervals and
+    weights) and one for the sweep; each decodes to an SVG with positive width and height."""
+    figs = images(parse(demo_html))
+    assert 1 + len(demo_run.audit.figures) + 2 + 1 == len(figs)
+    for attrs in figs:
+        assert attrs.get("alt")
+        data = base64.b64decode((attrs["src"] or "").split(",", 1)[1])
+        root = ET.fromstring(data)
+        assert root.tag.endswith("svg")
+        for dim in ("width", "height"):
+            assert float(re.sub(r"[a-z]+$", "", root.attrib[dim])) > 0
+
+
+def test_report_shows_every_test_estimate_and_true_value(demo_run: Any, demo_html: str) -> None:
+    """The audit table has one row per test; every estimator, sweep value and known true value
+    of the demo is on the page; the print stylesheet is there."""
+    for section in ('id="verify"', 'id="audit"', 'id="whatif"'):
+        assert section in demo_html
+    audit_table = demo_html.split('<table class="audit">', 1)[1].split("</table>", 1)[0]
+    assert len(demo_run.audit.tests) == audit_table.count("<tr>") - 1
+    for name in ("ips", "snips", "clipped", "dr"):
+        assert f"<b>{name}</b>" in demo_html
+    assert f"{demo_run.truth['temperature']:.4f}" in demo_html
+    for minutes, true in zip((30, 45, 60, 75, 90), demo_run.truth["delay"], strict=True):
+        assert f"<td>{minutes}</td>" in demo_html
+        assert f"{true:.4f}" in demo_html
+    assert "bias bound" in demo_html
+    assert "@media print" in demo_html and "@page" in demo_html
+    assert "ethics" in demo_html and "personal data" in demo_html
+
+
+def test_tampered_ledger_report_names_every_reason(
+    demo_run: Any, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """An edited probability makes `drawledger report` exit 1; the page says FAILED and lists
+    every reason verify gives, with the decision id as an example."""
+    ledger = tmp_path / "tampered.db"
+    shutil.copy(demo_run.ledger, ledger)
+    con = sqlite3.connect(ledger)
+    with con:
+        con.execute("UPDATE draws SET prob = prob * 1.01 WHERE decision_id = 'card-000003'")
+    con.close()
+    html = tmp_path / "tampered.html"
+    assert 1 == main(["report", str(ledger), "--html", str(html), "--allow", ALLOW])
+    assert "wrote" in capsys.readouterr().out
+    text = html.read_text(encoding="utf-8")
+    assert "FAILED" in text and "problems found" in text
+    reasons = verify(ledger, allow=[ALLOW]).by_reason
+    assert reasons
+    for reason in reasons:
+        assert f"<code>{reason}</code>" in text
+    assert "card-000003" in text
+
+
+def test_report_command_adds_the_estimate_of_a_target(
+    demo_run: Any, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """--reward with --set and --stream adds that what-if estimate to the page."""
+    html = tmp_path / "r.html"
+    argv = ["report", str(demo_run.ledger), "--html", str(html), "--allow", ALLOW, "--reward",
+            "checkout", "--set", "temperature=0.5", "--stream", "recipe-card"]  # fmt: skip
+    assert 0 == main(argv)
+    text = html.read_text(encoding="utf-8")
+    assert "recipe-card with temperature = 0.5" in text
+    assert 2 + 1 + len(demo_run.audit.figures) == len(images(parse(text)))
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["--html", "{tmp}/r.txt"], "ending in .html"),
+        (["--html", "{tmp}/missing/r.html"], "no directory"),
+        (["--html", "{tmp}/r.html", "--set", "temperature=0.3"], "needs the reward"),
+    ],
+)
+def test_report_command_bad_usage(
+    demo_run: Any, tmp_path: Path, capsys: pytest.CaptureFixture[str], argv: list[str],
+    message: str,
+) -> None:  # fmt: skip
+    """Bad report arguments: one line on stderr, exit 2, nothing written."""
+    args = [a.replace("{tmp}", str(tmp_path)) for a in argv]
+    assert 2 == main(["report", str(demo_run.ledger), *args])
+    err = capsys.readouterr().err
+    assert 1 == len(err.strip().splitlines())
+    assert message in err
+    assert [] == list(tmp_path.iterdir())
+
+
+def test_report_of_a_missing_ledger_is_exit_2(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    assert 2 == main(["report", str(tmp_path / "nope.db"), "--html", str(tmp_path / "r.html")])
+    assert "drawledger report: error:" in capsys.readouterr().err
+    assert not (tmp_path / "r.html").exists()
+
+
+def test_report_of_declared_draws(tmp_path: Path) -> None:
+    """A ledger of declared draws (the legacy example) passes: its decisions are unreplayable
+    by nature ("declared" does not fail), and each stream's draws are audited and drawn."""
+    ledger = tmp_path / "legacy.db"
+    assert dl.ingest(LEGACY, ledger).ok
+    result = write_report(ledger, tmp_path / "legacy.html")
+    assert result.ok
+    text = result.path.read_text(encoding="utf-8")
+    assert "<code>declared</code>" in text
+    for stream in ("slot-discount", "tip-prompt", "promo-countdown"):
+        assert f"<b>{stream}</b>" in text
+    assert "No what-if question was asked" in text
+    assert 1 + len(result.audit.figures) == len(images(parse(text)))
+
+
+def test_report_replaces_an_existing_file_whole(demo_run: Any, tmp_path: Path) -> None:
+    """An existing report is replaced by the new one, and no temporary file is left behind."""
+    html = tmp_path / "report.html"
+    html.write_text("old")
+    result = write_report(
+        demo_run.ledger, html, verification=demo_run.verification, audit_report=demo_run.audit
+    )
+    assert html.read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
+    assert [html] == list(tmp_path.iterdir())
+    d = result.to_dict()
+    assert {"ok", "html", "verify", "audit", "whatifs"} == set(d)
+    assert str(html) == d["html"]
+    assert result.render().startswith(f"wrote {html}:")
+
+
+def test_report_refuses_a_target_without_a_reward(demo_run: Any, tmp_path: Path) -> None:
+    with pytest.raises(ReplayError, match="needs the reward"):
+        write_report(demo_run.ledger, tmp_path / "r.html", overrides={"temperature": 0.3})
+
+
+def test_report_escapes_what_the_ledger_says(tmp_path: Path) -> None:
+    """Stream names and options from a ledger are text, never markup or mathematical text:
+    '<b>' and '&' are escaped in the page, and '$' labels still draw."""
+    ledger = tmp_path / "odd.db"
+    with dl.Ledger(ledger) as led:
+        for i in range(60):
+            value = ["$5 off", "<i>10%</i> & more"][i % 2]
+            led.record_draw("<b>promo</b> $x$", "categorical",
+                            {"options": ["$5 off", "<i>10%</i> & more"], "probs": [0.5, 0.5]},
+                            value, 0.5, decision_id=f"odd-{i}")  # fmt: skip
+    text = write_report(ledger, tmp_path / "odd.html").path.read_text(encoding="utf-8")
+    page = parse(text)
+    assert "<b>promo</b>" not in text
+    assert "&lt;b&gt;promo&lt;/b&gt; $x$" in text
+    assert not [t for t, _ in page.tags if t in ("i", "script")]
+    assert 2 == len(images(page))

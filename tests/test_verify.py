@@ -1,0 +1,487 @@
+"""``verify``: re-execution, reasons, exact propensities, safe imports, chunks, jobs, export."""
+
+from __future__ import annotations
+
+import importlib
+import math
+import os
+import sqlite3
+import sys
+import tempfile
+import uuid
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from types import ModuleType
+
+import pandas as pd
+import pytest
+import shop_decisions as sd
+from hypothesis import HealthCheck, given, settings
+from strategies import decision_specs
+
+import drawledger as dl
+from drawledger._records import to_json
+from drawledger.draw import bucket_assign
+from drawledger.exceptions import LedgerError, ReplayError
+from drawledger.ledger import REGISTRY
+from drawledger.replay import verify
+from drawledger.replay._verify import Settings, verify_chunk
+
+SERVICE = """
+import drawledger as dl
+
+ledger = dl.Ledger({ledger!r})
+_served = 0
+
+
+@ledger.decision("recipe-card")
+def pick(scores: list[float], draw: dl.Draw, *, temperature: float = 0.7) -> str:
+    cards = ["one-pot-pasta", "green-curry", "taco-night"]
+{body}
+"""
+PLAIN = '    return draw.softmax(cards, scores, temperature=temperature, name="card")'
+
+
+class Service:
+    """A decision module written to ``code/``, recorded into ``ledger``, then edited."""
+
+    def __init__(self, root: Path, body: str = PLAIN) -> None:
+        self.name = f"shop_{uuid.uuid4().hex[:10]}"
+        self.code = root / "code"
+        self.code.mkdir(exist_ok=True)
+        self.ledger = root / "decisions.db"
+        self.write(body)
+        sys.path.insert(0, str(self.code))
+        try:
+            self.module: ModuleType = importlib.import_module(self.name)
+        finally:
+            sys.path.remove(str(self.code))
+
+    def write(self, body: str) -> None:
+        text = SERVICE.format(ledger=str(self.ledger), body=body)
+        (self.code / f"{self.name}.py").write_text(text)
+
+    def record(self, n: int) -> None:
+        for i in range(n):
+            self.module.pick([1.0 + i % 3, 2.0, 0.5], unit=f"shopper-{i}", decision_id=f"d{i}")
+        self.module.ledger.outcome("d0", "checkout", 1.0)
+        self.module.ledger.close()
+
+    def forget(self) -> None:
+        """Drop the module from this process, as a fresh verify process would not have it."""
+        sys.modules.pop(self.name, None)
+        for key in [k for k in REGISTRY if k.startswith(self.name + ":")]:
+            del REGISTRY[key]
+
+    def edit(self, body: str) -> None:
+        self.write(body)
+        self.forget()
+
+    def verify(self, **kwargs: object) -> dl.replay.VerifyReport:  # type: ignore[name-defined]
+        return verify(self.ledger, path=[self.code], **kwargs)  # type: ignore[arg-type]
+
+
+@pytest.fixture
+def service(tmp_path: Path) -> Iterator[Callable[..., Service]]:
+    made: list[Service] = []
+
+    def make(body: str = PLAIN, n: int = 12) -> Service:
+        s = Service(tmp_path, body)
+        s.record(n)
+        s.forget()
+        made.append(s)
+        return s
+
+    yield make
+    for s in made:
+        s.forget()
+
+
+def _sql(path: Path, *statements: str) -> None:
+    with sqlite3.connect(path) as conn:
+        for statement in statements:
+            conn.execute(statement)
+
+
+def _reasons(report: object, did: str) -> set[str]:
+    rows = report.rows  # type: ignore[attr-defined]
+    text = rows.loc[rows["decision_id"] == did, "reason"].iloc[0]
+    return set() if not isinstance(text, str) else set(text.split(";"))
+
+
+def _shop_ledger(path: Path, n: int = 12, *, format: str | None = None) -> dl.Ledger:
+    """Every grocery decision of tests/support/shop_decisions.py, n times, plus a bucket and a
+    declared draw."""
+    led = dl.Ledger(path, format=format)
+    sd.use(led)
+    basket = sd.Basket(items=3, value=42.5)
+    for i in range(n):
+        ctx = sd.context(i, tier="plus" if i % 2 else "basic")
+        sd.feature_card(ctx, unit=f"shopper-{i}", decision_id=f"card-{i}")
+        sd.explore_card(ctx, decision_id=f"explore-{i}", epsilon=0.25)
+        sd.card_row(ctx, decision_id=f"row-{i}")
+        sd.card_with_badge(ctx, decision_id=f"badge-{i}")
+        sd.reminder_delay(basket, decision_id=f"delay-{i}")
+        led.outcome(f"card-{i}", "checkout", 1.0)
+    led.outcome("card-0", "checkout", 0.5)
+    led.outcome("card-0", "basket_value", 23.0)
+    led.bucket("shopper-1", {"control": 0.5, "new-menu": 0.5}, "menu-test", decision_id="bk-1")
+    led.record_draw("legacy-banner", "categorical", {"options": ["a", "b"], "probs": [0.5, 0.5]},
+                    "a", 0.5, decision_id="legacy-1")  # fmt: skip
+    led.close()
+    return led
+
+
+# -- a correct service ---------------------------------------------------------------------------
+def test_a_correct_service_verifies_completely(ledger_path: Path) -> None:
+    _shop_ledger(ledger_path)
+    report = verify(ledger_path, mc_samples=200)
+    assert report.ok
+    assert (62, 61, 0, 1) == (
+        report.decisions, report.verified, report.mismatched, report.unreplayable
+    )  # fmt: skip
+    assert {"declared": 1} == report.by_reason
+    assert report.integrity.ok
+    methods = report.rows.groupby("stream")["propensity_method"].first().to_dict()
+    named = {k: v for k, v in methods.items() if isinstance(v, str)}
+    assert {"recipe-card": "exact", "explore-card": "enumerated", "card-row": "exact",
+            "card-badge": "enumerated", "reminder-delay": "density",
+            "menu-test": "exact"} == named  # fmt: skip
+    one_draw = report.rows[report.rows["stream"] == "recipe-card"]
+    assert list(one_draw["logged_propensity"]) == list(one_draw["propensity"])
+
+
+def test_epsilon_greedy_exported_propensity_is_analytic(ledger_path: Path) -> None:
+    """(1 - eps) + eps / K for the greedy card, eps / K otherwise (worked by hand, eps = 0.25,
+    K = 6: 0.7916..., 0.0416...), whatever path (explore or exploit) was logged."""
+    _shop_ledger(ledger_path, n=30)
+    rows = verify(ledger_path).rows
+    rows = rows[rows["stream"] == "explore-card"]
+    eps, k = 0.25, 6
+    for i in range(30):
+        ctx = sd.context(i)
+        greedy = to_json(ctx.cards[ctx.scores.index(max(ctx.scores))], "card")
+        row = rows[rows["decision_id"] == f"explore-{i}"].iloc[0]
+        expected = (1 - eps) + eps / k if row["action"] == greedy else eps / k
+        assert pytest.approx(expected, rel=1e-12) == row["propensity"]
+        assert "enumerated" == row["propensity_method"]
+    # the logged propensity is the path's (exploit 0.75, explore 0.25 * 1/6), not the action's
+    logged = {round(x / 0.25 * 6) for x in rows["logged_propensity"]}
+    assert {1, 18} == logged
+
+
+def test_plackett_luce_slate_exported_propensity(ledger_path: Path) -> None:
+    """Plackett 1975 / Luce 1959: the product of w_i / (remaining total) along the slate."""
+    _shop_ledger(ledger_path, n=6)
+    rows = verify(ledger_path).rows
+    for _, row in rows[rows["stream"] == "card-row"].iterrows():
+        i = int(row["decision_id"].split("-")[1])
+        ctx = sd.context(i)
+        w = dict(zip(ctx.cards, ctx.scores, strict=True))
+        total, expected = sum(ctx.scores), 1.0
+        for card in pd.io.json.ujson_loads(row["action"]):
+            expected *= w[card] / total
+            total -= w[card]
+        assert pytest.approx(expected, rel=1e-12) == row["propensity"]
+
+
+# -- mutations are caught -------------------------------------------------------------------------
+def test_code_edited_after_logging(service: Callable[..., Service]) -> None:
+    s = service()
+    s.edit('    return draw.softmax(cards, [2 * x for x in scores], temperature=temperature,'
+           ' name="card")')  # fmt: skip
+    report = s.verify()
+    assert not report.ok
+    assert 12 == report.mismatched
+    assert {"code-changed", "args"} <= set(report.by_reason)
+    assert 12 == report.by_reason["code-changed"]
+
+
+def test_cosmetic_edit_is_only_code_changed(service: Callable[..., Service]) -> None:
+    s = service()
+    s.edit("    # a comment changes the hash, not the draws\n" + PLAIN)
+    report = s.verify()
+    assert {"code-changed": 12} == report.by_reason
+    assert report.rows["propensity"].equals(report.rows["logged_propensity"])
+
+
+def test_hidden_global_counter_is_nondeterministic(service: Callable[..., Service]) -> None:
+    body = (
+        "    global _served\n    _served += 1\n"
+        '    return draw.softmax(cards, [x + _served % 3 for x in scores], name="card")'
+    )
+    s = service(body)
+    report = s.verify()
+    assert 12 == report.by_reason["nondeterministic"]
+    assert 12 == report.mismatched
+
+
+@pytest.mark.parametrize(
+    ("statement", "reason"),
+    [
+        ("UPDATE draws SET value = '\"taco-night-x\"' WHERE decision_id = 'd3'", "value"),
+        ("UPDATE draws SET prob = prob * 1.000001 WHERE decision_id = 'd3'", "probability"),
+        ("UPDATE decisions SET propensity = 0.5 WHERE decision_id = 'd3'", "probability"),
+        ("UPDATE draws SET u = '[0.5]' WHERE decision_id = 'd3'", "value"),
+        ("DELETE FROM draws WHERE decision_id = 'd3'", "draw-count"),
+        ("UPDATE draws SET args = '{\"options\": []}' WHERE decision_id = 'd3'", "args"),
+        ("UPDATE decisions SET action = '\"green-curry-x\"' WHERE decision_id = 'd3'", "action"),
+        ("UPDATE decisions SET seed = '00112233445566778899aabbccddeeff' "
+         "WHERE decision_id = 'd3'", "value"),
+    ],
+)  # fmt: skip
+def test_tampered_records_are_caught(
+    service: Callable[..., Service], statement: str, reason: str
+) -> None:
+    s = service()
+    _sql(s.ledger, statement)
+    report = s.verify()
+    assert {reason, "integrity"} <= _reasons(report, "d3")
+    assert 11 == report.verified
+    assert not report.integrity.ok
+    assert not report.ok
+
+
+def test_foreign_function_name_is_refused_and_not_run(
+    service: Callable[..., Service], monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
+    calls: list[object] = []
+    monkeypatch.setattr(os, "system", lambda *a: calls.append(a))
+    canary = f"canary_{uuid.uuid4().hex[:8]}"
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    (outside / f"{canary}.py").write_text(
+        f"from pathlib import Path\nPath({str(tmp_path / 'ran')!r}).write_text('ran')\n"
+        "def pick(*a, **k):\n    Path('ran-too').write_text('ran')\n"
+    )
+    s = service()
+    _sql(s.ledger, "UPDATE decisions SET fn = 'os:system' WHERE decision_id = 'd1'",
+         f"UPDATE decisions SET fn = '{canary}:pick' WHERE decision_id = 'd2'")  # fmt: skip
+    monkeypatch.syspath_prepend(str(outside))  # importable, but not under --path
+    report = s.verify(allow=["os"])
+    assert {"not-a-decision", "integrity"} == _reasons(report, "d1")
+    assert {"missing-function", "integrity"} == _reasons(report, "d2")
+    assert [] == calls
+    assert canary not in sys.modules
+    assert not (tmp_path / "ran").exists()
+    assert 2 == report.unreplayable
+
+
+def test_renamed_and_raising_functions(service: Callable[..., Service]) -> None:
+    s = service()
+    s.edit('    raise RuntimeError("recommender offline")')
+    report = s.verify()
+    assert 12 == report.by_reason["replay-error"]
+    assert "RuntimeError: recommender offline" in report.examples["replay-error"][0][1]
+    s.edit(PLAIN)
+    source = s.code / f"{s.name}.py"
+    source.write_text(source.read_text().replace("def pick(", "def choose("))
+    assert {"missing-function": 12} == s.verify().by_reason
+
+
+@pytest.mark.parametrize(
+    ("statement", "detail"),
+    [
+        ("UPDATE decisions SET inputs = '{\"scores\": [1,' WHERE decision_id = 'd4'", "JSON"),
+        ("UPDATE decisions SET inputs = '{\"scores\": \"hot\"}' WHERE decision_id = 'd4'",
+         "scores"),
+        ("UPDATE decisions SET seed = 'zz' WHERE decision_id = 'd4'", "seed"),
+        ("UPDATE decisions SET params = '{\"temperature\": \"warm\"}' WHERE decision_id = 'd4'",
+         "temperature"),
+        ("UPDATE draws SET value = '\"unterminated' WHERE decision_id = 'd4'", "JSON"),
+        ("UPDATE draws SET idx = 5 WHERE decision_id = 'd4'", "indexes"),
+        ("UPDATE decisions SET fn = 'not a name' WHERE decision_id = 'd4'", "module:qualname"),
+    ],
+)  # fmt: skip
+def test_bad_records_never_stop_the_run(
+    service: Callable[..., Service], statement: str, detail: str
+) -> None:
+    s = service()
+    _sql(s.ledger, statement)
+    report = s.verify()
+    assert {"bad-record", "integrity"} == _reasons(report, "d4")
+    assert detail in report.examples["bad-record"][0][1]
+    assert 11 == report.verified
+
+
+def test_bucket_assignments_are_recomputed(ledger_path: Path) -> None:
+    _shop_ledger(ledger_path, n=1)
+    _sql(ledger_path, "UPDATE draws SET value = '\"new-menu-x\"' WHERE decision_id = 'bk-1'")
+    report = verify(ledger_path)
+    assert {"value", "integrity"} == _reasons(report, "bk-1")
+
+
+def test_bytes_salts_and_non_string_arms_verify(ledger_path: Path) -> None:
+    led = dl.Ledger(ledger_path)
+    for i in range(20):
+        led.bucket(f"shopper-{i}", {1: 0.2, 2: 0.8}, b"\x00menu", stream="menu")
+    led.close()
+    report = verify(ledger_path)
+    assert (20, 20) == (report.decisions, report.verified)
+
+
+# -- ledgers, chunks, jobs ------------------------------------------------------------------------
+def test_parquet_ledger(tmp_path: Path) -> None:
+    _shop_ledger(tmp_path / "ledger", n=4, format="parquet")
+    report = verify(tmp_path / "ledger")
+    assert (22, 21) == (report.decisions, report.verified)
+
+
+@pytest.mark.postgres
+def test_postgres_ledger(postgres_url: str) -> None:
+    _shop_ledger(postgres_url, n=3)  # type: ignore[arg-type]
+    report = verify(postgres_url)
+    assert (17, 16, {"declared": 1}) == (report.decisions, report.verified, report.by_reason)
+
+
+def test_jobs_and_chunks_give_the_same_report(ledger_path: Path) -> None:
+    _shop_ledger(ledger_path, n=10)
+    _sql(ledger_path, "UPDATE draws SET prob = 0.9 WHERE decision_id = 'card-3'")
+    one = verify(ledger_path, chunk_size=7)
+    two = verify(ledger_path, jobs=2, chunk_size=7)
+    assert one.to_dict() == two.to_dict()
+    pd.testing.assert_frame_equal(one.rows, two.rows)
+
+
+def test_chunk_function_is_pure_and_checks_flags() -> None:
+    """verify_chunk needs only rows: here a hashed bucket assignment, as the SDK records it."""
+    shares = {"control": 0.5, "new-menu": 0.5}
+    arm, u, prob, _, _ = bucket_assign("shopper-1", shares, "menu-test")
+    row = ("b1", "menu-test", "shopper-1", 1.0, None, None, "{}", "{}", to_json(arm, "arm"),
+           prob, "exact", None, "w", 0, None, "h")  # fmt: skip
+    args = to_json({"unit": "shopper-1", "shares": shares, "salt": "menu-test"}, "args")
+    draw = ("b1", 0, None, "bucket", args, to_json([u], "u"), to_json(arm, "arm"), prob, 0)
+    assert {} == dict(verify_chunk([row], [draw], set(), Settings()).by_reason)
+    assert {"integrity": 1} == dict(verify_chunk([row], [draw], {"b1"}, Settings()).by_reason)
+    tampered = (*draw[:5], "[0.1]", *draw[6:])
+    assert {"value": 1} == dict(verify_chunk([row], [tampered], set(), Settings()).by_reason)
+    assert {"declared": 1} == dict(verify_chunk([row], [], set(), Settings()).by_reason)
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(decision_specs)
+def test_arbitrary_rows_give_reasons_never_exceptions(spec: tuple) -> None:
+    """Any decision row with any draws is classified; nothing escapes as an exception."""
+    _, stream, unit, ts, fn, inputs, action, prop, kind, seed, draws = spec
+    row = ("x", stream, unit, ts, fn, "h", inputs, "{}", action, prop, kind, seed, "w", 0,
+           None, "h")  # fmt: skip
+    draw_rows = [("x", i, *d[:5], d[5], int(d[6])) for i, d in enumerate(draws)]
+    result = verify_chunk([row], draw_rows, set(), Settings())
+    assert 1 == sum(c[0] for c in result.streams.values())
+
+
+def test_bad_ledgers_raise_ledger_errors(tmp_path: Path) -> None:
+    with pytest.raises(LedgerError, match="no ledger"):
+        verify(tmp_path / "missing.db")
+    (tmp_path / "notes.db").write_text("not a database")
+    with pytest.raises(LedgerError):
+        verify(tmp_path / "notes.db")
+    with pytest.raises(LedgerError):
+        verify(tmp_path)  # a directory without ledger tables
+
+
+def test_bad_arguments(ledger_path: Path) -> None:
+    _shop_ledger(ledger_path, n=1)
+    with pytest.raises(ReplayError, match="dask"):
+        verify(ledger_path, engine="dask")  # the Dask engine reads Parquet ledgers only
+    with pytest.raises(ValueError, match="engine"):
+        verify(ledger_path, engine="spark")
+    with pytest.raises(ValueError, match="jobs"):
+        verify(ledger_path, jobs=0)
+    with pytest.raises(ReplayError, match=r"\.csv or \.parquet"):
+        verify(ledger_path, export=ledger_path.with_suffix(".xlsx"))
+
+
+# -- export -------------------------------------------------------------------------------
+@pytest.mark.parametrize("suffix", [".csv", ".parquet"])
+def test_export_columns_outcomes_and_inputs(ledger_path: Path, suffix: str) -> None:
+    _shop_ledger(ledger_path, n=4)
+    target = ledger_path.with_name("props" + suffix)
+    report = verify(ledger_path, export=target)
+    data = pd.read_csv(target) if suffix == ".csv" else pd.read_parquet(target)
+    assert ["decision_id", "stream", "unit", "ts", "action", "propensity", "propensity_method",
+            "propensity_stderr", "logged_propensity", "logged_kind", "verified", "reason",
+            "detail", "basket_value", "checkout", "input.basket.items", "input.basket.value",
+            "input.ctx.user_tier"] == list(data.columns)  # fmt: skip
+    assert len(report.rows) == len(data) == report.decisions
+    card0 = data[data["decision_id"] == "card-0"].iloc[0]
+    assert (1.5, 23.0, "basic") == (card0["checkout"], card0["basket_value"],
+                                    card0["input.ctx.user_tier"])  # fmt: skip
+    assert math.isnan(data[data["decision_id"] == "card-1"].iloc[0]["basket_value"])
+    assert not (ledger_path.parent / f".props{suffix}.partial").exists()
+
+
+def test_rows_can_be_left_out(ledger_path: Path) -> None:
+    _shop_ledger(ledger_path, n=2)
+    report = verify(ledger_path, keep_rows=False)
+    assert report.rows.empty and 12 == report.decisions
+
+
+def test_summary_names_streams_reasons_and_verdict(service: Callable[..., Service]) -> None:
+    s = service()
+    _sql(s.ledger, "DELETE FROM draws WHERE decision_id = 'd3'")
+    text = s.verify().render()
+    assert "recipe-card" in text and "draw-count" in text and "d3" in text
+    assert "verify FAILED" in text
+
+
+_mixed = dl.Ledger(Path(tempfile.gettempdir()) / "drawledger-verify-never-written.db")
+
+
+@_mixed.decision("slot-by-number")
+def slot_by_number(slot: int, draw: dl.Draw) -> bool:
+    return draw.bernoulli(0.5)
+
+
+@_mixed.decision("slot-by-name")
+def slot_by_name(slot: str, draw: dl.Draw) -> bool:
+    return draw.bernoulli(0.5)
+
+
+def test_parquet_export_of_inputs_with_mixed_types(ledger_path: Path) -> None:
+    """An input field holding numbers in one stream and text in another is exported as text."""
+    led = dl.Ledger(ledger_path)
+    for decision in (slot_by_number, slot_by_name):
+        decision.ledger = led
+    slot_by_number(7)
+    slot_by_name("evening")
+    led.close()
+    target = ledger_path.with_name("mixed.parquet")
+    verify(ledger_path, export=target)
+    assert {"7", "evening"} == set(pd.read_parquet(target)["input.slot"])
+
+
+def test_nested_choices_export_the_marginal_not_the_first_draw(ledger_path: Path) -> None:
+    """A run that made one draw and returned it still gets the marginal over every path:
+    P(first card) = 0.5 + 0.5 * 0.4 = 0.7, P(third card) = 0.5 * 0.6 = 0.3 (worked by hand)."""
+    led = dl.Ledger(ledger_path)
+    sd.use(led)
+    for i in range(40):
+        sd.card_swap(sd.context(i), decision_id=f"swap-{i}")
+    led.close()
+    rows = verify(ledger_path).rows
+    first = rows["action"] == to_json(sd.CARDS[0], "card")
+    assert rows["verified"].all()
+    assert 0 < first.sum() < 40
+    assert list(rows.loc[first, "logged_propensity"].unique()) != [0.7]  # paths: 0.5 or 0.2
+    for action, expected in ((sd.CARDS[0], 0.7), (sd.CARDS[2], 0.3)):
+        chosen = rows[rows["action"] == to_json(action, "card")]
+        assert pytest.approx([expected] * len(chosen), rel=1e-12) == list(chosen["propensity"])
+    assert {"enumerated"} == set(rows["propensity_method"])
+
+
+@pytest.mark.parametrize("chunk_size", [1, 2, 5, 10_000])
+def test_duplicated_records_are_all_counted_whatever_the_chunks(
+    service: Callable[..., Service], chunk_size: int
+) -> None:
+    """A copied decision row (same id, later seq) is read once per copy, never skipped."""
+    s = service()
+    columns = "decision_id, stream, unit, ts, fn, code_hash, inputs, params, action, propensity, "
+    columns += "propensity_kind, seed, writer"
+    _sql(s.ledger, f"INSERT INTO decisions ({columns}, seq, prev_hash, hash) SELECT {columns}, "
+         "1000, prev_hash, hash FROM decisions WHERE decision_id = 'd5'")  # fmt: skip
+    report = s.verify(chunk_size=chunk_size)
+    assert 13 == report.decisions
+    assert 11 == report.verified
+    assert 2 == (report.rows["decision_id"] == "d5").sum()
+    assert {"integrity"} <= _reasons(report, "d5")

@@ -1,0 +1,133 @@
+"""``drawledger verify``: JSON keys, exit codes, export columns, one-line errors."""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import shlex
+import sqlite3
+import subprocess
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+import shop_decisions as sd
+
+import drawledger as dl
+from drawledger.cli import main
+
+SUPPORT = str(Path(sd.__file__).parent)
+DOC = Path(__file__).resolve().parent.parent / "docs" / "replay.md"
+
+
+@pytest.fixture
+def shop(ledger_path: Path) -> Path:
+    led = dl.Ledger(ledger_path)
+    sd.use(led)
+    for i in range(8):
+        ctx = sd.context(i)
+        sd.feature_card(ctx, unit=f"shopper-{i}", decision_id=f"card-{i}")
+        sd.explore_card(ctx, decision_id=f"explore-{i}")
+        led.outcome(f"card-{i}", "checkout", float(i % 2))
+    led.close()
+    return ledger_path
+
+
+def test_json_keys_and_exit_zero(shop: Path, tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    out = tmp_path / "verify.json"
+    assert 0 == main(["verify", str(shop), "--allow", "shop_decisions", "--json", str(out)])
+    data = json.loads(out.read_text())
+    assert {"decisions", "verified", "mismatched", "unreplayable", "by_reason",
+            "integrity"} <= set(data)  # fmt: skip
+    assert {"ok", "gaps", "broken_links", "duplicates"} <= set(data["integrity"])
+    assert (16, 16, 0, 0, {}) == (data["decisions"], data["verified"], data["mismatched"],
+                                  data["unreplayable"], data["by_reason"])  # fmt: skip
+    assert "verify passed" in capsys.readouterr().out
+
+
+def test_found_problem_exits_one(shop: Path, tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    with sqlite3.connect(shop) as conn:
+        conn.execute("UPDATE draws SET prob = 0.99 WHERE decision_id = 'card-2'")
+    out = tmp_path / "verify.json"
+    assert 1 == main(["verify", str(shop), "--path", SUPPORT, "--json", str(out)])
+    data = json.loads(out.read_text())
+    assert {"probability": 1, "integrity": 1} == data["by_reason"]
+    assert "card-2" == data["examples"]["probability"][0]["decision_id"]
+    assert data["integrity"]["ok"] is False
+    assert "verify FAILED" in capsys.readouterr().out
+
+
+def test_fresh_process_imports_nothing_without_path_or_allow(shop: Path, tmp_path: Path) -> None:
+    """In a new process (the module importable through PYTHONPATH, but not named by --path or
+    --allow) nothing is imported: every decision is missing-function, exit 1."""
+    env = {**os.environ, "PYTHONPATH": SUPPORT}
+    out = tmp_path / "v.json"
+    command = [sys.executable, "-m", "drawledger.cli", "verify", str(shop), "--json", str(out)]
+    done = subprocess.run(command, env=env, capture_output=True, text=True, timeout=120)
+    assert 1 == done.returncode, done.stderr
+    assert {"missing-function": 16} == json.loads(out.read_text())["by_reason"]
+    assert "missing-function" in done.stdout
+
+
+@pytest.mark.parametrize("suffix", [".csv", ".parquet"])
+def test_export_columns(shop: Path, tmp_path: Path, suffix: str) -> None:
+    target = tmp_path / f"props{suffix}"
+    assert 0 == main(["verify", str(shop), "--path", SUPPORT, "--export", str(target),
+                      "--jobs", "2", "--budget", "64"])  # fmt: skip
+    data = pd.read_csv(target) if suffix == ".csv" else pd.read_parquet(target)
+    for column in ("decision_id", "stream", "unit", "ts", "action", "propensity",
+                   "logged_propensity", "verified", "reason", "propensity_method", "checkout",
+                   "input.ctx.user_tier"):  # fmt: skip
+        assert column in data.columns
+    assert 16 == len(data)
+    assert data["verified"].all()
+
+
+@pytest.mark.parametrize(
+    "args",
+    [
+        ["verify", "{tmp}/missing.db"],
+        ["verify", "{tmp}/notes.txt"],
+        ["verify", "{tmp}"],
+        ["verify", "sqlite:///{tmp}/missing-dir/x.db"],
+        ["verify", "nosuchdialect://host/db"],
+        ["verify", "{ledger}", "--export", "{tmp}/props.xlsx"],
+        ["verify", "{ledger}", "--export", "{tmp}/no-such-dir/props.csv"],
+        ["verify", "{ledger}", "--jobs", "0"],
+        ["verify", "{ledger}", "--budget", "-3"],
+        ["verify", "{ledger}", "--engine", "dask"],
+    ],
+)
+def test_bad_usage_gives_one_line_and_exit_two(
+    args: list[str], shop: Path, tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
+    (tmp_path / "notes.txt").write_text("not a ledger")
+    argv = [a.format(tmp=tmp_path, ledger=shop) for a in args]
+    assert 2 == main(argv)
+    err = capsys.readouterr().err
+    assert 1 == len(err.strip().splitlines()), err
+    assert err.startswith("drawledger verify: error: ")
+
+
+def test_replay_doc_examples_run(tmp_path: Path) -> None:
+    """docs/replay.md runs as written: its module, its Python blocks in order, its command."""
+    text = DOC.read_text(encoding="utf-8")
+    module, *script = re.findall(r"^```python\n(.*?)^```$", text, flags=re.S | re.M)
+    assert module.startswith("# grocery_decisions.py\n")
+    (tmp_path / "grocery_decisions.py").write_text(module, encoding="utf-8")
+    (tmp_path / "example.py").write_text("\n\n".join(script), encoding="utf-8")
+    done = subprocess.run([sys.executable, "example.py"], cwd=tmp_path, capture_output=True,
+                          text=True, timeout=300)  # fmt: skip
+    assert 0 == done.returncode, done.stderr
+    assert "True 300 of 300 verified" in done.stdout
+    assert "{'\"green-curry\"': 0.85, " in done.stdout
+    assert "Propensity(value=0.625, method='enumerated', stderr=0.0)" in done.stdout
+    (command,) = re.findall(r"^```bash\n(drawledger verify .*?)\n```$", text, flags=re.M)
+    args = shlex.split(command)[1:]
+    done = subprocess.run([sys.executable, "-m", "drawledger.cli", *args], cwd=tmp_path,
+                          capture_output=True, text=True, timeout=300)  # fmt: skip
+    assert 0 == done.returncode, done.stdout + done.stderr
+    assert 300 == json.loads((tmp_path / "verify.json").read_text())["verified"]
+    assert 300 == len(pd.read_csv(tmp_path / "propensities.csv"))
