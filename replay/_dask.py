@@ -367,53 +367,12 @@ def _reverify_piece(
 def _integrity_ids(root: str, key: bytes) -> tuple[IntegrityReport, set[str]]:
     """The ledger-wide part of the integrity check: duplicate ids, orphans, interrupted batches.
 
-    The same steps as ``_integrity._check_parquet`` before its chain walk; returns the report
-    so far and the duplicate decision ids the chain walks need.
+    Returns the report so far and the duplicate decision ids the chain walks need.
     """
-    import numpy as np
-
     from drawledger.replay import _integrity as ig
 
-    base = Path(root)
     report = ig.IntegrityReport(keyed=bool(key))
-    dec_parts = _parquet.parts(base, "decisions")
-    out_parts = _parquet.parts(base, "outcomes")
-    fps = np.sort(np.concatenate([ig._fingerprints(ig._id_column(p.path, "decisions"))
-                                  for p in dec_parts] or [np.zeros(0, np.uint64)]))  # fmt: skip
-    twice = fps[1:][fps[1:] == fps[:-1]]
-    dup_ids: set[str] = set()
-    if twice.size:
-        counts: dict[str, int] = {}
-        candidates = set(twice.tolist())
-        for p in dec_parts:
-            ids = ig._id_column(p.path, "decisions")
-            for did, fp in zip(ids, ig._fingerprints(ids).tolist(), strict=True):
-                if fp in candidates:
-                    counts[did] = counts.get(did, 0) + 1
-        for did, n in sorted(counts.items()):
-            if n > 1:
-                dup_ids.add(did)
-                report.note("duplicates", did, n - 1)
-    for p in out_parts:
-        ids = ig._id_column(p.path, "outcomes")
-        fp = ig._fingerprints(ids)
-        pos = np.minimum(np.searchsorted(fps, fp), max(len(fps) - 1, 0))
-        missing = np.ones(len(ids), bool) if not len(fps) else fps[pos] != fp
-        for i in np.flatnonzero(missing).tolist():
-            report.note("orphan_outcomes", ids[i])
-    paired = {_parquet.draws_sibling(base, p) for p in dec_parts}
-    chain_end: dict[str, int] = {}
-    for p in (*dec_parts, *out_parts):
-        chain_end[p.tag] = max(chain_end.get(p.tag, -1), p.last)
-    for p in _parquet.parts(base, "draws"):
-        if p.path in paired:
-            continue
-        if p.first > chain_end.get(p.tag, -1):
-            report.uncommitted_parts += 1
-            continue
-        for did in ig._id_column(p.path, "draws"):
-            report.note("orphan_draws", did)
-    return report, dup_ids
+    return report, ig.parquet_cross_checks(Path(root), report)
 
 
 def _integrity_chains(

@@ -296,8 +296,9 @@ def _id_column(path: Path, table: str) -> list[str]:
     return ids
 
 
-def _check_parquet(root: Path, key: bytes, report: IntegrityReport) -> None:
-    _parquet.check_ledger_dir(root)
+def parquet_cross_checks(root: Path, report: IntegrityReport) -> set[str]:
+    """The ledger-wide checks of a Parquet ledger, before the chain walks: duplicate decision
+    ids, orphan outcomes and draws, interrupted batches. Returns the duplicate ids."""
     dec_parts = _parquet.parts(root, "decisions")
     out_parts = _parquet.parts(root, "outcomes")
 
@@ -342,6 +343,14 @@ def _check_parquet(root: Path, key: bytes, report: IntegrityReport) -> None:
             continue
         for did in _id_column(p.path, "draws"):
             report.note("orphan_draws", did)
+    return dup_ids
+
+
+def _check_parquet(root: Path, key: bytes, report: IntegrityReport) -> None:
+    _parquet.check_ledger_dir(root)
+    dup_ids = parquet_cross_checks(root, report)
+    dec_parts = _parquet.parts(root, "decisions")
+    out_parts = _parquet.parts(root, "outcomes")
 
     # The chains: per writer tag, parts merged in seq order.
     by_tag: dict[str, list[tuple[int, int, _parquet.Part]]] = {}
