@@ -1,8 +1,9 @@
 """The background writer: a bounded in-memory queue drained in batches into a sink.
 
 The serving thread only appends to the queue (``Writer.put``). The writer thread takes what is
-queued, writes it in one transaction, retries a failing sink, and spills what it cannot write to
-a local JSON Lines file (fsynced) so that no acknowledged record is lost. The policies
+queued, links it into the hash chain (``Chain``: seq, prev_hash and hash, in queue order),
+writes it in one transaction, retries a failing sink, and spills what it cannot write to a local
+JSON Lines file (fsynced) so that no acknowledged record is lost. The policies
 (docs/operations.md):
 
 - queue full: the caller waits up to ``block_timeout`` for room, then the record is spilled by
@@ -30,13 +31,18 @@ from typing import Any
 
 import orjson
 
+from drawledger import _records
 from drawledger._sinks import Sink
 from drawledger.exceptions import LedgerError
 
 log = logging.getLogger("drawledger")
 
-# A queued record: ("d", decision_row, draw_rows) or ("o", outcome_row); or a flush marker.
+# A queued record, or a flush marker. A record is queued unsealed, its row without the last three
+# columns (seq, prev_hash, hash): ("d-", decision_row, draw_rows) or ("o-", outcome_row). Sealed,
+# with complete rows, it is ("d", decision_row, draw_rows) or ("o", outcome_row): what sinks,
+# spill files and taps see.
 Item = Any
+SEALED = frozenset({"d", "o"})
 
 MAX_COOLDOWN = 60.0
 
@@ -62,6 +68,40 @@ def spill_line(item: Item) -> bytes:
     if item[0] == "d":
         return orjson.dumps({"decision": list(item[1]), "draws": item[2]})
     return orjson.dumps({"outcome": list(item[1])})
+
+
+class Chain:
+    """The hash chain of one writer (docs/ledger.md): records get seq and prev_hash as sealed.
+
+    Only the holder of ``lock`` may seal; the writer thread seals each batch it takes, in queue
+    order, and the serving thread seals only a record that bypasses the queue (a tap, a spill).
+    """
+
+    __slots__ = ("key", "lock", "prev", "seq")
+
+    def __init__(self, key: bytes) -> None:
+        self.key = key
+        self.lock = threading.Lock()
+        self.seq = 0
+        self.prev: str | None = None
+
+    def seal(self, item: Item) -> Item:
+        """The record with its seq, prev_hash and hash; a sealed record as it is."""
+        tag = item[0]
+        sealed: Item
+        if tag == "d-":
+            row = (*item[1], self.seq, self.prev)
+            digest = _records.decision_hash(row, item[2], self.key)
+            sealed = ("d", (*row, digest), item[2])
+        elif tag == "o-":
+            row = (*item[1], self.seq, self.prev)
+            digest = _records.outcome_hash(row, self.key)
+            sealed = ("o", (*row, digest))
+        else:
+            return item
+        self.seq += 1
+        self.prev = digest
+        return sealed
 
 
 class SpillFile:
@@ -101,6 +141,7 @@ class Writer:
         open_sink: Callable[[], Sink],
         spill: SpillFile,
         stats: Stats,
+        chain: Chain,
         *,
         batch_size: int,
         queue_size: int = 100_000,
@@ -113,6 +154,7 @@ class Writer:
         self._sink: Sink | None = None
         self.spill = spill
         self.stats = stats
+        self.chain = chain
         self.batch_size = batch_size
         self.queue_size = queue_size
         self.block_timeout = block_timeout
@@ -123,6 +165,7 @@ class Writer:
         self._wake = threading.Event()
         self._stop = False
         self._thread: threading.Thread | None = None
+        self._live = False  # set by start(), cleared when the thread ends: put() checks only this
         self._start_lock = threading.Lock()
         self._overflowing = False
         self._down_until = 0.0
@@ -134,8 +177,9 @@ class Writer:
         with self._start_lock:
             if self.running:
                 return
-            self._thread = threading.Thread(target=self._run, name="drawledger-writer",
+            self._thread = threading.Thread(target=self._main, name="drawledger-writer",
                                             daemon=True)  # fmt: skip
+            self._live = True
             self._thread.start()
 
     @property
@@ -148,7 +192,7 @@ class Writer:
     def put(self, item: Item) -> None:
         """Queue one record; when the queue stays full, spill it (the policy above)."""
         q = self.queue
-        if not self.running:
+        if not self._live:
             self.start()
         if len(q) >= self.queue_size:
             self._wake.set()
@@ -159,6 +203,8 @@ class Writer:
             if len(q) >= self.queue_size:
                 self._overflowing = True
                 try:
+                    with self.chain.lock:
+                        item = self.chain.seal(item)
                     self.spill_items([item])
                 except Exception as exc:  # the decision call must still return
                     self.last_error = exc
@@ -166,6 +212,31 @@ class Writer:
                     log.error("drawledger: record dropped: queue full and spill failed: %s", exc)
                 return
         q.append(item)
+
+    def seal(self, item: Item) -> Item:
+        """Seal the records still queued, then ``item``: its seq follows theirs."""
+        with self.chain.lock:
+            self._seal_queued()
+            return self.chain.seal(item)
+
+    def seal_queued(self) -> tuple[int, str | None]:
+        """Seal every queued record now; the chain's next seq and prev_hash after them."""
+        with self.chain.lock:
+            self._seal_queued()
+            return self.chain.seq, self.chain.prev
+
+    def _seal_queued(self) -> None:
+        # The caller holds the chain lock, under which alone records leave the queue or come
+        # back to its front; records sealed early are never behind unsealed ones, so the
+        # unsealed ones are the records after the last sealed one.
+        q = self.queue
+        first = len(q)
+        while first > 0 and not (type(q[first - 1]) is tuple and q[first - 1][0] in SEALED):
+            first -= 1
+        seal = self.chain.seal
+        for i in range(first, len(q)):
+            if type(q[i]) is tuple:
+                q[i] = seal(q[i])
 
     def flush(self, timeout: float | None) -> bool:
         """Wait until everything queued before now is written or spilled; False on timeout."""
@@ -196,13 +267,21 @@ class Writer:
         self._wake = threading.Event()
         self._start_lock = threading.Lock()
         self._thread = None
+        self._live = False
         if self._sink is not None and hasattr(self._sink, "after_fork"):
             self._sink.after_fork()
         self._sink = None
 
     # -- the thread -----------------------------------------------------------------------
+    def _main(self) -> None:
+        try:
+            self._run()
+        finally:
+            self._live = False
+
     def _run(self) -> None:
         q = self.queue
+        chain = self.chain
         while True:
             if not q:
                 if self._stop:
@@ -212,12 +291,14 @@ class Writer:
                 continue
             items: list[Item] = []
             markers: list[_Flush] = []
-            while q and len(items) < self.batch_size:
-                item = q.popleft()
-                if isinstance(item, _Flush):
-                    markers.append(item)
-                    break  # commit what came before the marker, then release it
-                items.append(item)
+            with chain.lock:  # taking records and sealing them is one step (see _seal_queued)
+                while q and len(items) < self.batch_size:
+                    item = q.popleft()
+                    if isinstance(item, _Flush):
+                        markers.append(item)
+                        break  # commit what came before the marker, then release it
+                    items.append(item)
+                items = self._seal_batch(items)
             if len(q) < self.queue_size:
                 self._overflowing = False
             error = self._write(items) if items else None
@@ -226,13 +307,31 @@ class Writer:
                     self.stats.dropped += len(items)
                     log.error("drawledger: %d records dropped at close: %s", len(items), error)
                 else:
-                    q.extendleft(reversed(items))
+                    with chain.lock:
+                        q.extendleft(reversed(items))
             for m in markers:
                 m.error = error
                 m.done.set()
             if error is not None and not self._stop:
                 self._wake.wait(min(self._down_for, MAX_COOLDOWN))
                 self._wake.clear()
+
+    def _seal_batch(self, items: list[Item]) -> list[Item]:
+        """The batch sealed in order (the caller holds the chain lock).
+
+        The serving thread checked every field, so sealing cannot fail; if it did, the record
+        is dropped and counted rather than the thread dying.
+        """
+        seal = self.chain.seal
+        sealed = []
+        for item in items:
+            try:
+                sealed.append(seal(item))
+            except Exception as exc:
+                self.last_error = exc
+                self.stats.dropped += 1
+                log.error("drawledger: record dropped: it cannot be hashed: %s", exc)
+        return sealed
 
     def _write(self, items: list[Item]) -> BaseException | None:
         """Write a batch to the sink or the spill file; the error when neither took it."""

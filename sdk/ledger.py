@@ -21,7 +21,7 @@ from pathlib import Path
 from typing import Any, Generic, ParamSpec, TypeVar
 
 from drawledger import _records, _sinks, _stream
-from drawledger._writer import SpillFile, Stats, Writer
+from drawledger._writer import Chain, SpillFile, Stats, Writer
 from drawledger.draw import Draw, DrawRecord, bucket_assign
 from drawledger.exceptions import (
     DecisionDefinitionError,
@@ -115,6 +115,7 @@ class Decision(Generic[R]):
         self.stream = stream
         self.fn = fn
         self.name = f"{fn.__module__}:{fn.__qualname__}"
+        self._inputs_what = f"{self.name}: inputs"
         self._action_what = f"{self.name}: action"
         self.code_hash = code_hash(fn)
         functools.update_wrapper(self, fn)
@@ -161,11 +162,11 @@ class Decision(Generic[R]):
             params_json = _records.to_json(params, f"{self.name}: policy parameters")
             call = [inputs[name] for name in self.inputs]
         else:  # the common call: every input positional, the default policy parameters
-            inputs = dict(zip(self.inputs, args, strict=True))
+            inputs = dict(zip(self.inputs, args, strict=False))  # same length: checked above
             params = None  # the function's own defaults apply
             call = list(args)
         ledger = self.ledger
-        inputs_json = ledger._inputs_json(inputs, self.name)
+        inputs_json = ledger._inputs_json(inputs, self._inputs_what)
         draw = Draw(ledger._seed_source())
         call.insert(self._draw_index, draw)
         action = self.fn(*call) if params is None else self.fn(*call, **params)
@@ -188,11 +189,20 @@ def _timestamp(ts: Any) -> float:
     return float(ts) + 0.0  # + 0.0: -0.0 becomes 0.0 (docs/ledger.md)
 
 
-def _no_nul(*texts: str | None) -> None:
-    """Refuse NUL characters in plain text columns: PostgreSQL text cannot hold them."""
+def _plain_text(*texts: str | None) -> None:
+    """Refuse NUL characters (PostgreSQL text cannot hold them) and lone surrogates (no UTF-8)."""
     for text in texts:
-        if text is not None and "\x00" in text:
+        if text is None:
+            continue
+        if "\x00" in text:
             raise NotSerializableError(f"{text!r} contains a NUL character, which cannot be stored")
+        if not text.isascii():
+            try:
+                text.encode()
+            except UnicodeEncodeError:
+                raise NotSerializableError(
+                    f"{text!r} contains a lone surrogate, which is not text and cannot be stored"
+                ) from None
 
 
 def _redact_value(value: Any, key: bytes) -> str:
@@ -285,8 +295,6 @@ class Ledger:
         """State that belongs to one process: writer id, chain, queue, thread."""
         self.writer = _writer_id()
         self._lock = threading.Lock()
-        self._seq = 0
-        self._prev: str | None = None
         self._ids = itertools.count()
         self._stats = Stats()
         spill = SpillFile(self._spill_dir / f"drawledger-spill-{self.writer}.jsonl")
@@ -294,6 +302,7 @@ class Ledger:
             self._open_sink,
             spill,
             self._stats,
+            Chain(self._key),
             batch_size=self._batch_size,
             queue_size=self.queue_size,
             block_timeout=self.block_timeout,
@@ -328,13 +337,14 @@ class Ledger:
         return register
 
     # -- recording ----------------------------------------------------------------------------
-    def _inputs_json(self, inputs: dict[str, Any], fn_name: str) -> str:
+    def _inputs_json(self, inputs: dict[str, Any], what: str) -> str:
+        """JSON of a call's inputs, redacted; ``what`` names them in an error."""
         if self._redact_paths:
-            plain = _records.from_json(_records.to_json(inputs, f"{fn_name}: inputs"))
+            plain = _records.from_json(_records.to_json(inputs, what))
             for path in self._redact_paths:
                 _redact(plain, path, self._redact_key)
-            return _records.to_json(plain, f"{fn_name}: inputs")
-        return _records.to_json(inputs, f"{fn_name}: inputs")
+            return _records.to_json(plain, what)
+        return _records.to_json(inputs, what)
 
     def _next_id(self) -> str:
         return f"{self.writer}.{next(self._ids)}"
@@ -373,18 +383,18 @@ class Ledger:
         """Rows of the draws table; ``encoded`` = (object, its JSON) spares encoding it twice."""
         rows = []
         to_json = _records.to_json
-        for d in draws:
-            if d.name is not None and "\x00" in d.name:
-                _no_nul(d.name)
+        for idx, name, kind, args, u, value, prob, is_density in draws:
+            if name is not None and ("\x00" in name or not name.isascii()):
+                _plain_text(name)  # raises when it is not plain text
             try:
-                value = encoded[1] if encoded is not None and d.value is encoded[0] else \
-                    to_json(d.value, "its value")  # fmt: skip
-                rows.append((did, d.idx, d.name, d.kind, to_json(d.args, "its arguments"),
-                             to_json(d.u, "its uniforms"), value, d.prob + 0.0,
-                             int(d.is_density)))  # fmt: skip
+                value_json = encoded[1] if encoded is not None and value is encoded[0] else \
+                    to_json(value, "its value")  # fmt: skip
+                rows.append((did, idx, name, kind, to_json(args, "its arguments"),
+                             to_json(u, "its uniforms"), value_json, prob + 0.0,
+                             1 if is_density else 0))  # fmt: skip
             except NotSerializableError as exc:
-                label = f"{d.kind} draw {d.name!r}" if d.name is not None else f"{d.kind} draw"
-                raise NotSerializableError(f"{label} (#{d.idx}): {exc}") from None
+                label = f"{kind} draw {name!r}" if name is not None else f"{kind} draw"
+                raise NotSerializableError(f"{label} (#{idx}): {exc}") from None
         return rows
 
     def _append_decision(
@@ -400,26 +410,29 @@ class Ledger:
         did = self._next_id() if decision_id is None else decision_id
         if not isinstance(did, str) or not did:
             raise NotSerializableError("decision_id must be a non-empty string")
-        _no_nul(did, stream, unit)  # draw names: in _draw_rows
+        _plain_text(did, stream, unit)  # draw names: in _draw_rows
         draw_rows = self._draw_rows(did, draws, encoded)
         stamp = time.time() if ts is None else _timestamp(ts)
-        prop += 0.0
-        with self._lock:
-            row = (did, stream, unit, stamp, fn, chash, inputs, params, action, prop, kind, seed,
-                   self.writer, self._seq, self._prev)  # fmt: skip
-            digest = _records.decision_hash(row, draw_rows, self._key)
-            self._enqueue(("d", (*row, digest), draw_rows))
-            self._seq += 1
-            self._prev = digest
+        row = (did, stream, unit, stamp, fn, chash, inputs, params, action, prop + 0.0, kind,
+               seed, self.writer)  # fmt: skip
+        self._enqueue(("d-", row, draw_rows))
         return did
 
     def _enqueue(self, item: Any) -> None:
-        """Queue one record (the caller holds the lock); ``Writer.put`` handles a full queue."""
-        self._stats.recorded += 1
-        held = False
-        for tap in self._taps:  # drawledger.testing: a tap returning True holds the record back
-            held = tap(item) or held
-        if not held:
+        """Queue one unsealed record; the writer thread links it into the chain and hashes it.
+
+        ``Writer.put`` handles a full queue. Taps (drawledger.testing) get the record sealed at
+        once, with its seq and hash; a tap returning True holds the record back.
+        """
+        with self._lock:
+            self._stats.recorded += 1
+            if self._taps:
+                item = self._writer.seal(item)
+                held = False
+                for tap in self._taps:
+                    held = tap(item) or held
+                if held:
+                    return
             self._writer.put(item)
 
     def outcome(
@@ -430,7 +443,7 @@ class Ledger:
             raise NotSerializableError("outcome: decision_id must be a non-empty string")
         if not isinstance(name, str) or not name:
             raise NotSerializableError("outcome: name must be a non-empty string")
-        _no_nul(decision_id, name)
+        _plain_text(decision_id, name)
         if isinstance(value, bool):
             value = float(value)
         if (
@@ -444,12 +457,7 @@ class Ledger:
         if self._closed:
             raise LedgerClosedError(f"ledger {self.target!r} is closed")
         stamp = time.time() if ts is None else _timestamp(ts)
-        with self._lock:
-            row = (decision_id, name, float(value) + 0.0, stamp, self.writer, self._seq, self._prev)
-            digest = _records.outcome_hash(row, self._key)
-            self._enqueue(("o", (*row, digest)))
-            self._seq += 1
-            self._prev = digest
+        self._enqueue(("o-", (decision_id, name, float(value) + 0.0, stamp, self.writer)))
 
     def bucket(
         self,

@@ -214,7 +214,9 @@ def capture(
         return not write
 
     with ledger._lock:
-        saved_chain = (ledger._seq, ledger._prev)
+        # Records queued before the block take their places in the chain now, so that the
+        # chain can be wound back to this point afterwards.
+        saved_chain = ledger._writer.seal_queued()
         saved_source = ledger._seed_source
         ledger._taps.append(tap)
         if source is not None:
@@ -227,4 +229,6 @@ def capture(
             if source is not None:
                 ledger._seed_source = saved_source
             if not write:
-                ledger._seq, ledger._prev = saved_chain
+                chain = ledger._writer.chain
+                with chain.lock:
+                    chain.seq, chain.prev = saved_chain

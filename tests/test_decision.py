@@ -8,6 +8,7 @@ from typing import Any
 
 import pytest
 from pydantic import BaseModel
+from recipe_card import CARDS, SCORES, make_decision
 
 import drawledger as dl
 from drawledger.exceptions import (
@@ -20,24 +21,10 @@ from drawledger.exceptions import (
 from drawledger.ledger import REGISTRY
 from drawledger.testing import capture
 
-CARDS = ["one-pot-pasta", "green-curry", "sheet-pan-salmon", "taco-night", "lentil-soup",
-         "overnight-oats"]  # fmt: skip
-SCORES = [1.6, 0.7, 1.2, 1.8, 0.5, 0.4]
-
-
-def register_card(ledger: dl.Ledger) -> dl.Decision[str]:
-    @ledger.decision("recipe-card")
-    def feature_card(
-        cards: list[str], scores: list[float], draw: dl.Draw, *, temperature: float = 0.7
-    ) -> str:
-        return draw.softmax(cards, scores, temperature=temperature, name="card")
-
-    return feature_card
-
 
 def test_call_records_inputs_params_action_and_the_draw(ledger: dl.Ledger) -> None:
     """A call returns the plain action and records inputs, params, fn, code hash and seed."""
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     with capture(ledger) as cap:
         card = feature_card(CARDS, SCORES, unit="shopper-000017", decision_id="req-8c1")
     (d,) = cap.decisions
@@ -45,7 +32,7 @@ def test_call_records_inputs_params_action_and_the_draw(ledger: dl.Ledger) -> No
     assert ("req-8c1", "recipe-card", "shopper-000017") == (d.decision_id, d.stream, d.unit)
     assert {"cards": CARDS, "scores": SCORES} == d.inputs
     assert {"temperature": 0.7} == d.params
-    assert f"{__name__}:register_card.<locals>.feature_card" == d.fn == feature_card.name
+    assert "recipe_card:make_decision.<locals>.feature_card" == d.fn == feature_card.name
     assert feature_card.code_hash == d.code_hash
     assert 32 == len(d.seed or "")
     assert ("exact", d.draws[0].prob) == (d.propensity_kind, d.propensity)
@@ -55,7 +42,7 @@ def test_call_records_inputs_params_action_and_the_draw(ledger: dl.Ledger) -> No
 
 def test_decision_exposes_its_signature(ledger: dl.Ledger) -> None:
     """inputs are the positional parameters; params the keyword-only defaults."""
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     assert ["cards", "scores"] == feature_card.inputs
     assert {"temperature": 0.7} == feature_card.params
     assert "recipe-card" == feature_card.stream
@@ -64,7 +51,7 @@ def test_decision_exposes_its_signature(ledger: dl.Ledger) -> None:
 
 def test_policy_parameter_override_and_keyword_inputs(ledger: dl.Ledger) -> None:
     """temperature=0.3 is recorded and used; inputs may be passed by keyword."""
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     with capture(ledger, seed=1) as cap:
         feature_card(CARDS, scores=SCORES, temperature=0.3)
     (d,) = cap.decisions
@@ -74,7 +61,7 @@ def test_policy_parameter_override_and_keyword_inputs(ledger: dl.Ledger) -> None
 
 def test_unit_and_decision_id_are_optional(ledger: dl.Ledger) -> None:
     """Without decision_id each call gets a unique id; unit stays empty."""
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     with capture(ledger) as cap:
         for _ in range(3):
             feature_card(CARDS, SCORES)
@@ -158,7 +145,7 @@ def test_call_errors_are_type_errors_and_record_nothing(
     ledger: dl.Ledger, args: tuple, kwargs: dict, problem: str
 ) -> None:
     """Calls Python itself would refuse raise TypeError; nothing is recorded."""
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     with capture(ledger) as cap, pytest.raises(TypeError, match=problem):
         feature_card(*args, **kwargs)
     assert [] == cap.decisions
@@ -244,7 +231,7 @@ def test_unrecordable_actions_and_options_name_the_culprit(ledger: dl.Ledger) ->
 
 def test_unit_and_decision_id_must_be_text(ledger: dl.Ledger) -> None:
     """A non-string unit or an empty decision id is refused; nothing is recorded."""
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     with capture(ledger) as cap:
         with pytest.raises(NotSerializableError, match="unit must be a string"):
             feature_card(CARDS, SCORES, unit=17)  # type: ignore[arg-type]
@@ -320,7 +307,7 @@ def test_pydantic_model_inputs_are_recorded_as_objects(ledger: dl.Ledger) -> Non
 
 def test_run_reexecutes_without_recording(ledger: dl.Ledger) -> None:
     """Decision.run with a Draw of the recorded seed gives the recorded action and draws."""
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     with capture(ledger) as cap:
         feature_card(CARDS, SCORES)
         (d,) = cap.decisions
@@ -348,7 +335,7 @@ def test_outcomes_are_recorded_and_checked(ledger: dl.Ledger) -> None:
 def test_calls_after_close_raise(ledger_path: Any) -> None:
     """A closed ledger refuses new records with LedgerClosedError (an OSError)."""
     ledger = dl.Ledger(ledger_path)
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     ledger.close()
     ledger.close()  # twice is fine
     with pytest.raises(LedgerClosedError, match="closed") as info:
@@ -360,7 +347,7 @@ def test_calls_after_close_raise(ledger_path: Any) -> None:
 
 def test_threads_record_without_losing_or_reordering(ledger: dl.Ledger) -> None:
     """Four threads x 300 calls: every decision recorded once, seq 0..1199 without gaps."""
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     with capture(ledger) as cap:
         threads = [
             threading.Thread(target=lambda: [feature_card(CARDS, SCORES) for _ in range(300)])

@@ -13,13 +13,10 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from recipe_card import CARDS, SCORES, make_decision
 
 import drawledger as dl
 from drawledger.exceptions import LedgerError
-
-CARDS = ["one-pot-pasta", "green-curry", "sheet-pan-salmon", "taco-night", "lentil-soup",
-         "overnight-oats"]  # fmt: skip
-SCORES = [1.6, 0.7, 1.2, 1.8, 0.5, 0.4]
 
 
 def query(path: Path, sql: str) -> list[tuple]:
@@ -35,19 +32,9 @@ def count(path: Path, table: str) -> int:
     return int(query(path, f"SELECT COUNT(*) FROM {table}")[0][0])
 
 
-def register_card(ledger: dl.Ledger) -> dl.Decision[str]:
-    @ledger.decision("recipe-card")
-    def feature_card(
-        cards: list[str], scores: list[float], draw: dl.Draw, *, temperature: float = 0.7
-    ) -> str:
-        return draw.softmax(cards, scores, temperature=temperature, name="card")
-
-    return feature_card
-
-
 def test_tables_columns_and_wal(ledger: dl.Ledger, ledger_path: Path) -> None:
     """decisions, draws and outcomes have the design's columns; the file is in WAL mode."""
-    register_card(ledger)(CARDS, SCORES)
+    make_decision(ledger)(CARDS, SCORES)
     ledger.flush()
     columns = {
         table: [r[1] for r in query(ledger_path, f"PRAGMA table_info({table})")]
@@ -65,7 +52,7 @@ def test_tables_columns_and_wal(ledger: dl.Ledger, ledger_path: Path) -> None:
 
 def test_a_decision_lands_with_its_draws_and_outcome(ledger: dl.Ledger, ledger_path: Path) -> None:
     """After flush() the decision row, its draw row and the outcome are in the file."""
-    card = register_card(ledger)(CARDS, SCORES, unit="shopper-000017", decision_id="req-8c1")
+    card = make_decision(ledger)(CARDS, SCORES, unit="shopper-000017", decision_id="req-8c1")
     ledger.outcome("req-8c1", "checkout", 1.0)
     ledger.flush()
     ((stream, unit, action, prop, kind),) = query(
@@ -125,7 +112,7 @@ def test_values_rederive_from_the_recorded_seed(ledger: dl.Ledger, ledger_path: 
 def test_decision_and_draws_commit_together(ledger_path: Path) -> None:
     """A batch whose draw insert fails leaves neither its decisions nor its draws behind."""
     ledger = dl.Ledger(ledger_path, spill_dir=ledger_path.parent / "spill")
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     feature_card(CARDS, SCORES, decision_id="before")
     ledger.flush()
     con = sqlite3.connect(ledger_path)
@@ -148,7 +135,7 @@ def test_flush_waits_for_everything_recorded_before_it(
     ledger: dl.Ledger, ledger_path: Path
 ) -> None:
     """flush() returns only when every earlier record is committed, from any thread."""
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     for _ in range(500):
         feature_card(CARDS, SCORES)
     ledger.flush()
@@ -183,7 +170,7 @@ def test_flush_timeout_raises_while_the_file_is_locked(
 ) -> None:
     """flush(timeout) raises LedgerError when the commit cannot finish in time; the record
     is committed once the lock goes away."""
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     feature_card(CARDS, SCORES)
     ledger.flush()
     con = sqlite3.connect(ledger_path, isolation_level=None)
@@ -203,14 +190,14 @@ def test_writes_through_a_sqlite_url(tmp_path: Path) -> None:
     """dl.Ledger("sqlite:///file") is the same ledger as the bare path."""
     path = tmp_path / "url.db"
     ledger = dl.Ledger(f"sqlite:///{path}")
-    register_card(ledger)(CARDS, SCORES)
+    make_decision(ledger)(CARDS, SCORES)
     ledger.close()
     assert 1 == count(path, "decisions")
 
 
 def test_threads_share_one_chain(ledger: dl.Ledger, ledger_path: Path) -> None:
     """Records from several threads form one contiguous sequence with linked hashes."""
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     threads = [
         threading.Thread(target=lambda: [feature_card(CARDS, SCORES) for _ in range(250)])
         for _ in range(4)
@@ -259,7 +246,7 @@ def test_interpreter_exit_closes_the_ledger(tmp_path: Path) -> None:
 @pytest.mark.skipif(not hasattr(os, "fork"), reason="needs os.fork")
 def test_forked_worker_gets_its_own_writer(ledger: dl.Ledger, ledger_path: Path) -> None:
     """After fork() the child records under its own writer id; parent and child both land."""
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     for _ in range(10):
         feature_card(CARDS, SCORES)
     ledger.flush()
@@ -294,7 +281,7 @@ def test_full_queue_neither_blocks_nor_loses(tmp_path: Path) -> None:
     ends up either committed or spilled."""
     path = tmp_path / "stuck.db"
     ledger = dl.Ledger(path, queue_size=20, block_timeout=0.05, spill_dir=tmp_path / "spill")
-    feature_card = register_card(ledger)
+    feature_card = make_decision(ledger)
     feature_card(CARDS, SCORES)
     ledger.flush()
     con = sqlite3.connect(path, isolation_level=None)

@@ -411,3 +411,25 @@ def test_nul_characters_are_refused_at_the_call_and_at_ingest(tmp_path: Path) ->
     report = dl.ingest(path, tmp_path / "x.db")
     assert [1] == [n for n, _ in report.malformed]
     assert "NUL character" in report.malformed[0][1]
+
+
+def test_lone_surrogates_are_refused_at_the_call_and_the_rest_is_written(tmp_path: Path) -> None:
+    """A lone surrogate is no UTF-8 text: refused when recorded, before the writer hashes it."""
+    target = tmp_path / "x.db"
+    led = dl.Ledger(target)
+
+    @led.decision("free-delivery")
+    def offer(draw: dl.Draw) -> bool:
+        return draw.bernoulli(0.5, name="free\ud800")
+
+    led.record_draw("free-delivery", "bernoulli", {"p": 0.5}, True, 0.5, decision_id="ok-1")
+    with pytest.raises(dl.NotSerializableError, match="lone surrogate"):
+        led.record_draw("free-delivery", "bernoulli", {"p": 0.5}, True, 0.5, unit="s\udfff")
+    with pytest.raises(dl.NotSerializableError, match="lone surrogate"):
+        offer()
+    with pytest.raises(dl.NotSerializableError, match="lone surrogate"):
+        led.outcome("ok-1", "check\ud800out", 1.0)
+    led.outcome("ok-1", "checkout", 1.0)
+    led.close()
+    assert (2, 0, 0) == (led.stats()["written"], led.stats()["spilled"], led.stats()["dropped"])
+    assert check_integrity(target).ok

@@ -7,23 +7,17 @@ import sqlite3
 from pathlib import Path
 
 import pytest
+from recipe_card import CARDS, SCORES, make_decision
 
 import drawledger as dl
 import drawledger.testing
 from drawledger.exceptions import DrawArgumentError
+from drawledger.replay._integrity import check_integrity
 from drawledger.testing import capture
-
-CARDS = ["one-pot-pasta", "green-curry", "sheet-pan-salmon", "taco-night", "lentil-soup",
-         "overnight-oats"]  # fmt: skip
-SCORES = [1.6, 0.7, 1.2, 1.8, 0.5, 0.4]
 
 
 def register(ledger: dl.Ledger) -> tuple[dl.Decision[str], dl.Decision[float]]:
-    @ledger.decision("recipe-card")
-    def feature_card(
-        cards: list[str], scores: list[float], draw: dl.Draw, *, temperature: float = 0.7
-    ) -> str:
-        return draw.softmax(cards, scores, temperature=temperature, name="card")
+    feature_card = make_decision(ledger)
 
     @ledger.decision("reminder-delay")
     def reminder_delay(nominal: float, draw: dl.Draw, *, sigma: float = 0.35365) -> float:
@@ -74,6 +68,23 @@ def test_capture_writes_nothing_by_default(ledger: dl.Ledger, ledger_path: Path)
     ((seq, prev),) = [(r[13], r[14]) for r in rows(ledger_path, "decisions")]
     assert (0, None) == (seq, prev)  # as if the captured records had never been made
     assert 5 == len(cap.decisions)
+
+
+def test_capture_after_queued_records_keeps_one_gapless_chain(
+    ledger: dl.Ledger, ledger_path: Path
+) -> None:
+    """Records queued before a capture keep seq 0..n-1; the ones after it continue at n."""
+    feature_card, _ = register(ledger)
+    for _ in range(50):  # queued: the writer thread links them into the chain later
+        feature_card(CARDS, SCORES)
+    with capture(ledger) as cap:
+        feature_card(CARDS, SCORES)
+    for _ in range(3):
+        feature_card(CARDS, SCORES)
+    ledger.flush()
+    assert 50 == cap.decisions[0].seq  # after the 50 queued before the block
+    assert list(range(53)) == sorted(r[13] for r in rows(ledger_path, "decisions"))
+    assert check_integrity(ledger_path).ok
 
 
 def test_capture_can_let_records_through(ledger: dl.Ledger, ledger_path: Path) -> None:

@@ -4,13 +4,14 @@ Run: python -m pytest tests/benchmarks/test_bench_sqlite_sink.py -m benchmark -s
 Results: docs/performance.md, "## Serving cost and SQLite sink".
 
 100,000 decisions of the quickstart (a softmax over six recipe cards, one draw each) are made
-once through a real decision and held in memory. Then, in the same process:
+once through a real decision and held in memory, as the serving thread queues them (without
+seq, prev_hash and hash). Then, in the same process:
 
-- raw: ``sqlite3.executemany`` of exactly those decision and draw rows into a fresh file with
-  the ledger's schema (same indexes, WAL, synchronous NORMAL), one transaction per 10,000
-  decisions (the writer's default batch);
-- SDK writer: the same records handed to a fresh ``dl.Ledger``'s background writer, timed until
-  ``flush()`` returns (queue, batching, SQLAlchemy, commit);
+- raw: ``sqlite3.executemany`` of exactly those decision and draw rows, completed with their
+  hash chain, into a fresh file with the ledger's schema (same indexes, WAL, synchronous
+  NORMAL), one transaction per 10,000 decisions (the writer's default batch);
+- SDK writer: the records as queued handed to a fresh ``dl.Ledger``'s background writer, timed
+  until ``flush()`` returns (queue, batching, hash chain, SQLAlchemy, commit);
 - end to end: 100,000 decision calls on a fresh ledger and ``flush()``: serving work and
   writing together, in one process.
 """
@@ -24,40 +25,35 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from recipe_card import CARDS, SCORES, make_decision
 
 import drawledger as dl
 from drawledger import _schema, _sinks
 from drawledger._records import DECISION_COLUMNS, DRAW_COLUMNS
+from drawledger._writer import Chain
 
 pytestmark = pytest.mark.benchmark
 
 N = 100_000
 BATCH = 10_000
-CARDS = ["one-pot-pasta", "green-curry", "sheet-pan-salmon", "taco-night", "lentil-soup",
-         "overnight-oats"]  # fmt: skip
-SCORES = [1.6, 0.7, 1.2, 1.8, 0.5, 0.4]
-
-
-def make_decision(ledger: dl.Ledger) -> dl.Decision[str]:
-    @ledger.decision("recipe-card")
-    def feature_card(
-        cards: list[str], scores: list[float], draw: dl.Draw, *, temperature: float = 0.7
-    ) -> str:
-        return draw.softmax(cards, scores, temperature=temperature, name="card")
-
-    return feature_card
 
 
 def recorded_items(tmp: Path) -> list[Any]:
-    """N queue items exactly as the serving thread produces them."""
+    """N queue items exactly as the serving thread produces them (not yet in the chain)."""
     ledger = dl.Ledger(tmp / "source.db")
     items: list[Any] = []
-    ledger._taps.append(lambda item: items.append(item) or True)
+    ledger._writer.put = items.append  # type: ignore[method-assign]
     feature_card = make_decision(ledger)
     for i in range(N):
         feature_card(CARDS, SCORES, unit=f"shopper-{i % 5000:06d}")
     ledger.close()
     return items
+
+
+def sealed(items: list[Any]) -> list[Any]:
+    """The items with complete rows: seq, prev_hash and hash, as the writer gives them."""
+    chain = Chain(b"")
+    return [chain.seal(item) for item in items]
 
 
 def raw_executemany(path: Path, items: list[Any]) -> float:
@@ -116,7 +112,7 @@ def test_sqlite_throughput_against_raw_executemany() -> None:
     with tempfile.TemporaryDirectory() as name:
         tmp = Path(name)
         items = recorded_items(tmp)
-        t_raw = raw_executemany(tmp / "raw.db", items)
+        t_raw = raw_executemany(tmp / "raw.db", sealed(items))
         t_sdk = sdk_writer(tmp / "sdk.db", items)
         t_e2e = end_to_end(tmp / "e2e.db")
         rows = {p: sqlite3.connect(tmp / p).execute("SELECT COUNT(*) FROM decisions").fetchone()
