@@ -26,12 +26,11 @@ from __future__ import annotations
 import contextlib
 import logging
 import os
-from collections import Counter
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import CancelledError
 from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, TypeVar
 
 import pandas as pd
 import pyarrow.parquet as pq
@@ -45,6 +44,7 @@ if TYPE_CHECKING:
 
     from drawledger.replay._audit import AuditReport, AuditState
     from drawledger.replay._integrity import IntegrityReport
+    from drawledger.replay._pieces import Facts, Job, Pass, PieceData, Rewards
     from drawledger.replay._verify import ChunkResult, Settings, VerifyReport
 
 __all__ = [
@@ -52,14 +52,17 @@ __all__ = [
     "Piece",
     "audit_on_dask",
     "cluster",
-    "evaluate_on_dask",
+    "estimate_pass",
+    "gather_pieces",
     "partitions",
     "pieces",
     "run_pieces",
+    "stream_partitions",
     "verify_on_dask",
 ]
 
 Row = tuple[Any, ...]
+T = TypeVar("T")
 CONNECT_TIMEOUT = 30.0  # seconds to reach a scheduler given by address
 # Dask workers sample their threads' stacks every 10 ms for the dashboard's profile; on replay
 # (many short Python calls) that costs about a third of a worker's CPU. Local clusters go without.
@@ -246,14 +249,30 @@ def run_pieces(
 ) -> Iterator[Any]:
     """``fn(piece, *args)`` for every piece on the cluster; yields the results in piece order.
 
-    ``fn`` returns ``(decisions read, result)``. Every piece must come back, each with the
-    number of decisions its part files hold; anything else raises ``ReplayError`` (or the
-    library error a task raised) after cancelling the other tasks: no partial results. Results
-    that arrive early wait in a buffer until the pieces before them are yielded.
+    ``fn`` returns ``(decisions read, result)``; see ``gather_pieces``.
+    """
+    futures = [client.submit(fn, piece, *args, pure=False) for piece in plan]
+    yield from gather_pieces(client, futures, plan, command=command, advance=advance)
+
+
+def gather_pieces(
+    client: Client,
+    futures: Sequence[Future],
+    plan: Sequence[Piece],
+    *,
+    command: str,
+    advance: Callable[[int], None] | None = None,
+) -> Iterator[Any]:
+    """The results of one task per piece, in piece order; each task returns ``(decisions read,
+    result)``.
+
+    Every piece must come back, each with the number of decisions its part files hold; anything
+    else raises ``ReplayError`` (or the library error a task raised) after cancelling the other
+    tasks: no partial results. Results that arrive early wait in a buffer until the pieces
+    before them are yielded.
     """
     from distributed import as_completed
 
-    futures = [client.submit(fn, piece, *args, pure=False) for piece in plan]
     index = {f.key: i for i, f in enumerate(futures)}
     waiting: dict[int, Any] = {}
     ready = 0
@@ -276,7 +295,7 @@ def run_pieces(
                 yield waiting.pop(ready)
                 ready += 1
     except BaseException:
-        client.cancel(futures)
+        client.cancel(list(futures))
         raise
     if ready != len(plan):  # as_completed yields every future; this guards against a loss
         missing = ", ".join(plan[i].label() for i in sorted(index.values())[:3])
@@ -547,231 +566,86 @@ def audit_on_dask(
 
 
 # -- estimate -----------------------------------------------------------------------------------
-@dataclass(frozen=True)
-class EstimateJob:
-    """What every estimate task needs besides its piece (picklable: sent with each task)."""
-
-    policies: tuple[Any, ...]  # None (logging), a mapping of overrides, or "module:function"
-    reward: str
-    stream: str
-    path: tuple[str, ...]
-    allow: tuple[str, ...]
-    seed: int
-    missing_reward: float | None
-    reward_range: tuple[float, float] | None
+def stream_partitions(root: str | os.PathLike[str]) -> dict[str, list[Partition]]:
+    """The partitions of each decision stream (read from the first row of each partition)."""
+    out: dict[str, list[Partition]] = {}
+    for partition in partitions(root):
+        column = pq.read_table(partition.parts[0], columns=["stream"]).column(0)
+        stream = str(column[0].as_py()) if len(column) else ""
+        out.setdefault(stream, []).append(partition)
+    return out
 
 
-@dataclass
-class PieceRecords:
-    """One piece's verified records of the stream and every policy's per-record results."""
-
-    total: int
-    excluded: Counter[str]
-    outside: int  # rewards outside the given reward range
-    records: Any  # _estimate._Records, or None when the piece has no usable record
-    logging: list[dict[str, float] | None]
-    results: list[Any]  # _estimate._Evaluated per policy
-
-
-def _reward_totals(path: str, reward: str) -> tuple[int, pd.DataFrame]:
-    """The sum of the ``reward`` outcomes of each decision id in one outcomes part."""
-    data = _parquet.read_part(Path(path), "outcomes").select(["decision_id", "name", "value"])
-    frame = data.to_pandas()
-    frame = frame[frame["name"] == reward]
-    totals = frame.groupby("decision_id", sort=False)["value"].sum()
-    return len(frame), totals.reset_index()
-
-
-def _combine_rewards(*parts: tuple[int, pd.DataFrame]) -> tuple[int, pd.Series]:
-    count = sum(n for n, _ in parts)
-    frames = [f for _, f in parts if len(f)]
-    if not frames:
-        return count, pd.Series(dtype=float, index=pd.Index([], name="decision_id"))
-    totals: pd.Series = pd.concat(frames).groupby("decision_id", sort=False)["value"].sum()
-    return count, totals
-
-
-def _estimate_piece(
-    piece: Piece, integrity: IntegrityReport, rewards: tuple[int, pd.Series],
-    settings: Settings, job: EstimateJob,
-) -> tuple[int, PieceRecords]:  # fmt: skip
-    """Replay a piece, keep the usable records of the stream and evaluate every policy on them.
-
-    The selection follows the local engine's (``_estimate._load_records``): verified decisions
-    of the stream with a decision function, a positive replayed propensity not estimated by
-    Monte Carlo, and a reward (or ``missing_reward``).
-    """
-    import numpy as np
-
-    from drawledger.replay import _estimate
-    from drawledger.replay._enumerate import MONTE_CARLO
-    from drawledger.replay._verify import verify_chunk
+def _first_piece(piece: Piece, flagged: frozenset[str], job: Job, rewards: Rewards) -> PieceData:
+    from drawledger.replay._pieces import evaluate_piece
 
     rows, draws = read_piece(piece)
-    ids = {r[0] for r in rows}
-    flagged = frozenset(integrity.decision_ids & ids) if integrity.decision_ids else frozenset()
-    checked = verify_chunk(rows, draws, flagged, settings)
-    frame = pd.concat(checked.rows, ignore_index=True) if checked.rows else pd.DataFrame(
-        columns=["decision_id", "stream", "verified", "reason", "propensity",
-                 "propensity_method", "action"])  # fmt: skip
-    frame = frame[frame["stream"] == job.stream]
-    total = len(frame)
-    excluded: Counter[str] = Counter()
-
-    def drop(mask: Any, reason: str) -> None:
-        nonlocal frame
-        if mask.any():
-            excluded[reason] += int(mask.sum())
-            frame = frame[~mask]
-
-    verified = frame["verified"].astype(bool).to_numpy()
-    for reasons in frame.loc[~verified, "reason"].fillna("not verified"):
-        excluded.update(str(reasons).split(";"))
-    frame = frame[verified]
-    texts: dict[str, tuple[Any, Any, Any]] = {}
-    for r in rows:
-        texts.setdefault(r[0], (r[4], r[6], r[7]))
-    fns = [texts[d][0] for d in frame["decision_id"]]
-    drop(np.array([f is None for f in fns], dtype=bool),
-         "no decision function (bucket assignment)")  # fmt: skip
-    drop((frame["propensity_method"] == MONTE_CARLO).to_numpy(),
-         "logging propensity only estimated by Monte Carlo")  # fmt: skip
-    drop(~(pd.to_numeric(frame["propensity"], errors="coerce").to_numpy(dtype=float) > 0.0),
-         "no positive replayed propensity")  # fmt: skip
-    outcome = rewards[1].reindex(frame["decision_id"]).to_numpy(dtype=float)
-    if job.missing_reward is None:
-        drop(np.isnan(outcome), f"no {job.reward} outcome")
-        outcome = outcome[~np.isnan(outcome)]
-    else:
-        outcome = np.where(np.isnan(outcome), job.missing_reward, outcome)
-    outside = 0
-    if job.reward_range is not None:
-        outside = int(((outcome < job.reward_range[0]) | (outcome > job.reward_range[1])).sum())
-    if frame.empty or outside:
-        return len(rows), PieceRecords(total, excluded, outside, None, [], [])
-    chosen = [texts[d] for d in frame["decision_id"]]
-    recs = _estimate._Records(
-        rows=frame.reset_index(drop=True), fn=[c[0] for c in chosen],
-        inputs=[c[1] for c in chosen], params=[c[2] for c in chosen],
-        actions=frame["action"].astype(str).tolist(),
-        mu=frame["propensity"].to_numpy(dtype=float), r=outcome, excluded=dict(excluded),
-        total=total, stream=job.stream,
-    )  # fmt: skip
-    targets = [_estimate._Target(p, list(job.path), list(job.allow)) for p in job.policies]
-    logging, results = _estimate._evaluate(recs, targets, path=list(job.path),
-                                           allow=list(job.allow), seed=job.seed,
-                                           progress=False)  # fmt: skip
-    return len(rows), PieceRecords(total, excluded, 0, recs, logging, results)
+    return evaluate_piece(rows, draws, flagged, job, rewards)
 
 
-def _partition_stream(partition: Partition) -> str:
-    column = pq.read_table(partition.parts[0], columns=["stream"]).column(0)
-    return str(column[0].as_py()) if len(column) else ""
+def _facts(data: PieceData) -> tuple[int, Facts]:
+    return data.facts.rows, data.facts
 
 
-def evaluate_on_dask(
-    ledger: str | os.PathLike[str],
-    *,
-    policies: Sequence[Any],
-    reward: str,
-    stream: str | None,
-    path: Sequence[str],
-    allow: Sequence[str],
-    format: str | None,
-    seed: int,
-    missing_reward: float | None,
-    reward_range: tuple[float, float] | None,
-    integrity_key: bytes | str | None,
-    scheduler: str | None,
-    chunk_size: int = 10_000,
-    progress: bool = False,
-) -> tuple[Any, list[dict[str, float] | None], list[Any]]:
-    """The records an estimate uses and every policy's per-record results, from the cluster.
+def _stage(fn: Callable[[PieceData, Any], Any], data: PieceData, arg: Any) -> tuple[int, Any]:
+    return data.facts.rows, fn(data, arg)
 
-    Replaces the local engine's ``_prepare`` + ``_evaluate`` (the replay of every decision
-    and its re-execution under each policy, the costly part) with one task per piece of the
-    chosen stream's partitions; returns ``(records, logging distributions, results)`` in the
-    local engine's order, so the estimator's own columns, reward model, intervals and
-    diagnostics follow unchanged on the client.
+
+class _DaskRunner:
+    """The estimate's stages as tasks; each piece's data stays in its worker's memory between
+    the stages (Dask recomputes it if that worker is lost)."""
+
+    def __init__(self, client: Client, plan: Sequence[Piece], flagged: Future, rewards: Future,
+                 progress: bool) -> None:  # fmt: skip
+        self.client = client
+        self.plan = plan
+        self.flagged = flagged
+        self.rewards = rewards
+        self.progress = progress
+        self.data: list[Future] = []
+
+    def first(self, job: Job) -> list[Facts]:
+        self.data = [self.client.submit(_first_piece, piece, self.flagged, job, self.rewards,
+                                        pure=False) for piece in self.plan]  # fmt: skip
+        facts = [self.client.submit(_facts, d, pure=False) for d in self.data]
+        advance, bar = _progress(self.progress, sum(p.rows for p in self.plan),
+                                 "replaying and evaluating")  # fmt: skip
+        try:
+            return list(gather_pieces(self.client, facts, self.plan, command="estimate",
+                                      advance=advance))  # fmt: skip
+        finally:
+            if bar is not None:
+                bar.stop()
+
+    def map(self, fn: Callable[[PieceData, Any], T], arg: Any) -> list[T]:
+        futures = [self.client.submit(_stage, fn, d, arg, pure=False) for d in self.data]
+        return list(gather_pieces(self.client, futures, self.plan, command="estimate"))
+
+
+def _count(rewards: Rewards) -> int:
+    return rewards.count
+
+
+def estimate_pass(
+    root: Path, plan: Sequence[Piece], job: Job, *, integrity_key: bytes | str | None,
+    scheduler: str | None, progress: bool, cap: float, bootstrap: int, weights: bool,
+) -> Pass:  # fmt: skip
+    """``_pieces.run_pass`` with every stage of every piece a task on a Dask cluster.
+
+    Rewards are read per outcomes part and combined in a task; the integrity check runs as tasks
+    beside them, and its flagged decisions reach the pieces, as in the local engine.
     """
-    import numpy as np
+    from drawledger.replay._pieces import Rewards, reward_part, run_pass
 
-    from drawledger.replay import _estimate
-    from drawledger.replay._enumerate import DEFAULT_BUDGET, DEFAULT_MC_SAMPLES
-    from drawledger.replay._verify import Settings
-
-    root = parquet_root(ledger, format, "estimate")
-    listed = partitions(root)
-    by_stream: dict[str, list[Partition]] = {}
-    for partition in listed:
-        by_stream.setdefault(_partition_stream(partition), []).append(partition)
-    streams = sorted(by_stream)
-    if not streams:
-        raise ReplayError(f"ledger {os.fspath(ledger)!r} has no decisions")
-    if stream is not None:
-        if stream not in by_stream:
-            raise ReplayError(f"no decisions of stream {stream!r}; streams in the ledger: "
-                              f"{', '.join(streams)}")  # fmt: skip
-    elif len(streams) > 1:
-        raise ReplayError(f"the ledger has several decision streams ({', '.join(streams)}); "
-                          "choose one with --stream")  # fmt: skip
-    else:
-        stream = streams[0]
-    plan = pieces(by_stream[stream], chunk_size)
-    paths = tuple(os.path.abspath(os.path.expanduser(p)) for p in path)
-    settings = Settings(path=paths, allow=tuple(allow), budget=DEFAULT_BUDGET,
-                        mc_samples=DEFAULT_MC_SAMPLES, keep_rows=True)  # fmt: skip
-    job = EstimateJob(tuple(policies), reward, stream, paths, tuple(allow), seed,
-                      missing_reward, reward_range)  # fmt: skip
+    job = replace(job, settings=_absolute(job.settings))
     outcome_parts = [os.fspath(p.path) for p in _parquet.parts(root, "outcomes")]
-    advance, bar = _progress(progress, sum(p.rows for p in plan), "replaying and evaluating")
-    try:
-        with cluster(scheduler) as client:
-            checking = _Integrity(client, root, integrity_key)
-            totals = [_submit_one(client, _reward_totals, p, reward) for p in outcome_parts]
-            rewards = _submit_one(client, _combine_rewards, *totals)
-            if _one_result(client.submit(_count, rewards), "estimate", "reading outcomes") == 0:
-                raise ReplayError(f"no outcome named {reward!r} in the ledger")
-            integrity = client.scatter(checking.report("estimate"), broadcast=True)
-            found = list(run_pieces(client, _estimate_piece, plan, integrity, rewards, settings,
-                                    job, command="estimate", advance=advance))  # fmt: skip
-    finally:
-        if bar is not None:
-            bar.stop()
-    outside = sum(p.outside for p in found)
-    if outside and reward_range is not None:
-        raise ReplayError(f"{outside} {reward!r} rewards lie outside reward_range "
-                          f"{tuple(reward_range)}")  # fmt: skip
-    excluded: Counter[str] = Counter()
-    for p in found:
-        excluded.update(p.excluded)
-    used = [p for p in found if p.records is not None]
-    if not used:
-        raise ReplayError(f"no verified decisions with a {reward!r} reward to estimate from"
-                          + (f" (excluded: {dict(excluded)})" if excluded else ""))  # fmt: skip
-    parts = [p.records for p in used]
-    recs = _estimate._Records(
-        rows=pd.concat([r.rows for r in parts], ignore_index=True),
-        fn=[x for r in parts for x in r.fn], inputs=[x for r in parts for x in r.inputs],
-        params=[x for r in parts for x in r.params],
-        actions=[x for r in parts for x in r.actions],
-        mu=np.concatenate([r.mu for r in parts]), r=np.concatenate([r.r for r in parts]),
-        excluded=dict(excluded), total=sum(p.total for p in found), stream=stream,
-    )  # fmt: skip
-    logging = [d for p in used for d in p.logging]
-    results = []
-    for k in range(len(policies)):
-        each = [p.results[k] for p in used]
-        dists = None if any(e.dists is None for e in each) else \
-            [d for e in each for d in e.dists]  # fmt: skip
-        methods: Counter[str] = Counter()
-        for e in each:
-            methods.update(e.methods)
-        results.append(_estimate._Evaluated(np.concatenate([e.p for e in each]),
-                                            np.concatenate([e.deficit for e in each]), dists,
-                                            methods))  # fmt: skip
-    return recs, logging, results
-
-
-def _count(rewards: tuple[int, pd.Series]) -> int:
-    return rewards[0]
+    with cluster(scheduler) as client:
+        checking = _Integrity(client, root, integrity_key)
+        parts = [_submit_one(client, reward_part, p, job.reward) for p in outcome_parts]
+        rewards = _submit_one(client, Rewards.of, parts)
+        if not _one_result(client.submit(_count, rewards), "estimate", "reading outcomes"):
+            raise ReplayError(f"no outcome named {job.reward!r} in the ledger")
+        flagged = frozenset(checking.report("estimate").decision_ids)
+        shared = client.scatter([flagged], broadcast=True)[0]  # one object, not its items
+        runner = _DaskRunner(client, plan, shared, rewards, progress)
+        return run_pass(runner, job, cap=cap, bootstrap=bootstrap, weights=weights)

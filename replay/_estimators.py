@@ -13,8 +13,9 @@ A paired comparison puts the columns of a second policy beside them. A pass over
 therefore only keeps ``Moments`` (count, means, centred cross-products, extremes) per chunk;
 chunks combine with the pairwise update of Chan, Golub & LeVeque (1979), so any partitioning
 gives the same result up to float rounding. Point estimates, delta-method variances, Kish's
-effective sample size and the empirical Bernstein bound all follow from the combined moments;
-only the bootstrap and the weight quantiles need the records themselves.
+effective sample size and the empirical Bernstein bound all follow from the combined moments.
+The bootstrap is a Poisson bootstrap whose resampling counts follow from each record's id, so
+its per-chunk sums combine as well; only the weight quantiles need the weights themselves.
 
 The reward model of the doubly robust estimator (Dudik, Langford & Li 2011) is a ridge
 regression per action on standardized features, cross-fitted over folds; its sufficient
@@ -48,7 +49,7 @@ __all__ = [
     "W",
     "bernstein_halfwidth",
     "bernstein_interval",
-    "bootstrap_means",
+    "bootstrap_sums",
     "clt_interval",
     "column_spans",
     "delta_variance",
@@ -56,6 +57,7 @@ __all__ = [
     "estimands",
     "kish_ess",
     "percentile_interval",
+    "poisson_counts",
     "policy_columns",
     "scaling",
     "summarize",
@@ -70,10 +72,13 @@ W, WR, K, KR, DR = range(len(POLICY_COLUMNS))
 WIDTH = len(POLICY_COLUMNS)
 QUANTILES = (0.5, 0.9, 0.99, 0.999)
 
-# Block sizes (memory and speed, not results): bootstrap indices drawn at once, and rows of a
+# Block sizes (memory and speed, not results): bootstrap counts made at once, and rows of a
 # record matrix reduced at once by ``Moments.of``.
-_BOOTSTRAP_BLOCK = 4_000_000
+_COUNT_BLOCK = 1_000_000
 _MOMENT_BLOCK = 131_072
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+# P(X <= k) of a Poisson(1) variable for k = 0, 1, ...; beyond k = 18 the rest is below 2^-53.
+_POISSON_CDF = np.cumsum([math.exp(-1.0) / math.factorial(k) for k in range(19)])
 
 
 def _floats(x: ArrayLike, what: str) -> Array:
@@ -241,28 +246,52 @@ def clt_interval(est: Estimand, m: Moments, level: float = 0.95) -> tuple[float,
     return v - half, v + half
 
 
-def bootstrap_means(z: ArrayLike, b: int, seed: int = 0) -> Array:
-    """Column means of ``b`` nonparametric bootstrap resamples of the rows, shape (b, k).
+def _mix(x: NDArray[np.uint64]) -> NDArray[np.uint64]:
+    """The 64-bit finalizer of SplitMix64 (Steele, Lea & Flood 2014), a bijective mix."""
+    with np.errstate(over="ignore"):
+        x = (x ^ (x >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+        x = (x ^ (x >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+    return x ^ (x >> np.uint64(31))
 
-    Resampling indices are drawn in blocks (numpy Generator seeded with ``seed``) and turned
-    into counts, so every estimand shares the same resamples (paired comparisons stay paired).
+
+def poisson_counts(keys: ArrayLike, start: int, stop: int, seed: int = 0) -> Array:
+    """Poisson(1) resampling counts of replicates ``start..stop-1``, shape (stop - start, n).
+
+    The count of a record in a replicate is a function of its 64-bit ``keys`` entry (a hash
+    of the decision id), the replicate number and ``seed`` alone: any chunking or
+    partitioning of the records gives the same resamples, so per-chunk sums combine exactly.
+    A uniform from the mixed bits goes through the inverse Poisson(1) distribution function.
+    """
+    k = np.asarray(keys, dtype=np.uint64)
+    with np.errstate(over="ignore"):
+        base = _mix(np.array([seed % 2**64], dtype=np.uint64))
+        rep = _mix(base + np.arange(start, stop, dtype=np.uint64) * _GOLDEN)
+        x = _mix(k[None, :] ^ rep[:, None])
+    u = (x >> np.uint64(11)).astype(np.float64) * 2.0**-53
+    return np.searchsorted(_POISSON_CDF, u, side="right").astype(np.float64)
+
+
+def bootstrap_sums(z: ArrayLike, keys: ArrayLike, b: int, seed: int = 0) -> tuple[Array, Array]:
+    """Column sums of the rows of ``z`` and the row count in ``b`` Poisson bootstrap replicates.
+
+    The Poisson bootstrap (Hanley & MacGibbon 2006) weights each record by an independent
+    Poisson(1) count instead of drawing n records with replacement; the replicate mean of a
+    column is its sum over the count. Shapes (b, k) and (b,); sums of chunks add up.
     """
     a = np.asarray(z, dtype=np.float64)
-    n = a.shape[0]
     if b < 1:
         raise ReplayError(f"the bootstrap needs at least one resample, got B={b}")
-    if n == 0:
-        raise ReplayError("cannot bootstrap an empty sample")
-    rng = np.random.default_rng(seed)
-    block = max(1, _BOOTSTRAP_BLOCK // n)
-    out = np.empty((b, a.shape[1]))
-    for start in range(0, b, block):
-        m = min(block, b - start)
-        idx = rng.integers(0, n, size=(m, n))
-        idx += (np.arange(m) * n)[:, None]
-        counts = np.bincount(idx.ravel(), minlength=m * n).reshape(m, n)
-        out[start : start + m] = (counts @ a) / n
-    return out
+    sums = np.zeros((b, a.shape[1]))
+    counts = np.zeros(b)
+    if a.shape[0] == 0:
+        return sums, counts
+    block = max(1, _COUNT_BLOCK // a.shape[0])
+    for s in range(0, b, block):
+        e = min(s + block, b)
+        c = poisson_counts(keys, s, e, seed)
+        sums[s:e] = c @ a
+        counts[s:e] = c.sum(axis=1)
+    return sums, counts
 
 
 def percentile_interval(est: Estimand, boot: Array, level: float = 0.95) -> tuple[float, float]:
@@ -502,8 +531,9 @@ def summarize(
 ) -> dict[str, dict[str, float | None]]:
     """Estimates with intervals of the policy at ``offset`` (minus the one at ``baseline``).
 
-    ``interval`` is "clt" (delta method), "bootstrap" (percentiles of ``boot``, the output of
-    ``bootstrap_means``) or "bernstein" (needs ``spans``, see ``column_spans``). The clipped
+    ``interval`` is "clt" (delta method), "bootstrap" (percentiles of ``boot``, replicate
+    column means from ``bootstrap_sums``) or "bernstein" (needs ``spans``, see
+    ``column_spans``). The clipped
     entry carries the bias interval [bias_low, bias_bound] of Bottou et al. (2013): the target
     mass on clipped records is 1 - W (W the mean kept weight) and the rewards lie in
     ``reward_range``, so the clipped-away value lies in [lo (1 - W), hi (1 - W)].

@@ -778,12 +778,16 @@ def _report(total: ChunkResult, integrity: IntegrityReport, rows: pd.DataFrame) 
 
 
 # -- verify ----------------------------------------------------------------------------------------
+def fork_context() -> Any:
+    """Processes forked where the platform allows (they inherit imported decision code)."""
+    methods = multiprocessing.get_all_start_methods()
+    return multiprocessing.get_context("fork" if "fork" in methods else None)
+
+
 def _executor(jobs: int) -> Executor | None:
     if jobs == 1:
         return None
-    methods = multiprocessing.get_all_start_methods()
-    context = multiprocessing.get_context("fork" if "fork" in methods else None)
-    return ProcessPoolExecutor(max_workers=jobs, mp_context=context)
+    return ProcessPoolExecutor(max_workers=jobs, mp_context=fork_context())
 
 
 def _verify_task(

@@ -185,6 +185,16 @@ def test_estimates_equal_the_local_engine(ledger: Path, scheduler: str) -> None:
     assert 600 == remote.n and {"ips", "snips", "clipped", "dr"} == set(remote.estimates)
 
 
+def test_bootstrap_intervals_equal_the_local_engine(ledger: Path, scheduler: str) -> None:
+    """The per-piece Poisson bootstrap, seeded, gives the local engine's intervals."""
+    kw: dict[str, Any] = dict(reward="checkout", stream="recipe-card", path=[SUPPORT],
+                              overrides={"temperature": 0.3}, interval="bootstrap",
+                              bootstrap=300, seed=7)  # fmt: skip
+    local = estimate(ledger, **kw)
+    _close(local.to_dict(), estimate(ledger, engine="dask", scheduler=scheduler, **kw).to_dict())
+    assert 300 == local.settings["bootstrap"]
+
+
 def test_a_sweep_equals_the_local_engine(ledger: Path, scheduler: str) -> None:
     kw: dict[str, Any] = dict(reward="checkout", stream="recipe-card", path=[SUPPORT],
                               param="temperature", values=[0.3, 1.0])  # fmt: skip

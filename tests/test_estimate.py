@@ -373,6 +373,26 @@ def test_parquet_ledger_gives_the_sqlite_estimates(tmp_path, small):
     _same_estimates(a, b)
 
 
+def test_bootstrap_intervals_do_not_depend_on_the_ledger_format_or_processes(tmp_path, small):
+    """Poisson bootstrap counts follow each decision id: SQLite in 1 or 2 processes and
+    Parquet (other chunks) resample alike."""
+    led = dl.Ledger(tmp_path / "ledger", format="parquet")
+    shop.simulate_cards(led, 60, seed=3)
+    led.close()
+    kw: dict[str, Any] = dict(reward="checkout", overrides={"temperature": 0.3},
+                              interval="bootstrap", bootstrap=200, seed=4)  # fmt: skip
+    one = estimate(small, **kw)
+    _same_estimates(one, estimate(small, jobs=2, **kw))
+    _same_estimates(one, estimate(tmp_path / "ledger", format="parquet", **kw))
+    assert one.estimates["snips"]["low"] < one.estimates["snips"]["high"]
+
+
+def test_segments_need_a_field_with_few_values(cards):
+    """Segments by the decision id (one per record) would be as many as the records."""
+    with pytest.raises(ReplayError, match="more than 1000 distinct values"):
+        estimate(cards, reward="checkout", overrides={"temperature": 0.3}, by="decision_id")
+
+
 @pytest.mark.postgres
 def test_postgresql_ledger_gives_the_sqlite_estimates(postgres_url, small):
     led = dl.Ledger(postgres_url)

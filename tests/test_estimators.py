@@ -141,25 +141,62 @@ def test_bernstein_snips_bound_divides_numerator_and_denominator_bounds():
     assert (None, None) == (none["snips"]["low"], none["snips"]["high"])
 
 
+def _boot_means(z, keys, b, seed):
+    sums, counts = est.bootstrap_sums(z, keys, b, seed)
+    with np.errstate(invalid="ignore"):  # a replicate of 4 records may draw none of them
+        return sums / counts[:, None]
+
+
 def test_bootstrap_percentile_interval_agrees_with_scipy_bootstrap():
-    """Our vectorized bootstrap against scipy.stats.bootstrap (percentile method) for IPS."""
+    """The Poisson bootstrap against scipy.stats.bootstrap (percentile method) for IPS.
+
+    Both resample the same 2000 records; the Poisson bootstrap's percentile interval is
+    asymptotically that of the multinomial bootstrap (Hanley & MacGibbon 2006).
+    """
     rng = np.random.default_rng(11)
     w = rng.exponential(1.0, 2000)
     r = rng.random(2000)
     z = est.policy_columns(w, r, cap=10.0)
-    boot = est.bootstrap_means(z, 3000, seed=5)
-    lo, hi = est.percentile_interval(est.estimands()["ips"], boot, 0.95)
+    keys = rng.integers(0, 2**64, size=2000, dtype=np.uint64)
+    lo, hi = est.percentile_interval(est.estimands()["ips"], _boot_means(z, keys, 3000, 5), 0.95)
     ref = scipy.stats.bootstrap((w * r,), np.mean, n_resamples=3000, method="percentile",
                                 confidence_level=0.95, random_state=1)  # fmt: skip
     assert ref.confidence_interval.low == pytest.approx(lo, abs=0.006)
     assert ref.confidence_interval.high == pytest.approx(hi, abs=0.006)
 
 
+def test_poisson_counts_follow_the_poisson_1_distribution():
+    """Counts of 200 replicates x 5000 records against scipy.stats.poisson(1): chi-square."""
+    keys = np.arange(5000, dtype=np.uint64) * np.uint64(7919)
+    counts = est.poisson_counts(keys, 0, 200, seed=3).astype(int).ravel()
+    observed = np.bincount(counts, minlength=6)[:6].astype(float)
+    observed[5] += (counts > 5).sum()
+    expected = scipy.stats.poisson(1.0).pmf(np.arange(6)) * counts.size
+    expected[5] = scipy.stats.poisson(1.0).sf(4) * counts.size
+    assert scipy.stats.chisquare(observed, expected).pvalue > 0.001  # alarm level: common practice
+    assert 1.0 == pytest.approx(counts.mean(), abs=0.01)
+
+
+@given(cuts=chunk_cuts(40))
+@settings(max_examples=30, deadline=None)
+def test_bootstrap_sums_of_chunks_add_up_to_the_whole(cuts):
+    """Counts depend on each record's key only, so any chunking gives the same resamples."""
+    rng = np.random.default_rng(0)
+    z = rng.random((40, 3))
+    keys = rng.integers(0, 2**64, size=40, dtype=np.uint64)
+    whole, n = est.bootstrap_sums(z, keys, 25, seed=9)
+    bounds = zip([0, *cuts], [*cuts, 40], strict=True)
+    parts = [est.bootstrap_sums(z[a:b], keys[a:b], 25, seed=9) for a, b in bounds]
+    np.testing.assert_allclose(whole, sum(p[0] for p in parts), rtol=1e-12)
+    assert np.array_equal(n, sum(p[1] for p in parts))
+
+
 def test_bootstrap_is_seeded_and_paired():
     z = np.hstack([est.policy_columns([1.0, 2.0, 0.5, 3.0], [1.0, 0.0, 1.0, 1.0], cap=10.0)] * 2)
-    a = est.bootstrap_means(z, 50, seed=3)
-    assert np.array_equal(a, est.bootstrap_means(z, 50, seed=3))
-    assert not np.array_equal(a, est.bootstrap_means(z, 50, seed=4))
+    keys = np.array([11, 12, 13, 14], dtype=np.uint64)
+    a = _boot_means(z, keys, 50, 3)
+    assert np.array_equal(a, _boot_means(z, keys, 50, 3), equal_nan=True)
+    assert not np.array_equal(a, _boot_means(z, keys, 50, 4), equal_nan=True)
     # The same policy on both sides: every resample gives a difference of exactly 0.
     diff = est.summarize(est.Moments.of(z), reward_range=(0.0, 1.0), interval="bootstrap",
                          boot=a, baseline=est.WIDTH, names=("snips",))["snips"]  # fmt: skip
@@ -282,8 +319,7 @@ def test_weight_quantiles_are_numpy_quantiles():
                                interval="bootstrap"), "resamples"),
         (lambda: est.summarize(_moments([1.0], [1.0]), reward_range=(0, 1),
                                interval="bernstein"), "ranges"),
-        (lambda: est.bootstrap_means(np.ones((3, 2)), 0), "at least one"),
-        (lambda: est.bootstrap_means(np.ones((0, 2)), 5), "empty"),
+        (lambda: est.bootstrap_sums(np.ones((3, 2)), np.zeros(3, np.uint64), 0), "at least one"),
         (lambda: est.support_deficit([[0.5, 0.5]], [[1.0]]), "same shape"),
         (lambda: est.RidgeStats.of([[1.0]], [0], [1.0], [0], folds=1, actions=1).fit(0.0),
          "ridge penalty"),
