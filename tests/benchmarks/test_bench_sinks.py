@@ -1,10 +1,11 @@
 """Sustained write throughput of each sink against its raw baseline, measured in the same run.
 
 Run: python -m pytest tests/benchmarks/test_bench_sinks.py -m benchmark -s
-(PostgreSQL rows need DRAWLEDGER_TEST_POSTGRES_URL.) Results: docs/performance.md, "## Sinks".
+(PostgreSQL rows need DRAWLEDGER_TEST_POSTGRES_URL; ``run.py`` calls the ``measure_*`` functions.)
+Results: docs/performance.md, "## Sink throughput".
 
-Every measurement writes the same pre-built rows (100,000 decisions with one draw each, and an
-outcome for every third) in batches of 10,000, the writer's default batch size:
+Every measurement writes the same pre-built rows (100,000 decisions by default, with one draw
+each and an outcome for every third) in batches of 10,000, the writer's default batch size:
 
 - SQLite: ``SqlSink.write`` against raw ``sqlite3`` ``executemany`` of the same rows, one
   transaction per batch, same pragmas (WAL, synchronous NORMAL);
@@ -13,8 +14,8 @@ outcome for every third) in batches of 10,000, the writer's default batch size:
   from the same rows the same way;
 - PostgreSQL: ``SqlSink.write`` (COPY) against raw psycopg ``executemany`` and raw COPY.
 
-The end-to-end row records through ``Ledger.record_draw`` and ``flush()``: the serving-side cost
-(validation, JSON, hashing, queueing) plus the sink.
+The end-to-end measurement records through ``Ledger.record_draw`` and ``flush()``: the
+serving-side cost (validation, JSON, hashing, queueing) plus the sink.
 """
 
 from __future__ import annotations
@@ -41,14 +42,14 @@ BATCH = 10_000
 Row = tuple[Any, ...]
 
 
-def _rows(writer: str) -> tuple[list[Row], list[list[Row]], list[Row]]:
+def _rows(writer: str, n: int) -> tuple[list[Row], list[list[Row]], list[Row]]:
     decisions: list[Row] = []
     draws: list[list[Row]] = []
     outcomes: list[Row] = []
     prev = None
     seq = 0
     ts = 1_767_225_600.0
-    for i in range(N):
+    for i in range(n):
         did = f"{writer}.{i}"
         its = [(did, 0, "card", "softmax",
                 '{"options":["ramen","tacos","dal"],"scores":[0.1,0.5,0.2],"temperature":0.7}',
@@ -68,8 +69,8 @@ def _rows(writer: str) -> tuple[list[Row], list[list[Row]], list[Row]]:
     return decisions, draws, outcomes
 
 
-def _batches(data: tuple[list[Row], list[list[Row]], list[Row]]) -> list[Any]:
-    decisions, draws, outcomes = data
+def _batches(writer: str, n: int) -> list[Any]:
+    decisions, draws, outcomes = _rows(writer, n)
     out = []
     per = max(1, len(outcomes) * BATCH // len(decisions))
     for k, start in enumerate(range(0, len(decisions), BATCH)):
@@ -84,14 +85,10 @@ def _timed(fn: Callable[[], None]) -> float:
     return time.perf_counter() - start
 
 
-def _report(area: str, ours: float, raw: float, label: str) -> None:
-    print(f"\n[{area}] drawledger {N / ours:,.0f} decisions/s; {label} {N / raw:,.0f}/s; "
-          f"ratio {raw / ours:.2f}x of raw")  # fmt: skip
-
-
-def test_sqlite_sink_against_raw_executemany() -> None:
+def measure_sqlite(n: int = N) -> tuple[float, float]:
+    """Seconds to write ``n`` decisions through ``SqlSink`` and through raw ``executemany``."""
     with tempfile.TemporaryDirectory() as tmp:
-        batches = _batches(_rows("bench-sqlite"))
+        batches = _batches("bench-sqlite", n)
         sink = _sinks.SqlSink(_sinks.sqlalchemy_url(Path(tmp) / "sink.db"))
 
         def ours() -> None:
@@ -104,7 +101,7 @@ def test_sqlite_sink_against_raw_executemany() -> None:
         conn = sqlite3.connect(Path(tmp) / "raw.db", isolation_level=None)
         conn.execute("PRAGMA journal_mode=WAL")
         conn.execute("PRAGMA synchronous=NORMAL")
-        sql = {t: f"INSERT INTO {t} VALUES ({', '.join('?' * n)})" for t, n in
+        sql = {t: f"INSERT INTO {t} VALUES ({', '.join('?' * w)})" for t, w in
                (("decisions", 16), ("draws", 9), ("outcomes", 8))}  # fmt: skip
 
         def raw() -> None:
@@ -118,12 +115,13 @@ def test_sqlite_sink_against_raw_executemany() -> None:
         t_raw, t_ours = _timed(raw), _timed(ours)
         sink.close()
         conn.close()
-    _report("sqlite sink", t_ours, t_raw, "raw sqlite3 executemany")
+    return t_ours, t_raw
 
 
-def test_parquet_sink_against_raw_write_table() -> None:
+def measure_parquet(n: int = N) -> tuple[float, float]:
+    """Seconds to write ``n`` decisions through ``ParquetSink`` and through raw ``write_table``."""
     with tempfile.TemporaryDirectory() as tmp:
-        batches = _batches(_rows("bench-parquet"))
+        batches = _batches("bench-parquet", n)
         sink = _parquet.ParquetSink(str(Path(tmp) / "ledger"))
 
         def ours() -> None:
@@ -139,25 +137,23 @@ def test_parquet_sink_against_raw_write_table() -> None:
                     pq.write_table(table, Path(tmp) / f"raw-{name}-{k}.parquet")
 
         t_raw, t_ours = _timed(raw), _timed(ours)
-    _report("parquet sink", t_ours, t_raw, "raw pyarrow.parquet.write_table")
+    return t_ours, t_raw
 
 
-def test_postgresql_sink_against_raw_psycopg() -> None:
-    base = os.environ.get("DRAWLEDGER_TEST_POSTGRES_URL")
-    if not base:
-        pytest.skip("needs DRAWLEDGER_TEST_POSTGRES_URL")
+def measure_postgresql(url: str, n: int = N) -> tuple[float, float, float]:
+    """Seconds to write ``n`` decisions through ``SqlSink`` (COPY), raw psycopg ``executemany``
+    and raw psycopg COPY, in a schema of their own on the server at ``url`` (dropped after)."""
     import psycopg
     import sqlalchemy as sa
 
     schema = f"bench_{uuid.uuid4().hex[:8]}"
-    admin = sa.create_engine(base)
+    admin = sa.create_engine(url)
     with admin.begin() as c:
         c.exec_driver_sql(f"CREATE SCHEMA {schema}")
-    url = f"{base}?options=-csearch_path%3D{schema}"
     try:
-        batches = _batches(_rows("bench-pg"))
-        second = _batches(_rows("bench-pg-2"))  # a second run of ours needs other (writer, seq)
-        sink = _sinks.SqlSink(url)
+        batches = _batches("bench-pg", n)
+        second = _batches("bench-pg-2", n)  # a second run of ours needs other (writer, seq)
+        sink = _sinks.SqlSink(f"{url}{'&' if '?' in url else '?'}options=-csearch_path%3D{schema}")
 
         def ours() -> None:
             for batch in batches:
@@ -167,7 +163,7 @@ def test_postgresql_sink_against_raw_psycopg() -> None:
             for batch in second:
                 sink.write(*batch)
 
-        dsn = sa.engine.make_url(base).set(drivername="postgresql").render_as_string(False)
+        dsn = sa.engine.make_url(url).set(drivername="postgresql").render_as_string(False)
         conn = psycopg.connect(dsn, options=f"-csearch_path={schema}")
         conn.execute("CREATE TABLE raw_d (LIKE decisions INCLUDING ALL)")
         conn.execute("CREATE TABLE raw_dr (LIKE draws INCLUDING ALL)")
@@ -211,21 +207,19 @@ def test_postgresql_sink_against_raw_psycopg() -> None:
         t_copy = min(t_copy, _timed(raw_copy))
         sink.close()
         conn.close()
-        _report("postgresql sink", t_ours, t_many, "raw psycopg executemany")
-        _report("postgresql sink", t_ours, t_copy, "raw psycopg COPY")
     finally:
         with admin.begin() as c:
             c.exec_driver_sql(f"DROP SCHEMA {schema} CASCADE")
         admin.dispose()
+    return t_ours, t_many, t_copy
 
 
-@pytest.mark.parametrize("fmt", ["sqlite", "parquet"])
-def test_end_to_end_recording_throughput(fmt: str) -> None:
-    """record_draw + flush through the background writer: the serving-side cost included."""
+def measure_end_to_end(fmt: str, n: int = N // 2) -> tuple[float, int]:
+    """Seconds to record ``n`` declared draws with ``record_draw`` on a fresh ledger of ``fmt``
+    ("sqlite" or "parquet") and ``flush()``, and how many records were spilled on the way."""
     with tempfile.TemporaryDirectory() as tmp:
         target = Path(tmp) / ("x.db" if fmt == "sqlite" else "ledger")
         led = dl.Ledger(target, format="parquet" if fmt == "parquet" else None)
-        n = N // 2
 
         def record() -> None:
             for i in range(n):
@@ -236,6 +230,38 @@ def test_end_to_end_recording_throughput(fmt: str) -> None:
 
         elapsed = _timed(record)
         led.close()
-        spilled = led.stats()["spilled"]
+        spilled = int(led.stats()["spilled"])
+    return elapsed, spilled
+
+
+def _report(area: str, ours: float, raw: float, label: str) -> None:
+    print(f"\n[{area}] drawledger {N / ours:,.0f} decisions/s; {label} {N / raw:,.0f}/s; "
+          f"ratio {raw / ours:.2f}x of raw")  # fmt: skip
+
+
+def test_sqlite_sink_against_raw_executemany() -> None:
+    t_ours, t_raw = measure_sqlite()
+    _report("sqlite sink", t_ours, t_raw, "raw sqlite3 executemany")
+
+
+def test_parquet_sink_against_raw_write_table() -> None:
+    t_ours, t_raw = measure_parquet()
+    _report("parquet sink", t_ours, t_raw, "raw pyarrow.parquet.write_table")
+
+
+def test_postgresql_sink_against_raw_psycopg() -> None:
+    url = os.environ.get("DRAWLEDGER_TEST_POSTGRES_URL")
+    if not url:
+        pytest.skip("needs DRAWLEDGER_TEST_POSTGRES_URL")
+    t_ours, t_many, t_copy = measure_postgresql(url)
+    _report("postgresql sink", t_ours, t_many, "raw psycopg executemany")
+    _report("postgresql sink", t_ours, t_copy, "raw psycopg COPY")
+
+
+@pytest.mark.parametrize("fmt", ["sqlite", "parquet"])
+def test_end_to_end_recording_throughput(fmt: str) -> None:
+    """record_draw + flush through the background writer, serving-side cost included; nothing
+    is spilled."""
+    elapsed, spilled = measure_end_to_end(fmt)
     assert 0 == spilled
-    print(f"\n[end to end {fmt}] {n / elapsed:,.0f} declared draws/s recorded and committed")
+    print(f"\n[end to end {fmt}] {N // 2 / elapsed:,.0f} declared draws/s recorded and committed")
