@@ -5,9 +5,11 @@ docs/ledger.md). The client lists the part files of every partition, in path ord
 them into *pieces* exactly as the local engine cuts a ledger into chunks: consecutive part
 files until a piece holds at least ``chunk_size`` decisions. Each piece is one task on the
 cluster running the same pure per-chunk function as the local engine (``verify_chunk``,
-``chunk_state``); the client combines the results in piece order. The local and the Dask
-engine therefore see the same chunks and give the same results (estimates up to
-floating-point rounding of the combine step).
+``chunk_state``, the stages of ``_pieces``); the client combines the results in piece order.
+The local and the Dask engine therefore see the same chunks and give the same results
+(estimates up to floating-point rounding of the combine step). An estimate's pieces keep their
+first stage's data in a file of the worker that made it, in the worker's local directory, until
+the last stage; the files are removed at the end of the run.
 
 Failures never yield partial numbers: a task whose worker dies is rescheduled by Dask
 (``distributed.scheduler.allowed-failures`` times); a piece that still fails, an error inside a
@@ -26,6 +28,8 @@ from __future__ import annotations
 import contextlib
 import logging
 import os
+import shutil
+import uuid
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import CancelledError
 from dataclasses import dataclass, replace
@@ -576,24 +580,57 @@ def stream_partitions(root: str | os.PathLike[str]) -> dict[str, list[Partition]
     return out
 
 
-def _first_piece(piece: Piece, flagged: frozenset[str], job: Job, rewards: Rewards) -> PieceData:
+@dataclass(frozen=True)
+class _Held:
+    """Where a piece's first-stage data waits between the stages: a file of one worker."""
+
+    address: str
+    path: str
+
+
+def _evaluate(piece: Piece, flagged: frozenset[str], job: Job, rewards: Rewards) -> PieceData:
     from drawledger.replay._pieces import evaluate_piece
 
     rows, draws = read_piece(piece)
     return evaluate_piece(rows, draws, flagged, job, rewards)
 
 
-def _facts(data: PieceData) -> tuple[int, Facts]:
-    return data.facts.rows, data.facts
+def _first_piece(piece: Piece, flagged: frozenset[str], job: Job, rewards: Rewards,
+                 run: str) -> tuple[int, tuple[_Held, Facts]]:  # fmt: skip
+    """Stage 1 of a piece; its data goes to a file in the worker's local directory."""
+    from distributed import get_worker
+
+    from drawledger.replay._pieces import save
+
+    data = _evaluate(piece, flagged, job, rewards)
+    worker = get_worker()
+    folder = Path(worker.local_directory) / run
+    folder.mkdir(exist_ok=True)
+    where = os.fspath(folder / f"piece-{piece.index}.pickle")
+    save(data, where)
+    return data.facts.rows, (_Held(worker.address, where), data.facts)
 
 
-def _stage(fn: Callable[[PieceData, Any], Any], data: PieceData, arg: Any) -> tuple[int, Any]:
+def _stage(fn: Callable[[PieceData, Any], Any], arg: Any, held: _Held, piece: Piece,
+           flagged: frozenset[str], job: Job, rewards: Rewards) -> tuple[int, Any]:  # fmt: skip
+    """A later stage of a piece, on the worker that holds its data; on another worker (the
+    first one died or was busy) the first stage is run again, with the same result."""
+    from drawledger.replay._pieces import load
+
+    try:
+        data = load(held.path)
+    except FileNotFoundError:
+        data = _evaluate(piece, flagged, job, rewards)
     return data.facts.rows, fn(data, arg)
 
 
+def _remove(run: str, dask_worker: Any = None) -> None:
+    shutil.rmtree(Path(dask_worker.local_directory) / run, ignore_errors=True)
+
+
 class _DaskRunner:
-    """The estimate's stages as tasks; each piece's data stays in its worker's memory between
-    the stages (Dask recomputes it if that worker is lost)."""
+    """The estimate's stages as tasks. Each piece's data waits in a file of the worker that
+    made it, and the later stages of the piece are sent to that worker."""
 
     def __init__(self, client: Client, plan: Sequence[Piece], flagged: Future, rewards: Future,
                  progress: bool) -> None:  # fmt: skip
@@ -602,24 +639,35 @@ class _DaskRunner:
         self.flagged = flagged
         self.rewards = rewards
         self.progress = progress
-        self.data: list[Future] = []
+        self.run = f"drawledger-estimate-{uuid.uuid4().hex}"
+        self.held: list[_Held] = []
+        self.job: Job | None = None
 
     def first(self, job: Job) -> list[Facts]:
-        self.data = [self.client.submit(_first_piece, piece, self.flagged, job, self.rewards,
-                                        pure=False) for piece in self.plan]  # fmt: skip
-        facts = [self.client.submit(_facts, d, pure=False) for d in self.data]
+        self.job = job
         advance, bar = _progress(self.progress, sum(p.rows for p in self.plan),
                                  "replaying and evaluating")  # fmt: skip
         try:
-            return list(gather_pieces(self.client, facts, self.plan, command="estimate",
-                                      advance=advance))  # fmt: skip
+            found = list(run_pieces(self.client, _first_piece, self.plan, self.flagged, job,
+                                    self.rewards, self.run, command="estimate",
+                                    advance=advance))  # fmt: skip
         finally:
             if bar is not None:
                 bar.stop()
+        self.held = [h for h, _ in found]
+        return [f for _, f in found]
 
     def map(self, fn: Callable[[PieceData, Any], T], arg: Any) -> list[T]:
-        futures = [self.client.submit(_stage, fn, d, arg, pure=False) for d in self.data]
+        shared = self.client.scatter([arg], broadcast=True)[0]
+        futures = [self.client.submit(_stage, fn, shared, held, piece, self.flagged, self.job,
+                                      self.rewards, workers=[held.address],
+                                      allow_other_workers=True, pure=False)
+                   for held, piece in zip(self.held, self.plan, strict=True)]  # fmt: skip
         return list(gather_pieces(self.client, futures, self.plan, command="estimate"))
+
+    def close(self) -> None:
+        with contextlib.suppress(Exception):  # a worker that is gone took its files along
+            self.client.run(_remove, self.run)
 
 
 def _count(rewards: Rewards) -> int:
@@ -632,20 +680,21 @@ def estimate_pass(
 ) -> Pass:  # fmt: skip
     """``_pieces.run_pass`` with every stage of every piece a task on a Dask cluster.
 
-    Rewards are read per outcomes part and combined in a task; the integrity check runs as tasks
-    beside them, and its flagged decisions reach the pieces, as in the local engine.
+    The rewards table is read by one task and the integrity check runs as tasks beside it; the
+    flagged decisions reach the pieces, as in the local engine.
     """
-    from drawledger.replay._pieces import Rewards, reward_part, run_pass
+    from drawledger.replay._pieces import read_rewards, run_pass
 
     job = replace(job, settings=_absolute(job.settings))
-    outcome_parts = [os.fspath(p.path) for p in _parquet.parts(root, "outcomes")]
     with cluster(scheduler) as client:
         checking = _Integrity(client, root, integrity_key)
-        parts = [_submit_one(client, reward_part, p, job.reward) for p in outcome_parts]
-        rewards = _submit_one(client, Rewards.of, parts)
+        rewards = _submit_one(client, read_rewards, os.fspath(root), "parquet", job.reward)
         if not _one_result(client.submit(_count, rewards), "estimate", "reading outcomes"):
             raise ReplayError(f"no outcome named {job.reward!r} in the ledger")
         flagged = frozenset(checking.report("estimate").decision_ids)
         shared = client.scatter([flagged], broadcast=True)[0]  # one object, not its items
         runner = _DaskRunner(client, plan, shared, rewards, progress)
-        return run_pass(runner, job, cap=cap, bootstrap=bootstrap, weights=weights)
+        try:
+            return run_pass(runner, job, cap=cap, bootstrap=bootstrap, weights=weights)
+        finally:
+            runner.close()

@@ -31,7 +31,6 @@ from collections import Counter
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any, Protocol, TypeVar
 
 import numpy as np
@@ -57,11 +56,12 @@ __all__ = [
     "Runner",
     "choose_stream",
     "evaluate_piece",
+    "load",
     "local_runner",
     "read_rewards",
-    "reward_part",
     "ridge_piece",
     "run_pass",
+    "save",
     "sum_piece",
 ]
 
@@ -81,35 +81,52 @@ def _digests(ids: Iterable[Any]) -> np.ndarray:
     )
 
 
+_REWARD = np.dtype([("key", "S16"), ("value", np.float64)])
+
+
 @dataclass(frozen=True)
 class Rewards:
     """The total of one outcome per decision, looked up by a digest of the decision id."""
 
-    keys: np.ndarray  # sorted distinct digests
-    values: np.ndarray
+    table: np.ndarray  # (key, value) records sorted by key, keys distinct
     count: int  # outcome records of that name
 
     @classmethod
-    def of(cls, parts: Sequence[tuple[np.ndarray, np.ndarray]]) -> Rewards:
-        """Digests and values of several parts, summed per decision."""
-        keys = np.concatenate([k for k, _ in parts]) if parts else np.array([], dtype="S16")
-        values = np.concatenate([v for _, v in parts]) if parts else np.array([])
-        distinct, inverse = np.unique(keys, return_inverse=True)
-        totals = np.bincount(inverse.ravel(), weights=values, minlength=distinct.size)
-        return cls(distinct, totals, int(keys.size))
+    def of(cls, parts: Iterable[tuple[np.ndarray, np.ndarray]], capacity: int) -> Rewards:
+        """Digests and values, summed per decision; ``capacity`` bounds their number (pages
+        of the table beyond what is filled are never touched, so never resident)."""
+        table = np.empty(capacity, dtype=_REWARD)
+        at = 0
+        for keys, values in parts:
+            table["key"][at : at + keys.size] = keys
+            table["value"][at : at + keys.size] = values
+            at += keys.size
+        table = table[:at]
+        table.sort(order="key")  # in place
+        keys = table["key"]
+        first = np.ones(at, dtype=bool)
+        np.not_equal(keys[1:], keys[:-1], out=first[1:])
+        if not first.all():  # several outcomes of that name for a decision: their sum
+            starts = np.flatnonzero(first)
+            summed = np.empty(starts.size, dtype=_REWARD)
+            summed["key"] = keys[starts]
+            summed["value"] = np.add.reduceat(table["value"], starts)
+            table = summed
+        return cls(table, at)
 
     def lookup(self, ids: Iterable[Any]) -> np.ndarray:
         """The total of each decision id (NaN: no such outcome)."""
         wanted = _digests(ids)
+        keys = self.table["key"]
         out = np.full(wanted.size, np.nan)
-        if self.keys.size and wanted.size:
-            pos = np.minimum(np.searchsorted(self.keys, wanted), self.keys.size - 1)
-            hit = self.keys[pos] == wanted
-            out[hit] = self.values[pos[hit]]
+        if keys.size and wanted.size:
+            pos = np.minimum(np.searchsorted(keys, wanted), keys.size - 1)
+            hit = keys[pos] == wanted
+            out[hit] = self.table["value"][pos[hit]]
         return out
 
 
-def reward_part(path: str, reward: str) -> tuple[np.ndarray, np.ndarray]:
+def _reward_part(path: str, reward: str) -> tuple[np.ndarray, np.ndarray]:
     """Digests of the decision ids and values of the ``reward`` outcomes of one Parquet part."""
     import pyarrow as pa
     import pyarrow.compute as pc
@@ -128,25 +145,28 @@ def reward_part(path: str, reward: str) -> tuple[np.ndarray, np.ndarray]:
 
 
 def read_rewards(ledger: str, format: str | None, reward: str) -> Rewards:
-    """The ``reward`` outcome of every decision of a ledger (16 bytes + 8 per decision)."""
+    """The ``reward`` outcome of every decision of a ledger (24 bytes per decision)."""
     if is_parquet(ledger, format):
+        import pyarrow.parquet as pq
+
         from drawledger import _parquet
 
-        return Rewards.of([reward_part(os.fspath(p.path), reward)
-                           for p in _parquet.parts(ledger, "outcomes")])  # fmt: skip
+        files = [os.fspath(p.path) for p in _parquet.parts(ledger, "outcomes")]
+        capacity = sum(pq.read_metadata(f).num_rows for f in files)
+        return Rewards.of((_reward_part(f, reward) for f in files), capacity)
     engine = open_engine(ledger)
-    parts = []
     try:
         with engine.connect() as conn:
+            capacity = conn.execute(sa.text("SELECT COUNT(*) FROM outcomes WHERE name = :n"),
+                                    {"n": reward}).scalar_one()  # fmt: skip
             result = conn.execution_options(yield_per=100_000).execute(
                 sa.text("SELECT decision_id, value FROM outcomes WHERE name = :n"), {"n": reward}
             )
-            for rows in result.partitions():
-                parts.append((_digests(r[0] for r in rows),
-                              np.array([r[1] for r in rows], dtype=np.float64)))  # fmt: skip
+            parts = ((_digests(r[0] for r in rows), np.array([r[1] for r in rows], dtype=float))
+                     for rows in result.partitions())  # fmt: skip
+            return Rewards.of(parts, int(capacity))
     finally:
         engine.dispose()
-    return Rewards.of(parts)
 
 
 # -- streams and pieces -------------------------------------------------------------------------
@@ -395,7 +415,7 @@ def evaluate_piece(rows: Sequence[tuple[Any, ...]], draws: Iterable[tuple[Any, .
     chosen = [texts[d] for d in ids]
     recs = Records(ids=ids, fn=[c[0] for c in chosen], inputs=[c[1] for c in chosen],
                    params=[c[2] for c in chosen], actions=frame["action"].astype(str).tolist(),
-                   mu=frame["propensity"].to_numpy(dtype=float), r=r,
+                   mu=frame["propensity"].to_numpy(dtype=float, copy=True), r=r,
                    methods=frame["propensity_method"].tolist())  # fmt: skip
     path, allow = list(job.settings.path), list(job.settings.allow)
     targets = [Target(p, path, allow) for p in job.policies]
@@ -683,12 +703,22 @@ def _share(flagged: frozenset[str], rewards: Rewards) -> None:
     _SHARED.update(flagged=flagged, rewards=rewards)
 
 
+def save(data: PieceData, where: str) -> None:
+    with open(where, "wb") as f:
+        pickle.dump(data, f, protocol=pickle.HIGHEST_PROTOCOL)
+
+
+def load(where: str) -> PieceData:
+    with open(where, "rb") as f:
+        data: PieceData = pickle.load(f)  # a file this run wrote (``save``)
+        return data
+
+
 def _first(task: Task, job: Job, where: str) -> Facts:
     """Stage 1 of one local chunk; its data goes to the file ``where``, its facts back."""
     rows, draws = task.read()
     data = evaluate_piece(rows, draws, _SHARED["flagged"], job, _SHARED["rewards"])
-    with open(where, "wb") as f:
-        pickle.dump(data, f, protocol=pickle.HIGHEST_PROTOCOL)
+    save(data, where)
     return data.facts
 
 
@@ -737,11 +767,7 @@ class LocalRunner:
         return facts
 
     def map(self, fn: Callable[[PieceData, Any], T], arg: Any) -> list[T]:
-        out = []
-        for where in self.files:
-            with open(where, "rb") as f:
-                out.append(fn(pickle.load(f), arg))  # our own file, written by _first
-        return out
+        return [fn(load(where), arg) for where in self.files]
 
 
 @contextlib.contextmanager

@@ -561,14 +561,12 @@ BOUNDS = """What bounds each number (from profiles of these runs; each area's ow
 - The Dask engine starts a cluster (seconds) and ships each piece's results to the client; on
   ledgers of a few thousand decisions that overhead dominates and the local engine is faster.
 - `estimate` reads the ledger once, piece by piece: each piece is replayed, re-run under every
-  policy and reduced to compact per-record arrays that stay where they were made (a temporary
-  file of the local engine, a worker's memory on Dask); the reward model's Gram matrices,
-  the estimators' moments and the Poisson bootstrap sums are then computed per piece and
-  combined. The client holds the rewards table (24 bytes per decision with that outcome) and
-  the target's weights (8 bytes per used record, for the quantiles and the report's
-  histogram); Dask workers hold their pieces' arrays (a few hundred bytes per record with
-  distinct inputs, less when inputs repeat), and the local engine writes them to the
-  temporary directory."""
+  policy and reduced to compact per-record arrays, kept in a temporary file where they were
+  made (the local temporary directory, a Dask worker's local directory); the reward model's
+  Gram matrices, the estimators' moments and the Poisson bootstrap sums are then computed per
+  piece and combined. The client holds the rewards table (24 bytes per decision with that
+  outcome) and the target's weights (8 bytes per used record, for the quantiles and the
+  report's histogram); on Dask each worker holds the rewards table instead of the client."""
 
 
 def main() -> int:
