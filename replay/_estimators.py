@@ -59,7 +59,6 @@ __all__ = [
     "percentile_interval",
     "poisson_counts",
     "policy_columns",
-    "scaling",
     "summarize",
     "support_deficit",
     "weight_quantiles",
@@ -403,12 +402,6 @@ def support_deficit(target: ArrayLike, logging: ArrayLike) -> Array:
 
 
 # -- doubly robust reward model -------------------------------------------------------------
-def scaling(m: Moments) -> tuple[Array, Array]:
-    """Centre and scale of features from their moments (constant features keep scale 1)."""
-    sd = np.sqrt(np.maximum(np.diag(m.cov), 0.0))
-    return m.mean.copy(), np.where(sd > 0.0, sd, 1.0)
-
-
 def _design(x: Array) -> Array:
     return np.hstack([np.ones((x.shape[0], 1)), x])
 

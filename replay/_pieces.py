@@ -382,6 +382,11 @@ def _labels(by: str, frame: pd.DataFrame, inputs: Sequence[str]) -> list[str]:
     return labels
 
 
+def _too_many(by: str) -> ReplayError:
+    return ReplayError(f"--by {by!r} has more than {MAX_SEGMENTS} distinct values; segments "
+                       "need a field with few values")  # fmt: skip
+
+
 def _ratio_bound(target: _Dists | None, logging: _Dists | None, width: int) -> float | None:
     """The largest target / logging probability ratio over every action of every record."""
     if target is None or logging is None:
@@ -443,6 +448,8 @@ def evaluate_piece(rows: Sequence[tuple[Any, ...]], draws: Iterable[tuple[Any, .
         facts.feature_m2 = count @ (x - facts.feature_mean) ** 2
     if job.by is not None:
         codes_l, values = pd.factorize(pd.Series(_labels(job.by, frame, recs.inputs)))
+        if len(values) > MAX_SEGMENTS:
+            raise _too_many(job.by)
         label, facts.labels = codes_l.astype(np.int32), [str(v) for v in values]
     keys = pd.util.hash_pandas_object(pd.Series(ids), index=False).to_numpy()
     return PieceData(
@@ -649,8 +656,7 @@ def run_pass(runner: Runner, job: Job, *, cap: float, bootstrap: int, weights: b
         raise ReplayError(f"no verified decisions with a {job.reward!r} reward to estimate from"
                           + (f" (excluded: {dict(excluded)})" if excluded else ""))  # fmt: skip
     if job.by is not None and len({v for f in used for v in f.labels}) > MAX_SEGMENTS:
-        raise ReplayError(f"--by {job.by!r} has more than {MAX_SEGMENTS} distinct values; "
-                          "segments need a field with few values")  # fmt: skip
+        raise _too_many(job.by)
     low = min(f.reward_low for f in used)
     high = max(f.reward_high for f in used)
     rr = job.reward_range or (min(0.0, low), max(0.0, high))
