@@ -401,12 +401,12 @@ def evaluate_piece(rows: Sequence[tuple[Any, ...]], draws: Iterable[tuple[Any, .
     """Stage 1: replay the piece and re-run its usable records under every policy."""
     k = len(job.policies)
     facts = Facts(rows=len(rows))
+    rows = [r for r in rows if str(r[1]) == job.stream]  # other streams are not replayed
     mine = flagged & {r[0] for r in rows} if flagged else frozenset()
     checked = verify_chunk(rows, draws, mine, job.settings)
     if not checked.rows:
         return _empty(facts, k)
     frame = pd.concat(checked.rows, ignore_index=True)
-    frame = frame[frame["stream"] == job.stream]
     facts.total = len(frame)
     texts: dict[str, tuple[Any, Any, Any]] = {}
     for row in rows:
