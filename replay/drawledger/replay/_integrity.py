@@ -358,8 +358,8 @@ def _check_parquet(root: Path, key: bytes, report: IntegrityReport) -> None:
         for p in plist:
             by_tag.setdefault(p.tag, []).append((p.first, order, p))
     for tag in sorted(by_tag):
-        plist = sorted(by_tag[tag], key=lambda t: t[:2])
-        _walk(report, _parquet_chain(root, plist, key, dup_ids, report), dup_ids)
+        ordered = sorted(by_tag[tag], key=lambda t: t[:2])
+        _walk(report, _parquet_chain(root, ordered, key, dup_ids, report), dup_ids)
 
 
 def _load_part(

@@ -187,8 +187,9 @@ def _summary(g: Group, has_dr: bool, bounds: tuple[float, float], s: _Settings,
         with np.errstate(divide="ignore", invalid="ignore"):
             boot = g.boot / g.boot_n[:, None]
     spans = np.concatenate([est.column_spans(b, s.cap, s.reward_range) for b in bounds])
-    common = {"reward_range": s.reward_range, "level": s.level, "interval": s.interval,
-              "boot": boot, "spans": spans, "names": names}  # fmt: skip
+    common: dict[str, Any] = {"reward_range": s.reward_range, "level": s.level,
+                              "interval": s.interval, "boot": boot, "spans": spans,
+                              "names": names}  # fmt: skip
     return {
         "n": int(m.n),
         "estimates": est.summarize(m, offset=0, **common),

@@ -214,7 +214,7 @@ def _simulate(db: Path, sessions: int, seed: int, progress: bool) -> None:
     ledger = dl.Ledger(db)
     # Reproducible draw seeds for the demo only (production seeds come from the OS CSPRNG).
     ledger._seed_source = seed_sequence(f"drawledger-demo-{seed}")
-    decisions = (grocery.feature_card, grocery.reminder_delay)
+    decisions: tuple[dl.Decision[Any], ...] = (grocery.feature_card, grocery.reminder_delay)
     previous = [d.ledger for d in decisions]
     for d in decisions:
         d.ledger = ledger
@@ -306,7 +306,7 @@ def run_demo(
     with _stage("sweep", seconds):
         delay = sweep(db, param="nominal_minutes", values=grid, stream="reminder-delay", **common)
     sim = grocery.ShopperSimulator
-    truth = {
+    truth: dict[str, Any] = {
         "logging": sim.true_value(),
         "temperature": sim.true_value(temperature=TARGET_TEMPERATURE),
         "delay": [sim.true_value(nominal_minutes=m) for m in grid],

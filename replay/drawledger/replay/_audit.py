@@ -410,7 +410,7 @@ def _probabilities(kind: str, ds: list[dict[str, Any]], k: int) -> tuple[FloatAr
     """Declared probabilities (declarations x options) and, per declaration, what is wrong."""
     bad: list[str] = [""] * len(ds)
 
-    def flag(mask: npt.NDArray[np.bool_], reason: str) -> None:
+    def flag(mask: Any, reason: str) -> None:
         for i in np.flatnonzero(mask):
             bad[i] = bad[i] or f"invalid declaration: {reason}"
 
@@ -887,7 +887,8 @@ def _cells(
     m = sparse.csr_matrix((p, (step, key)), shape=(len(chosen), k))
     outer = np.asarray((m.T @ m).todense())
     observed = np.bincount(key[chosen], minlength=k).astype(np.float64)
-    return _Cells(keys, observed, np.bincount(key, weights=p, minlength=k), outer)
+    expected = np.bincount(key, weights=p, minlength=k).astype(np.float64)
+    return _Cells(keys, observed, expected, outer)
 
 
 CAL_KEYS = [f"[{lo:g}, {hi:g})" for lo, hi in zip(CAL_EDGES, [*CAL_EDGES[1:], 1.0], strict=True)]

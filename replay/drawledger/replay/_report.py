@@ -596,7 +596,7 @@ def _estimate_block(w: WhatIf, r: EstimateReport) -> str:
         ("diagnostic", "value"),
         [
             ("records used", _num(r.n)),
-            ("effective sample size (Kish)", f"{float(d['ess']):,.0f}"),
+            ("effective sample size (Kish)", _num(None if d["ess"] is None else round(d["ess"]))),
             ("largest weight", _num(d["max_weight"])),
             ("support deficit", _num(d.get("support_deficit"))),
             ("logging policy mean (observed)", _num(r.logging_value)),
