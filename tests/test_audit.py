@@ -218,7 +218,7 @@ def test_holm_correction_runs_across_the_tests_of_a_stream() -> None:
     """p_adjusted is Holm's adjustment of the stream's p-values (never below the raw p)."""
     report = audit_tables(*synth.softmax(rng(3), 2000))
     tested = [t for t in report.tests if t.p_value is not None]
-    from drawledger.replay._stats import holm
+    from drawledger.replay.audit._stats import holm
 
     assert holm([t.p_value for t in tested]) == [t.p_adjusted for t in tested]  # type: ignore[misc]
     assert all(t.p_adjusted >= t.p_value for t in tested)  # type: ignore[operator]

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from drawledger.replay import _stats
+from drawledger.replay.audit import _stats
 
 
 def test_pearson_reference_600_400_against_equal_shares() -> None:

@@ -18,8 +18,8 @@ from pathlib import Path
 
 import pytest
 
-from drawledger.replay._integrity import check_integrity
-from drawledger.replay._io import read_tables
+from drawledger.replay.integrity import check_integrity
+from drawledger.replay.sources import read_tables
 
 WORKER = """
 import random, sys

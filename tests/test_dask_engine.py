@@ -26,9 +26,11 @@ import pytest
 import drawledger as dl
 from drawledger.cli import main
 from drawledger.exceptions import ReplayError
-from drawledger.replay import _dask, estimate, sweep, verify
-from drawledger.replay._audit import audit
-from drawledger.replay._verify import iter_chunks
+from drawledger.replay import estimate, sources, sweep, verify
+from drawledger.replay.audit import audit
+from drawledger.replay.engines import NO_PROFILER
+from drawledger.replay.engines import _dask as dask_engine
+from drawledger.replay.sources import iter_chunks
 
 ROOT = Path(__file__).resolve().parent.parent
 SUPPORT = ROOT / "tests" / "support"
@@ -98,7 +100,7 @@ def gapped(ledger: Path, tmp_path_factory: pytest.TempPathFactory) -> Path:
 def scheduler() -> Iterator[str]:
     from distributed import LocalCluster
 
-    with dask.config.set({"distributed.scheduler.allowed-failures": 1, **_dask.NO_PROFILER}):
+    with dask.config.set({"distributed.scheduler.allowed-failures": 1, **NO_PROFILER}):
         cluster = LocalCluster(
             n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
             scheduler_port=0, dashboard_address=":0",
@@ -112,7 +114,7 @@ def _verify(ledger: Path, **kw: Any) -> Any:
 
 
 def test_the_ledger_is_partitioned_by_stream_and_date(ledger: Path) -> None:
-    names = [p.name for p in _dask.partitions(ledger)]
+    names = [p.name for p in sources.partitions(ledger)]
     streams = {n.split("/")[0] for n in names}
     assert {"recipe-card", "reminder-delay", "free-delivery", "legacy-coupon"} == streams
     assert {"2026-01-01", "2026-01-02"} == {n.split("/")[1] for n in names}
@@ -120,9 +122,9 @@ def test_the_ledger_is_partitioned_by_stream_and_date(ledger: Path) -> None:
 
 def test_pieces_are_the_local_engines_chunks(ledger: Path) -> None:
     """Each piece holds exactly the decisions of one chunk of the local engine, in order."""
-    plan = _dask.pieces(_dask.partitions(ledger), CHUNK)
+    plan = sources.pieces(sources.partitions(ledger), CHUNK)
     local = [[r[0] for r in rows] for rows, _ in iter_chunks(ledger, size=CHUNK)]
-    assert local == [[r[0] for r in _dask.read_piece(p)[0]] for p in plan]
+    assert local == [[r[0] for r in sources.read_piece(p)[0]] for p in plan]
     assert [len(c) for c in local] == [p.rows for p in plan]
     assert len(plan) > 4
 
@@ -250,7 +252,7 @@ def test_a_worker_that_dies_every_time_fails_the_command(
 def test_an_unreachable_scheduler_is_a_clear_error(
     ledger: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    monkeypatch.setattr(_dask, "CONNECT_TIMEOUT", 1.0)
+    monkeypatch.setattr(dask_engine, "CONNECT_TIMEOUT", 1.0)
     started = time.monotonic()
     with pytest.raises(
         ReplayError, match=r"cannot reach the Dask scheduler at 'tcp://127\.0\.0\.1:9'"
@@ -277,7 +279,7 @@ def test_the_synthetic_benchmark_ledger_replays(tmp_path: Path, scheduler: str) 
     local = verify(root, path=[SUPPORT], keep_rows=False, chunk_size=100)
     assert local.ok and 600 == local.verified and local.integrity.ok
     assert {"recipe-card", "reminder-delay"} == set(local.by_stream)
-    assert 6 == len(_dask.partitions(root))
+    assert 6 == len(sources.partitions(root))
     remote = verify(root, path=[SUPPORT], keep_rows=False, chunk_size=100, engine="dask",
                     scheduler=scheduler)  # fmt: skip
     assert local.to_dict() == remote.to_dict()

@@ -14,10 +14,10 @@ from scipy import integrate, special, stats
 import drawledger as dl
 from drawledger.cli import main
 from drawledger.exceptions import LedgerError, ReplayError
-from drawledger.replay import _grocery as grocery
 from drawledger.replay import run_demo
-from drawledger.replay._demo import _simulate
-from drawledger.replay._grocery import ShopperSimulator
+from drawledger.replay.demo import grocery
+from drawledger.replay.demo._run import _simulate
+from drawledger.replay.demo.grocery import ShopperSimulator
 
 INTERVAL = r"\[\d\.\d{4}, \d\.\d{4}\]"
 

@@ -18,7 +18,7 @@ import drawledger as dl
 from drawledger._records import to_json
 from drawledger.exceptions import ReplayError
 from drawledger.replay import action_distribution, propensity
-from drawledger.replay._enumerate import MONTE_CARLO, Memo, from_run, remembered
+from drawledger.replay.propensity import MONTE_CARLO, Memo, from_run, remembered
 
 led = dl.Ledger(Path(tempfile.gettempdir()) / "drawledger-enumerate-never-written.db")
 

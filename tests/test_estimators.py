@@ -13,7 +13,7 @@ from sklearn.linear_model import Ridge
 from strategies import chunk_cuts, weighted_rewards
 
 from drawledger.exceptions import ReplayError
-from drawledger.replay import _estimators as est
+from drawledger.replay.estimate import _estimators as est
 
 HAND_W = [2.0, 0.0, 2.0, 0.5]
 HAND_R = [1.0, 1.0, 0.0, 1.0]

@@ -20,7 +20,7 @@ from drawledger.exceptions import (
     NotADecisionError,
     ReplayError,
 )
-from drawledger.replay._imports import load_inputs, load_params, resolve_decision
+from drawledger.replay.verify import load_inputs, load_params, resolve_decision
 
 CANARY = """
 from pathlib import Path

@@ -15,7 +15,7 @@ import pytest
 
 import drawledger as dl
 from drawledger import _parquet, _records
-from drawledger.replay._integrity import IntegrityReport, check_integrity
+from drawledger.replay.integrity import IntegrityReport, check_integrity
 
 KEY = b"grocery-ledger-key"
 

@@ -10,7 +10,7 @@ from typing import Any
 import pytest
 
 import drawledger as dl
-from drawledger.replay._io import read_tables
+from drawledger.replay.sources import read_tables
 
 KEY = b"redaction-secret"
 EMAIL = "rider17@example.org"

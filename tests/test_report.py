@@ -18,7 +18,7 @@ from drawledger.cli import main
 from drawledger.exceptions import ReplayError
 from drawledger.replay import verify, write_report
 
-ALLOW = "drawledger.replay._grocery"
+ALLOW = "drawledger.replay.demo.grocery"
 LEGACY = Path(__file__).resolve().parent.parent / "examples" / "legacy-draws.jsonl"
 
 

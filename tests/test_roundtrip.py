@@ -15,8 +15,8 @@ from hypothesis import HealthCheck, given, settings
 from strategies import record_specs
 
 from drawledger import _parquet, _records, _sinks
-from drawledger.replay._integrity import check_integrity
-from drawledger.replay._io import read_tables
+from drawledger.replay.integrity import check_integrity
+from drawledger.replay.sources import read_tables
 
 Row = tuple[Any, ...]
 Batch = tuple[list[Row], list[list[Row]], list[Row]]

@@ -11,8 +11,8 @@ import pytest
 
 import drawledger as dl
 from drawledger import _parquet
-from drawledger.replay._integrity import check_integrity
-from drawledger.replay._io import iter_decision_chunks, read_tables
+from drawledger.replay.integrity import check_integrity
+from drawledger.replay.sources import iter_decision_chunks, read_tables
 
 DAY = 1_767_225_600.0  # 2026-01-01T00:00:00Z
 

@@ -13,8 +13,8 @@ import sqlalchemy as sa
 
 import drawledger as dl
 from drawledger import _schema, _sinks
-from drawledger.replay._integrity import check_integrity
-from drawledger.replay._io import iter_decision_chunks, read_tables
+from drawledger.replay.integrity import check_integrity
+from drawledger.replay.sources import iter_decision_chunks, read_tables
 
 pytestmark = pytest.mark.postgres
 

@@ -18,8 +18,8 @@ import pytest
 import drawledger as dl
 from drawledger import _parquet
 from drawledger.cli import main
-from drawledger.replay._integrity import check_integrity
-from drawledger.replay._io import read_tables
+from drawledger.replay.integrity import check_integrity
+from drawledger.replay.sources import read_tables
 
 CLOSED_PORT_URL = "postgresql+psycopg://postgres@127.0.0.1:1/test"
 

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 from sklearn.datasets import load_digits
 
-from drawledger.replay import _estimators as est
+from drawledger.replay.estimate import _estimators as est
 
 LOGGING_T, TARGET_T = 1.0, 0.3
 FOLDS = 5

@@ -12,7 +12,7 @@ from recipe_card import CARDS, SCORES, make_decision
 import drawledger as dl
 import drawledger.testing
 from drawledger.exceptions import DrawArgumentError
-from drawledger.replay._integrity import check_integrity
+from drawledger.replay.integrity import check_integrity
 from drawledger.testing import capture
 
 

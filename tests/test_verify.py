@@ -25,7 +25,7 @@ from drawledger.draw import bucket_assign
 from drawledger.exceptions import LedgerError, ReplayError
 from drawledger.ledger import REGISTRY
 from drawledger.replay import verify
-from drawledger.replay._verify import Settings, verify_chunk
+from drawledger.replay.verify import Settings, verify_chunk
 
 SERVICE = """
 import drawledger as dl

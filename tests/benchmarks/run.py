@@ -166,7 +166,7 @@ def _cluster() -> Any:
     import dask
     from distributed import LocalCluster
 
-    from drawledger.replay._dask import NO_PROFILER
+    from drawledger.replay.engines import NO_PROFILER
 
     with dask.config.set(NO_PROFILER):
         return LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
@@ -176,11 +176,12 @@ def _cluster() -> Any:
 def engines(res: Results, ledger: Path, n: int) -> None:
     """verify, audit and estimate on one synthetic Parquet ledger: 1 core, 2 cores, Dask."""
     from drawledger.replay import estimate, verify
-    from drawledger.replay._audit import audit
-    from drawledger.replay._integrity import check_integrity
+    from drawledger.replay.audit import audit
+    from drawledger.replay.integrity import check_integrity
 
     print(f"replay, audit and estimation on {n:,} decisions ...", flush=True)
-    from drawledger.replay._verify import Settings, iter_chunks, verify_chunk
+    from drawledger.replay.sources import iter_chunks
+    from drawledger.replay.verify import Settings, verify_chunk
 
     path = [str(SUPPORT)]
     t_integrity = _timed(lambda: check_integrity(ledger))
@@ -253,9 +254,9 @@ def numpy_reference(res: Results, ledger: Path, n_est: int) -> None:
     import pyarrow.compute as pc
     from scipy import stats
 
-    from drawledger.replay import _estimators as est
-    from drawledger.replay._audit import audit_tables
-    from drawledger.replay._io import read_tables
+    from drawledger.replay.audit import audit_tables
+    from drawledger.replay.estimate import _estimators as est
+    from drawledger.replay.sources import read_tables
 
     print("numpy references ...", flush=True)
     tables = read_tables(ledger)
@@ -332,7 +333,7 @@ cluster = None
 if engine == "dask":
     import dask
     from distributed import LocalCluster
-    from drawledger.replay._dask import NO_PROFILER
+    from drawledger.replay.engines import NO_PROFILER
     with dask.config.set(NO_PROFILER):
         cluster = LocalCluster(n_workers=2, threads_per_worker=1, host="127.0.0.1",
                                dashboard_address=":0")

@@ -17,8 +17,8 @@ import numpy as np
 import pytest
 
 import drawledger as dl
-from drawledger.replay import _estimators as est
 from drawledger.replay import estimate, verify
+from drawledger.replay.estimate import _estimators as est
 
 pytestmark = pytest.mark.benchmark
 

@@ -40,8 +40,8 @@ import shop_decisions as sd
 
 import drawledger as dl
 from drawledger.draw import Draw
-from drawledger.replay._imports import load_inputs, load_params
-from drawledger.replay._verify import Settings, iter_chunks, verify, verify_chunk
+from drawledger.replay.sources import iter_chunks
+from drawledger.replay.verify import Settings, load_inputs, load_params, verify, verify_chunk
 
 pytestmark = pytest.mark.benchmark
 
@@ -117,8 +117,9 @@ MEASURE = textwrap.dedent(
     sys.path.insert(0, {support!r})
     import shop_decisions
     from drawledger.replay import verify
-    from drawledger.replay._integrity import check_integrity
-    from drawledger.replay._verify import Settings, iter_chunks, verify_chunk
+    from drawledger.replay.integrity import check_integrity
+    from drawledger.replay.sources import iter_chunks
+    from drawledger.replay.verify import Settings, verify_chunk
 
     if {what!r} == "integrity":
         check_integrity({db!r})

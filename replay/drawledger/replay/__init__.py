@@ -1,13 +1,13 @@
 """drawledger.replay: verify, audit and estimate from a ledger (the analysis side)."""
 
-from drawledger.replay._audit import AuditFigure, AuditReport, AuditTest, audit, audit_tables
-from drawledger.replay._demo import DemoResult, run_demo
-from drawledger.replay._enumerate import Propensity, action_distribution, propensity
-from drawledger.replay._estimate import EstimateReport, SweepReport, estimate, sweep
-from drawledger.replay._integrity import IntegrityReport, check_integrity
-from drawledger.replay._io import LedgerTables, iter_decision_chunks, read_tables
 from drawledger.replay._report import HtmlReport, WhatIf, write_report
-from drawledger.replay._verify import VerifyReport, verify
+from drawledger.replay.audit import AuditFigure, AuditReport, AuditTest, audit, audit_tables
+from drawledger.replay.demo import DemoResult, run_demo
+from drawledger.replay.estimate import EstimateReport, SweepReport, estimate, sweep
+from drawledger.replay.integrity import IntegrityReport, check_integrity
+from drawledger.replay.propensity import Propensity, action_distribution, propensity
+from drawledger.replay.sources import LedgerTables, iter_decision_chunks, read_tables
+from drawledger.replay.verify import VerifyReport, verify
 
 __all__: list[str] = [
     "AuditFigure",

@@ -26,9 +26,9 @@ import numpy as np
 
 from drawledger import __version__
 from drawledger.exceptions import ReplayError
-from drawledger.replay._audit import AuditFigure, AuditReport, audit
-from drawledger.replay._estimate import EstimateReport, SweepReport, estimate
-from drawledger.replay._verify import VerifyReport, verify
+from drawledger.replay.audit import AuditFigure, AuditReport, audit
+from drawledger.replay.estimate import EstimateReport, SweepReport, estimate
+from drawledger.replay.verify import VerifyReport, verify
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
@@ -516,7 +516,7 @@ def _audit_section(a: AuditReport) -> str:
         return f"""
 <section id="audit"><h2>Randomization audit</h2>
 <p>No draws to audit ({_num(a.decisions)} decisions).</p></section>"""
-    from drawledger.replay._audit import TEST_LABELS
+    from drawledger.replay.audit import TEST_LABELS
 
     rows = []
     for t in a.tests:

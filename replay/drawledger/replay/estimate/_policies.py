@@ -31,19 +31,19 @@ from drawledger.draw import (
 )
 from drawledger.exceptions import DrawledgerError, ReplayError
 from drawledger.ledger import Decision
-from drawledger.replay._enumerate import (
+from drawledger.replay.propensity import (
     DEFAULT_BUDGET,
     DENSITY,
     MONTE_CARLO,
     action_distribution,
     from_run,
 )
-from drawledger.replay._imports import (
-    _import,
-    _lookup,
+from drawledger.replay.verify import (
     immutable,
+    import_allowed,
     load_inputs,
     load_params,
+    lookup_qualname,
     resolve_decision,
 )
 
@@ -117,8 +117,8 @@ def _load_callable(spec: str, path: Sequence[str], allow: Sequence[str]) -> Any:
     module_name, qualname = spec.split(":")
     module = sys.modules.get(module_name)
     if module is None:
-        module = _import(module_name, path, allow)
-    fn = _lookup(module, qualname)
+        module = import_allowed(module_name, path, allow)
+    fn = lookup_qualname(module, qualname)
     if fn is None or not callable(fn):
         raise ReplayError(f"target {spec!r}: module {module_name!r} has no function {qualname!r}")
     return fn

@@ -19,7 +19,7 @@ import pandas as pd
 import sqlalchemy as sa
 
 from drawledger.exceptions import ReplayError
-from drawledger.replay._io import is_parquet, open_engine
+from drawledger.replay.sources import is_parquet, open_engine
 
 __all__ = ["BASE_COLUMNS", "flatten_inputs", "join_outcomes", "read_outcomes", "write_export"]
 

@@ -53,7 +53,7 @@ def _under(origin: str | None, dirs: list[Path]) -> bool:
     return any(where.is_relative_to(d) for d in dirs)
 
 
-def _lookup(obj: Any, qualname: str) -> Any:
+def lookup_qualname(obj: Any, qualname: str) -> Any:
     """Walk ``a.b.c`` through ``vars()`` only, so no attribute hook of the target runs."""
     for part in qualname.split("."):
         try:
@@ -66,7 +66,9 @@ def _lookup(obj: Any, qualname: str) -> Any:
     return obj
 
 
-def _import(module: str, path: Iterable[str | os.PathLike[str]], allow: Iterable[str]) -> Any:
+def import_allowed(
+    module: str, path: Iterable[str | os.PathLike[str]], allow: Iterable[str]
+) -> Any:
     """Import ``module`` if it is allowed, else raise ``MissingFunctionError`` (nothing runs)."""
     dirs = [Path(p).expanduser().resolve() for p in path]
     by_prefix = _allowed_prefix(module, allow)
@@ -117,11 +119,11 @@ def resolve_decision(
         return known
     loaded = sys.modules.get(module)
     if loaded is None:
-        loaded = _import(module, path, allow)
+        loaded = import_allowed(module, path, allow)
         known = REGISTRY.get(fn_name)
         if known is not None:
             return known
-    obj = _lookup(loaded, qualname)
+    obj = lookup_qualname(loaded, qualname)
     if obj is None:
         raise MissingFunctionError(f"module {module!r} has no function {qualname!r}")
     raise NotADecisionError(

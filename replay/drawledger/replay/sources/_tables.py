@@ -1,4 +1,4 @@
-"""Reading a ledger into pandas DataFrames, whole or in chunks of decisions.
+"""Reading a ledger's tables into pandas DataFrames, whole or in chunks of decisions.
 
 Works on every ledger kind: an SQLite path, a SQLAlchemy URL, or a Parquet directory. Reading
 is safe while writers are running (SQL readers see committed transactions; Parquet readers see
@@ -25,6 +25,8 @@ TABLE_COLUMNS = {
     "draws": DRAW_COLUMNS,
     "outcomes": OUTCOME_COLUMNS,
 }
+
+
 _ORDER = {"decisions": "writer, seq", "draws": "decision_id, idx", "outcomes": "writer, seq"}
 
 

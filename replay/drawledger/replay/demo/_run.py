@@ -26,17 +26,19 @@ import sqlalchemy as sa
 
 import drawledger as dl
 from drawledger.exceptions import LedgerError, ReplayError
-from drawledger.replay._audit import AuditReport, audit
-from drawledger.replay._estimate import EstimateReport, SweepReport, estimate, sweep
 from drawledger.replay._report import WhatIf, write_report
-from drawledger.replay._verify import VerifyReport, verify
+from drawledger.replay.audit import AuditReport, audit
+from drawledger.replay.demo import grocery
+from drawledger.replay.demo.grocery import LOGGING_POLICY as log
+from drawledger.replay.estimate import EstimateReport, SweepReport, estimate, sweep
+from drawledger.replay.verify import VerifyReport, verify
 from drawledger.testing import seed_sequence
 
 __all__ = ["DEFAULT_SESSIONS", "DemoResult", "run_demo"]
 
 DEFAULT_SESSIONS = 4_000
 MAX_SESSIONS = 1_000_000
-DEMO_MODULE = "drawledger.replay._grocery"
+DEMO_MODULE = "drawledger.replay.demo.grocery"
 ALLOW = (DEMO_MODULE,)
 REWARD = "checkout"
 TARGET_TEMPERATURE = 0.3
@@ -88,7 +90,6 @@ class DemoResult:
 
     def render(self) -> str:
         """The short summary printed by ``drawledger demo``."""
-        from drawledger.replay._grocery import LOGGING_POLICY as log
 
         v, a = self.verification, self.audit
         lines = [
@@ -209,7 +210,6 @@ def _stage(name: str, seconds: dict[str, float]) -> Iterator[None]:
 
 def _simulate(db: Path, sessions: int, seed: int, progress: bool) -> None:
     """Record ``sessions`` shopper sessions: two decisions and their checkout outcome each."""
-    from drawledger.replay import _grocery as grocery
 
     ledger = dl.Ledger(db)
     # Reproducible draw seeds for the demo only (production seeds come from the OS CSPRNG).
@@ -278,7 +278,6 @@ def run_demo(
     shows progress bars when stderr is a terminal. Returns a ``DemoResult``;
     ``out/report.html`` is the HTML report.
     """
-    from drawledger.replay import _grocery as grocery
 
     if isinstance(decisions, bool) or not isinstance(decisions, int):
         raise ReplayError(f"the number of sessions must be an integer, got {decisions!r}")

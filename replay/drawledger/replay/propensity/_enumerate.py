@@ -162,7 +162,7 @@ def _density_at(rec: DrawRecord, x: float) -> float:
 Run = Callable[[Draw], Any]
 
 
-def _walk(run: Run, make: Callable[[list[int]], BranchingDraw], budget: int) -> (
+def walk(run: Run, make: Callable[[list[int]], BranchingDraw], budget: int) -> (
     list[tuple[BranchingDraw, Any]] | None
 ):  # fmt: skip
     """Every path as (draw, action), or None past ``budget`` paths or on an unlistable draw."""
@@ -205,7 +205,7 @@ def action_distribution(
     more than ``budget`` paths or when the decision makes a continuous draw. A branch that
     raises raises ``ReplayError`` naming the branch.
     """
-    paths = _walk(_runner(decision, inputs, params), BranchingDraw, budget)
+    paths = walk(_runner(decision, inputs, params), BranchingDraw, budget)
     if paths is None:
         return None
     dist: dict[str, float] = {}
@@ -220,7 +220,7 @@ def _density(run: Run, target_json: str, budget: int) -> float | None:
     target = from_json(target_json)
     if not isinstance(target, float):
         return None
-    paths = _walk(run, lambda forced: _DensityDraw(forced, target), budget)
+    paths = walk(run, lambda forced: _DensityDraw(forced, target), budget)
     if paths is None:
         return None
     total = 0.0
@@ -409,7 +409,7 @@ def distribution(
 ) -> Found:
     """Everything needed for the propensity of ``action_json`` (see ``propensity``)."""
     run = _runner(decision, inputs, params)
-    paths = _walk(run, BranchingDraw, budget)
+    paths = walk(run, BranchingDraw, budget)
     if paths is not None:
         dist: dict[str, float] = {}
         for draw, action in paths:

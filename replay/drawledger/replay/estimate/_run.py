@@ -1,18 +1,4 @@
-"""Counterfactual estimates from verified records: what would another policy have achieved?
-
-The pipeline (docs/estimators.md), one pass over the ledger piece by piece (``_pieces``):
-
-1. Each piece is replayed as ``verify`` does; only verified decisions of the stream are used,
-   the others are counted by reason. Decisions without the reward outcome count as
-   ``missing_reward`` (default 0).
-2. Each used record re-runs its decision function (``_policies``): with its logged parameters
-   (the logging policy's full action distribution, for the support deficit and the doubly
-   robust estimator) and with every asked-for policy (the ``overrides`` of its policy
-   parameters, or a callable ``module:function`` giving the probability of an action).
-3. The per-record columns of ``_estimators`` (weights, weighted rewards, clipped weights, doubly
-   robust terms) reduce per piece to combinable moments and Poisson bootstrap sums; estimates,
-   intervals and diagnostics follow from their combination.
-"""
+"""``estimate`` and ``sweep``: off-policy estimates of target policies from verified records."""
 
 from __future__ import annotations
 
@@ -20,48 +6,47 @@ import math
 import os
 from collections import Counter
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 
 from drawledger.exceptions import ReplayError
-from drawledger.replay import _estimators as est
-from drawledger.replay._enumerate import DEFAULT_BUDGET, DEFAULT_MC_SAMPLES, MONTE_CARLO
-from drawledger.replay._integrity import check_integrity
-from drawledger.replay._io import is_parquet
-from drawledger.replay._pieces import (
-    Group,
-    Job,
-    Pass,
-    choose_stream,
-    local_runner,
-    read_rewards,
-    run_pass,
-    sql_streams,
+from drawledger.replay.estimate import _estimators as est
+from drawledger.replay.estimate._dask import estimate_pass
+from drawledger.replay.estimate._local import local_runner
+from drawledger.replay.estimate._piece import Job
+from drawledger.replay.estimate._policies import Policy, Target
+from drawledger.replay.estimate._report import (
+    DEFAULT_BOOTSTRAP,
+    DEFAULT_CAP,
+    DR_NOTE,
+    ESTIMATORS,
+    INTERVALS,
+    MIN_ESS,
+    MIN_ESS_SHARE,
+    EstimateReport,
+    SweepReport,
 )
-from drawledger.replay._policies import Policy, Target
-from drawledger.replay._verify import CHUNK_SIZE, Settings, Task, plan
+from drawledger.replay.estimate._rewards import choose_stream, read_rewards, sql_streams
+from drawledger.replay.estimate._stages import Group, Pass, run_pass
+from drawledger.replay.integrity import check_integrity
+from drawledger.replay.propensity import DEFAULT_BUDGET, DEFAULT_MC_SAMPLES, MONTE_CARLO
+from drawledger.replay.sources import (
+    CHUNK_SIZE,
+    Task,
+    is_parquet,
+    parquet_root,
+    pieces,
+    plan,
+    stream_partitions,
+)
+from drawledger.replay.verify import Settings
 
 if TYPE_CHECKING:
-    from matplotlib.figure import Figure
-    from rich.console import Console, ConsoleOptions, RenderResult
-
-__all__ = ["EstimateReport", "SweepReport", "estimate", "sweep"]
-
-INTERVALS = ("clt", "bootstrap", "bernstein")
-ESTIMATORS = ("ips", "snips", "clipped", "dr")
-DEFAULT_CAP = 10.0
-DEFAULT_BOOTSTRAP = 1000
-# Warn below these effective sample sizes (common practice, no published threshold).
-MIN_ESS = 100.0
-MIN_ESS_SHARE = 0.01
-DR_NOTE = ("dr needs the policy's full action distribution (continuous actions, or more "
-           "branches than the enumeration budget)")  # fmt: skip
+    pass
 
 
-# -- options ---------------------------------------------------------------------------------
 def _check_options(
     reward: str, interval: str, bootstrap: int, clip: float | None, level: float,
     engine: str, scheduler: str | None, reward_range: tuple[float, float] | None,
@@ -103,7 +88,6 @@ def _describe(policy: Policy) -> dict[str, Any]:
     return {"overrides": dict(policy)}
 
 
-# -- one pass over the ledger -------------------------------------------------------------------
 @dataclass(frozen=True)
 class _Question:
     """Where the records come from and how they are read (shared by estimate and sweep)."""
@@ -135,8 +119,6 @@ def _pass(
     settings = Settings(path=q.path, allow=q.allow, budget=DEFAULT_BUDGET,
                         mc_samples=DEFAULT_MC_SAMPLES, keep_rows=True)  # fmt: skip
     if q.engine == "dask" or is_parquet(text, q.format):
-        from drawledger.replay._dask import parquet_root, pieces, stream_partitions
-
         root = parquet_root(text, q.format if q.engine == "dask" else "parquet", "estimate")
         by_stream = stream_partitions(root)
         stream = choose_stream(sorted(by_stream), q.stream, text)
@@ -147,8 +129,6 @@ def _pass(
     job = Job(tuple(policies), q.reward, stream, settings, q.seed, q.missing_reward,
               q.reward_range, by)  # fmt: skip
     if q.engine == "dask":  # the stages as tasks on a cluster (replay/_dask.py)
-        from drawledger.replay._dask import estimate_pass
-
         return estimate_pass(root, [t.piece for t in tasks], job, integrity_key=q.integrity_key,
                              scheduler=q.scheduler, progress=q.progress, cap=cap,
                              bootstrap=bootstrap, weights=weights), stream  # fmt: skip
@@ -161,7 +141,6 @@ def _pass(
         return run_pass(runner, job, cap=cap, bootstrap=bootstrap, weights=weights), stream
 
 
-# -- summaries ----------------------------------------------------------------------------------
 @dataclass
 class _Settings:
     cap: float
@@ -242,131 +221,6 @@ def _problem(summary: dict[str, Any]) -> bool:
     return bool((deficit is not None and deficit > 0.0) or small)
 
 
-# -- reports ------------------------------------------------------------------------------------
-def _fmt(x: float | None) -> str:
-    return "-" if x is None else f"{x:.4f}"
-
-
-def _span(e: Mapping[str, float | None]) -> str:
-    return f"[{_fmt(e['low'])}, {_fmt(e['high'])}]"
-
-
-def _policy_text(d: Mapping[str, Any]) -> str:
-    if "callable" in d:
-        return str(d["callable"])
-    if d.get("overrides"):
-        return ", ".join(f"{k}={v!r}" for k, v in d["overrides"].items())
-    return "logging policy"
-
-
-@dataclass
-class EstimateReport:
-    """The estimate of a target policy's mean reward from verified records.
-
-    ``to_dict()`` is the JSON of ``drawledger estimate --json``; ``weights`` holds the
-    importance weight of every record used (for histograms). ``decisions`` counts the
-    decisions of the stream before exclusions; ``excluded`` counts them by reason (a decision
-    can fail for several reasons).
-    """
-
-    n: int
-    target: dict[str, Any]
-    estimates: dict[str, dict[str, float | None]]
-    diagnostics: dict[str, Any]
-    baseline: dict[str, Any]
-    baseline_estimates: dict[str, dict[str, float | None]]
-    difference: dict[str, dict[str, float | None]]
-    excluded: dict[str, int]
-    warnings: list[str]
-    settings: dict[str, Any]
-    segments: dict[str, Any] | None
-    decisions: int
-    weights: np.ndarray = field(repr=False)
-    ok: bool = True
-
-    def to_dict(self) -> dict[str, Any]:
-        out: dict[str, Any] = {
-            "n": self.n,
-            "target": self.target,
-            "estimates": self.estimates,
-            "diagnostics": self.diagnostics,
-            "baseline": {**self.baseline, "estimates": self.baseline_estimates},
-            "difference": self.difference,
-            "logging_value": self.logging_value,
-            "excluded": {"total": self.decisions - self.n, "by_reason": self.excluded},
-            "settings": self.settings,
-            "warnings": self.warnings,
-            "ok": self.ok,
-        }
-        if self.segments is not None:
-            out["segments"] = self.segments
-        return out
-
-    @property
-    def logging_value(self) -> float | None:
-        """The mean reward of the logging policy on the records (None with another baseline)."""
-        if self.baseline.get("policy") != "logging":
-            return None
-        return self.baseline_estimates["ips"]["value"]
-
-    def _tables(self) -> list[Any]:
-        from rich.box import SIMPLE
-        from rich.table import Table
-
-        level = self.settings["level"]
-        t = Table(title=f"{_policy_text(self.target)} (diff: minus "
-                  f"{_policy_text(self.baseline)}), {self.n} verified records, {level:.0%} "
-                  f"{self.settings['interval']} intervals", title_justify="left",
-                  box=SIMPLE)  # fmt: skip
-        for col in ("estimator", "value", "interval", "bias", "diff", "interval"):
-            t.add_column(col, justify="left" if col == "estimator" else "right", no_wrap=True)
-        for name, e in self.estimates.items():
-            d = self.difference[name]
-            bias = _fmt(e.get("bias_bound")) if name == "clipped" else ""
-            t.add_row(name, _fmt(e["value"]), _span(e), bias, _fmt(d["value"]), _span(d))
-        g = Table(title="diagnostics", title_justify="left", box=SIMPLE)
-        g.add_column("measure")
-        g.add_column("value", justify="right")
-        diag = self.diagnostics
-        g.add_row("effective sample size (Kish)", f"{diag['ess']:.1f}")
-        g.add_row("max weight", f"{diag['max_weight']:.4g}")
-        for q, v in diag["weight_quantiles"].items():
-            g.add_row(f"weight quantile {q}", f"{v:.4g}")
-        g.add_row("support deficit", _fmt(diag["support_deficit"]))
-        if self.logging_value is not None:
-            g.add_row("logging policy mean reward", _fmt(self.logging_value))
-        out: list[Any] = [t, g]
-        if self.segments is not None:
-            s = Table(title=f"segments by {self.segments['by']}", title_justify="left", box=SIMPLE)
-            for col in ("segment", "n", "snips", "interval", "ess", "deficit"):
-                s.add_column(col, justify="left" if col == "segment" else "right", no_wrap=True)
-            for seg in self.segments["groups"]:
-                e = seg["estimates"]["snips"]
-                s.add_row(str(seg["value"]), str(seg["n"]), _fmt(e["value"]), _span(e),
-                          f"{seg['diagnostics']['ess']:.1f}",
-                          _fmt(seg["diagnostics"]["support_deficit"]))  # fmt: skip
-            out.append(s)
-        return out
-
-    def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
-        yield from self._tables()
-        for w in self.warnings:
-            yield f"[yellow]warning:[/yellow] {w}"
-
-    def __str__(self) -> str:
-        return _plain(self)
-
-
-def _plain(renderable: Any) -> str:
-    from rich.console import Console
-
-    console = Console(width=110, record=True, file=open(os.devnull, "w"), color_system=None)  # noqa: SIM115
-    console.print(renderable)
-    console.file.close()
-    return console.export_text()
-
-
-# -- the library functions ----------------------------------------------------------------------
 def _segments(p: Pass, bounds: tuple[float, float], s: _Settings, by: str) -> dict[str, Any]:
     groups = []
     for value in sorted(p.segments):
@@ -455,89 +309,6 @@ def estimate(
         segments=None if by is None else _segments(p, bounds, s, by),
         decisions=p.total, weights=p.weights, ok=not _problem(summary),
     )  # fmt: skip
-
-
-@dataclass
-class SweepReport:
-    """Estimates of a curve of policies: one policy parameter swept over a grid."""
-
-    param: str
-    values: list[Any]
-    points: list[dict[str, Any]]
-    baseline: dict[str, Any]
-    settings: dict[str, Any]
-    warnings: list[str]
-    n: int
-    ok: bool = True
-
-    @property
-    def table(self) -> pd.DataFrame:
-        """One row per (value, estimator): value, low, high, and the point's diagnostics."""
-        rows = []
-        for p in self.points:
-            for name, e in p["estimates"].items():
-                rows.append({self.param: p["value"], "estimator": name, "estimate": e["value"],
-                             "low": e["low"], "high": e["high"], "ess": p["diagnostics"]["ess"],
-                             "support_deficit": p["diagnostics"]["support_deficit"]})  # fmt: skip
-        return pd.DataFrame(rows)
-
-    def figure(self) -> Figure:
-        """The curve of each estimator, with interval bands for SNIPS and DR (no display)."""
-        from matplotlib.figure import Figure
-
-        fig = Figure(figsize=(7.0, 4.2))
-        ax = fig.add_subplot()
-        table = self.table
-        for name, part in table.groupby("estimator", sort=False):
-            x = part[self.param].to_numpy(dtype=float)
-            line = ax.plot(x, part["estimate"].to_numpy(dtype=float), marker="o", ms=3,
-                           label=str(name))[0]  # fmt: skip
-            if name in ("snips", "dr"):
-                ax.fill_between(x, part["low"].to_numpy(dtype=float),
-                                part["high"].to_numpy(dtype=float), color=line.get_color(),
-                                alpha=0.15)  # fmt: skip
-        logging_value = self.baseline.get("estimates", {}).get("ips", {}).get("value")
-        if self.baseline.get("policy") == "logging" and logging_value is not None:
-            ax.axhline(logging_value, color="grey", ls="--", lw=1, label="logging policy")
-        ax.set_xlabel(self.param)
-        ax.set_ylabel("estimated mean reward")
-        level = self.settings["level"]
-        ax.set_title(f"{self.param} sweep ({level:.0%} {self.settings['interval']} intervals)")
-        ax.legend(fontsize="small")
-        fig.tight_layout()
-        return fig
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"n": self.n, "param": self.param, "points": self.points,
-                "baseline": self.baseline, "settings": self.settings,
-                "warnings": self.warnings, "ok": self.ok}  # fmt: skip
-
-    def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
-        from rich.box import SIMPLE
-        from rich.table import Table
-
-        t = Table(title=f"{self.param} sweep: {self.n} verified records, "
-                  f"{self.settings['level']:.0%} {self.settings['interval']} intervals",
-                  title_justify="left", box=SIMPLE)  # fmt: skip
-        shown = [n for n in ("snips", "dr") if self.points and n in self.points[0]["estimates"]]
-        t.add_column(self.param, justify="right")
-        for name in shown:
-            t.add_column(name, justify="right")
-            t.add_column("interval", justify="right", no_wrap=True)
-        t.add_column("ess", justify="right")
-        for p in self.points:
-            cells = []
-            for name in shown:
-                e = p["estimates"][name]
-                cells += [_fmt(e["value"]), _span(e)]
-            t.add_row(f"{p['value']:g}" if isinstance(p["value"], float) else str(p["value"]),
-                      *cells, f"{p['diagnostics']['ess']:.1f}")  # fmt: skip
-        yield t
-        for w in self.warnings:
-            yield f"[yellow]warning:[/yellow] {w}"
-
-    def __str__(self) -> str:
-        return _plain(self)
 
 
 def sweep(

@@ -1,0 +1,14 @@
+"""The randomization audit: do the recorded draws follow their declared distributions?"""
+
+from drawledger.replay.audit._limits import TEST_LABELS
+from drawledger.replay.audit._report import AuditFigure, AuditReport, AuditTest
+from drawledger.replay.audit._run import audit, audit_tables
+
+__all__ = [
+    "TEST_LABELS",
+    "AuditFigure",
+    "AuditReport",
+    "AuditTest",
+    "audit",
+    "audit_tables",
+]

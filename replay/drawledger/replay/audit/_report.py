@@ -1,0 +1,170 @@
+"""What the audit found: tests, figures, and the report."""
+
+from __future__ import annotations
+
+import io
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+from drawledger.replay.audit import _stats
+from drawledger.replay.audit._limits import (
+    ALPHA,
+    AS_DECLARED,
+    NOT_AS_DECLARED,
+    NOT_ENOUGH_DATA,
+    TEST_LABELS,
+)
+
+if TYPE_CHECKING:
+    from rich.console import Console, ConsoleOptions, RenderResult
+
+
+@dataclass(frozen=True)
+class AuditTest:
+    """One test of one draw (or of a whole stream, for repeated seeds and uniforms)."""
+
+    stream: str
+    draw: str | None
+    kind: str | None
+    test: str
+    n: int
+    statistic: float | None
+    p_value: float | None
+    p_adjusted: float | None
+    verdict: str
+    alarm: bool
+    df: int | None = None
+    field: str | None = None
+    detail: str = ""
+
+    def to_dict(self) -> dict[str, Any]:
+        out: dict[str, Any] = {
+            "stream": self.stream,
+            "draw": self.draw,
+            "kind": self.kind,
+            "test": self.test,
+            "n": self.n,
+            "statistic": self.statistic,
+            "p_value": self.p_value,
+            "p_adjusted": self.p_adjusted,
+            "verdict": self.verdict,
+            "alarm": self.alarm,
+        }
+        if self.df is not None:
+            out["df"] = self.df
+        if self.field is not None:
+            out["field"] = self.field
+        if self.detail:
+            out["detail"] = self.detail
+        return out
+
+
+@dataclass(frozen=True)
+class AuditFigure:
+    """What the HTML report draws for one draw of a stream.
+
+    ``pit_counts`` and ``uniform_counts`` are histograms over ``AuditReport.bin_edges`` (20 equal
+    bins on [0, 1]); ``uniform_counts`` is empty when the draws recorded no uniforms. For
+    discrete kinds ``options`` holds the JSON text of each option with its ``observed`` count
+    and ``expected`` count (the sum of its declared probabilities). ``n`` is the number of PIT
+    values: draws, picks for a slate (k per draw), units for a bucket.
+    """
+
+    stream: str
+    draw: str | None
+    kind: str
+    n: int
+    pit_counts: tuple[int, ...]
+    uniform_counts: tuple[int, ...]
+    options: tuple[str, ...] = ()
+    observed: tuple[float, ...] = ()
+    expected: tuple[float, ...] = ()
+
+
+@dataclass(frozen=True)
+class AuditReport:
+    """The result of ``audit``: every test, its verdict, and the data of the figures."""
+
+    tests: tuple[AuditTest, ...]
+    figures: tuple[AuditFigure, ...]
+    decisions: int
+    alpha: float = ALPHA
+    bin_edges: tuple[float, ...] = tuple(float(x) for x in _stats.BIN_EDGES)
+
+    @property
+    def ok(self) -> bool:
+        """True when no alarm fired."""
+        return not any(t.alarm for t in self.tests)
+
+    @property
+    def alarms(self) -> tuple[AuditTest, ...]:
+        return tuple(t for t in self.tests if t.alarm)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The audit JSON: {"ok", "tests": [{"stream", "test", "statistic", "p_value", ...}]}."""
+        return {
+            "ok": self.ok,
+            "alpha": self.alpha,
+            "decisions": self.decisions,
+            "tests": [t.to_dict() for t in self.tests],
+        }
+
+    def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
+        """One table per stream; p is the Holm-adjusted p-value the verdict uses."""
+        from rich.table import Table
+
+        if not self.tests:
+            yield f"No draws to audit ({self.decisions} decisions)."
+            return
+        yield f"[bold]Randomization audit of {self.decisions} decisions[/]"
+        style = {AS_DECLARED: "green", NOT_AS_DECLARED: "bold red", NOT_ENOUGH_DATA: "dim"}
+        for stream in dict.fromkeys(t.stream for t in self.tests):
+            table = Table(title=stream, title_justify="left", title_style="bold")
+            table.add_column("draw / test", no_wrap=True)
+            for name in ("n", "statistic", "p"):
+                table.add_column(name, justify="right", no_wrap=True)
+            table.add_column("verdict", no_wrap=True)
+            previous = None
+            for t in self.tests:
+                if t.stream != stream:
+                    continue
+                draw = (
+                    "stream-wide" if t.kind is None else t.kind + (f" {t.draw}" if t.draw else "")
+                )
+                if draw != previous:
+                    if previous is not None:
+                        table.add_section()
+                    table.add_row(f"[bold]{draw}[/]")
+                    previous = draw
+                table.add_row(
+                    "  " + TEST_LABELS[t.test] + (f" {t.field}" if t.field else ""),
+                    str(t.n),
+                    _fmt(t.statistic),
+                    _fmt_p(t.p_adjusted),
+                    f"[{style[t.verdict]}]{t.verdict}[/]",
+                )
+            yield table
+        yield f"p: after Holm's correction across a stream's tests; alarm when p < {self.alpha:g}."
+        if self.ok:
+            yield "[green]No alarm: every testable draw looks as declared.[/]"
+        else:
+            yield f"[bold red]{len(self.alarms)} alarm(s): randomization not as declared.[/]"
+
+    def __str__(self) -> str:
+        from rich.console import Console
+
+        console = Console(width=140, record=True, file=io.StringIO())
+        console.print(self)
+        return console.export_text()
+
+
+def _fmt(x: float | None) -> str:
+    if x is None:
+        return "-"
+    return str(int(x)) if float(x).is_integer() and abs(x) < 1e15 else f"{x:.4g}"
+
+
+def _fmt_p(p: float | None) -> str:
+    if p is None:
+        return "-"
+    return "<1e-300" if p < 1e-300 else f"{p:.3g}"

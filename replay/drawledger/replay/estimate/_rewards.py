@@ -1,0 +1,135 @@
+"""The reward of every decision, and the streams of a ledger."""
+
+from __future__ import annotations
+
+import hashlib
+import os
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import sqlalchemy as sa
+
+from drawledger.exceptions import LedgerError, ReplayError
+from drawledger.replay.sources import is_parquet, open_engine
+
+
+def _digests(ids: Iterable[Any]) -> np.ndarray:
+    """16-byte blake2b digests of decision ids, as sortable numpy bytes."""
+    return np.array(
+        [hashlib.blake2b(str(i).encode(), digest_size=16).digest() for i in ids], dtype="S16"
+    )
+
+
+_REWARD = np.dtype([("key", "S16"), ("value", np.float64)])
+
+
+@dataclass(frozen=True)
+class Rewards:
+    """The total of one outcome per decision, looked up by a digest of the decision id."""
+
+    table: np.ndarray  # (key, value) records sorted by key, keys distinct
+    count: int  # outcome records of that name
+
+    @classmethod
+    def of(cls, parts: Iterable[tuple[np.ndarray, np.ndarray]], capacity: int) -> Rewards:
+        """Digests and values, summed per decision; ``capacity`` bounds their number (pages
+        of the table beyond what is filled are never touched, so never resident)."""
+        table = np.empty(capacity, dtype=_REWARD)
+        at = 0
+        for keys, values in parts:
+            table["key"][at : at + keys.size] = keys
+            table["value"][at : at + keys.size] = values
+            at += keys.size
+        table = table[:at]
+        table.sort(order="key")  # in place
+        keys = table["key"]
+        first = np.ones(at, dtype=bool)
+        np.not_equal(keys[1:], keys[:-1], out=first[1:])
+        if not first.all():  # several outcomes of that name for a decision: their sum
+            starts = np.flatnonzero(first)
+            summed = np.empty(starts.size, dtype=_REWARD)
+            summed["key"] = keys[starts]
+            summed["value"] = np.add.reduceat(table["value"], starts)
+            table = summed
+        return cls(table, at)
+
+    def lookup(self, ids: Iterable[Any]) -> np.ndarray:
+        """The total of each decision id (NaN: no such outcome)."""
+        wanted = _digests(ids)
+        keys = self.table["key"]
+        out = np.full(wanted.size, np.nan)
+        if keys.size and wanted.size:
+            pos = np.minimum(np.searchsorted(keys, wanted), keys.size - 1)
+            hit = keys[pos] == wanted
+            out[hit] = self.table["value"][pos[hit]]
+        return out
+
+
+def _reward_part(path: str, reward: str) -> tuple[np.ndarray, np.ndarray]:
+    """Digests of the decision ids and values of the ``reward`` outcomes of one Parquet part."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    from drawledger import _parquet
+
+    columns = ["decision_id", "name", "value"]
+    try:
+        table = pq.read_table(path, columns=columns, schema=_parquet.SCHEMAS["outcomes"])
+    except (OSError, pa.ArrowException) as exc:
+        raise LedgerError(f"cannot read ledger part {path!r}: {exc}") from None
+    table = table.filter(pc.equal(table.column("name"), reward))
+    values = table.column("value").to_numpy(zero_copy_only=False).astype(np.float64)
+    return _digests(table.column("decision_id").to_pylist()), values
+
+
+def read_rewards(ledger: str, format: str | None, reward: str) -> Rewards:
+    """The ``reward`` outcome of every decision of a ledger (24 bytes per decision)."""
+    if is_parquet(ledger, format):
+        import pyarrow.parquet as pq
+
+        from drawledger import _parquet
+
+        files = [os.fspath(p.path) for p in _parquet.parts(ledger, "outcomes")]
+        capacity = sum(pq.read_metadata(f).num_rows for f in files)
+        return Rewards.of((_reward_part(f, reward) for f in files), capacity)
+    engine = open_engine(ledger)
+    try:
+        with engine.connect() as conn:
+            capacity = conn.execute(sa.text("SELECT COUNT(*) FROM outcomes WHERE name = :n"),
+                                    {"n": reward}).scalar_one()  # fmt: skip
+            result = conn.execution_options(yield_per=100_000).execute(
+                sa.text("SELECT decision_id, value FROM outcomes WHERE name = :n"), {"n": reward}
+            )
+            parts = ((_digests(r[0] for r in rows), np.array([r[1] for r in rows], dtype=float))
+                     for rows in result.partitions())  # fmt: skip
+            return Rewards.of(parts, int(capacity))
+    finally:
+        engine.dispose()
+
+
+def choose_stream(streams: Sequence[str], stream: str | None, ledger: str) -> str:
+    """The stream an estimate uses: the one asked for, or the ledger's only one."""
+    if not streams:
+        raise ReplayError(f"ledger {ledger!r} has no decisions")
+    if stream is not None:
+        if stream not in streams:
+            raise ReplayError(f"no decisions of stream {stream!r}; streams in the ledger: "
+                              f"{', '.join(streams)}")  # fmt: skip
+        return stream
+    if len(streams) > 1:
+        raise ReplayError(f"the ledger has several decision streams ({', '.join(streams)}); "
+                          "choose one with --stream")  # fmt: skip
+    return streams[0]
+
+
+def sql_streams(ledger: str) -> list[str]:
+    engine = open_engine(ledger)
+    try:
+        with engine.connect() as conn:
+            found = conn.execute(sa.text("SELECT DISTINCT stream FROM decisions")).scalars()
+            return sorted(str(s) for s in found if s is not None)
+    finally:
+        engine.dispose()

@@ -1,0 +1,11 @@
+"""The ledger's integrity: hash chains per writer, duplicates, gaps and orphans."""
+
+from drawledger.replay.integrity._check import check_integrity
+from drawledger.replay.integrity._dask import IntegrityTasks
+from drawledger.replay.integrity._report import IntegrityReport
+
+__all__ = [
+    "IntegrityReport",
+    "IntegrityTasks",
+    "check_integrity",
+]

@@ -1,0 +1,105 @@
+"""The integrity check of a Parquet ledger as Dask tasks: one ledger-wide, one per writer group."""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Sequence
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+from drawledger import _parquet
+from drawledger.replay.engines import one_result, submit_first
+from drawledger.replay.integrity._parquet import parquet_chain, parquet_cross_checks
+from drawledger.replay.integrity._report import MAX_EXAMPLES, PROBLEMS, IntegrityReport, walk
+
+if TYPE_CHECKING:
+    from distributed import Client, Future
+
+
+def _integrity_ids(root: str, key: bytes) -> tuple[IntegrityReport, set[str]]:
+    """The ledger-wide part of the integrity check: duplicate ids, orphans, interrupted batches.
+
+    Returns the report so far and the duplicate decision ids the chain walks need.
+    """
+
+    report = IntegrityReport(keyed=bool(key))
+    return report, parquet_cross_checks(Path(root), report)
+
+
+def _integrity_chains(
+    root: str, key: bytes, tags: Sequence[str], dup_ids: frozenset[str]
+) -> IntegrityReport:
+    """Hashes and chains of some writers (``_integrity._check_parquet``'s walk, per tag)."""
+
+    base = Path(root)
+    report = IntegrityReport(keyed=bool(key))
+    wanted = set(tags)
+    by_tag: dict[str, list[tuple[int, int, _parquet.Part]]] = {}
+    for order, table in ((0, "decisions"), (1, "outcomes")):
+        for p in _parquet.parts(base, table):
+            if p.tag in wanted:
+                by_tag.setdefault(p.tag, []).append((p.first, order, p))
+    for tag in sorted(by_tag):
+        plist = sorted(by_tag[tag], key=lambda t: t[:2])
+        walk(report, parquet_chain(base, plist, key, set(dup_ids), report),
+                 set(dup_ids))  # fmt: skip
+    return report
+
+
+def combine_reports(
+    found: tuple[IntegrityReport, set[str]], *chains: IntegrityReport
+) -> IntegrityReport:
+    """One report from the ledger-wide part and the writers' parts, in the local engine's order."""
+
+    total = found[0]
+    for part in chains:
+        for name in (*PROBLEMS, "decisions", "outcomes", "writers", "uncommitted_parts"):
+            setattr(total, name, getattr(total, name) + getattr(part, name))
+        for problem, shown in part.examples.items():
+            mine = total.examples.setdefault(problem, [])
+            for did in shown:
+                if len(mine) < MAX_EXAMPLES and did not in mine:
+                    mine.append(did)
+        total.decision_ids |= part.decision_ids
+    return total.finish()
+
+
+class IntegrityTasks:
+    """The integrity check of a Parquet ledger as tasks: one ledger-wide, one per writer group.
+
+    Each writer's chain is walked in sequence order by one task, so the check runs on as many
+    workers as there are writers (up to twice the workers); the report equals
+    ``check_integrity``'s. The chain tasks start at once, without the ledger's duplicate ids
+    (they only change how a duplicate decision is counted); in the rare ledger that has
+    duplicates, the chains are walked again with them.
+    """
+
+    def __init__(self, client: Client, root: Path, integrity_key: bytes | str | None) -> None:
+        key = integrity_key.encode() if isinstance(integrity_key, str) else (integrity_key or b"")
+        sizes: dict[str, int] = {}
+        for table in ("decisions", "outcomes"):
+            for p in _parquet.parts(root, table):
+                sizes[p.tag] = sizes.get(p.tag, 0) + p.last - p.first + 1
+        workers = max(1, len(client.scheduler_info().get("workers", {})))
+        groups: list[list[str]] = [[] for _ in range(min(len(sizes), 2 * workers))]
+        loads = [0] * len(groups)
+        for tag in sorted(sizes, key=lambda t: (-sizes[t], t)):  # largest to the lightest
+            k = loads.index(min(loads))
+            groups[k].append(tag)
+            loads[k] += sizes[tag]
+        self.client, self.root, self.key = client, os.fspath(root), key
+        self.groups = [sorted(g) for g in groups]
+        self.found = submit_first(client, _integrity_ids, self.root, key)
+        self.chains = self._walks(frozenset())
+
+    def _walks(self, dup_ids: frozenset[str]) -> list[Future]:
+        return [submit_first(self.client, _integrity_chains, self.root, self.key, g, dup_ids)
+                for g in self.groups]  # fmt: skip
+
+    def report(self, command: str) -> IntegrityReport:
+        """The combined report (waits for the tasks)."""
+        found = one_result(self.found, command, "the integrity check")
+        if found[1]:
+            self.chains = self._walks(frozenset(found[1]))
+        chains = [one_result(f, command, "the integrity check") for f in self.chains]
+        return combine_reports(found, *chains)

@@ -1,0 +1,103 @@
+"""The integrity check of an SQL ledger, writer by writer, page by page."""
+
+from __future__ import annotations
+
+import heapq
+from collections.abc import Iterator
+
+import sqlalchemy as sa
+
+from drawledger import _records
+from drawledger.replay.integrity._report import (
+    IntegrityReport,
+    Rec,
+    Row,
+    decision_rec,
+    outcome_rec,
+    walk,
+)
+
+_DEC = ", ".join(_records.DECISION_COLUMNS)
+
+
+_OUT = ", ".join(_records.OUTCOME_COLUMNS)
+
+
+_DRAW = ", ".join(f"dr.{c}" for c in _records.DRAW_COLUMNS)
+
+
+def check_sql(engine: sa.Engine, key: bytes, report: IntegrityReport, chunk: int) -> None:
+    dup_ids: set[str] = set()
+    with engine.connect() as conn:
+        for did, n in conn.execute(sa.text(
+            "SELECT decision_id, COUNT(*) FROM decisions GROUP BY decision_id HAVING COUNT(*) > 1"
+        )):  # fmt: skip
+            dup_ids.add(did)
+            report.note("duplicates", did, n - 1)
+        for did, n in conn.execute(sa.text(
+            "SELECT dr.decision_id, COUNT(*) FROM draws dr WHERE NOT EXISTS "
+            "(SELECT 1 FROM decisions d WHERE d.decision_id = dr.decision_id) "
+            "GROUP BY dr.decision_id"
+        )):  # fmt: skip
+            report.note("orphan_draws", did, n)
+        for did, n in conn.execute(sa.text(
+            "SELECT o.decision_id, COUNT(*) FROM outcomes o WHERE NOT EXISTS "
+            "(SELECT 1 FROM decisions d WHERE d.decision_id = o.decision_id) "
+            "GROUP BY o.decision_id"
+        )):  # fmt: skip
+            report.note("orphan_outcomes", did, n)
+        writers = sorted(
+            {w for (w,) in conn.execute(sa.text("SELECT DISTINCT writer FROM decisions"))}
+            | {w for (w,) in conn.execute(sa.text("SELECT DISTINCT writer FROM outcomes"))}
+        )
+    for writer in writers:
+        merged = heapq.merge(
+            _sql_decisions(engine, writer, key, dup_ids, chunk),
+            _sql_outcomes(engine, writer, key, chunk),
+            key=lambda r: (r.seq, r.order),
+        )
+        walk(report, merged, dup_ids)
+
+
+def _sql_pages(engine: sa.Engine, sql: str, writer: str, chunk: int) -> Iterator[list[Row]]:
+    """Pages of a writer's rows in seq order (keyset pagination: WHERE seq > last)."""
+    last: int | None = None
+    while True:
+        cond = "" if last is None else "AND seq > :last"
+        with engine.connect() as conn:
+            rows = [tuple(r) for r in conn.execute(
+                sa.text(f"{sql} WHERE writer = :w {cond} ORDER BY seq LIMIT :n"),
+                {"w": writer, "last": last, "n": chunk},
+            )]  # fmt: skip
+        if not rows:
+            return
+        yield rows
+        if len(rows) < chunk:
+            return
+        last = rows[-1][-3]  # seq is third from the end in both decisions and outcomes rows
+
+
+def _sql_decisions(
+    engine: sa.Engine, writer: str, key: bytes, dup_ids: set[str], chunk: int
+) -> Iterator[Rec]:
+    for rows in _sql_pages(engine, f"SELECT {_DEC} FROM decisions", writer, chunk):
+        with engine.connect() as conn:
+            found = conn.execute(
+                sa.text(
+                    f"SELECT {_DRAW} FROM draws dr JOIN decisions d "
+                    "ON dr.decision_id = d.decision_id "
+                    "WHERE d.writer = :w AND d.seq >= :lo AND d.seq <= :hi"
+                ),
+                {"w": writer, "lo": rows[0][13], "hi": rows[-1][13]},
+            )
+            by_id: dict[str, list[Row]] = {}
+            for d in found:
+                by_id.setdefault(d[0], []).append(tuple(d))
+        for row in rows:
+            yield decision_rec(row, by_id.get(row[0], []), key, dup_ids)
+
+
+def _sql_outcomes(engine: sa.Engine, writer: str, key: bytes, chunk: int) -> Iterator[Rec]:
+    for rows in _sql_pages(engine, f"SELECT {_OUT} FROM outcomes", writer, chunk):
+        for row in rows:
+            yield outcome_rec(row, key)

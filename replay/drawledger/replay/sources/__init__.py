@@ -1,0 +1,40 @@
+"""The one way to read a ledger: cut any ledger (SQLite, PostgreSQL, Parquet) into pieces and read
+them, whole tables or chunks of decisions with their draws."""
+
+from drawledger.replay.sources._parquet import (
+    Piece,
+    parquet_root,
+    partitions,
+    pieces,
+    read_piece,
+    read_piece_frames,
+    stream_partitions,
+)
+from drawledger.replay.sources._plan import CHUNK_SIZE, PARALLEL_CHUNK_SIZE, Task, iter_chunks, plan
+from drawledger.replay.sources._tables import (
+    LedgerTables,
+    is_parquet,
+    iter_decision_chunks,
+    open_engine,
+    read_tables,
+)
+
+__all__ = [
+    "CHUNK_SIZE",
+    "PARALLEL_CHUNK_SIZE",
+    "LedgerTables",
+    "Piece",
+    "Task",
+    "is_parquet",
+    "iter_chunks",
+    "iter_decision_chunks",
+    "open_engine",
+    "parquet_root",
+    "partitions",
+    "pieces",
+    "plan",
+    "read_piece",
+    "read_piece_frames",
+    "read_tables",
+    "stream_partitions",
+]

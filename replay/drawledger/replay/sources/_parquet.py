@@ -1,0 +1,148 @@
+"""Parquet ledgers cut into pieces: consecutive committed part files, read as rows or frames."""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import pyarrow.parquet as pq
+
+from drawledger import _parquet
+from drawledger.exceptions import ReplayError
+from drawledger.replay.sources._tables import is_parquet
+
+if TYPE_CHECKING:
+    pass
+
+
+Row = tuple[Any, ...]
+
+
+@dataclass(frozen=True)
+class Partition:
+    """One ``<stream>/<date>`` directory of the decisions table and its committed part files."""
+
+    name: str
+    parts: tuple[str, ...]
+    draws: tuple[str | None, ...]
+    counts: tuple[int, ...]  # decisions in each part (from the Parquet footers)
+
+    @property
+    def rows(self) -> int:
+        return sum(self.counts)
+
+
+@dataclass(frozen=True)
+class Piece:
+    """Consecutive part files processed by one task; ``rows`` decisions in all."""
+
+    index: int
+    parts: tuple[str, ...]
+    draws: tuple[str | None, ...]
+    rows: int
+    partitions: tuple[str, ...]
+
+    def label(self) -> str:
+        shown = ", ".join(self.partitions[:3]) + (", ..." if len(self.partitions) > 3 else "")
+        return f"piece {self.index} ({self.rows} decisions of {shown})"
+
+
+def parquet_root(ledger: str | os.PathLike[str], format: str | None, command: str) -> Path:
+    """The absolute directory of a Parquet ledger; ``ReplayError`` for other ledgers."""
+    text = os.fspath(ledger)
+    if not is_parquet(text, format):
+        raise ReplayError(
+            f"{command}: the dask engine reads partitioned Parquet ledgers (a directory written "
+            f"with format='parquet'); {text!r} is not one, use --engine local"
+        )
+    root = Path(text).expanduser().resolve()
+    _parquet.check_ledger_dir(root)
+    return root
+
+
+def partitions(root: str | os.PathLike[str]) -> list[Partition]:
+    """The partitions of a Parquet ledger in path order (stream, then date)."""
+    base = Path(root)
+    _parquet.check_ledger_dir(base)
+    found: dict[str, tuple[list[str], list[str | None], list[int]]] = {}
+    decisions_dir = base / "decisions"
+    for part, sibling in _parquet.iter_part_pairs(base):
+        name = part.path.parent.relative_to(decisions_dir).as_posix()
+        parts, draws, counts = found.setdefault(name, ([], [], []))
+        parts.append(os.fspath(part.path))
+        draws.append(None if sibling is None else os.fspath(sibling))
+        counts.append(_footer_rows(part.path))
+    return [
+        Partition(name, tuple(p), tuple(d), tuple(c)) for name, (p, d, c) in sorted(found.items())
+    ]
+
+
+def _footer_rows(path: Path) -> int:
+    try:
+        return int(pq.read_metadata(path).num_rows)
+    except OSError as exc:
+        raise ReplayError(f"cannot read ledger part {os.fspath(path)!r}: {exc}") from None
+
+
+def pieces(parts: Sequence[Partition], chunk_size: int) -> list[Piece]:
+    """Part files cut into pieces of at least ``chunk_size`` decisions, as the local engine.
+
+    The local engine reads part files in path order and yields a chunk as soon as it holds
+    ``chunk_size`` decisions or more (``iter_chunks``, ``iter_decision_chunks``): the same cut
+    here gives every task exactly one local chunk.
+    """
+    out: list[Piece] = []
+    files: list[str] = []
+    draws: list[str | None] = []
+    names: list[str] = []
+    rows = 0
+
+    def cut() -> None:
+        nonlocal files, draws, names, rows
+        out.append(Piece(len(out), tuple(files), tuple(draws), rows, tuple(dict.fromkeys(names))))
+        files, draws, names, rows = [], [], [], 0
+
+    for partition in parts:
+        for path, sibling, count in zip(
+            partition.parts, partition.draws, partition.counts, strict=True
+        ):
+            files.append(path)
+            draws.append(sibling)
+            names.append(partition.name)
+            rows += count
+            if rows >= chunk_size:
+                cut()
+    if files:
+        cut()
+    return out
+
+
+def read_piece(piece: Piece) -> tuple[list[Row], list[Row]]:
+    """Decision rows and draw rows of a piece, as tuples in the ledger's column order."""
+    rows: list[Row] = []
+    draws: list[Row] = []
+    for path, sibling in zip(piece.parts, piece.draws, strict=True):
+        rows.extend(_parquet.part_rows(Path(path), "decisions"))
+        if sibling is not None:
+            draws.extend(_parquet.part_rows(Path(sibling), "draws"))
+    return rows, draws
+
+
+def read_piece_frames(piece: Piece) -> tuple[Any, Any]:
+    """Decisions and draws of a piece as DataFrames, as ``iter_decision_chunks`` gives them."""
+    decisions = [_parquet.read_part(Path(p), "decisions") for p in piece.parts]
+    draws = [_parquet.read_part(Path(d), "draws") for d in piece.draws if d is not None]
+    return _parquet.to_frame(decisions, "decisions"), _parquet.to_frame(draws, "draws")
+
+
+def stream_partitions(root: str | os.PathLike[str]) -> dict[str, list[Partition]]:
+    """The partitions of each decision stream (read from the first row of each partition)."""
+    out: dict[str, list[Partition]] = {}
+    for partition in partitions(root):
+        column = pq.read_table(partition.parts[0], columns=["stream"]).column(0)
+        stream = str(column[0].as_py()) if len(column) else ""
+        out.setdefault(stream, []).append(partition)
+    return out

@@ -1,0 +1,94 @@
+"""The chunks of any ledger, in order, as tasks that read themselves in any process."""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterator
+from dataclasses import dataclass
+from typing import Any
+
+import sqlalchemy as sa
+
+from drawledger.exceptions import (
+    LedgerError,
+)
+from drawledger.replay.sources._parquet import partitions, pieces, read_piece
+from drawledger.replay.sources._sql import SqlSlice, group_slices, read_sql_slice, sql_slices
+from drawledger.replay.sources._tables import is_parquet, open_engine
+
+Row = tuple[Any, ...]
+
+
+CHUNK_SIZE = 10_000
+
+
+PARALLEL_CHUNK_SIZE = 2_000  # smaller chunks spread the work of several processes evenly
+
+
+@dataclass(frozen=True)
+class Task:
+    """One chunk of a ledger, read by the process that replays it."""
+
+    target: str
+    rows: int
+    slices: tuple[SqlSlice, ...] = ()
+    piece: Any = None  # a Parquet piece (replay/_dask.py): consecutive part files
+
+    def read(self, engine: sa.Engine | None = None) -> tuple[list[Row], list[Row]]:
+        """Its rows; SQL through ``engine``, else through this process's own engine."""
+        if self.piece is not None:
+            return read_piece(self.piece)
+        engine = engine or _engine(self.target)
+        rows: list[Row] = []
+        draws: list[Row] = []
+        for sl in self.slices:
+            r, d = read_sql_slice(engine, sl)
+            rows.extend(r)
+            draws.extend(d)
+        return rows, draws
+
+
+_ENGINES: dict[tuple[int, str], sa.Engine] = {}
+
+
+def _engine(target: str) -> sa.Engine:
+    """One engine per process and ledger (a forked process opens its own connections)."""
+    key = (os.getpid(), target)
+    if key not in _ENGINES:
+        _ENGINES[key] = open_engine(target)
+    return _ENGINES[key]
+
+
+def plan(target: str | os.PathLike[str], *, format: str | None = None,
+         size: int = CHUNK_SIZE) -> list[Task]:  # fmt: skip
+    """The chunks of a ledger, in order, as tasks that read themselves."""
+    text = os.fspath(target)
+    if is_parquet(target, format):
+        return [Task(text, p.rows, piece=p) for p in pieces(partitions(text), size)]
+    engine = open_engine(target)
+    try:
+        slices = sql_slices(engine, size)
+    except sa.exc.SQLAlchemyError as exc:
+        raise LedgerError(f"cannot read ledger {text!r}: {str(exc).splitlines()[0]}") from None
+    finally:
+        engine.dispose()
+    return [Task(text, sum(sl.rows for sl in slices[a:b]), tuple(slices[a:b]))
+            for a, b in group_slices([sl.rows for sl in slices], size)]  # fmt: skip
+
+
+def iter_chunks(
+    target: str | os.PathLike[str], *, format: str | None = None, size: int = CHUNK_SIZE
+) -> Iterator[tuple[list[Row], list[Row]]]:
+    """Decision rows with their draw rows, chunk by chunk (at least ``size`` decisions each,
+    the last aside): SQL ledgers writer by writer in seq order, Parquet ledgers part file by
+    part file in path order."""
+    tasks = plan(target, format=format, size=size)
+    engine = None if is_parquet(target, format) else open_engine(target)
+    try:
+        for task in tasks:
+            yield task.read(engine)
+    except sa.exc.SQLAlchemyError as exc:
+        raise LedgerError(f"cannot read ledger: {str(exc).splitlines()[0]}") from None
+    finally:
+        if engine is not None:
+            engine.dispose()

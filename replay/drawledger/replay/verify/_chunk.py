@@ -1,0 +1,88 @@
+"""verify_chunk: a pure function of one chunk of decisions with their draws."""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Set as AbstractSet
+from typing import Any
+
+import pandas as pd
+
+from drawledger.replay.verify import _export
+from drawledger.replay.verify._decision import Context, as_text, check_decision
+from drawledger.replay.verify._types import (
+    MAX_EXAMPLES,
+    MISMATCHED,
+    UNREPLAYABLE,
+    UNREPLAYABLE_,
+    VERIFIED,
+    ChunkResult,
+    Row,
+    Settings,
+)
+
+
+def _category(reasons: Mapping[str, str]) -> int:
+    if not reasons:
+        return VERIFIED
+    found = set(reasons)
+    if found & UNREPLAYABLE:
+        return UNREPLAYABLE_
+    return MISMATCHED if found else VERIFIED
+
+
+def verify_chunk(
+    decisions: Sequence[Row],
+    draws: Iterable[Row],
+    flagged: AbstractSet[str],
+    settings: Settings,
+) -> ChunkResult:
+    """Check a chunk of decision rows with their draw rows (tuples in the ledger's column order).
+
+    ``flagged`` holds the ids among them that the integrity check found in a problem. Pure:
+    the result depends only on the arguments (and the decision code they name).
+    """
+    by_id: dict[str, list[Row]] = {}
+    for d in draws:
+        by_id.setdefault(d[0], []).append(d)
+    ctx = Context(settings)
+    result = ChunkResult()
+    base: list[tuple[Any, ...]] = []
+    flat: list[dict[str, Any]] = []
+    for row in decisions:
+        did = row[0]
+        checked = check_decision(row, list(by_id.get(did, ())), ctx, did in flagged)
+        reasons = checked.reasons
+        category = _category(reasons)
+        stream = row[1] if isinstance(row[1], str) else str(row[1])
+        counts = result.streams.setdefault(stream, [0, 0, 0, 0])
+        counts[0] += 1
+        counts[category] += 1
+        if reasons:
+            result.stream_reasons.setdefault(stream, Counter()).update(reasons.keys())
+        for reason, detail in reasons.items():
+            result.by_reason[reason] += 1
+            shown = result.examples.setdefault(reason, [])
+            if len(shown) < MAX_EXAMPLES:
+                shown.append((did, detail))
+        prop = checked.propensity
+        if prop is not None:
+            result.methods[prop.method] += 1
+        if settings.keep_rows:
+            base.append((
+                did, row[1], as_text(row[2]), row[3], row[8],
+                math.nan if prop is None else prop.value,
+                None if prop is None else prop.method,
+                math.nan if prop is None else prop.stderr,
+                row[9], row[10], category == VERIFIED,
+                ";".join(reasons) or None, next(iter(reasons.values()), None),
+            ))  # fmt: skip
+            flat.append(_export.flatten_inputs(checked.inputs))
+    if settings.keep_rows and base:
+        frame = pd.DataFrame.from_records(base, columns=list(_export.BASE_COLUMNS))
+        if any(flat):
+            frame = pd.concat([frame, pd.DataFrame.from_records(flat)], axis=1)
+        result.rows.append(frame)
+    return result

@@ -1,0 +1,374 @@
+"""Replaying one decision and comparing every draw, probability and the action with the record."""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import orjson
+
+from drawledger._records import (  # _default, _OPTS: the SDK's own JSON encoding, bit for bit
+    _OPTS,
+    _default,
+    from_json,
+    to_json,
+)
+from drawledger.draw import Draw, DrawRecord, bucket_assign
+from drawledger.exceptions import (
+    BadRecordError,
+    DrawArgumentError,
+    MissingFunctionError,
+    NotADecisionError,
+    ReplayError,
+)
+from drawledger.ledger import Decision
+from drawledger.replay.propensity import (
+    DENSITY,
+    EXACT,
+    Memo,
+    Propensity,
+    read,
+    remembered,
+    single_draw_probability,
+)
+from drawledger.replay.verify._imports import (
+    build_inputs,
+    immutable,
+    load_params,
+    parse_object,
+    resolve_decision,
+)
+from drawledger.replay.verify._types import PROBES, REL_TOL, SHOW, Row, Settings
+
+
+def _close(a: float, b: float) -> bool:
+    return a == b or abs(a - b) <= REL_TOL * max(abs(a), abs(b))
+
+
+def _same(a: Any, b: Any) -> bool:
+    """JSON values equal, numbers within 1e-12 relative."""
+    if isinstance(a, bool) or isinstance(b, bool):
+        return a is b
+    if isinstance(a, (int, float)) and isinstance(b, (int, float)):
+        return _close(float(a), float(b))
+    if isinstance(a, list) and isinstance(b, list):
+        return len(a) == len(b) and all(_same(x, y) for x, y in zip(a, b, strict=True))
+    if isinstance(a, dict) and isinstance(b, dict):
+        return a.keys() == b.keys() and all(_same(a[k], b[k]) for k in a)
+    return bool(a == b)
+
+
+def _parse(text: Any, what: str) -> Any:
+    if not isinstance(text, str):
+        raise BadRecordError(f"{what} is not JSON text (got {type(text).__name__})")
+    try:
+        return from_json(text)
+    except ValueError as exc:
+        raise BadRecordError(f"{what} is not valid JSON: {exc}") from None
+
+
+def _json_same(replayed: str, recorded: Any, what: str) -> bool:
+    """Replayed JSON text equals the recorded text (floats at 1e-12); corrupt text raises."""
+    if replayed == recorded:
+        return True
+    return _same(from_json(replayed), _parse(recorded, what))
+
+
+def as_text(x: Any) -> str | None:
+    return x if isinstance(x, str) else None
+
+
+def _number(x: Any, what: str) -> float:
+    if isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x):
+        raise BadRecordError(f"{what} is {x!r}, not a finite number")
+    return float(x)
+
+
+def _short(text: str) -> str:
+    return text if len(text) <= SHOW else text[: SHOW - 3] + "..."
+
+
+def _json(obj: Any, what: str) -> str:
+    """JSON text exactly as the SDK records it (a NaN, which it refuses, shows as a difference)."""
+    try:
+        return orjson.dumps(obj, default=_default, option=_OPTS).decode()
+    except TypeError:
+        return to_json(obj, what)  # raises the SDK's NotSerializableError with the reason
+
+
+def _encode(records: Sequence[DrawRecord]) -> list[tuple[Any, ...]]:
+    return [
+        (r.kind, r.name, _json(r.args, "draw arguments"), _json(r.u, "uniforms"),
+         _json(r.value, "draw value"), r.prob, bool(r.is_density))
+        for r in records
+    ]  # fmt: skip
+
+
+def _logged(encoded: Sequence[tuple[Any, ...]], action_json: str) -> tuple[float, str]:
+    """The propensity the SDK logs for these draws and action (ledger._record_decision)."""
+    if not encoded:
+        return 1.0, "exact"
+    if len(encoded) == 1 and encoded[0][4] == action_json:
+        return encoded[0][5], "exact"
+    prop = 1.0
+    for e in encoded:
+        prop *= e[5]
+    return prop, "path"
+
+
+class _Checked:
+    """Reasons found for one decision, with the first detail of each."""
+
+    __slots__ = ("inputs", "propensity", "reasons")
+
+    def __init__(self) -> None:
+        self.reasons: dict[str, str] = {}
+        self.propensity: Propensity | None = None
+        self.inputs: Mapping[str, Any] = {}
+
+    def add(self, reason: str, detail: str) -> None:
+        if reason not in self.reasons:
+            self.reasons[reason] = detail
+
+
+class Context:
+    """Per-chunk caches: resolved functions, decoded parameters, enumerated distributions."""
+
+    def __init__(self, settings: Settings) -> None:
+        self.settings = settings
+        self.resolved: dict[str, Decision[Any] | ReplayError] = {}
+        self.params: dict[tuple[str, str], dict[str, Any]] = {}
+        self.memo = Memo()
+        self.probed: Counter[str] = Counter()  # decisions fully enumerated, by function
+        self.multi: set[str] = set()  # functions seen making several draws (never trusted)
+
+    def resolve(self, fn: str) -> Decision[Any]:
+        found = self.resolved.get(fn)
+        if found is None:
+            try:
+                found = resolve_decision(fn, path=self.settings.path, allow=self.settings.allow)
+            except ReplayError as exc:
+                found = exc
+            self.resolved[fn] = found
+        if isinstance(found, ReplayError):
+            raise found
+        return found
+
+    def load_params(self, decision: Decision[Any], text: Any) -> dict[str, Any]:
+        key = (decision.name, text)
+        cached = self.params.get(key)
+        if cached is None:
+            cached = load_params(decision, text if isinstance(text, str) else repr(text))
+            if immutable(cached) and len(self.params) < 1024:
+                self.params[key] = cached
+        return cached
+
+
+def _failure_reason(exc: ReplayError) -> str:
+    if isinstance(exc, MissingFunctionError):
+        return "missing-function"
+    if isinstance(exc, NotADecisionError):
+        return "not-a-decision"
+    if isinstance(exc, BadRecordError):
+        return "bad-record"
+    return "replay-error"
+
+
+def _seed(text: Any) -> bytes:
+    if not isinstance(text, str) or len(text) != 32:
+        raise BadRecordError(f"seed {text!r} is not 32 hex digits")
+    try:
+        return bytes.fromhex(text)
+    except ValueError:
+        raise BadRecordError(f"seed {text!r} is not 32 hex digits") from None
+
+
+def _draw_rows(rows: list[Row]) -> list[Row]:
+    if len(rows) > 1:
+        rows.sort(key=lambda d: d[1] if isinstance(d[1], int) else -1)
+    for i, d in enumerate(rows):
+        if d[1] != i:
+            raise BadRecordError(f"draw indexes are {[d[1] for d in rows]}, not 0, 1, 2, ...")
+        if not (d[7].__class__ is float and -math.inf < d[7] < math.inf):
+            _number(d[7], f"draw {i} probability")
+    return rows
+
+
+def _compare_draws(out: _Checked, replayed: list[tuple[Any, ...]], recorded: list[Row]) -> None:
+    if len(replayed) != len(recorded):
+        out.add("draw-count", f"{len(recorded)} draws recorded, {len(replayed)} replayed")
+    for (kind, name, args, u, value, prob, dens), d in zip(replayed, recorded, strict=False):
+        if (kind == d[3] and args == d[4] and u == d[5] and value == d[6] and prob == d[7]
+                and dens == bool(d[8]) and name == as_text(d[2])):  # fmt: skip
+            continue  # the usual case: identical to the record
+        where = f"draw {d[1]} ({kind}{'' if name is None else ' ' + repr(name)})"
+        if kind != d[3] or name != as_text(d[2]):
+            out.add("args", f"{where}: recorded as {d[3]} {as_text(d[2])!r}")
+        elif not _json_same(args, d[4], f"{where} arguments"):
+            out.add("args", f"{where}: arguments {_short(args)} replayed, {_short(d[4])} recorded")
+        if not _json_same(u, d[5], f"{where} uniforms"):
+            out.add("value", f"{where}: uniforms {_short(u)} replayed, {_short(d[5])} recorded")
+        if not _json_same(value, d[6], f"{where} value"):
+            out.add("value", f"{where}: value {_short(value)} replayed, {_short(d[6])} recorded")
+        if not _close(prob, d[7]) or dens != bool(d[8]):
+            what = "density" if dens else "probability"
+            out.add("probability", f"{where}: {what} {prob!r} replayed, {d[7]!r} recorded")
+
+
+def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> None:
+    raw = parse_object(row[6], "inputs")
+    out.inputs = raw
+    decision = ctx.resolve(row[4])
+    if decision.code_hash != row[5]:
+        out.add("code-changed", f"code hash {row[5]} recorded, {decision.code_hash} now")
+    seed = _seed(row[11])
+    inputs = build_inputs(decision, raw)
+    params = ctx.load_params(decision, row[7])
+    logged = _number(row[9], "logged propensity")
+    draws = _draw_rows(draws)
+    try:
+        draw = Draw(seed)
+        first_action = decision.run(draw, inputs, params)
+        records = draw.records
+        first = _encode(records)
+        action = _json(first_action, "action")
+    except Exception as exc:
+        out.add("replay-error", f"{type(exc).__name__}: {exc}")
+        return
+    _compare_draws(out, first, draws)
+    if _json_same(action, row[8], "action"):
+        action_key = action
+    else:
+        action_key = to_json(from_json(row[8]), "action")
+        out.add("action", f"action {_short(action)} replayed, {_short(row[8])} recorded")
+    prop, kind = _logged(first, action)
+    if not _close(prop, logged) or kind != row[10]:
+        out.add("probability", f"logged propensity {logged!r} ({row[10]}) recorded, "
+                f"{prop!r} ({kind}) replayed")  # fmt: skip
+    try:
+        again = Draw(seed)
+        returned = decision.run(again, inputs, params)
+        same = again.records == records and returned == first_action
+        if not same:  # objects without value equality: compare their recorded form
+            same = _encode(again.records) == first and to_json(returned, "action") == action
+    except Exception as exc:
+        out.add("nondeterministic", f"a second run raised {type(exc).__name__}: {exc}")
+    else:
+        if not same:
+            out.add("nondeterministic", "a second run with the same seed and inputs differs "
+                    "(hidden state, a clock, or inputs changed by the function)")  # fmt: skip
+    try:
+        out.propensity = _propensity(ctx, decision, inputs, params, action_key, records, first,
+                                     action, (row[6], row[7]))  # fmt: skip
+    except Exception as exc:
+        out.add("replay-error", f"propensity: {type(exc).__name__}: {exc}")
+
+
+def _propensity(
+    ctx: Context,
+    decision: Decision[Any],
+    inputs: Mapping[str, Any],
+    params: Mapping[str, Any],
+    action_key: str,
+    records: list[DrawRecord],
+    encoded: list[tuple[Any, ...]],
+    returned: str,
+    texts: tuple[str, str],
+) -> Propensity:
+    """The replayed propensity of the recorded action.
+
+    A function whose draws were fully enumerated for its first decisions in this chunk (the
+    probes) and always made one draw returning its value is trusted to do so: later decisions
+    read the probability of that one draw ("exact") or its density.
+    """
+    if not records:  # no draw: nothing random happens before or after
+        return Propensity(1.0 if returned == action_key else 0.0, EXACT)
+    name = decision.name
+    single_run = len(records) == 1 and encoded[0][4] == returned
+    if not single_run:
+        ctx.multi.add(name)
+    elif name not in ctx.multi and ctx.probed[name] >= PROBES:
+        rec = records[0]
+        if rec.is_density and returned == action_key:
+            return Propensity(rec.prob, DENSITY)
+        p = None if rec.is_density else single_draw_probability(rec, action_key, encoded[0][4])
+        if p is not None:
+            return Propensity(p, EXACT)
+    settings = ctx.settings
+    found = remembered(ctx.memo, decision, inputs, params, action_key, budget=settings.budget,
+                       mc_samples=settings.mc_samples, texts=texts)  # fmt: skip
+    ctx.probed[name] += 1
+    if not found.single:
+        ctx.multi.add(name)
+    return read(found, action_key)
+
+
+def _bucket_args(draw: Row) -> tuple[str, dict[str, Any], str] | None:
+    args = _parse(draw[4], "bucket arguments")
+    if not isinstance(args, dict) or set(args) != {"unit", "shares", "salt"}:
+        return None
+    unit, shares, salt = args["unit"], args["shares"], args["salt"]
+    if not isinstance(unit, str) or not isinstance(shares, dict) or not isinstance(salt, str):
+        raise BadRecordError("bucket arguments: unit, shares or salt has the wrong type")
+    return unit, shares, salt
+
+
+def _arm(text: Any, what: str) -> str:
+    """A recorded arm as a key of the recorded shares (JSON object keys are text)."""
+    value = _parse(text, what)
+    return value if isinstance(value, str) else to_json(value, what)
+
+
+def _check_bucket(out: _Checked, row: Row, draw: Row, unit: str, shares: dict[str, Any],
+                  salt: str) -> None:  # fmt: skip
+    """Hashed assignment has no seed: recompute the arm, its uniform and its share."""
+    recorded_u = _parse(draw[5], "bucket uniforms")
+    keys = [salt.encode()]
+    if len(salt) % 2 == 0 and all(c in "0123456789abcdef" for c in salt):
+        keys.append(bytes.fromhex(salt))  # a bytes salt is recorded as hex
+    try:
+        found = [bucket_assign(unit, shares, k) for k in keys]
+    except DrawArgumentError as exc:
+        raise BadRecordError(f"bucket arguments: {exc}") from None
+    arm, u, prob, _, _ = next((f for f in found if [f[1]] == recorded_u), found[0])
+    if not isinstance(recorded_u, list) or not _same([u], recorded_u):
+        out.add("value", f"bucket uniform {u!r} recomputed, {_short(draw[5])} recorded")
+    if _arm(draw[6], "bucket arm") != arm:
+        out.add("value", f"bucket arm {arm!r} recomputed, {_short(draw[6])} recorded")
+    if not _close(prob, _number(draw[7], "bucket share")):
+        out.add("probability", f"bucket share {prob!r} recomputed, {draw[7]!r} recorded")
+    if not _close(prob, _number(row[9], "logged propensity")):
+        out.add("probability", f"logged propensity {row[9]!r} recorded, {prob!r} recomputed")
+    if as_text(row[2]) != unit:
+        out.add("args", f"bucket unit {unit!r} in the draw, {row[2]!r} on the decision")
+    if _arm(row[8], "action") != arm:
+        out.add("action", f"action {_short(row[8])} recorded, arm {arm!r} recomputed")
+    out.propensity = Propensity(prob, EXACT)
+
+
+def _check_other(out: _Checked, row: Row, draws: list[Row]) -> None:
+    """A decision without a function: a hashed bucket assignment or a declared draw."""
+    if len(draws) == 1 and draws[0][3] == "bucket":
+        args = _bucket_args(draws[0])
+        if args is not None:
+            _check_bucket(out, row, draws[0], *args)
+            return
+    kind = draws[0][3] if draws else "no"
+    out.add("declared", f"declared {kind} draw: audited, not replayed")
+
+
+def check_decision(row: Row, draws: list[Row], ctx: Context, flagged: bool) -> _Checked:
+    """Every reason one decision is not verified (none: verified)."""
+    out = _Checked()
+    if flagged:
+        out.add("integrity", "part of an integrity problem (see integrity)")
+    try:
+        if as_text(row[4]) is None:
+            _check_other(out, row, draws)
+        else:
+            _check_python(out, row, draws, ctx)
+    except ReplayError as exc:
+        out.add(_failure_reason(exc), str(exc))
+    return out

@@ -1,0 +1,126 @@
+"""What verify found, as a report with JSON, rich and plain-text forms."""
+
+from __future__ import annotations
+
+import io
+import os
+from collections import Counter
+from dataclasses import dataclass
+from typing import Any
+
+import pandas as pd
+
+from drawledger.replay.integrity import IntegrityReport
+from drawledger.replay.verify import _export
+from drawledger.replay.verify._types import COUNTS, NOT_FAILING, REASONS, UNREPLAYABLE, ChunkResult
+
+
+@dataclass
+class VerifyReport:
+    """What ``verify`` found. ``to_dict()`` is the JSON of ``drawledger verify --json``."""
+
+    decisions: int
+    verified: int
+    mismatched: int
+    unreplayable: int
+    by_reason: dict[str, int]
+    examples: dict[str, list[tuple[str, str]]]
+    by_stream: dict[str, dict[str, Any]]
+    methods: dict[str, int]
+    integrity: IntegrityReport
+    rows: pd.DataFrame
+
+    @property
+    def ok(self) -> bool:
+        """Every decision verified (declared draws aside) and the ledger's integrity intact."""
+        failing = sum(n for r, n in self.by_reason.items() if r in UNREPLAYABLE - NOT_FAILING)
+        return self.mismatched == 0 and failing == 0 and self.integrity.ok
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "ok": self.ok,
+            "decisions": self.decisions,
+            "verified": self.verified,
+            "mismatched": self.mismatched,
+            "unreplayable": self.unreplayable,
+            "by_reason": dict(self.by_reason),
+            "integrity": self.integrity.to_dict(),
+            "examples": {
+                reason: [{"decision_id": d, "detail": text} for d, text in shown]
+                for reason, shown in self.examples.items()
+            },
+            "by_stream": self.by_stream,
+            "propensity_methods": dict(self.methods),
+        }
+
+    def __rich__(self) -> Any:
+        from rich.console import Group
+        from rich.table import Table
+        from rich.text import Text
+
+        streams = Table(title="decisions by stream", title_justify="left")
+        for name in ("stream", "decisions", "verified", "mismatched", "unreplayable", "reasons"):
+            streams.add_column(name, justify="right" if name in COUNTS else "left")
+        for stream, c in sorted(self.by_stream.items()):
+            found = ", ".join(f"{r} {n}" for r, n in c["by_reason"].items())
+            streams.add_row(stream, *(str(c[k]) for k in COUNTS), found)
+        streams.add_row("all", str(self.decisions), str(self.verified), str(self.mismatched),
+                        str(self.unreplayable), style="bold")  # fmt: skip
+        parts: list[Any] = [streams]
+        if self.by_reason:
+            reasons = Table(title="reasons", title_justify="left")
+            reasons.add_column("reason")
+            reasons.add_column("decisions", justify="right")
+            reasons.add_column("first examples")
+            for reason in sorted(self.by_reason, key=REASONS.index):
+                shown = self.examples.get(reason, [])
+                ids = ", ".join(d for d, _ in shown)
+                first = f"{ids}\n{shown[0][1]}" if shown else ""
+                reasons.add_row(reason, str(self.by_reason[reason]), first)
+            parts.append(reasons)
+        parts.append(Text(self.integrity.render()))
+        verdict = "verify passed" if self.ok else "verify FAILED"
+        parts.append(Text(verdict, style="bold green" if self.ok else "bold red"))
+        return Group(*parts)
+
+    def render(self) -> str:
+        """The summary as plain text."""
+        from rich.console import Console
+
+        buffer = io.StringIO()
+        Console(file=buffer, width=110, no_color=True, highlight=False).print(self)
+        return buffer.getvalue().rstrip("\n")
+
+    def __str__(self) -> str:
+        return self.render()
+
+
+def build_report(
+    total: ChunkResult, integrity: IntegrityReport, rows: pd.DataFrame
+) -> VerifyReport:
+    by_stream: dict[str, dict[str, Any]] = {}
+    for stream, counts in sorted(total.streams.items()):
+        found = total.stream_reasons.get(stream, Counter())
+        by_stream[stream] = {**dict(zip(COUNTS, counts, strict=True)),
+                             "by_reason": {r: found[r] for r in REASONS if found[r]}}  # fmt: skip
+    sums = [sum(c[i] for c in total.streams.values()) for i in range(4)]
+    ordered = {r: total.by_reason[r] for r in REASONS if total.by_reason[r]}
+    return VerifyReport(
+        decisions=sums[0],
+        verified=sums[1],
+        mismatched=sums[2],
+        unreplayable=sums[3],
+        by_reason=ordered,
+        examples=total.examples,
+        by_stream=by_stream,
+        methods=dict(total.methods),
+        integrity=integrity,
+        rows=rows,
+    )
+
+
+def rows_with_outcomes(frames: list[pd.DataFrame], ledger: str | os.PathLike[str],
+          format: str | None) -> pd.DataFrame:  # fmt: skip
+    rows = (pd.concat(frames, ignore_index=True) if frames
+            else pd.DataFrame(columns=list(_export.BASE_COLUMNS)))  # fmt: skip
+    return _export.join_outcomes(rows, _export.read_outcomes(ledger, format=format))
