@@ -1,4 +1,4 @@
-"""Seeds and the uniform stream of draw specification v1 (sdk/_stream.py)."""
+"""Seeds and the uniform stream of draw specification v1 (sdk/drawledger/_stream.py)."""
 
 from __future__ import annotations
 

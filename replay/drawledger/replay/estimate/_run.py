@@ -128,8 +128,9 @@ def _pass(
         tasks = plan(text, format=q.format)
     job = Job(tuple(policies), q.reward, stream, settings, q.seed, q.missing_reward,
               q.reward_range, by)  # fmt: skip
-    if q.engine == "dask":  # the stages as tasks on a cluster (replay/_dask.py)
-        return estimate_pass(root, [t.piece for t in tasks], job, integrity_key=q.integrity_key,
+    if q.engine == "dask":  # the stages as tasks on a cluster
+        parts = [t.piece for t in tasks if t.piece is not None]
+        return estimate_pass(root, parts, job, integrity_key=q.integrity_key,
                              scheduler=q.scheduler, progress=q.progress, cap=cap,
                              bootstrap=bootstrap, weights=weights), stream  # fmt: skip
     rewards = read_rewards(text, q.format, q.reward)

@@ -16,12 +16,7 @@ from drawledger.replay.integrity._report import (
     outcome_rec,
     walk,
 )
-
-_DEC = ", ".join(_records.DECISION_COLUMNS)
-
-
-_OUT = ", ".join(_records.OUTCOME_COLUMNS)
-
+from drawledger.replay.sources import writer_pages
 
 _DRAW = ", ".join(f"dr.{c}" for c in _records.DRAW_COLUMNS)
 
@@ -59,28 +54,10 @@ def check_sql(engine: sa.Engine, key: bytes, report: IntegrityReport, chunk: int
         walk(report, merged, dup_ids)
 
 
-def _sql_pages(engine: sa.Engine, sql: str, writer: str, chunk: int) -> Iterator[list[Row]]:
-    """Pages of a writer's rows in seq order (keyset pagination: WHERE seq > last)."""
-    last: int | None = None
-    while True:
-        cond = "" if last is None else "AND seq > :last"
-        with engine.connect() as conn:
-            rows = [tuple(r) for r in conn.execute(
-                sa.text(f"{sql} WHERE writer = :w {cond} ORDER BY seq LIMIT :n"),
-                {"w": writer, "last": last, "n": chunk},
-            )]  # fmt: skip
-        if not rows:
-            return
-        yield rows
-        if len(rows) < chunk:
-            return
-        last = rows[-1][-3]  # seq is third from the end in both decisions and outcomes rows
-
-
 def _sql_decisions(
     engine: sa.Engine, writer: str, key: bytes, dup_ids: set[str], chunk: int
 ) -> Iterator[Rec]:
-    for rows in _sql_pages(engine, f"SELECT {_DEC} FROM decisions", writer, chunk):
+    for rows in writer_pages(engine, "decisions", writer, chunk):
         with engine.connect() as conn:
             found = conn.execute(
                 sa.text(
@@ -98,6 +75,6 @@ def _sql_decisions(
 
 
 def _sql_outcomes(engine: sa.Engine, writer: str, key: bytes, chunk: int) -> Iterator[Rec]:
-    for rows in _sql_pages(engine, f"SELECT {_OUT} FROM outcomes", writer, chunk):
+    for rows in writer_pages(engine, "outcomes", writer, chunk):
         for row in rows:
             yield outcome_rec(row, key)

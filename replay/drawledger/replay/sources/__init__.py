@@ -10,11 +10,18 @@ from drawledger.replay.sources._parquet import (
     read_piece_frames,
     stream_partitions,
 )
-from drawledger.replay.sources._plan import CHUNK_SIZE, PARALLEL_CHUNK_SIZE, Task, iter_chunks, plan
+from drawledger.replay.sources._plan import (
+    CHUNK_SIZE,
+    PARALLEL_CHUNK_SIZE,
+    Task,
+    iter_chunks,
+    iter_decision_chunks,
+    plan,
+)
+from drawledger.replay.sources._sql import writer_pages
 from drawledger.replay.sources._tables import (
     LedgerTables,
     is_parquet,
-    iter_decision_chunks,
     open_engine,
     read_tables,
 )
@@ -37,4 +44,5 @@ __all__ = [
     "read_piece_frames",
     "read_tables",
     "stream_partitions",
+    "writer_pages",
 ]

@@ -7,14 +7,21 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import Any
 
+import pandas as pd
 import sqlalchemy as sa
 
 from drawledger.exceptions import (
     LedgerError,
 )
-from drawledger.replay.sources._parquet import partitions, pieces, read_piece
+from drawledger.replay.sources._parquet import (
+    Piece,
+    partitions,
+    pieces,
+    read_piece,
+    read_piece_frames,
+)
 from drawledger.replay.sources._sql import SqlSlice, group_slices, read_sql_slice, sql_slices
-from drawledger.replay.sources._tables import is_parquet, open_engine
+from drawledger.replay.sources._tables import is_parquet, open_engine, rows_frame
 
 Row = tuple[Any, ...]
 
@@ -32,7 +39,7 @@ class Task:
     target: str
     rows: int
     slices: tuple[SqlSlice, ...] = ()
-    piece: Any = None  # a Parquet piece (replay/_dask.py): consecutive part files
+    piece: Piece | None = None  # a Parquet piece: consecutive part files
 
     def read(self, engine: sa.Engine | None = None) -> tuple[list[Row], list[Row]]:
         """Its rows; SQL through ``engine``, else through this process's own engine."""
@@ -46,6 +53,13 @@ class Task:
             rows.extend(r)
             draws.extend(d)
         return rows, draws
+
+    def read_frames(self, engine: sa.Engine | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
+        """Its decisions and draws as DataFrames (Parquet pieces without a detour via rows)."""
+        if self.piece is not None:
+            return read_piece_frames(self.piece)
+        rows, draws = self.read(engine)
+        return rows_frame(rows, "decisions"), rows_frame(draws, "draws")
 
 
 _ENGINES: dict[tuple[int, str], sa.Engine] = {}
@@ -82,11 +96,33 @@ def iter_chunks(
     """Decision rows with their draw rows, chunk by chunk (at least ``size`` decisions each,
     the last aside): SQL ledgers writer by writer in seq order, Parquet ledgers part file by
     part file in path order."""
+    for task, engine in _tasks(target, format, size):
+        yield task.read(engine)
+
+
+def iter_decision_chunks(
+    target: str | os.PathLike[str], chunk_size: int = 50_000, *, format: str | None = None
+) -> Iterator[tuple[pd.DataFrame, pd.DataFrame]]:
+    """Decisions in chunks of at least ``chunk_size`` rows (the last aside), each with the draws
+    of its decisions, as DataFrames: the chunks of ``iter_chunks``.
+
+    Memory stays bounded by the chunk size (a Parquet chunk may exceed it by one part file).
+    """
+    if chunk_size < 1:
+        raise ValueError("chunk_size must be at least 1")
+    for task, engine in _tasks(target, format, chunk_size):
+        yield task.read_frames(engine)
+
+
+def _tasks(
+    target: str | os.PathLike[str], format: str | None, size: int
+) -> Iterator[tuple[Task, sa.Engine | None]]:
+    """The tasks of ``plan`` with one engine shared by all of them (SQL ledgers)."""
     tasks = plan(target, format=format, size=size)
     engine = None if is_parquet(target, format) else open_engine(target)
     try:
         for task in tasks:
-            yield task.read(engine)
+            yield task, engine
     except sa.exc.SQLAlchemyError as exc:
         raise LedgerError(f"cannot read ledger: {str(exc).splitlines()[0]}") from None
     finally:

@@ -2,16 +2,17 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import sqlalchemy as sa
 
-from drawledger._records import (  # _default, _OPTS: the SDK's own JSON encoding, bit for bit
+from drawledger._records import (
     DECISION_COLUMNS,
     DRAW_COLUMNS,
 )
+from drawledger.replay.sources._tables import TABLE_COLUMNS
 
 Row = tuple[Any, ...]
 
@@ -67,7 +68,7 @@ def read_sql_slice(engine: sa.Engine, sl: SqlSlice) -> tuple[list[Row], list[Row
             sa.text(f"SELECT {_DEC} FROM decisions WHERE {cond} ORDER BY seq"), bind)]  # fmt: skip
         draws = [tuple(d) for d in conn.execute(
             sa.text(f"SELECT {_DRAW} FROM draws dr JOIN decisions d ON dr.decision_id = "
-                    f"d.decision_id WHERE {of_d}"),
+                    f"d.decision_id WHERE {of_d} ORDER BY d.seq, dr.idx"),
             bind)]  # fmt: skip
     return rows, draws
 
@@ -83,3 +84,25 @@ def group_slices(sizes: Sequence[int], size: int) -> list[tuple[int, int]]:
     if start < len(sizes):
         out.append((start, len(sizes)))
     return out
+
+
+def writer_pages(engine: sa.Engine, table: str, writer: str, size: int) -> Iterator[list[Row]]:
+    """Pages of one writer's rows of ``table`` (decisions or outcomes) in seq order, by keyset
+    (``WHERE seq > last``), so that the cost of a page does not grow with its position."""
+    columns = ", ".join(TABLE_COLUMNS[table])
+    seq = TABLE_COLUMNS[table].index("seq")
+    last: int | None = None
+    while True:
+        cond = "" if last is None else "AND seq > :last"
+        with engine.connect() as conn:
+            rows = [tuple(r) for r in conn.execute(
+                sa.text(f"SELECT {columns} FROM {table} WHERE writer = :w {cond} "
+                        "ORDER BY seq LIMIT :n"),
+                {"w": writer, "last": last, "n": size},
+            )]  # fmt: skip
+        if not rows:
+            return
+        yield rows
+        if len(rows) < size:
+            return
+        last = rows[-1][seq]
