@@ -6,8 +6,8 @@ from drawledger.replay._enumerate import Propensity, action_distribution, propen
 from drawledger.replay._estimate import EstimateReport, SweepReport, estimate, sweep
 from drawledger.replay._integrity import IntegrityReport, check_integrity
 from drawledger.replay._io import LedgerTables, iter_decision_chunks, read_tables
-from drawledger.replay._report import HtmlReport, WhatIf, write_report
 from drawledger.replay._verify import VerifyReport, verify
+from drawledger.replay.report import HtmlReport, WhatIf, write_report
 
 __all__: list[str] = [
     "AuditFigure",

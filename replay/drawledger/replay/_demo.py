@@ -28,8 +28,8 @@ import drawledger as dl
 from drawledger.exceptions import LedgerError, ReplayError
 from drawledger.replay._audit import AuditReport, audit
 from drawledger.replay._estimate import EstimateReport, SweepReport, estimate, sweep
-from drawledger.replay._report import WhatIf, write_report
 from drawledger.replay._verify import VerifyReport, verify
+from drawledger.replay.report import WhatIf, write_report
 from drawledger.testing import seed_sequence
 
 __all__ = ["DEFAULT_SESSIONS", "DemoResult", "run_demo"]
