@@ -1,4 +1,4 @@
-"""The audit's statistical building blocks (replay/drawledger/replay/audit/_stats.py) against outside references."""
+"""The audit's statistical building blocks (audit/_stats.py) against outside references."""
 
 from __future__ import annotations
 

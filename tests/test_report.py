@@ -225,3 +225,26 @@ def test_report_escapes_what_the_ledger_says(tmp_path: Path) -> None:
     assert "&lt;b&gt;promo&lt;/b&gt; $x$" in text
     assert not [t for t, _ in page.tags if t in ("i", "script")]
     assert 2 == len(images(page))
+
+
+def test_report_escapes_script_quotes_and_ampersands_from_the_ledger(tmp_path: Path) -> None:
+    """A stream name and decision ids holding '<script>', '"' and '&' reach the page as text:
+    escaped in element content and in attributes, so no script element appears and the
+    figure's alternative text reads back whole."""
+    stream = '<script>alert("x")</script> & co'
+    ledger = tmp_path / "hostile.db"
+    with dl.Ledger(ledger) as led:
+        for i in range(40):
+            led.record_draw(stream, "categorical", {"options": ["a", "b"], "probs": [0.5, 0.5]},
+                            "ab"[i % 2], 0.5, decision_id=f'<script>"d-{i}"&')  # fmt: skip
+    text = write_report(ledger, tmp_path / "hostile.html").path.read_text(encoding="utf-8")
+    assert "<td>&lt;script&gt;alert(&#34;x&#34;)&lt;/script&gt; &amp; co</td>" in text
+    assert "<code>&lt;script&gt;&#34;d-0&#34;&amp;</code>" in text
+    assert (
+        'alt="audit of &lt;script&gt;alert(&#34;x&#34;)&lt;/script&gt; &amp; co categorical"'
+        in text
+    )
+    assert "<script>" not in text
+    page = parse(text)
+    assert [] == [t for t, _ in page.tags if t == "script"]
+    assert f"audit of {stream} categorical" in [attrs["alt"] for attrs in images(page)]

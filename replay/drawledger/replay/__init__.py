@@ -1,11 +1,11 @@
 """drawledger.replay: verify, audit and estimate from a ledger (the analysis side)."""
 
-from drawledger.replay._report import HtmlReport, WhatIf, write_report
 from drawledger.replay.audit import AuditFigure, AuditReport, AuditTest, audit, audit_tables
 from drawledger.replay.demo import DemoResult, run_demo
 from drawledger.replay.estimate import EstimateReport, SweepReport, estimate, sweep
 from drawledger.replay.integrity import IntegrityReport, check_integrity
 from drawledger.replay.propensity import Propensity, action_distribution, propensity
+from drawledger.replay.report import HtmlReport, WhatIf, write_report
 from drawledger.replay.sources import LedgerTables, iter_decision_chunks, read_tables
 from drawledger.replay.verify import VerifyReport, verify
 

@@ -26,11 +26,11 @@ import sqlalchemy as sa
 
 import drawledger as dl
 from drawledger.exceptions import LedgerError, ReplayError
-from drawledger.replay._report import WhatIf, write_report
 from drawledger.replay.audit import AuditReport, audit
 from drawledger.replay.demo import grocery
 from drawledger.replay.demo.grocery import LOGGING_POLICY as log
 from drawledger.replay.estimate import EstimateReport, SweepReport, estimate, sweep
+from drawledger.replay.report import WhatIf, write_report
 from drawledger.replay.verify import VerifyReport, verify
 from drawledger.testing import seed_sequence
 

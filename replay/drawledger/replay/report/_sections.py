@@ -1,0 +1,336 @@
+"""What each section of the report shows, as plain text ready for the templates.
+
+Every value here is text as a reader sees it (numbers already formatted); the templates lay it
+out and escape it. Nothing here is markup.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import ClassVar
+
+from drawledger.replay.audit import TEST_LABELS, AuditReport
+from drawledger.replay.estimate import EstimateReport, SweepReport
+from drawledger.replay.report._figures import (
+    Image,
+    audit_figure,
+    estimate_figure,
+    sweep_estimators,
+    sweep_figure,
+    verify_figure,
+    weights_figure,
+)
+from drawledger.replay.report._format import num, p_value, policy
+from drawledger.replay.verify import VerifyReport
+
+__all__ = [
+    "AuditPanel",
+    "AuditRow",
+    "AuditSection",
+    "EstimateBlock",
+    "Reason",
+    "SweepBlock",
+    "Table",
+    "VerifySection",
+    "audit_section",
+    "verify_section",
+    "whatif_block",
+]
+
+INTEGRITY_PROBLEMS = (
+    "gaps",
+    "broken_links",
+    "duplicates",
+    "bad_hashes",
+    "orphan_draws",
+    "orphan_outcomes",
+)
+STREAM_COUNTS = ("decisions", "verified", "mismatched", "unreplayable")
+
+
+@dataclass(frozen=True)
+class Table:
+    """A table of text cells; the columns from ``numeric_from`` on align right."""
+
+    head: Sequence[str]
+    rows: Sequence[Sequence[str]]
+    numeric_from: int = 1
+    cls: str = ""
+
+
+@dataclass(frozen=True)
+class Reason:
+    """One reason decisions failed verification, with (decision id, text) of the first few."""
+
+    code: str
+    decisions: str
+    examples: Sequence[tuple[str, str]]
+
+
+@dataclass(frozen=True)
+class VerifySection:
+    ok: bool
+    keyed: str
+    writers: str
+    summary: Table
+    figure: Image | None
+    streams: Table
+    reasons: Sequence[Reason]
+    integrity_ok: bool
+    decisions: str
+    outcomes: str
+    integrity: Table
+
+
+@dataclass(frozen=True)
+class AuditRow:
+    stream: str
+    draw: str
+    test: str
+    n: str
+    statistic: str
+    p: str
+    p_adjusted: str
+    verdict: str
+    verdict_class: str
+
+
+@dataclass(frozen=True)
+class AuditPanel:
+    """The figure of one audited draw with its caption."""
+
+    stream: str
+    kind: str
+    draw: str
+    n: str
+    wide: bool
+    image: Image
+
+
+@dataclass(frozen=True)
+class AuditSection:
+    ok: bool
+    alarms: int
+    alpha: str
+    decisions: str
+    rows: Sequence[AuditRow]
+    panels: Sequence[AuditPanel]
+
+
+@dataclass(frozen=True)
+class EstimateBlock:
+    """One what-if estimate; ``template`` is the template that lays it out."""
+
+    template: ClassVar[str] = "estimate.html.j2"
+    title: str
+    ok: bool
+    target: str
+    reward: str
+    interval: str
+    clip: str
+    table: Table
+    figure: Image
+    weights: Image
+    diagnostics: Table
+    warnings: Sequence[str]
+
+
+@dataclass(frozen=True)
+class SweepBlock:
+    """One what-if sweep; ``template`` is the template that lays it out."""
+
+    template: ClassVar[str] = "sweep.html.j2"
+    title: str
+    ok: bool
+    stream: str
+    n: str
+    param: str
+    level: str
+    figure: Image
+    table: Table
+    warnings: Sequence[str]
+
+
+def verify_section(v: VerifyReport) -> VerifySection:
+    i = v.integrity
+    summary = Table(
+        ("", "decisions"),
+        [
+            ("decisions", num(v.decisions)),
+            ("verified", num(v.verified)),
+            ("mismatched", num(v.mismatched)),
+            ("unreplayable", num(v.unreplayable)),
+        ],
+        cls="narrow",
+    )
+    streams = Table(
+        ("stream", *STREAM_COUNTS),
+        [(s, *(num(c.get(k, 0)) for k in STREAM_COUNTS)) for s, c in sorted(v.by_stream.items())],
+    )
+    d = i.to_dict()
+    integrity = Table(
+        ("check", "count", "examples"),
+        [
+            (
+                p.replace("_", " "),
+                num(d.get(p, 0)),
+                ", ".join(d.get("examples", {}).get(p, [])),
+            )
+            for p in INTEGRITY_PROBLEMS
+        ],
+    )
+    reasons = [Reason(r, num(n), v.examples.get(r, [])[:3]) for r, n in v.by_reason.items()]
+    return VerifySection(
+        ok=v.ok,
+        keyed="keyed" if i.keyed else "unkeyed",
+        writers=num(i.writers),
+        summary=summary,
+        figure=verify_figure(v) if v.by_stream else None,
+        streams=streams,
+        reasons=reasons,
+        integrity_ok=i.ok,
+        decisions=num(i.decisions),
+        outcomes=num(i.outcomes),
+        integrity=integrity,
+    )
+
+
+def audit_section(a: AuditReport) -> AuditSection:
+    rows = []
+    for t in a.tests:
+        draw = "" if t.kind is None else t.kind + (f" '{t.draw}'" if t.draw else "")
+        label = TEST_LABELS.get(t.test, t.test) + (f" {t.field}" if t.field else "")
+        verdict_class = "bad" if t.alarm else ("dim" if t.verdict == "not enough data" else "ok")
+        rows.append(
+            AuditRow(
+                t.stream,
+                draw,
+                label,
+                num(t.n),
+                num(t.statistic),
+                p_value(t.p_value),
+                p_value(t.p_adjusted),
+                t.verdict,
+                verdict_class,
+            )
+        )
+    panels = [
+        AuditPanel(
+            f.stream,
+            f.kind,
+            f" '{f.draw}'" if f.draw else "",
+            num(f.n),
+            bool(f.options),
+            audit_figure(f, a.bin_edges),
+        )
+        for f in a.figures
+    ]
+    return AuditSection(a.ok, len(a.alarms), f"{a.alpha:g}", num(a.decisions), rows, panels)
+
+
+def whatif_block(
+    title: str, result: EstimateReport | SweepReport, truth: float | Sequence[float] | None
+) -> EstimateBlock | SweepBlock:
+    """The block of one what-if question; ``truth`` is its known true value or values."""
+    if isinstance(result, EstimateReport):
+        return _estimate_block(title, result, truth if isinstance(truth, (int, float)) else None)
+    return _sweep_block(
+        title, result, None if truth is None or isinstance(truth, (int, float)) else list(truth)
+    )
+
+
+def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> EstimateBlock:
+    level = r.settings.get("level", 0.95)
+    rows = []
+    for name, e in r.estimates.items():
+        d = r.difference.get(name, {})
+        bias = num(e.get("bias_bound")) if name == "clipped" else ""
+        covered = ""
+        if truth is not None and e["low"] is not None and e["high"] is not None:
+            covered = "yes" if e["low"] <= truth <= e["high"] else "no"
+        rows.append(
+            (
+                name,
+                num(e["value"]),
+                f"[{num(e['low'])}, {num(e['high'])}]",
+                bias,
+                num(d.get("value")),
+                f"[{num(d.get('low'))}, {num(d.get('high'))}]",
+                *((num(truth), covered) if truth is not None else ()),
+            )
+        )
+    head = [
+        "estimator",
+        "estimate",
+        f"{level:.0%} interval",
+        "bias bound",
+        "minus logging",
+        "interval",
+    ] + (["true value", "covered"] if truth is not None else [])
+    d = r.diagnostics
+    diagnostics = Table(
+        ("diagnostic", "value"),
+        [
+            ("records used", num(r.n)),
+            ("effective sample size (Kish)", num(None if d["ess"] is None else round(d["ess"]))),
+            ("largest weight", num(d["max_weight"])),
+            ("support deficit", num(d.get("support_deficit"))),
+            ("logging policy mean (observed)", num(r.logging_value)),
+        ],
+        cls="narrow",
+    )
+    return EstimateBlock(
+        title=title,
+        ok=r.ok,
+        target=policy(r.target),
+        reward=str(r.target.get("reward", "")),
+        interval=str(r.settings.get("interval", "")),
+        clip=f"{r.settings.get('clip', 0):g}",
+        table=Table(head, rows),
+        figure=estimate_figure(r, truth),
+        weights=weights_figure(r),
+        diagnostics=diagnostics,
+        warnings=r.warnings,
+    )
+
+
+def _sweep_block(title: str, s: SweepReport, truth: Sequence[float] | None) -> SweepBlock:
+    shown = sweep_estimators(s)
+    rows = []
+    for i, p in enumerate(s.points):
+        cells = [f"{p['value']:g}" if isinstance(p["value"], float) else str(p["value"])]
+        for name in shown:
+            e = p["estimates"][name]
+            cells += [num(e["value"]), f"[{num(e['low'])}, {num(e['high'])}]"]
+        if truth is not None:
+            cells.append(num(truth[i]))
+        cells += [f"{float(p['diagnostics']['ess']):,.0f}", num(p["diagnostics"]["max_weight"])]
+        rows.append(cells)
+    head = [s.param]
+    for name in shown:
+        head += [name, "interval"]
+    head += (["true value"] if truth is not None else []) + ["ESS", "max weight"]
+    return SweepBlock(
+        title=title,
+        ok=s.ok,
+        stream=str(s.settings.get("stream", "")),
+        n=num(s.n),
+        param=s.param,
+        level=f"{s.settings.get('level', 0.95):.0%}",
+        figure=sweep_figure(s, truth),
+        table=Table(head, rows),
+        warnings=_grouped(s.warnings, s.param),
+    )
+
+
+def _grouped(warnings: Sequence[str], param: str) -> list[str]:
+    """Sweep warnings that repeat for several values, said once with the list of values."""
+    by_text: dict[str, list[str]] = {}
+    for w in warnings:
+        head, sep, text = w.partition(": ")
+        if sep and head.startswith(f"{param}="):
+            by_text.setdefault(text, []).append(head.removeprefix(f"{param}="))
+        else:
+            by_text.setdefault(w, [])
+    return [f"{param} = {', '.join(v)}: {t}" if v else t for t, v in by_text.items()]

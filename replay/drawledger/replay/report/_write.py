@@ -1,0 +1,175 @@
+"""``write_report``: one self-contained HTML file about a ledger.
+
+The page holds the integrity and verification summary (with the reasons of every failure), the
+randomization audit (its table, a histogram of the probability integral transform and observed
+against declared frequencies per draw), and what-if estimates (intervals with the bias bound of
+clipped IPS, the distribution of importance weights with the effective sample size, and sweep
+curves with interval bands). Figures are drawn with matplotlib and embedded as SVG data URIs:
+the file makes no external request, opens offline, and prints (a print stylesheet is included).
+
+The page is rendered from the Jinja2 templates in ``templates/`` with autoescaping: every text
+from a ledger (stream names, decision ids, reasons, options, policy parameters) is escaped.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import os
+import sys
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from jinja2 import Environment, PackageLoader, StrictUndefined
+
+from drawledger import __version__
+from drawledger.exceptions import ReplayError
+from drawledger.replay.audit import AuditReport, audit
+from drawledger.replay.estimate import EstimateReport, SweepReport, estimate
+from drawledger.replay.report._format import num, policy
+from drawledger.replay.report._sections import audit_section, verify_section, whatif_block
+from drawledger.replay.verify import VerifyReport, verify
+
+__all__ = ["HtmlReport", "WhatIf", "write_report"]
+
+TEMPLATES = Environment(
+    loader=PackageLoader("drawledger.replay.report", "templates"),
+    autoescape=True,
+    undefined=StrictUndefined,
+    trim_blocks=True,
+    lstrip_blocks=True,
+    keep_trailing_newline=True,
+)
+
+
+@dataclass(frozen=True)
+class WhatIf:
+    """One what-if question for the report: an estimate or a sweep of a target policy.
+
+    ``truth`` is the known true value (a number for an estimate, one number per swept value
+    for a sweep) when the data come from a simulator, as in ``drawledger demo``; the report
+    draws it beside the estimates.
+    """
+
+    title: str
+    result: EstimateReport | SweepReport
+    truth: float | Sequence[float] | None = None
+
+
+@dataclass
+class HtmlReport:
+    """What ``write_report`` wrote: the file and the verdicts it shows."""
+
+    path: Path
+    verification: VerifyReport
+    audit: AuditReport
+    whatifs: list[WhatIf] = field(default_factory=list)
+
+    @property
+    def ok(self) -> bool:
+        """Verification and audit passed (estimate warnings do not make a report fail)."""
+        return self.verification.ok and self.audit.ok
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "ok": self.ok,
+            "html": str(self.path),
+            "verify": self.verification.to_dict(),
+            "audit": self.audit.to_dict(),
+            "whatifs": [{"title": w.title, **w.result.to_dict()} for w in self.whatifs],
+        }
+
+    def render(self) -> str:
+        v, a = self.verification, self.audit
+        return (
+            f"wrote {self.path}: {v.decisions} decisions, {v.verified} verified, "
+            f"{v.mismatched} mismatched, {v.unreplayable} unreplayable; integrity "
+            f"{'ok' if v.integrity.ok else 'FAILED'}; audit "
+            f"{'no alarm' if a.ok else f'{len(a.alarms)} alarm(s)'}"
+        )
+
+    def __str__(self) -> str:
+        return self.render()
+
+
+def write_report(
+    ledger: str | os.PathLike[str],
+    html: str | os.PathLike[str],
+    *,
+    path: Sequence[str | os.PathLike[str]] = (),
+    allow: Sequence[str] = (),
+    verification: VerifyReport | None = None,
+    audit_report: AuditReport | None = None,
+    whatifs: Iterable[WhatIf] = (),
+    reward: str | None = None,
+    overrides: Mapping[str, Any] | None = None,
+    stream: str | None = None,
+    title: str | None = None,
+    progress: bool = False,
+    integrity_key: bytes | str | None = None,
+) -> HtmlReport:
+    """Write one self-contained HTML report of ``ledger`` to ``html``.
+
+    ``verification`` and ``audit_report`` are used when given (``drawledger demo`` passes the
+    ones it printed); otherwise the ledger is verified (importing decision code only from
+    ``path`` and ``allow``, as ``verify`` does) and audited. ``whatifs`` adds estimates and
+    sweeps; ``reward`` with ``overrides`` (and ``stream`` when the ledger has several) adds the
+    estimate of that target policy. ``integrity_key`` is the key the ledger's hashes were
+    written with, if any. ``progress`` shows progress bars when stderr is a terminal. The
+    file is written whole or not at all.
+    """
+    target = Path(os.fspath(html))
+    if target.suffix.lower() not in (".html", ".htm"):
+        raise ReplayError(f"the report is an HTML file: give a name ending in .html, not {target}")
+    if not target.parent.is_dir():
+        raise ReplayError(f"cannot write {target}: no directory {target.parent}")
+    if overrides and reward is None:
+        raise ReplayError("a target policy (--set) needs the reward to estimate (--reward)")
+    progress = progress and sys.stderr.isatty()
+    if verification is None:
+        verification = verify(
+            ledger, path=path, allow=allow, progress=progress, integrity_key=integrity_key
+        )
+    if audit_report is None:
+        audit_report = audit(ledger, progress=progress)
+    questions = list(whatifs)
+    if reward is not None:
+        result = estimate(
+            ledger,
+            reward=reward,
+            overrides=dict(overrides or {}),
+            stream=stream,
+            path=path,
+            allow=allow,
+            progress=progress,
+            integrity_key=integrity_key,
+        )
+        questions.append(WhatIf(f"What if: {policy(result.target)}", result))
+    if progress:
+        from rich.console import Console
+
+        with Console(stderr=True).status("drawing the report's figures"):
+            page = _page(os.fspath(ledger), verification, audit_report, questions, title)
+    else:
+        page = _page(os.fspath(ledger), verification, audit_report, questions, title)
+    tmp = target.with_name(f".{target.name}.tmp")
+    tmp.write_text(page, encoding="utf-8")
+    tmp.replace(target)
+    return HtmlReport(target, verification, audit_report, questions)
+
+
+def _page(
+    ledger: str, v: VerifyReport, a: AuditReport, questions: Sequence[WhatIf], title: str | None
+) -> str:
+    return TEMPLATES.get_template("page.html.j2").render(
+        heading=title or "drawledger report",
+        ok=v.ok and a.ok,
+        ledger=ledger,
+        decisions=num(v.decisions),
+        generated=_dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
+        version=__version__,
+        verify=verify_section(v),
+        audit=audit_section(a),
+        whatifs=[whatif_block(w.title, w.result, w.truth) for w in questions],
+    )
