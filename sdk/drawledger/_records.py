@@ -40,7 +40,8 @@ HASH_PERSON = b"drawledger.h1"
 _DOUBLE = struct.Struct(">d")
 
 
-def _default(obj: Any) -> Any:
+def json_default(obj: Any) -> Any:
+    """Encode what orjson does not know: pydantic models; refuse sets and everything else."""
     dump = getattr(obj, "model_dump", None)  # pydantic models, without importing pydantic
     if callable(dump):
         return dump(mode="json")
@@ -49,7 +50,8 @@ def _default(obj: Any) -> Any:
     raise TypeError(f"{type(obj).__name__} is not JSON serializable")
 
 
-_OPTS = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NON_STR_KEYS
+JSON_OPTIONS = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NON_STR_KEYS
+"""The orjson options of every JSON text the ledger stores (with ``default=json_default``)."""
 
 
 def _has_non_finite(obj: Any) -> bool:
@@ -68,7 +70,7 @@ def _has_non_finite(obj: Any) -> bool:
 def to_json(obj: Any, what: str) -> str:
     """Encode ``obj`` as compact JSON text; ``what`` names it in the error."""
     try:
-        raw = orjson.dumps(obj, default=_default, option=_OPTS)
+        raw = orjson.dumps(obj, default=json_default, option=JSON_OPTIONS)
     except (TypeError, orjson.JSONEncodeError) as exc:
         raise NotSerializableError(f"{what} cannot be recorded as JSON: {exc}") from None
     # orjson writes NaN and infinities as null; JSON has no such numbers, so refuse them.

@@ -29,12 +29,12 @@ import orjson
 import pandas as pd
 import sqlalchemy as sa
 
-from drawledger._records import (  # _default, _OPTS: the SDK's own JSON encoding, bit for bit
-    _OPTS,
+from drawledger._records import (  # JSON_OPTIONS, json_default: the SDK's own JSON encoding
     DECISION_COLUMNS,
     DRAW_COLUMNS,
-    _default,
+    JSON_OPTIONS,
     from_json,
+    json_default,
     to_json,
 )
 from drawledger.draw import Draw, DrawRecord, bucket_assign
@@ -186,7 +186,7 @@ def _short(text: str) -> str:
 def _json(obj: Any, what: str) -> str:
     """JSON text exactly as the SDK records it (a NaN, which it refuses, shows as a difference)."""
     try:
-        return orjson.dumps(obj, default=_default, option=_OPTS).decode()
+        return orjson.dumps(obj, default=json_default, option=JSON_OPTIONS).decode()
     except TypeError:
         return to_json(obj, what)  # raises the SDK's NotSerializableError with the reason
 
