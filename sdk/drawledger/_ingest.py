@@ -26,7 +26,17 @@ from typing import Any
 import orjson
 
 from drawledger import _records, _sinks
-from drawledger._records import DECISION_COLUMNS, DRAW_COLUMNS, OUTCOME_COLUMNS
+from drawledger._schema import (
+    DEC,
+    DECISIONS,
+    DRAW,
+    DRAWS,
+    OUT,
+    OUTCOMES,
+    Column,
+    Positions,
+    TableSpec,
+)
 from drawledger.exceptions import DrawledgerError, LedgerError
 from drawledger.ledger import Ledger
 
@@ -37,6 +47,8 @@ MAX_SHOWN = 20
 DECLARED_REQUIRED = ("decision_id", "stream", "ts", "kind", "args", "value", "prob")
 DECLARED_FIELDS = frozenset((*DECLARED_REQUIRED, "unit", "u"))
 Row = tuple[Any, ...]
+# Positions in a spilled record's row by its kind ("d" decision, "o" outcome).
+_POSITIONS: dict[str, Positions] = {"d": DEC, "o": OUT}
 
 
 @dataclass
@@ -191,19 +203,19 @@ class _Loader:
             return
         fresh: list[tuple[str, Row, list[Row]]] = []
         taken: set[tuple[str, str, int]] = set()
-        for table, pos in (("decisions", 13), ("outcomes", 5)):
-            kind = table[0]
+        for kind, table in (("d", "decisions"), ("o", "outcomes")):
+            at = _POSITIONS[kind]
             by_writer: dict[str, list[int]] = {}
             for k, row, _ in records:
                 if k == kind:
-                    by_writer.setdefault(row[pos - 1], []).append(row[pos])
+                    by_writer.setdefault(row[at.writer], []).append(row[at.seq])
             for writer, seqs in by_writer.items():
                 present = self.sink.present_seqs(table, writer, min(seqs), max(seqs))
                 taken.update((kind, writer, s) for s in present)
         for rec in records:
             kind, row, _ = rec
-            pos = 13 if kind == "d" else 5
-            key = (kind, row[pos - 1], row[pos])
+            at = _POSITIONS[kind]
+            key = (kind, row[at.writer], row[at.seq])
             if key in taken:
                 self.report.already_present += 1
             else:
@@ -263,22 +275,21 @@ def _count(x: Any, what: str) -> int:
     return x
 
 
-_DECISION_NULLABLE = {"unit", "fn", "code_hash", "seed", "prev_hash"}
+def _field(column: Column, x: Any, what: str) -> Any:
+    """One stored value, checked against its column's logical type (no number is nullable)."""
+    if column.kind == "float":
+        return _number(x, what)
+    if column.kind == "integer":
+        return _count(x, what)
+    return _text(x, what, nullable=column.nullable)
 
 
-def _row(values: Any, columns: tuple[str, ...], floats: set[str], ints: set[str],
-         nullable: set[str], what: str) -> Row:  # fmt: skip
+def _row(values: Any, table: TableSpec, what: str) -> Row:
+    """A spilled row of ``table``, checked column by column."""
+    columns = table.columns
     if not isinstance(values, list) or len(values) != len(columns):
         raise _Bad(f"{what} must be a list of {len(columns)} values")
-    out = []
-    for name, x in zip(columns, values, strict=True):
-        if name in floats:
-            out.append(_number(x, f"{what} {name}"))
-        elif name in ints:
-            out.append(_count(x, f"{what} {name}"))
-        else:
-            out.append(_text(x, f"{what} {name}", nullable=name in nullable))
-    return tuple(out)
+    return tuple(_field(c, x, f"{what} {c.name}") for c, x in zip(columns, values, strict=True))
 
 
 def _spill_record(obj: dict[str, Any], key: bytes) -> tuple[str, Row, list[Row]]:
@@ -286,23 +297,19 @@ def _spill_record(obj: dict[str, Any], key: bytes) -> tuple[str, Row, list[Row]]
     if "decision" in obj:
         if set(obj) != {"decision", "draws"} or not isinstance(obj["draws"], list):
             raise _Bad('a spilled decision has exactly the keys "decision" and "draws" (a list)')
-        row = _row(obj["decision"], DECISION_COLUMNS, {"ts", "propensity"}, {"seq"},
-                   _DECISION_NULLABLE, "decision")  # fmt: skip
-        draws = [
-            _row(d, DRAW_COLUMNS, {"prob"}, {"idx", "is_density"}, {"name"}, "draw")
-            for d in obj["draws"]
-        ]
-        if any(d[0] != row[0] for d in draws):
-            raise _Bad(f"a draw of spilled decision {row[0]!r} names another decision")
-        if _records.decision_hash(row[:15], draws, key) != row[15]:
-            raise _Bad(f"decision {row[0]!r}: {_HASH_MISMATCH}")
+        row = _row(obj["decision"], DECISIONS, "decision")
+        draws = [_row(d, DRAWS, "draw") for d in obj["draws"]]
+        did = row[DEC.decision_id]
+        if any(d[DRAW.decision_id] != did for d in draws):
+            raise _Bad(f"a draw of spilled decision {did!r} names another decision")
+        if _records.decision_hash(row[: DEC.hash], draws, key) != row[DEC.hash]:
+            raise _Bad(f"decision {did!r}: {_HASH_MISMATCH}")
         return "d", row, draws
     if set(obj) != {"outcome"}:
         raise _Bad('a spilled outcome has exactly the key "outcome"')
-    row = _row(obj["outcome"], OUTCOME_COLUMNS, {"value", "ts"}, {"seq"}, {"prev_hash"},
-               "outcome")  # fmt: skip
-    if _records.outcome_hash(row[:7], key) != row[7]:
-        raise _Bad(f"outcome of {row[0]!r}: {_HASH_MISMATCH}")
+    row = _row(obj["outcome"], OUTCOMES, "outcome")
+    if _records.outcome_hash(row[: OUT.hash], key) != row[OUT.hash]:
+        raise _Bad(f"outcome of {row[OUT.decision_id]!r}: {_HASH_MISMATCH}")
     return "o", row, []
 
 

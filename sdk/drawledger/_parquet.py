@@ -28,7 +28,7 @@ from urllib.parse import quote
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from drawledger._records import DECISION_COLUMNS, DRAW_COLUMNS, OUTCOME_COLUMNS
+from drawledger._schema import DEC, OUT, SPECS, TableSpec
 from drawledger.exceptions import LedgerError
 
 if TYPE_CHECKING:
@@ -37,16 +37,16 @@ if TYPE_CHECKING:
 Row = tuple[Any, ...]
 
 
-def _schema(columns: Sequence[str], floats: Sequence[str], ints: Sequence[str]) -> pa.Schema:
-    kind = {**{c: pa.float64() for c in floats}, **{c: pa.int64() for c in ints}}
-    return pa.schema([(c, kind.get(c, pa.string())) for c in columns])
+_ARROW_TYPES = {"text": pa.string(), "float": pa.float64(), "integer": pa.int64()}
 
 
-SCHEMAS = {
-    "decisions": _schema(DECISION_COLUMNS, ("ts", "propensity"), ("seq",)),
-    "draws": _schema(DRAW_COLUMNS, ("prob",), ("idx", "is_density")),
-    "outcomes": _schema(OUTCOME_COLUMNS, ("value", "ts"), ("seq",)),
-}
+def _arrow_schema(table: TableSpec) -> pa.Schema:
+    # Every field is nullable in Arrow, as in every part file written so far; the writer and
+    # ingest refuse a null where the table does not allow one.
+    return pa.schema([(c.name, _ARROW_TYPES[c.kind]) for c in table.columns])
+
+
+SCHEMAS = {table.name: _arrow_schema(table) for table in SPECS}
 TABLES = tuple(SCHEMAS)
 
 # Dictionary encoding only where values repeat, statistics only on numbers (what readers filter
@@ -238,9 +238,10 @@ class ParquetSink:
         leaves none of a batch or nearly all of it (docs/operations.md). Part names are a
         function of their rows (writer and seq range): a retried batch replaces its own parts.
         """
+        writer_at, stream_at, ts_at = DEC.writer, DEC.stream, DEC.ts  # read once per batch
         groups: dict[tuple[str, str, int], tuple[list[Row], list[Row]]] = {}
         for row, its_draws in zip(decisions, draws, strict=True):
-            key = (row[12], row[1], int(row[3] // 86400))  # writer, stream, UTC day
+            key = (row[writer_at], row[stream_at], int(row[ts_at] // 86400))  # UTC day
             group = groups.get(key)
             if group is None:
                 group = groups[key] = ([], [])
@@ -250,16 +251,16 @@ class ParquetSink:
         for (writer, stream, days), (rows, draw_rows) in groups.items():
             if draw_rows:
                 folder = self.root / "draws" / stream_dir(stream) / day(days * 86400)
-                planned.append((folder, _part_name(writer, rows, 13), draw_rows, "draws"))
+                planned.append((folder, _part_name(writer, rows, DEC.seq), draw_rows, "draws"))
         for (writer, stream, days), (rows, _) in groups.items():
             folder = self.root / "decisions" / stream_dir(stream) / day(days * 86400)
-            planned.append((folder, _part_name(writer, rows, 13), rows, "decisions"))
+            planned.append((folder, _part_name(writer, rows, DEC.seq), rows, "decisions"))
         ogroups: dict[tuple[str, int], list[Row]] = {}
         for row in outcomes:
-            ogroups.setdefault((row[4], int(row[3] // 86400)), []).append(row)
+            ogroups.setdefault((row[OUT.writer], int(row[OUT.ts] // 86400)), []).append(row)
         for (writer, days), rows in ogroups.items():
             folder = self.root / "outcomes" / day(days * 86400)
-            planned.append((folder, _part_name(writer, rows, 5), rows, "outcomes"))
+            planned.append((folder, _part_name(writer, rows, OUT.seq), rows, "outcomes"))
         staged: list[tuple[Path, Path]] = []
         try:
             for folder, name, rows, table in planned:

@@ -1,7 +1,7 @@
 """Row layouts of the three ledger tables, JSON encoding, and the integrity hash.
 
-Rows travel as plain tuples in the column order below, from the serving thread through the
-writer to every sink, so that all sinks store the same values bit for bit.
+Rows travel as plain tuples in the column order of ``_schema``, from the serving thread through
+the writer to every sink, so that all sinks store the same values bit for bit.
 """
 
 from __future__ import annotations
@@ -13,34 +13,23 @@ from typing import Any
 
 import orjson
 
+from drawledger._schema import DEC, DECISIONS, DRAWS, OUT, OUTCOMES
 from drawledger.exceptions import NotSerializableError
 
-DECISION_COLUMNS = (
-    "decision_id",
-    "stream",
-    "unit",
-    "ts",
-    "fn",
-    "code_hash",
-    "inputs",
-    "params",
-    "action",
-    "propensity",
-    "propensity_kind",
-    "seed",
-    "writer",
-    "seq",
-    "prev_hash",
-    "hash",
-)
-DRAW_COLUMNS = ("decision_id", "idx", "name", "kind", "args", "u", "value", "prob", "is_density")
-OUTCOME_COLUMNS = ("decision_id", "name", "value", "ts", "writer", "seq", "prev_hash", "hash")
+DECISION_COLUMNS = DECISIONS.names
+DRAW_COLUMNS = DRAWS.names
+OUTCOME_COLUMNS = OUTCOMES.names
 
 HASH_PERSON = b"drawledger.h1"
 _DOUBLE = struct.Struct(">d")
+# What a record's hash covers: its row up to the hash column. Module constants, because they are
+# read once per record and reading an attribute costs more than reading a global.
+_DECISION_HASHED = DEC.hash
+_OUTCOME_HASHED = OUT.hash
 
 
-def _default(obj: Any) -> Any:
+def json_default(obj: Any) -> Any:
+    """Encode what orjson does not know: pydantic models; refuse sets and everything else."""
     dump = getattr(obj, "model_dump", None)  # pydantic models, without importing pydantic
     if callable(dump):
         return dump(mode="json")
@@ -49,7 +38,8 @@ def _default(obj: Any) -> Any:
     raise TypeError(f"{type(obj).__name__} is not JSON serializable")
 
 
-_OPTS = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NON_STR_KEYS
+JSON_OPTIONS = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NON_STR_KEYS
+"""The orjson options of every JSON text the ledger stores (with ``default=json_default``)."""
 
 
 def _has_non_finite(obj: Any) -> bool:
@@ -68,7 +58,7 @@ def _has_non_finite(obj: Any) -> bool:
 def to_json(obj: Any, what: str) -> str:
     """Encode ``obj`` as compact JSON text; ``what`` names it in the error."""
     try:
-        raw = orjson.dumps(obj, default=_default, option=_OPTS)
+        raw = orjson.dumps(obj, default=json_default, option=JSON_OPTIONS)
     except (TypeError, orjson.JSONEncodeError) as exc:
         raise NotSerializableError(f"{what} cannot be recorded as JSON: {exc}") from None
     # orjson writes NaN and infinities as null; JSON has no such numbers, so refuse them.
@@ -101,20 +91,21 @@ def _digest(canonical: bytes, key: bytes) -> str:
 
 def decision_canonical(row: tuple[Any, ...], draws: list[tuple[Any, ...]]) -> bytes:
     """Canonical bytes of a decision row (without its hash) and its draw rows (docs/ledger.md)."""
-    (did, stream, unit, ts, fn, code_hash, inputs, params, action, prop, kind, seed, writer,
-     seq, prev) = row[:15]  # fmt: skip
-    pack = _DOUBLE.pack  # float_hex, inlined: this runs once per decision on the serving path
+    (did, stream, unit, ts, fn, code_hash, inputs, params, action, prop, prop_kind, seed,
+     writer, seq, prev) = row[:_DECISION_HASHED]  # fmt: skip
+    pack = _DOUBLE.pack  # float_hex, inlined: this runs once per decision
     body = [
         "drawledger.decision.v1", did, stream, unit, pack(ts).hex(), fn, code_hash, inputs,
-        params, action, pack(prop).hex(), kind, seed, writer, seq, prev,
-        [[d[1], d[2], d[3], d[4], d[5], d[6], pack(d[7]).hex(), bool(d[8])] for d in draws],
+        params, action, pack(prop).hex(), prop_kind, seed, writer, seq, prev,
+        [[idx, name, kind, args, u, value, pack(prob).hex(), bool(density)]
+         for _, idx, name, kind, args, u, value, prob, density in draws],
     ]  # fmt: skip
     return orjson.dumps(body)
 
 
 def outcome_canonical(row: tuple[Any, ...]) -> bytes:
     """Canonical bytes of an outcome row without its hash (docs/ledger.md)."""
-    did, name, value, ts, writer, seq, prev = row[:7]
+    did, name, value, ts, writer, seq, prev = row[:_OUTCOME_HASHED]
     body = ["drawledger.outcome.v1", did, name, float_hex(value), float_hex(ts), writer, seq, prev]
     return orjson.dumps(body)
 

@@ -1,62 +1,173 @@
-"""The ledger's three tables as SQLAlchemy Core metadata (docs/ledger.md)."""
+"""The ledger's three tables (docs/ledger.md), declared once.
+
+``DECISIONS``, ``DRAWS`` and ``OUTCOMES`` give each table's columns in their stored order (name,
+logical type, nullability) and its indexes. Everything else is derived from them: the SQLAlchemy
+tables below, the column tuples of ``_records``, the Arrow schemas of ``_parquet``, the field
+checks of ``_ingest`` and the capture of ``testing``. Rows travel as plain tuples in column
+order; ``DEC``, ``DRAW`` and ``OUT`` name the positions in a decision, draw and outcome row
+(``row[DEC.writer]``).
+"""
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Literal
+
 import sqlalchemy as sa
 
-metadata = sa.MetaData()
+Kind = Literal["text", "float", "integer"]
 
-decisions = sa.Table(
+
+@dataclass(frozen=True)
+class Column:
+    """One column: ``kind`` is its logical type; ``json`` marks text holding a JSON document;
+    ``wide`` marks an integer stored as a 64-bit SQL BIGINT (Arrow stores every integer as
+    int64)."""
+
+    name: str
+    kind: Kind
+    nullable: bool = False
+    json: bool = False
+    wide: bool = False
+
+
+@dataclass(frozen=True)
+class Index:
+    name: str
+    columns: tuple[str, ...]
+    unique: bool = False
+
+
+@dataclass(frozen=True)
+class TableSpec:
+    name: str
+    columns: tuple[Column, ...]
+    indexes: tuple[Index, ...]
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        """The column names in stored order."""
+        return tuple(c.name for c in self.columns)
+
+
+def _text(name: str, *, nullable: bool = False, json: bool = False) -> Column:
+    return Column(name, "text", nullable=nullable, json=json)
+
+
+def _float(name: str) -> Column:
+    return Column(name, "float")
+
+
+def _integer(name: str, *, wide: bool = False) -> Column:
+    return Column(name, "integer", wide=wide)
+
+
+# The integrity chain's columns, last in decisions and outcomes (docs/ledger.md).
+_CHAIN = (
+    _text("writer"),
+    _integer("seq", wide=True),
+    _text("prev_hash", nullable=True),
+    _text("hash"),
+)
+
+DECISIONS = TableSpec(
     "decisions",
-    metadata,
-    sa.Column("decision_id", sa.Text, nullable=False),
-    sa.Column("stream", sa.Text, nullable=False),
-    sa.Column("unit", sa.Text),
-    sa.Column("ts", sa.Double, nullable=False),
-    sa.Column("fn", sa.Text),
-    sa.Column("code_hash", sa.Text),
-    sa.Column("inputs", sa.Text, nullable=False),
-    sa.Column("params", sa.Text, nullable=False),
-    sa.Column("action", sa.Text, nullable=False),
-    sa.Column("propensity", sa.Double, nullable=False),
-    sa.Column("propensity_kind", sa.Text, nullable=False),
-    sa.Column("seed", sa.Text),
-    sa.Column("writer", sa.Text, nullable=False),
-    sa.Column("seq", sa.BigInteger, nullable=False),
-    sa.Column("prev_hash", sa.Text),
-    sa.Column("hash", sa.Text, nullable=False),
-    sa.Index("decisions_writer_seq", "writer", "seq", unique=True),
-    sa.Index("decisions_decision_id", "decision_id"),
+    (
+        _text("decision_id"),
+        _text("stream"),
+        _text("unit", nullable=True),
+        _float("ts"),
+        _text("fn", nullable=True),
+        _text("code_hash", nullable=True),
+        _text("inputs", json=True),
+        _text("params", json=True),
+        _text("action", json=True),
+        _float("propensity"),
+        _text("propensity_kind"),
+        _text("seed", nullable=True),
+        *_CHAIN,
+    ),
+    (
+        Index("decisions_writer_seq", ("writer", "seq"), unique=True),
+        Index("decisions_decision_id", ("decision_id",)),
+    ),
 )
 
-draws = sa.Table(
+DRAWS = TableSpec(
     "draws",
-    metadata,
-    sa.Column("decision_id", sa.Text, nullable=False),
-    sa.Column("idx", sa.Integer, nullable=False),
-    sa.Column("name", sa.Text),
-    sa.Column("kind", sa.Text, nullable=False),
-    sa.Column("args", sa.Text, nullable=False),
-    sa.Column("u", sa.Text, nullable=False),
-    sa.Column("value", sa.Text, nullable=False),
-    sa.Column("prob", sa.Double, nullable=False),
-    sa.Column("is_density", sa.Integer, nullable=False),
-    sa.Index("draws_decision_id", "decision_id"),
+    (
+        _text("decision_id"),
+        _integer("idx"),
+        _text("name", nullable=True),
+        _text("kind"),
+        _text("args", json=True),
+        _text("u", json=True),
+        _text("value", json=True),
+        _float("prob"),
+        _integer("is_density"),
+    ),
+    (Index("draws_decision_id", ("decision_id",)),),
 )
 
-outcomes = sa.Table(
+OUTCOMES = TableSpec(
     "outcomes",
-    metadata,
-    sa.Column("decision_id", sa.Text, nullable=False),
-    sa.Column("name", sa.Text, nullable=False),
-    sa.Column("value", sa.Double, nullable=False),
-    sa.Column("ts", sa.Double, nullable=False),
-    sa.Column("writer", sa.Text, nullable=False),
-    sa.Column("seq", sa.BigInteger, nullable=False),
-    sa.Column("prev_hash", sa.Text),
-    sa.Column("hash", sa.Text, nullable=False),
-    sa.Index("outcomes_writer_seq", "writer", "seq", unique=True),
-    sa.Index("outcomes_decision_id", "decision_id"),
+    (
+        _text("decision_id"),
+        _text("name"),
+        _float("value"),
+        _float("ts"),
+        *_CHAIN,
+    ),
+    (
+        Index("outcomes_writer_seq", ("writer", "seq"), unique=True),
+        Index("outcomes_decision_id", ("decision_id",)),
+    ),
 )
+
+SPECS = (DECISIONS, DRAWS, OUTCOMES)
+
+
+class Positions:
+    """The position of each column in a table's row tuples, by name: ``DEC.hash == 15``.
+
+    The positions are plain instance attributes; a name that is not a column raises
+    AttributeError.
+    """
+
+    def __init__(self, table: TableSpec) -> None:
+        self.__dict__.update((name, i) for i, name in enumerate(table.names))
+
+    if TYPE_CHECKING:  # the type checker's view: every column is an int attribute
+
+        def __getattr__(self, name: str) -> int: ...
+
+    # (Not at run time: a class with __getattr__ reads every attribute through a slower path.)
+
+
+DEC = Positions(DECISIONS)
+DRAW = Positions(DRAWS)
+OUT = Positions(OUTCOMES)
+
+# -- SQLAlchemy Core metadata ---------------------------------------------------------------
+_SQL_TYPES = {"text": sa.Text, "float": sa.Double, "integer": sa.Integer}
+
+
+def _sql_type(column: Column) -> type[sa.types.TypeEngine[object]]:
+    return sa.BigInteger if column.wide else _SQL_TYPES[column.kind]
+
+
+def _sql_table(spec: TableSpec) -> sa.Table:
+    return sa.Table(
+        spec.name,
+        metadata,
+        *(sa.Column(c.name, _sql_type(c), nullable=c.nullable) for c in spec.columns),
+        *(sa.Index(i.name, *i.columns, unique=i.unique) for i in spec.indexes),
+    )
+
+
+metadata = sa.MetaData()
+decisions = _sql_table(DECISIONS)
+draws = _sql_table(DRAWS)
+outcomes = _sql_table(OUTCOMES)
 
 TABLES = (decisions, draws, outcomes)

@@ -14,7 +14,6 @@ from typing import Any, Protocol
 import sqlalchemy as sa
 
 from drawledger import _schema
-from drawledger._records import DECISION_COLUMNS, DRAW_COLUMNS, OUTCOME_COLUMNS
 from drawledger.exceptions import LedgerError
 
 Row = tuple[Any, ...]
@@ -155,11 +154,7 @@ class SqlSink:
             raise
         self._copy = self.engine.dialect.name == "postgresql" and \
             self.engine.dialect.driver == "psycopg"  # fmt: skip
-        self._sql = {
-            "decisions": _insert_sql(self.engine, "decisions", DECISION_COLUMNS),
-            "draws": _insert_sql(self.engine, "draws", DRAW_COLUMNS),
-            "outcomes": _insert_sql(self.engine, "outcomes", OUTCOME_COLUMNS),
-        }
+        self._sql = {t.name: _insert_sql(self.engine, t.name, t.names) for t in _schema.SPECS}
 
     def write(self, decisions: list[Row], draws: list[list[Row]], outcomes: list[Row]) -> None:
         flat = [d for rows in draws for d in rows]
@@ -209,7 +204,7 @@ class SqlSink:
         self.engine.dispose()
 
 
-_COLUMNS = {"decisions": DECISION_COLUMNS, "draws": DRAW_COLUMNS, "outcomes": OUTCOME_COLUMNS}
+_COLUMNS = {t.name: t.names for t in _schema.SPECS}
 
 
 def open_sink(

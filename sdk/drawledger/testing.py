@@ -24,10 +24,11 @@ import hashlib
 import itertools
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from typing import Any
 
-from drawledger._records import DECISION_COLUMNS, DRAW_COLUMNS, OUTCOME_COLUMNS, from_json
+from drawledger._records import from_json
+from drawledger._schema import DECISIONS, DRAWS, OUTCOMES, TableSpec
 from drawledger.exceptions import DrawArgumentError
 from drawledger.ledger import Ledger
 
@@ -86,47 +87,24 @@ class CapturedOutcome:
     seq: int
 
 
+def _parsed(table: TableSpec, row: tuple[Any, ...]) -> dict[str, Any]:
+    """A stored row of ``table`` by column name, with its JSON columns parsed."""
+    return {c.name: from_json(x) if c.json else x for c, x in zip(table.columns, row, strict=True)}
+
+
 def _draw(row: tuple[Any, ...]) -> CapturedDraw:
-    r = dict(zip(DRAW_COLUMNS, row, strict=True))
-    return CapturedDraw(
-        decision_id=r["decision_id"],
-        idx=r["idx"],
-        name=r["name"],
-        kind=r["kind"],
-        args=from_json(r["args"]),
-        u=from_json(r["u"]),
-        value=from_json(r["value"]),
-        prob=r["prob"],
-        is_density=bool(r["is_density"]),
-    )
+    values = _parsed(DRAWS, row)
+    values["is_density"] = bool(values["is_density"])
+    return CapturedDraw(**values)
 
 
 def _decision(row: tuple[Any, ...], draw_rows: list[tuple[Any, ...]]) -> CapturedDecision:
-    r = dict(zip(DECISION_COLUMNS, row, strict=True))
-    return CapturedDecision(
-        decision_id=r["decision_id"],
-        stream=r["stream"],
-        unit=r["unit"],
-        ts=r["ts"],
-        fn=r["fn"],
-        code_hash=r["code_hash"],
-        inputs=from_json(r["inputs"]),
-        params=from_json(r["params"]),
-        action=from_json(r["action"]),
-        propensity=r["propensity"],
-        propensity_kind=r["propensity_kind"],
-        seed=r["seed"],
-        writer=r["writer"],
-        seq=r["seq"],
-        prev_hash=r["prev_hash"],
-        hash=r["hash"],
-        draws=[_draw(d) for d in draw_rows],
-    )
+    return CapturedDecision(**_parsed(DECISIONS, row), draws=[_draw(d) for d in draw_rows])
 
 
 def _outcome(row: tuple[Any, ...]) -> CapturedOutcome:
-    r = dict(zip(OUTCOME_COLUMNS, row, strict=True))
-    return CapturedOutcome(r["decision_id"], r["name"], r["value"], r["ts"], r["writer"], r["seq"])
+    values = _parsed(OUTCOMES, row)
+    return CapturedOutcome(**{f.name: values[f.name] for f in fields(CapturedOutcome)})
 
 
 class Capture:

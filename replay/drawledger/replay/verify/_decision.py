@@ -9,10 +9,10 @@ from typing import Any
 
 import orjson
 
-from drawledger._records import (  # _default, _OPTS: the SDK's own JSON encoding, bit for bit
-    _OPTS,
-    _default,
+from drawledger._records import (  # the SDK's own JSON encoding, bit for bit
+    JSON_OPTIONS,
     from_json,
+    json_default,
     to_json,
 )
 from drawledger.draw import Draw, DrawRecord, bucket_assign
@@ -93,7 +93,7 @@ def _short(text: str) -> str:
 def _json(obj: Any, what: str) -> str:
     """JSON text exactly as the SDK records it (a NaN, which it refuses, shows as a difference)."""
     try:
-        return orjson.dumps(obj, default=_default, option=_OPTS).decode()
+        return orjson.dumps(obj, default=json_default, option=JSON_OPTIONS).decode()
     except TypeError:
         return to_json(obj, what)  # raises the SDK's NotSerializableError with the reason
 
