@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 
 from drawledger._records import from_json
+from drawledger._schema import DEC
 from drawledger.exceptions import ReplayError
 from drawledger.replay.estimate._policies import Policy, Records, Target, evaluate
 from drawledger.replay.estimate._rewards import Rewards
@@ -240,8 +241,8 @@ def evaluate_piece(rows: Sequence[tuple[Any, ...]], draws: Iterable[tuple[Any, .
     """Stage 1: replay the piece and re-run its usable records under every policy."""
     k = len(job.policies)
     facts = Facts(rows=len(rows))
-    rows = [r for r in rows if str(r[1]) == job.stream]  # other streams are not replayed
-    mine = flagged & {r[0] for r in rows} if flagged else frozenset()
+    rows = [r for r in rows if str(r[DEC.stream]) == job.stream]  # other streams are not replayed
+    mine = flagged & {r[DEC.decision_id] for r in rows} if flagged else frozenset()
     checked = verify_chunk(rows, draws, mine, job.settings)
     if not checked.rows:
         return _empty(facts, k)
@@ -249,7 +250,7 @@ def evaluate_piece(rows: Sequence[tuple[Any, ...]], draws: Iterable[tuple[Any, .
     facts.total = len(frame)
     texts: dict[str, tuple[Any, Any, Any]] = {}
     for row in rows:
-        texts.setdefault(row[0], (row[4], row[6], row[7]))
+        texts.setdefault(row[DEC.decision_id], (row[DEC.fn], row[DEC.inputs], row[DEC.params]))
     frame, r, facts.excluded = _usable(frame, {d: t[0] for d, t in texts.items()}, rewards, job)
     if job.reward_range is not None:
         facts.outside = int(((r < job.reward_range[0]) | (r > job.reward_range[1])).sum())

@@ -10,6 +10,7 @@ from pathlib import Path
 import numpy as np
 
 from drawledger import _parquet
+from drawledger._schema import DEC, DRAW
 from drawledger.replay.integrity._report import (
     IntegrityReport,
     Rec,
@@ -108,15 +109,15 @@ def _load_part(
         return [outcome_rec(r, key) for r in _parquet.part_rows(part.path, "outcomes")]
     rows = _parquet.part_rows(part.path, "decisions")
     sibling = _parquet.draws_sibling(root, part)
-    by_id: dict[str, list[Row]] = {r[0]: [] for r in rows}
+    by_id: dict[str, list[Row]] = {r[DEC.decision_id]: [] for r in rows}
     if sibling.exists():
         for d in _parquet.part_rows(sibling, "draws"):
-            found = by_id.get(d[0])
+            found = by_id.get(d[DRAW.decision_id])
             if found is None:
-                report.note("orphan_draws", d[0])
+                report.note("orphan_draws", d[DRAW.decision_id])
             else:
                 found.append(d)
-    return [decision_rec(r, by_id[r[0]], key, dup_ids) for r in rows]
+    return [decision_rec(r, by_id[r[DEC.decision_id]], key, dup_ids) for r in rows]
 
 
 def parquet_chain(

@@ -7,6 +7,7 @@ from dataclasses import dataclass, field
 from typing import Any, NamedTuple
 
 from drawledger import _records
+from drawledger._schema import DEC, DRAW, OUT
 
 PROBLEMS = (
     "gaps",
@@ -124,15 +125,18 @@ def walk(report: IntegrityReport, records: Iterable[Rec], dup_ids: set[str]) -> 
 
 
 def decision_rec(row: Row, draws: list[Row], key: bytes, dup_ids: set[str]) -> Rec:
-    did = row[0]
+    did, digest = row[DEC.decision_id], row[DEC.hash]
     if did in dup_ids:
         ok = True  # counted as a duplicate; its draws cannot be attributed
     else:
-        draws.sort(key=lambda d: d[1])
-        ok = _records.decision_hash(row, draws, key) == row[15]
-    return Rec(row[13], 0, row[12], did, row[14], row[15], ok)
+        draws.sort(key=lambda d: d[DRAW.idx])
+        ok = _records.decision_hash(row, draws, key) == digest
+    return Rec(row[DEC.seq], 0, row[DEC.writer], did, row[DEC.prev_hash], digest, ok)
 
 
 def outcome_rec(row: Row, key: bytes) -> Rec:
-    ok = _records.outcome_hash(row, key) == row[7]
-    return Rec(row[5], 1, row[4], row[0], row[6], row[7], ok)
+    digest = row[OUT.hash]
+    ok = _records.outcome_hash(row, key) == digest
+    return Rec(
+        row[OUT.seq], 1, row[OUT.writer], row[OUT.decision_id], row[OUT.prev_hash], digest, ok
+    )

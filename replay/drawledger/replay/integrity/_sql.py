@@ -8,6 +8,7 @@ from collections.abc import Iterator
 import sqlalchemy as sa
 
 from drawledger import _records
+from drawledger._schema import DEC, DRAW
 from drawledger.replay.integrity._report import (
     IntegrityReport,
     Rec,
@@ -65,13 +66,13 @@ def _sql_decisions(
                     "ON dr.decision_id = d.decision_id "
                     "WHERE d.writer = :w AND d.seq >= :lo AND d.seq <= :hi"
                 ),
-                {"w": writer, "lo": rows[0][13], "hi": rows[-1][13]},
+                {"w": writer, "lo": rows[0][DEC.seq], "hi": rows[-1][DEC.seq]},
             )
             by_id: dict[str, list[Row]] = {}
             for d in found:
-                by_id.setdefault(d[0], []).append(tuple(d))
+                by_id.setdefault(d[DRAW.decision_id], []).append(tuple(d))
         for row in rows:
-            yield decision_rec(row, by_id.get(row[0], []), key, dup_ids)
+            yield decision_rec(row, by_id.get(row[DEC.decision_id], []), key, dup_ids)
 
 
 def _sql_outcomes(engine: sa.Engine, writer: str, key: bytes, chunk: int) -> Iterator[Rec]:

@@ -10,6 +10,7 @@ from typing import Any
 
 import pandas as pd
 
+from drawledger._schema import DEC, DRAW
 from drawledger.replay.verify import _export
 from drawledger.replay.verify._decision import Context, as_text, check_decision
 from drawledger.replay.verify._types import (
@@ -46,17 +47,17 @@ def verify_chunk(
     """
     by_id: dict[str, list[Row]] = {}
     for d in draws:
-        by_id.setdefault(d[0], []).append(d)
+        by_id.setdefault(d[DRAW.decision_id], []).append(d)
     ctx = Context(settings)
     result = ChunkResult()
     base: list[tuple[Any, ...]] = []
     flat: list[dict[str, Any]] = []
     for row in decisions:
-        did = row[0]
+        did = row[DEC.decision_id]
         checked = check_decision(row, list(by_id.get(did, ())), ctx, did in flagged)
         reasons = checked.reasons
         category = _category(reasons)
-        stream = row[1] if isinstance(row[1], str) else str(row[1])
+        stream = row[DEC.stream] if isinstance(row[DEC.stream], str) else str(row[DEC.stream])
         counts = result.streams.setdefault(stream, [0, 0, 0, 0])
         counts[0] += 1
         counts[category] += 1
@@ -72,11 +73,11 @@ def verify_chunk(
             result.methods[prop.method] += 1
         if settings.keep_rows:
             base.append((
-                did, row[1], as_text(row[2]), row[3], row[8],
+                did, row[DEC.stream], as_text(row[DEC.unit]), row[DEC.ts], row[DEC.action],
                 math.nan if prop is None else prop.value,
                 None if prop is None else prop.method,
                 math.nan if prop is None else prop.stderr,
-                row[9], row[10], category == VERIFIED,
+                row[DEC.propensity], row[DEC.propensity_kind], category == VERIFIED,
                 ";".join(reasons) or None, next(iter(reasons.values()), None),
             ))  # fmt: skip
             flat.append(_export.flatten_inputs(checked.inputs))

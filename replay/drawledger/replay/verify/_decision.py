@@ -15,6 +15,7 @@ from drawledger._records import (  # the SDK's own JSON encoding, bit for bit
     json_default,
     to_json,
 )
+from drawledger._schema import DEC, DRAW
 from drawledger.draw import Draw, DrawRecord, bucket_assign
 from drawledger.exceptions import (
     BadRecordError,
@@ -187,12 +188,14 @@ def _seed(text: Any) -> bytes:
 
 def _draw_rows(rows: list[Row]) -> list[Row]:
     if len(rows) > 1:
-        rows.sort(key=lambda d: d[1] if isinstance(d[1], int) else -1)
+        rows.sort(key=lambda d: d[DRAW.idx] if isinstance(d[DRAW.idx], int) else -1)
     for i, d in enumerate(rows):
-        if d[1] != i:
-            raise BadRecordError(f"draw indexes are {[d[1] for d in rows]}, not 0, 1, 2, ...")
-        if not (d[7].__class__ is float and -math.inf < d[7] < math.inf):
-            _number(d[7], f"draw {i} probability")
+        if d[DRAW.idx] != i:
+            raise BadRecordError(
+                f"draw indexes are {[d[DRAW.idx] for d in rows]}, not 0, 1, 2, ..."
+            )
+        if not (d[DRAW.prob].__class__ is float and -math.inf < d[DRAW.prob] < math.inf):
+            _number(d[DRAW.prob], f"draw {i} probability")
     return rows
 
 
@@ -200,33 +203,42 @@ def _compare_draws(out: _Checked, replayed: list[tuple[Any, ...]], recorded: lis
     if len(replayed) != len(recorded):
         out.add("draw-count", f"{len(recorded)} draws recorded, {len(replayed)} replayed")
     for (kind, name, args, u, value, prob, dens), d in zip(replayed, recorded, strict=False):
-        if (kind == d[3] and args == d[4] and u == d[5] and value == d[6] and prob == d[7]
-                and dens == bool(d[8]) and name == as_text(d[2])):  # fmt: skip
+        _, idx, r_name, r_kind, r_args, r_u, r_value, r_prob, r_dens = d  # DRAW_COLUMNS
+        if (kind == r_kind and args == r_args and u == r_u and value == r_value and prob == r_prob
+                and dens == bool(r_dens) and name == as_text(r_name)):  # fmt: skip
             continue  # the usual case: identical to the record
-        where = f"draw {d[1]} ({kind}{'' if name is None else ' ' + repr(name)})"
-        if kind != d[3] or name != as_text(d[2]):
-            out.add("args", f"{where}: recorded as {d[3]} {as_text(d[2])!r}")
-        elif not _json_same(args, d[4], f"{where} arguments"):
-            out.add("args", f"{where}: arguments {_short(args)} replayed, {_short(d[4])} recorded")
-        if not _json_same(u, d[5], f"{where} uniforms"):
-            out.add("value", f"{where}: uniforms {_short(u)} replayed, {_short(d[5])} recorded")
-        if not _json_same(value, d[6], f"{where} value"):
-            out.add("value", f"{where}: value {_short(value)} replayed, {_short(d[6])} recorded")
-        if not _close(prob, d[7]) or dens != bool(d[8]):
+        where = f"draw {idx} ({kind}{'' if name is None else ' ' + repr(name)})"
+        if kind != r_kind or name != as_text(r_name):
+            out.add("args", f"{where}: recorded as {r_kind} {as_text(r_name)!r}")
+        elif not _json_same(args, r_args, f"{where} arguments"):
+            out.add(
+                "args",
+                f"{where}: arguments {_short(args)} replayed, {_short(r_args)} recorded",
+            )
+        if not _json_same(u, r_u, f"{where} uniforms"):
+            out.add("value", f"{where}: uniforms {_short(u)} replayed, {_short(r_u)} recorded")
+        if not _json_same(value, r_value, f"{where} value"):
+            out.add(
+                "value",
+                f"{where}: value {_short(value)} replayed, {_short(r_value)} recorded",
+            )
+        if not _close(prob, r_prob) or dens != bool(r_dens):
             what = "density" if dens else "probability"
-            out.add("probability", f"{where}: {what} {prob!r} replayed, {d[7]!r} recorded")
+            out.add("probability", f"{where}: {what} {prob!r} replayed, {r_prob!r} recorded")
 
 
 def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> None:
-    raw = parse_object(row[6], "inputs")
+    raw = parse_object(row[DEC.inputs], "inputs")
     out.inputs = raw
-    decision = ctx.resolve(row[4])
-    if decision.code_hash != row[5]:
-        out.add("code-changed", f"code hash {row[5]} recorded, {decision.code_hash} now")
-    seed = _seed(row[11])
+    decision = ctx.resolve(row[DEC.fn])
+    if decision.code_hash != row[DEC.code_hash]:
+        out.add(
+            "code-changed", f"code hash {row[DEC.code_hash]} recorded, {decision.code_hash} now"
+        )
+    seed = _seed(row[DEC.seed])
     inputs = build_inputs(decision, raw)
-    params = ctx.load_params(decision, row[7])
-    logged = _number(row[9], "logged propensity")
+    params = ctx.load_params(decision, row[DEC.params])
+    logged = _number(row[DEC.propensity], "logged propensity")
     draws = _draw_rows(draws)
     try:
         draw = Draw(seed)
@@ -238,15 +250,15 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
         out.add("replay-error", f"{type(exc).__name__}: {exc}")
         return
     _compare_draws(out, first, draws)
-    if _json_same(action, row[8], "action"):
+    if _json_same(action, row[DEC.action], "action"):
         action_key = action
     else:
-        action_key = to_json(from_json(row[8]), "action")
-        out.add("action", f"action {_short(action)} replayed, {_short(row[8])} recorded")
+        action_key = to_json(from_json(row[DEC.action]), "action")
+        out.add("action", f"action {_short(action)} replayed, {_short(row[DEC.action])} recorded")
     prop, kind = _logged(first, action)
-    if not _close(prop, logged) or kind != row[10]:
-        out.add("probability", f"logged propensity {logged!r} ({row[10]}) recorded, "
-                f"{prop!r} ({kind}) replayed")  # fmt: skip
+    if not _close(prop, logged) or kind != row[DEC.propensity_kind]:
+        recorded = f"{logged!r} ({row[DEC.propensity_kind]})"
+        out.add("probability", f"logged propensity {recorded} recorded, {prop!r} ({kind}) replayed")
     try:
         again = Draw(seed)
         returned = decision.run(again, inputs, params)
@@ -261,7 +273,7 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
                     "(hidden state, a clock, or inputs changed by the function)")  # fmt: skip
     try:
         out.propensity = _propensity(ctx, decision, inputs, params, action_key, records, first,
-                                     action, (row[6], row[7]))  # fmt: skip
+                                     action, (row[DEC.inputs], row[DEC.params]))  # fmt: skip
     except Exception as exc:
         out.add("replay-error", f"propensity: {type(exc).__name__}: {exc}")
 
@@ -306,7 +318,7 @@ def _propensity(
 
 
 def _bucket_args(draw: Row) -> tuple[str, dict[str, Any], str] | None:
-    args = _parse(draw[4], "bucket arguments")
+    args = _parse(draw[DRAW.args], "bucket arguments")
     if not isinstance(args, dict) or set(args) != {"unit", "shares", "salt"}:
         return None
     unit, shares, salt = args["unit"], args["shares"], args["salt"]
@@ -324,7 +336,7 @@ def _arm(text: Any, what: str) -> str:
 def _check_bucket(out: _Checked, row: Row, draw: Row, unit: str, shares: dict[str, Any],
                   salt: str) -> None:  # fmt: skip
     """Hashed assignment has no seed: recompute the arm, its uniform and its share."""
-    recorded_u = _parse(draw[5], "bucket uniforms")
+    recorded_u = _parse(draw[DRAW.u], "bucket uniforms")
     keys = [salt.encode()]
     if len(salt) % 2 == 0 and all(c in "0123456789abcdef" for c in salt):
         keys.append(bytes.fromhex(salt))  # a bytes salt is recorded as hex
@@ -334,28 +346,31 @@ def _check_bucket(out: _Checked, row: Row, draw: Row, unit: str, shares: dict[st
         raise BadRecordError(f"bucket arguments: {exc}") from None
     arm, u, prob, _, _ = next((f for f in found if [f[1]] == recorded_u), found[0])
     if not isinstance(recorded_u, list) or not _same([u], recorded_u):
-        out.add("value", f"bucket uniform {u!r} recomputed, {_short(draw[5])} recorded")
-    if _arm(draw[6], "bucket arm") != arm:
-        out.add("value", f"bucket arm {arm!r} recomputed, {_short(draw[6])} recorded")
-    if not _close(prob, _number(draw[7], "bucket share")):
-        out.add("probability", f"bucket share {prob!r} recomputed, {draw[7]!r} recorded")
-    if not _close(prob, _number(row[9], "logged propensity")):
-        out.add("probability", f"logged propensity {row[9]!r} recorded, {prob!r} recomputed")
-    if as_text(row[2]) != unit:
-        out.add("args", f"bucket unit {unit!r} in the draw, {row[2]!r} on the decision")
-    if _arm(row[8], "action") != arm:
-        out.add("action", f"action {_short(row[8])} recorded, arm {arm!r} recomputed")
+        out.add("value", f"bucket uniform {u!r} recomputed, {_short(draw[DRAW.u])} recorded")
+    if _arm(draw[DRAW.value], "bucket arm") != arm:
+        out.add("value", f"bucket arm {arm!r} recomputed, {_short(draw[DRAW.value])} recorded")
+    if not _close(prob, _number(draw[DRAW.prob], "bucket share")):
+        out.add("probability", f"bucket share {prob!r} recomputed, {draw[DRAW.prob]!r} recorded")
+    if not _close(prob, _number(row[DEC.propensity], "logged propensity")):
+        out.add(
+            "probability",
+            f"logged propensity {row[DEC.propensity]!r} recorded, {prob!r} recomputed",
+        )
+    if as_text(row[DEC.unit]) != unit:
+        out.add("args", f"bucket unit {unit!r} in the draw, {row[DEC.unit]!r} on the decision")
+    if _arm(row[DEC.action], "action") != arm:
+        out.add("action", f"action {_short(row[DEC.action])} recorded, arm {arm!r} recomputed")
     out.propensity = Propensity(prob, EXACT)
 
 
 def _check_other(out: _Checked, row: Row, draws: list[Row]) -> None:
     """A decision without a function: a hashed bucket assignment or a declared draw."""
-    if len(draws) == 1 and draws[0][3] == "bucket":
+    if len(draws) == 1 and draws[0][DRAW.kind] == "bucket":
         args = _bucket_args(draws[0])
         if args is not None:
             _check_bucket(out, row, draws[0], *args)
             return
-    kind = draws[0][3] if draws else "no"
+    kind = draws[0][DRAW.kind] if draws else "no"
     out.add("declared", f"declared {kind} draw: audited, not replayed")
 
 
@@ -365,7 +380,7 @@ def check_decision(row: Row, draws: list[Row], ctx: Context, flagged: bool) -> _
     if flagged:
         out.add("integrity", "part of an integrity problem (see integrity)")
     try:
-        if as_text(row[4]) is None:
+        if as_text(row[DEC.fn]) is None:
             _check_other(out, row, draws)
         else:
             _check_python(out, row, draws, ctx)
