@@ -174,6 +174,20 @@ def seed_sequence(seed: int | bytes | str) -> Callable[[], bytes]:
 
 
 @contextmanager
+def reproducible_seeds(ledger: Ledger, seed: int | bytes | str) -> Iterator[None]:
+    """Decisions made through ``ledger`` while the block runs get the seeds of
+    ``seed_sequence(seed)`` (see the module docstring): for simulations, demos and tests only."""
+    with ledger._lock:
+        saved = ledger._seed_source
+        ledger._seed_source = seed_sequence(seed)
+    try:
+        yield
+    finally:
+        with ledger._lock:
+            ledger._seed_source = saved
+
+
+@contextmanager
 def capture(
     ledger: Ledger, *, seed: int | bytes | str | None = None, write: bool = False
 ) -> Iterator[Capture]:

@@ -32,7 +32,7 @@ from drawledger.replay.demo.grocery import LOGGING_POLICY as log
 from drawledger.replay.estimate import EstimateReport, SweepReport, estimate, sweep
 from drawledger.replay.report import WhatIf, write_report
 from drawledger.replay.verify import VerifyReport, verify
-from drawledger.testing import seed_sequence
+from drawledger.testing import reproducible_seeds
 
 __all__ = ["DEFAULT_SESSIONS", "DemoResult", "run_demo"]
 
@@ -212,8 +212,6 @@ def _simulate(db: Path, sessions: int, seed: int, progress: bool) -> None:
     """Record ``sessions`` shopper sessions: two decisions and their checkout outcome each."""
 
     ledger = dl.Ledger(db)
-    # Reproducible draw seeds for the demo only (production seeds come from the OS CSPRNG).
-    ledger._seed_source = seed_sequence(f"drawledger-demo-{seed}")
     decisions: tuple[dl.Decision[Any], ...] = (grocery.feature_card, grocery.reminder_delay)
     previous = [d.ledger for d in decisions]
     for d in decisions:
@@ -221,15 +219,17 @@ def _simulate(db: Path, sessions: int, seed: int, progress: bool) -> None:
     sim = grocery.ShopperSimulator(seed)
     bar = _bar(progress, "simulating shoppers", sessions)
     try:
-        for i, s in enumerate(sim.sessions(sessions)):
-            card_id, reminder_id = f"card-{i:06d}", f"reminder-{i:06d}"
-            card = grocery.feature_card(s.card_context(), unit=s.shopper, decision_id=card_id)
-            delay = grocery.reminder_delay(s.basket, unit=s.shopper, decision_id=reminder_id)
-            checkout = 1.0 if sim.checkout(s, card, delay) else 0.0
-            ledger.outcome(card_id, REWARD, checkout)
-            ledger.outcome(reminder_id, REWARD, checkout)
-            if bar is not None and i % 500 == 499:
-                bar(500)
+        # Reproducible draw seeds for the demo only (production seeds come from the OS CSPRNG).
+        with reproducible_seeds(ledger, f"drawledger-demo-{seed}"):
+            for i, s in enumerate(sim.sessions(sessions)):
+                card_id, reminder_id = f"card-{i:06d}", f"reminder-{i:06d}"
+                card = grocery.feature_card(s.card_context(), unit=s.shopper, decision_id=card_id)
+                delay = grocery.reminder_delay(s.basket, unit=s.shopper, decision_id=reminder_id)
+                checkout = 1.0 if sim.checkout(s, card, delay) else 0.0
+                ledger.outcome(card_id, REWARD, checkout)
+                ledger.outcome(reminder_id, REWARD, checkout)
+                if bar is not None and i % 500 == 499:
+                    bar(500)
         ledger.close()
         if ledger.stats()["spilled"]:
             raise LedgerError(f"some records could not be written to {db} and were spilled")
