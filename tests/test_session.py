@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 from typing import Any
 
@@ -198,3 +199,15 @@ def test_opening_reads_nothing_until_a_method_runs(tmp_path):
     h = replay.open(tmp_path / "none.db")
     with pytest.raises(LedgerError, match="no ledger"):
         h.verify()
+
+
+def test_the_replay_page_runs_as_written(tmp_path, run_markdown):
+    """docs/replay.md: its first block is the module grocery_decisions.py; the rest run after."""
+    page = (Path(__file__).parent.parent / "docs" / "replay.md").read_text(encoding="utf-8")
+    module = re.findall(r"^```python\n(.*?)^```$", page, flags=re.S | re.M)[0]
+    assert module.startswith("# grocery_decisions.py\n")
+    (tmp_path / "grocery_decisions.py").write_text(module, encoding="utf-8")
+    done = run_markdown("docs/replay.md", timeout=300)
+    assert 0 == done.returncode, done.stderr
+    assert "epsilon 0.5: " in done.stdout
+    assert (tmp_path / "replay-demo.html").is_file()
