@@ -1,8 +1,10 @@
 """drawledger.replay: verify, audit and estimate from a ledger (the analysis side)."""
 
+from drawledger.replay._handle import LedgerHandle, LedgerOptions, open
+from drawledger.replay._protocol import Report
 from drawledger.replay.audit import AuditFigure, AuditReport, AuditTest, audit, audit_tables
 from drawledger.replay.demo import DemoResult, run_demo
-from drawledger.replay.estimate import EstimateReport, SweepReport, estimate, sweep
+from drawledger.replay.estimate import Estimate, EstimateReport, SweepReport, estimate, sweep
 from drawledger.replay.integrity import IntegrityReport, check_integrity
 from drawledger.replay.propensity import Propensity, action_distribution, propensity
 from drawledger.replay.report import HtmlReport, WhatIf, write_report
@@ -14,11 +16,15 @@ __all__: list[str] = [
     "AuditReport",
     "AuditTest",
     "DemoResult",
+    "Estimate",
     "EstimateReport",
     "HtmlReport",
     "IntegrityReport",
+    "LedgerHandle",
+    "LedgerOptions",
     "LedgerTables",
     "Propensity",
+    "Report",
     "SweepReport",
     "VerifyReport",
     "WhatIf",
@@ -28,6 +34,7 @@ __all__: list[str] = [
     "check_integrity",
     "estimate",
     "iter_decision_chunks",
+    "open",
     "propensity",
     "read_tables",
     "run_demo",

@@ -3,9 +3,12 @@
 from __future__ import annotations
 
 import io
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 from typing import TYPE_CHECKING, Any
 
+import pandas as pd
+
+from drawledger.replay._html import html_table
 from drawledger.replay.audit import _stats
 from drawledger.replay.audit._limits import (
     ALPHA,
@@ -150,12 +153,31 @@ class AuditReport:
         else:
             yield f"[bold red]{len(self.alarms)} alarm(s): randomization not as declared.[/]"
 
-    def __str__(self) -> str:
+    def render(self) -> str:
+        """The tables as plain text."""
         from rich.console import Console
 
         console = Console(width=140, record=True, file=io.StringIO())
         console.print(self)
         return console.export_text()
+
+    def __str__(self) -> str:
+        return self.render()
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per test, with every field of ``AuditTest`` as a column."""
+        columns = [f.name for f in fields(AuditTest)]
+        return pd.DataFrame([[getattr(t, c) for c in columns] for t in self.tests],
+                            columns=columns)  # fmt: skip
+
+    def _repr_html_(self) -> str:
+        """Every test as a row of an HTML table (notebooks); p is Holm-adjusted."""
+        verdict = "no alarm" if self.ok else f"{len(self.alarms)} alarm(s)"
+        caption = f"Randomization audit of {self.decisions} decisions: {verdict}"
+        rows = [(t.stream, t.draw, t.kind, TEST_LABELS[t.test], t.n, t.statistic, t.p_adjusted,
+                 t.verdict) for t in self.tests]  # fmt: skip
+        head = ("stream", "draw", "kind", "test", "n", "statistic", "p", "verdict")
+        return html_table(caption, head, rows)
 
 
 def _fmt(x: float | None) -> str:

@@ -4,11 +4,13 @@ from __future__ import annotations
 
 import os
 from collections.abc import Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
+
+from drawledger.replay._html import html_table
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -52,6 +54,40 @@ def _policy_text(d: Mapping[str, Any]) -> str:
     if d.get("overrides"):
         return ", ".join(f"{k}={v!r}" for k, v in d["overrides"].items())
     return "logging policy"
+
+
+@dataclass(frozen=True)
+class Estimate:
+    """One estimator's value with its interval [low, high].
+
+    For clipped IPS, the clipped-away part of the value lies in [bias_low, bias_bound], so the
+    target's value lies in [low + bias_low, high + bias_bound]; both are None for the others.
+    """
+
+    value: float | None
+    low: float | None
+    high: float | None
+    bias_low: float | None = None
+    bias_bound: float | None = None
+
+    @classmethod
+    def from_dict(cls, entry: Mapping[str, float | None]) -> Estimate:
+        """An entry of the JSON's ``estimates`` (or ``difference``) object as an ``Estimate``."""
+        return cls(entry["value"], entry["low"], entry["high"], entry.get("bias_low"),
+                   entry.get("bias_bound"))  # fmt: skip
+
+
+ESTIMATE_COLUMNS = tuple(f.name for f in fields(Estimate))
+
+
+def _typed(entries: Mapping[str, Mapping[str, float | None]]) -> dict[str, Estimate]:
+    return {name: Estimate.from_dict(e) for name, e in entries.items()}
+
+
+def _estimate_rows(entries: Mapping[str, Mapping[str, float | None]]) -> list[list[Any]]:
+    """One row per estimator: its name, then the ``Estimate`` fields."""
+    return [[name, *(getattr(e, c) for c in ESTIMATE_COLUMNS)]
+            for name, e in _typed(entries).items()]  # fmt: skip
 
 
 @dataclass
@@ -104,6 +140,33 @@ class EstimateReport:
             return None
         return self.baseline_estimates["ips"]["value"]
 
+    @property
+    def results(self) -> dict[str, Estimate]:
+        """The target's estimates, typed: ``report.results["snips"].value``."""
+        return _typed(self.estimates)
+
+    @property
+    def differences(self) -> dict[str, Estimate]:
+        """Target minus baseline, estimator by estimator, typed."""
+        return _typed(self.difference)
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per estimator (the index) with the ``Estimate`` fields as columns."""
+        rows = _estimate_rows(self.estimates)
+        return pd.DataFrame(rows, columns=["estimator", *ESTIMATE_COLUMNS]).set_index("estimator")
+
+    def _repr_html_(self) -> str:
+        """The estimates and differences as an HTML table, then the warnings (notebooks)."""
+        s = self.settings
+        caption = (f"{_policy_text(self.target)} on {self.target.get('stream')} (diff: minus "
+                   f"{_policy_text(self.baseline)}), {self.n} verified records, "
+                   f"{s['level']:.0%} {s['interval']} intervals")  # fmt: skip
+        diffs = self.differences
+        rows = [(name, e.value, e.low, e.high, e.bias_bound, diffs[name].value, diffs[name].low,
+                 diffs[name].high) for name, e in self.results.items()]  # fmt: skip
+        head = ("estimator", "value", "low", "high", "bias bound", "diff", "diff low", "diff high")
+        return html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
+
     def _tables(self) -> list[Any]:
         from rich.box import SIMPLE
         from rich.table import Table
@@ -148,8 +211,12 @@ class EstimateReport:
         for w in self.warnings:
             yield f"[yellow]warning:[/yellow] {w}"
 
-    def __str__(self) -> str:
+    def render(self) -> str:
+        """The tables and warnings as plain text."""
         return _plain(self)
+
+    def __str__(self) -> str:
+        return self.render()
 
 
 def _plain(renderable: Any) -> str:
@@ -211,6 +278,27 @@ class SweepReport:
         fig.tight_layout()
         return fig
 
+    def to_frame(self) -> pd.DataFrame:
+        """One row per (swept value, estimator), the index, with the ``Estimate`` fields and the
+        point's diagnostics as columns: ``frame.xs("snips", level="estimator")`` is a curve."""
+        rows = []
+        for p in self.points:
+            diag = [p["diagnostics"][k] for k in ("ess", "max_weight", "support_deficit")]
+            rows += [[p["value"], *row, *diag] for row in _estimate_rows(p["estimates"])]
+        columns = [self.param, "estimator", *ESTIMATE_COLUMNS, "ess", "max_weight",
+                   "support_deficit"]  # fmt: skip
+        return pd.DataFrame(rows, columns=columns).set_index([self.param, "estimator"])
+
+    def _repr_html_(self) -> str:
+        """Every point and estimator as a row of an HTML table, then the warnings (notebooks)."""
+        s = self.settings
+        caption = (f"{self.param} sweep on {s.get('stream')}: {self.n} verified records, "
+                   f"{s['level']:.0%} {s['interval']} intervals")  # fmt: skip
+        rows = [(p["value"], name, e["value"], e["low"], e["high"], p["diagnostics"]["ess"])
+                for p in self.points for name, e in p["estimates"].items()]  # fmt: skip
+        head = (self.param, "estimator", "value", "low", "high", "ess")
+        return html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
+
     def to_dict(self) -> dict[str, Any]:
         return {"n": self.n, "param": self.param, "points": self.points,
                 "baseline": self.baseline, "settings": self.settings,
@@ -240,5 +328,9 @@ class SweepReport:
         for w in self.warnings:
             yield f"[yellow]warning:[/yellow] {w}"
 
-    def __str__(self) -> str:
+    def render(self) -> str:
+        """The table and warnings as plain text."""
         return _plain(self)
+
+    def __str__(self) -> str:
+        return self.render()

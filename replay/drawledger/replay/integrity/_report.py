@@ -4,10 +4,14 @@ from __future__ import annotations
 
 from collections.abc import Iterable
 from dataclasses import dataclass, field
-from typing import Any, NamedTuple
+from typing import TYPE_CHECKING, Any, NamedTuple
 
 from drawledger import _records
 from drawledger._schema import DEC, DRAW, OUT
+from drawledger.replay._html import html_table
+
+if TYPE_CHECKING:
+    from rich.console import Console, ConsoleOptions, RenderResult
 
 PROBLEMS = (
     "gaps",
@@ -89,6 +93,20 @@ class IntegrityReport:
 
     def __str__(self) -> str:
         return self.render()
+
+    def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
+        from rich.text import Text
+
+        yield Text(self.render())
+
+    def _repr_html_(self) -> str:
+        """Each problem with its count and first examples, as an HTML table (notebooks)."""
+        head = "integrity ok" if self.ok else "integrity FAILED"
+        caption = (f"{head}: {self.decisions} decisions, {self.outcomes} outcomes, "
+                   f"{self.writers} writers")  # fmt: skip
+        rows = [(p.replace("_", " "), getattr(self, p), ", ".join(self.examples.get(p, [])))
+                for p in PROBLEMS]  # fmt: skip
+        return html_table(caption, ("problem", "count", "examples"), rows)
 
 
 class Rec(NamedTuple):

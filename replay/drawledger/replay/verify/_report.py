@@ -6,13 +6,17 @@ import io
 import os
 from collections import Counter
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import pandas as pd
 
+from drawledger.replay._html import html_table
 from drawledger.replay.integrity import IntegrityReport
 from drawledger.replay.verify import _export
 from drawledger.replay.verify._types import COUNTS, NOT_FAILING, REASONS, UNREPLAYABLE, ChunkResult
+
+if TYPE_CHECKING:
+    from rich.console import Console, ConsoleOptions, RenderResult
 
 
 @dataclass
@@ -83,6 +87,9 @@ class VerifyReport:
         parts.append(Text(verdict, style="bold green" if self.ok else "bold red"))
         return Group(*parts)
 
+    def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
+        yield self.__rich__()
+
     def render(self) -> str:
         """The summary as plain text."""
         from rich.console import Console
@@ -93,6 +100,22 @@ class VerifyReport:
 
     def __str__(self) -> str:
         return self.render()
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per decision (the export's columns); empty when run with ``keep_rows=False``."""
+        return self.rows
+
+    def _repr_html_(self) -> str:
+        """The decisions by stream as an HTML table (notebooks)."""
+        verdict = "verify passed" if self.ok else "verify FAILED"
+        caption = (f"{verdict}: {self.verified} of {self.decisions} decisions verified; "
+                   f"{'integrity ok' if self.integrity.ok else 'integrity FAILED'}")  # fmt: skip
+        rows = [(stream, *(c[k] for k in COUNTS),
+                 ", ".join(f"{r} {n}" for r, n in c["by_reason"].items()))
+                for stream, c in sorted(self.by_stream.items())]  # fmt: skip
+        rows.append(("all", self.decisions, self.verified, self.mismatched, self.unreplayable,
+                     ", ".join(f"{r} {n}" for r, n in self.by_reason.items())))  # fmt: skip
+        return html_table(caption, ("stream", *COUNTS, "reasons"), rows)
 
 
 def build_report(

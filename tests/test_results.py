@@ -1,0 +1,164 @@
+"""Typed results, ``to_frame`` and the report protocol (JSON, rich, plain text, HTML)."""
+
+from __future__ import annotations
+
+import dataclasses
+import io
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import orjson
+import pandas as pd
+import pytest
+from rich.console import Console
+
+import drawledger as dl
+import drawledger.replay as replay
+from drawledger.replay import Estimate, Report
+
+ODD = '<b>&"'  # a stream name that HTML must escape
+ESCAPED = "&lt;b&gt;&amp;&quot;"
+CARDS = ["one-pot-pasta", "green-curry", "taco-night"]
+N = 80
+
+_placeholder = dl.Ledger(Path(tempfile.gettempdir()) / "drawledger-results-placeholder.db")
+
+
+@_placeholder.decision(ODD)
+def odd_card(scores: list[float], draw: dl.Draw, *, temperature: float = 0.7) -> str:
+    return draw.softmax(CARDS, scores, temperature=temperature, name="card")
+
+
+@pytest.fixture(scope="module")
+def odd(tmp_path_factory: pytest.TempPathFactory) -> replay.LedgerHandle:
+    """80 decisions of the stream ``<b>&"`` with checkouts, opened as a handle."""
+    path = tmp_path_factory.mktemp("results") / "odd.db"
+    led = dl.Ledger(path)
+    odd_card.ledger = led
+    try:
+        for i in range(N):
+            card = odd_card([1.0, 0.5 + (i % 3) / 4, 0.2], decision_id=f"d-{i}")
+            led.outcome(f"d-{i}", "checkout", float(card == "green-curry"))
+    finally:
+        odd_card.ledger = _placeholder
+        led.close()
+    return replay.open(path)
+
+
+@pytest.fixture(scope="module")
+def reports(odd: replay.LedgerHandle) -> dict[str, Any]:
+    return {
+        "verify": odd.verify(),
+        "audit": odd.audit(),
+        "estimate": odd.estimate("checkout", overrides={"temperature": 0.3}),
+        "sweep": odd.sweep("checkout", "temperature", [0.3, 1.0]),
+        "integrity": odd.check_integrity(),
+    }
+
+
+def test_estimates_are_typed(reports):
+    report = reports["estimate"]
+    snips = report.estimates["snips"]
+    assert Estimate(snips["value"], snips["low"], snips["high"]) == report.results["snips"]
+    assert list(report.estimates) == list(report.results)
+
+
+def test_only_the_clipped_estimate_carries_its_bias_interval(reports):
+    results = reports["estimate"].results
+    clipped = reports["estimate"].estimates["clipped"]
+    assert (clipped["bias_low"], clipped["bias_bound"]) == (
+        results["clipped"].bias_low,
+        results["clipped"].bias_bound,
+    )
+    assert [(None, None)] * 3 == [(results[n].bias_low, results[n].bias_bound)
+                                  for n in ("ips", "snips", "dr")]  # fmt: skip
+
+
+def test_differences_are_typed(reports):
+    report = reports["estimate"]
+    assert report.difference["dr"]["value"] == report.differences["dr"].value
+
+
+def test_an_estimate_is_frozen(reports):
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        reports["estimate"].results["ips"].value = 0.0
+
+
+def test_to_dict_keeps_plain_json(reports):
+    """The typed view leaves the JSON alone: estimates stay objects of numbers."""
+    report = reports["estimate"]
+    report.results  # noqa: B018 (built on demand, must not change the report)
+    data = orjson.loads(orjson.dumps(report.to_dict()))
+    assert {"value", "low", "high"} == set(data["estimates"]["snips"])
+
+
+def test_estimate_frame_has_one_row_per_estimator(reports):
+    report = reports["estimate"]
+    frame = report.to_frame()
+    assert ["ips", "snips", "clipped", "dr"] == list(frame.index)
+    assert ["value", "low", "high", "bias_low", "bias_bound"] == list(frame.columns)
+    assert report.estimates["snips"]["high"] == frame.loc["snips", "high"]
+
+
+def test_sweep_frame_has_one_row_per_point_and_estimator(reports):
+    report = reports["sweep"]
+    frame = report.to_frame()
+    assert ["temperature", "estimator"] == list(frame.index.names)
+    assert 2 * 4 == len(frame)
+    curve = frame.xs("snips", level="estimator")
+    assert [0.3, 1.0] == list(curve.index)
+    point = report.points[1]
+    assert point["estimates"]["snips"]["value"] == curve.loc[1.0, "value"]
+    assert point["diagnostics"]["ess"] == curve.loc[1.0, "ess"]
+
+
+def test_audit_frame_has_one_row_per_test(reports):
+    report = reports["audit"]
+    frame = report.to_frame()
+    assert len(report.tests) == len(frame)
+    assert [t.verdict for t in report.tests] == list(frame["verdict"])
+    assert {ODD} == set(frame["stream"])
+
+
+def test_verify_frame_is_one_row_per_decision(reports):
+    frame = reports["verify"].to_frame()
+    assert isinstance(frame, pd.DataFrame)
+    assert N == len(frame)
+    assert {ODD} == set(frame["stream"])
+
+
+@pytest.mark.parametrize("name", ["verify", "audit", "estimate", "sweep", "integrity"])
+def test_every_report_satisfies_the_protocol(reports, name):
+    report = reports[name]
+    assert isinstance(report, Report)
+    assert isinstance(report.to_dict(), dict)
+    assert report.render().strip()
+    console = Console(file=io.StringIO(), width=120)
+    console.print(report)
+    assert console.file.getvalue().strip()
+    assert report._repr_html_().startswith("<table><caption>")
+
+
+def test_the_protocol_check_can_fail():
+    assert not isinstance(object(), Report)
+
+
+@pytest.mark.parametrize("name", ["verify", "audit", "estimate", "sweep"])
+def test_html_escapes_the_stream_name(reports, name):
+    page = reports[name]._repr_html_()
+    assert ESCAPED in page
+    assert ODD not in page
+
+
+def test_html_escapes_examples_of_the_integrity_report():
+    report = replay.IntegrityReport()
+    report.note("gaps", ODD)
+    page = report.finish()._repr_html_()
+    assert f"<td>{ESCAPED}</td>" in page
+    assert ODD not in page
+
+
+def test_html_escapes_estimate_warnings(reports):
+    report = dataclasses.replace(reports["estimate"], warnings=["support <lost> & found"])
+    assert "<p>warning: support &lt;lost&gt; &amp; found</p>" in report._repr_html_()
