@@ -253,6 +253,10 @@ def _mix(x: NDArray[np.uint64]) -> NDArray[np.uint64]:
     return x ^ (x >> np.uint64(31))
 
 
+# The blake2b key of decision ids (replay/_keys.py): their bootstrap counts and folds.
+ID_KEY = b"drawledger.estimate"
+
+
 def poisson_counts(keys: ArrayLike, start: int, stop: int, seed: int = 0) -> Array:
     """Poisson(1) resampling counts of replicates ``start..stop-1``, shape (stop - start, n).
 

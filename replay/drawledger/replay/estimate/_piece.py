@@ -13,6 +13,7 @@ import pandas as pd
 from drawledger._records import from_json
 from drawledger.exceptions import ReplayError
 from drawledger.replay._keys import id_keys
+from drawledger.replay.estimate._estimators import ID_KEY
 from drawledger.replay.estimate._policies import Policy, Records, Target, evaluate
 from drawledger.replay.estimate._rewards import Rewards
 from drawledger.replay.propensity import MONTE_CARLO
@@ -291,7 +292,7 @@ def evaluate_piece(rows: Sequence[tuple[Any, ...]], draws: Iterable[tuple[Any, .
         if len(values) > MAX_SEGMENTS:
             raise too_many_segments(job.by)
         label, facts.labels = codes_l.astype(np.int32), [str(v) for v in values]
-    keys = id_keys(ids, b"drawledger.estimate")
+    keys = id_keys(ids, ID_KEY)
     return PieceData(
         facts, recs.mu, r, np.array([codes[a] for a in recs.actions], dtype=np.int32), keys,
         [None if t.logging else res.p for t, res in zip(targets, results, strict=True)],
