@@ -20,8 +20,8 @@ PERSON = b"drawledger.k1"
 
 def id_keys(ids: Iterable[str], key: bytes) -> npt.NDArray[np.uint64]:
     """The 64-bit key of each id (see the module docstring), in order."""
-    # The keyed state is made once and copied per id: a copy skips the compression of the
-    # key block, which halves the cost of a short id.
+    # The keyed state is made once and copied per id: a copy skips compressing the key block
+    # again for every id.
     copy = hashlib.blake2b(digest_size=8, key=key, person=PERSON).copy
     digests: list[bytes] = []
     append = digests.append

@@ -263,8 +263,8 @@ def poisson_counts(keys: ArrayLike, start: int, stop: int, seed: int = 0) -> Arr
     The count of a record in a replicate is a function of its 64-bit ``keys`` entry (the
     blake2b key of the decision id, replay/_keys.py), the replicate number and ``seed`` alone:
     any chunking or partitioning of the records gives the same resamples, so per-chunk sums
-    combine exactly.
-    A uniform from the mixed bits goes through the inverse Poisson(1) distribution function.
+    combine exactly. A uniform from the mixed bits goes through the inverse Poisson(1)
+    distribution function.
     """
     k = np.asarray(keys, dtype=np.uint64)
     with np.errstate(over="ignore"):
