@@ -4,6 +4,10 @@ One Dask cluster (a scheduler and two single-threaded worker processes on 127.0.
 module; every engine call reaches it by its address, as ``--scheduler`` would. The scheduler
 retries a task once after its worker dies (``allowed-failures`` 1), so the failure tests stay
 short. One CLI test starts its own local cluster (no ``--scheduler``).
+
+The local engine is not the only reference: the pieces are checked against the part files cut
+by hand, the counts against the decisions the fixture writes, and the estimates against IPS and
+SNIPS computed with numpy from the ledger's tables.
 """
 
 from __future__ import annotations
@@ -21,6 +25,8 @@ from unittest import mock
 import dask
 import dask_shop as shop
 import numpy as np
+import pandas as pd
+import pyarrow.parquet as pq
 import pytest
 
 import drawledger as dl
@@ -37,6 +43,8 @@ SUPPORT = ROOT / "tests" / "support"
 CHUNK = 120  # decisions per piece: the ledger below makes about ten pieces
 DAY = 86_400.0
 START = 1_767_225_600.0  # 2026-01-01 00:00 UTC
+# Decisions per stream that _record writes (one draw each): the reference counts below.
+DECISIONS = {"recipe-card": 600, "reminder-delay": 150, "free-delivery": 120, "legacy-coupon": 86}
 
 
 def _record(root: Path, fuse: Path) -> None:
@@ -120,13 +128,56 @@ def test_the_ledger_is_partitioned_by_stream_and_date(ledger: Path) -> None:
     assert {"2026-01-01", "2026-01-02"} == {n.split("/")[1] for n in names}
 
 
-def test_pieces_are_the_local_engines_chunks(ledger: Path) -> None:
-    """Each piece holds exactly the decisions of one chunk of the local engine, in order."""
+def _cut_by_hand(root: Path) -> list[list[Path]]:
+    """The decision part files in path order, cut after each run of at least CHUNK rows (row
+    counts from the Parquet footers): the cut the local engine makes, written out here."""
+    out: list[list[Path]] = [[]]
+    rows = 0
+    for path in sorted((root / "decisions").rglob("*.parquet")):
+        out[-1].append(path)
+        rows += pq.read_metadata(path).num_rows
+        if rows >= CHUNK:
+            out.append([])
+            rows = 0
+    return [files for files in out if files]
+
+
+def _ids(files: list[Path]) -> list[str]:
+    return [i for f in files for i in pq.read_table(f, columns=["decision_id"])[0].to_pylist()]
+
+
+def test_pieces_and_local_chunks_are_the_part_files_cut_by_hand(ledger: Path) -> None:
+    """Each piece, and each chunk of the local engine, holds the decisions of the part files of
+    one hand-made cut, in path order."""
+    expected = _cut_by_hand(ledger)
     plan = sources.pieces(sources.partitions(ledger), CHUNK)
-    local = [[r[0] for r in rows] for rows, _ in iter_chunks(ledger, size=CHUNK)]
-    assert local == [[r[0] for r in sources.read_piece(p)[0]] for p in plan]
-    assert [len(c) for c in local] == [p.rows for p in plan]
+    assert [[os.fspath(f) for f in files] for files in expected] == [list(p.parts) for p in plan]
+    ids = [_ids(files) for files in expected]
+    assert [len(i) for i in ids] == [p.rows for p in plan]
+    assert ids == [[r[0] for r in sources.read_piece(p)[0]] for p in plan]
+    assert ids == [[r[0] for r in rows] for rows, _ in iter_chunks(ledger, size=CHUNK)]
+    assert sum(DECISIONS.values()) == sum(len(i) for i in ids)
     assert len(plan) > 4
+
+
+def _by_numpy(ledger: Path, temperature: float) -> dict[str, float]:
+    """IPS and SNIPS of the recipe cards at ``temperature``, and the logged mean reward,
+    straight from the ledger's tables: the softmax p_j = exp((s_j - max s) / T) / sum_k
+    exp((s_k - max s) / T) of docs/draw-spec.md over the recorded scores, the recorded
+    propensities, and the checkout outcomes (0 when missing)."""
+    cards = pd.read_parquet(ledger / "decisions" / "recipe-card")
+    outcomes = pd.read_parquet(ledger / "outcomes")
+    checkout = outcomes[outcomes["name"] == "checkout"].groupby("decision_id")["value"].sum()
+    r = checkout.reindex(cards["decision_id"]).fillna(0.0).to_numpy()
+    p = np.empty(len(cards))
+    for k, (inputs, action) in enumerate(zip(cards["inputs"], cards["action"], strict=True)):
+        ctx = json.loads(inputs)["ctx"]
+        s = np.asarray(ctx["scores"])
+        e = np.exp((s - s.max()) / temperature)
+        p[k] = e[ctx["cards"].index(json.loads(action))] / e.sum()
+    w = p / cards["propensity"].to_numpy()
+    return {"ips": float(np.mean(w * r)), "snips": float(np.sum(w * r) / np.sum(w)),
+            "logging": float(np.mean(r))}  # fmt: skip
 
 
 def test_verify_counts_and_rows_equal_the_local_engine(ledger: Path, scheduler: str) -> None:
@@ -134,7 +185,9 @@ def test_verify_counts_and_rows_equal_the_local_engine(ledger: Path, scheduler: 
     remote = _verify(ledger, engine="dask", scheduler=scheduler)
     assert local.to_dict() == remote.to_dict()
     assert {"declared"} == set(local.by_reason)  # the legacy coupons: audited, not replayed
-    assert local.ok and 0 < local.verified < local.decisions
+    assert local.ok and sum(DECISIONS.values()) == local.decisions
+    assert DECISIONS == {s: c["decisions"] for s, c in local.to_dict()["by_stream"].items()}
+    assert sum(DECISIONS.values()) - DECISIONS["legacy-coupon"] == local.verified
     assert local.rows.equals(remote.rows)
 
 
@@ -155,9 +208,9 @@ def test_audit_statistics_equal_the_local_engine(ledger: Path, scheduler: str) -
     local = audit(ledger, chunk_size=CHUNK)
     remote = audit(ledger, chunk_size=CHUNK, engine="dask", scheduler=scheduler)
     assert local.to_dict() == remote.to_dict()
-    assert {"recipe-card", "reminder-delay", "free-delivery", "legacy-coupon"} == {
-        t.stream for t in remote.tests
-    }
+    tests = local.to_dict()["tests"]
+    assert sum(DECISIONS.values()) == local.to_dict()["decisions"]
+    assert DECISIONS == {t["stream"]: t["n"] for t in tests if t["test"] == "consistency"}
 
 
 def _close(expected: Any, actual: Any, path: str = "") -> None:
@@ -184,7 +237,12 @@ def test_estimates_equal_the_local_engine(ledger: Path, scheduler: str) -> None:
     remote = estimate(ledger, engine="dask", scheduler=scheduler, **kw)
     _close(local.to_dict(), remote.to_dict())
     np.testing.assert_allclose(local.weights, remote.weights, rtol=1e-12)
-    assert 600 == remote.n and {"ips", "snips", "clipped", "dr"} == set(remote.estimates)
+    assert DECISIONS["recipe-card"] == remote.n
+    assert {"ips", "snips", "clipped", "dr"} == set(remote.estimates)
+    expected = _by_numpy(ledger, 0.3)
+    assert expected["ips"] == pytest.approx(local.estimates["ips"]["value"], rel=1e-9)
+    assert expected["snips"] == pytest.approx(local.estimates["snips"]["value"], rel=1e-9)
+    assert expected["logging"] == pytest.approx(local.logging_value, rel=1e-9)
 
 
 def test_bootstrap_intervals_equal_the_local_engine(ledger: Path, scheduler: str) -> None:
@@ -195,13 +253,19 @@ def test_bootstrap_intervals_equal_the_local_engine(ledger: Path, scheduler: str
     local = estimate(ledger, **kw)
     _close(local.to_dict(), estimate(ledger, engine="dask", scheduler=scheduler, **kw).to_dict())
     assert 300 == local.settings["bootstrap"]
+    ips = local.estimates["ips"]
+    assert _by_numpy(ledger, 0.3)["ips"] == pytest.approx(ips["value"], rel=1e-9)
+    assert ips["low"] < ips["value"] < ips["high"]
 
 
 def test_a_sweep_equals_the_local_engine(ledger: Path, scheduler: str) -> None:
     kw: dict[str, Any] = dict(reward="checkout", stream="recipe-card", path=[SUPPORT],
                               param="temperature", values=[0.3, 1.0])  # fmt: skip
-    _close(sweep(ledger, **kw).to_dict(), sweep(ledger, engine="dask", scheduler=scheduler,
-                                                **kw).to_dict())  # fmt: skip
+    local = sweep(ledger, **kw).to_dict()
+    _close(local, sweep(ledger, engine="dask", scheduler=scheduler, **kw).to_dict())
+    for point in local["points"]:
+        expected = _by_numpy(ledger, point["value"])
+        assert expected["snips"] == pytest.approx(point["estimates"]["snips"]["value"], rel=1e-9)
 
 
 def test_estimate_errors_match_the_local_engine(ledger: Path, scheduler: str) -> None:

@@ -2,6 +2,7 @@
 
 Each subcommand calls one library function. Library errors become one line on stderr and
 exit code 2 (``--debug`` shows the traceback); a check that ran and found a problem exits 1.
+A command whose optional extra is not installed says which one, in one line, and exits 2.
 """
 
 from __future__ import annotations
@@ -16,6 +17,27 @@ from drawledger.exceptions import DrawledgerError
 EXIT_OK, EXIT_FOUND, EXIT_USAGE = 0, 1, 2
 
 Handler = Callable[[argparse.Namespace], int]
+
+# The extra that installs each optional module a command imports (pip install 'drawledger[X]').
+_EXTRAS = {
+    "numpy": "replay", "pandas": "replay", "scipy": "replay", "pyarrow": "replay",
+    "rich": "replay", "matplotlib": "replay", "pydantic": "replay",
+    "dask": "dask", "distributed": "dask",
+}  # fmt: skip
+
+_EXTRA_NAMES = {
+    "replay": "the analysis extras",
+    "dask": "the Dask extras",
+    "parquet": "the Parquet extras",
+}
+
+
+def _missing_extra(exc: ImportError, command: str) -> str | None:
+    """The extra that provides the module ``exc`` misses (None: not an optional module)."""
+    module = (exc.name or "").split(".")[0]
+    if module == "pyarrow" and command == "ingest":  # the SDK writes Parquet with pyarrow alone
+        return "parquet"
+    return _EXTRAS.get(module)
 
 
 def _not_yet(command: str) -> Handler:
@@ -362,10 +384,20 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = parser.parse_args(argv)
     handler: Handler = args.handler
     try:
+        if getattr(args, "engine", "local") == "dask":
+            import dask  # noqa: F401  (missing: the one line below, before any work starts)
+            import distributed  # noqa: F401
         return handler(args)
     except KeyboardInterrupt:
         print(f"drawledger {args.command}: interrupted", file=sys.stderr)
         return 130
+    except ImportError as exc:
+        extra = _missing_extra(exc, args.command)
+        if extra is None or args.debug:
+            raise
+        print(f"drawledger: {args.command} needs {_EXTRA_NAMES[extra]} ({exc.name} is missing): "
+              f"pip install 'drawledger[{extra}]'", file=sys.stderr)  # fmt: skip
+        return EXIT_USAGE
     except (DrawledgerError, OSError, ValueError) as exc:
         if args.debug:
             raise

@@ -12,6 +12,7 @@ import numpy.typing as npt
 import pandas as pd
 from scipy import sparse
 
+from drawledger.replay._keys import id_keys
 from drawledger.replay.audit import _stats
 from drawledger.replay.audit._declared import Parsed, load_texts
 from drawledger.replay.audit._limits import (
@@ -207,8 +208,8 @@ class GroupState:
 
 
 def _hash_ids(ids: npt.NDArray[Any], idx: IntArray) -> U64Array:
-    h = pd.util.hash_array(np.asarray(ids, dtype=object), hash_key=HASH_KEY, categorize=False)
-    return _stats.mix64(h ^ (idx.astype(np.uint64) * STEP))
+    """Keys of (decision id or unit, draw index): the id's blake2b key mixed with the index."""
+    return _stats.mix64(id_keys(ids, HASH_KEY) ^ (idx.astype(np.uint64) * STEP))
 
 
 def group_state(kind: str, frame: pd.DataFrame, size: int) -> tuple[GroupState, FloatArray]:

@@ -253,13 +253,18 @@ def _mix(x: NDArray[np.uint64]) -> NDArray[np.uint64]:
     return x ^ (x >> np.uint64(31))
 
 
+# The blake2b key of decision ids (replay/_keys.py): their bootstrap counts and folds.
+ID_KEY = b"drawledger.estimate"
+
+
 def poisson_counts(keys: ArrayLike, start: int, stop: int, seed: int = 0) -> Array:
     """Poisson(1) resampling counts of replicates ``start..stop-1``, shape (stop - start, n).
 
-    The count of a record in a replicate is a function of its 64-bit ``keys`` entry (a hash
-    of the decision id), the replicate number and ``seed`` alone: any chunking or
-    partitioning of the records gives the same resamples, so per-chunk sums combine exactly.
-    A uniform from the mixed bits goes through the inverse Poisson(1) distribution function.
+    The count of a record in a replicate is a function of its 64-bit ``keys`` entry (the
+    blake2b key of the decision id, replay/_keys.py), the replicate number and ``seed`` alone:
+    any chunking or partitioning of the records gives the same resamples, so per-chunk sums
+    combine exactly. A uniform from the mixed bits goes through the inverse Poisson(1)
+    distribution function.
     """
     k = np.asarray(keys, dtype=np.uint64)
     with np.errstate(over="ignore"):

@@ -13,6 +13,8 @@ import pandas as pd
 from drawledger._records import from_json
 from drawledger._schema import DEC
 from drawledger.exceptions import ReplayError
+from drawledger.replay._keys import id_keys
+from drawledger.replay.estimate._estimators import ID_KEY
 from drawledger.replay.estimate._policies import Policy, Records, Target, evaluate
 from drawledger.replay.estimate._rewards import Rewards
 from drawledger.replay.propensity import MONTE_CARLO
@@ -291,7 +293,7 @@ def evaluate_piece(rows: Sequence[tuple[Any, ...]], draws: Iterable[tuple[Any, .
         if len(values) > MAX_SEGMENTS:
             raise too_many_segments(job.by)
         label, facts.labels = codes_l.astype(np.int32), [str(v) for v in values]
-    keys = pd.util.hash_pandas_object(pd.Series(ids), index=False).to_numpy()
+    keys = id_keys(ids, ID_KEY)
     return PieceData(
         facts, recs.mu, r, np.array([codes[a] for a in recs.actions], dtype=np.int32), keys,
         [None if t.logging else res.p for t, res in zip(targets, results, strict=True)],
