@@ -82,6 +82,10 @@ def first_line(exc: BaseException) -> str:
     return f"{type(exc).__name__}: {text[0]}" if text and text[0] else type(exc).__name__
 
 
+def same(value: R) -> R:
+    return value
+
+
 def describe(item: Any, index: int) -> str:
     """How an error names a task's item: a Parquet piece by its label."""
     if isinstance(item, Task):
@@ -129,7 +133,7 @@ class DaskEngine:
     """Tasks on the cluster of ``client``: results come back in item order, at most
     ``WINDOW`` tasks per worker in flight; a failure cancels the other tasks (no partial
     results) and reaches the caller as ``ReplayError`` (or the library error a task raised),
-    prefixed with ``command``. Each map's arguments are sent once to every worker."""
+    prefixed with ``command``. Each map's arguments are sent once, to tasks by reference."""
 
     WINDOW = 4  # tasks in flight per worker
 
@@ -151,8 +155,8 @@ class DaskEngine:
                 out.append(a.future)
             elif isinstance(a, Future):
                 out.append(a)
-            else:  # in a list: a collection is sent as one object, not item by item
-                out.append(self.client.scatter([a], broadcast=True, hash=False)[0])
+            else:  # made by a task, not scattered: a worker that dies with it makes it again
+                out.append(self.client.submit(same, a, pure=False, priority=10))
         return out
 
     def _ordered(
