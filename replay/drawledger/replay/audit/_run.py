@@ -3,17 +3,17 @@
 from __future__ import annotations
 
 import os
-from collections.abc import Callable
 from typing import TYPE_CHECKING
 
 import pandas as pd
 
+from drawledger import _parquet
 from drawledger.exceptions import LedgerError, ReplayError
 from drawledger.replay.audit._collect import AuditState, check_alpha, chunk_state
-from drawledger.replay.audit._dask import audit_on_dask
 from drawledger.replay.audit._limits import ALPHA, SAMPLE_SIZE
 from drawledger.replay.audit._report import AuditReport
-from drawledger.replay.sources import iter_decision_chunks
+from drawledger.replay.engines import Engine, open_engine
+from drawledger.replay.sources import Task, parquet_root, plan, read_piece_frames
 
 if TYPE_CHECKING:
     from drawledger.ledger import Ledger
@@ -77,53 +77,51 @@ def audit(
         target, format = ledger.target, format or ledger.format
     else:
         target = ledger
-    if engine == "dask":  # the same chunks, on a Dask cluster (replay/_dask.py)
-        return audit_on_dask(target, format=format, scheduler=scheduler, alpha=alpha,
-                             sample_size=sample_size, chunk_size=chunk_size,
-                             progress=progress)  # fmt: skip
-    state = AuditState(sample_size)
-    chunks = iter_decision_chunks(target, chunk_size, format=format)
-    with _Progress(progress) as advance:
-        try:
-            for decisions, draws in chunks:
-                state.merge(chunk_state(decisions, draws, sample_size=sample_size))
-                advance(len(decisions))
-        except Exception as exc:
-            if isinstance(exc, (LedgerError, ReplayError)) or not _is_read_error(exc):
-                raise
-            first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-            raise LedgerError(f"cannot read ledger {os.fspath(target)!r}: {first}") from exc
+    if engine == "dask":  # the workers may run elsewhere: a Parquet ledger by its full path
+        target, format = parquet_root(target, format, "audit"), "parquet"
+    try:
+        with open_engine(engine, scheduler=scheduler, progress=progress,
+                         command="audit") as runner:  # fmt: skip
+            state = audit_on(runner, target, format=format, sample_size=sample_size,
+                             chunk_size=chunk_size)  # fmt: skip
+    except Exception as exc:
+        if isinstance(exc, (LedgerError, ReplayError)) or not _is_read_error(exc):
+            raise
+        first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise LedgerError(f"cannot read ledger {os.fspath(target)!r}: {first}") from exc
     return state.finish(alpha)
+
+
+def _frames(rows: list[tuple[object, ...]], table: str) -> pd.DataFrame:
+    """Rows as the DataFrame a Parquet part gives (the same column types)."""
+    return _parquet.to_frame([_parquet.rows_to_table(rows, table)] if rows else [], table)
+
+
+def _audit_task(task: Task, sample_size: int) -> AuditState:
+    """The sufficient statistics of one chunk."""
+    if task.piece is not None:
+        decisions, draws = read_piece_frames(task.piece)
+    else:
+        rows, draw_rows = task.read()
+        draw_rows.sort(key=lambda d: (d[0], d[1]))  # by decision, then draw index
+        decisions, draws = _frames(rows, "decisions"), _frames(draw_rows, "draws")
+    return chunk_state(decisions, draws, sample_size=sample_size)
+
+
+def audit_on(
+    engine: Engine, ledger: str | os.PathLike[str], *, format: str | None, sample_size: int,
+    chunk_size: int,
+) -> AuditState:  # fmt: skip
+    """The chunks' statistics computed on ``engine`` and merged in chunk order (so the tests
+    and their statistics are the same on every engine)."""
+    state = AuditState(sample_size)
+    tasks = plan(ledger, format=format, size=chunk_size)
+    for part in engine.map(_audit_task, tasks, sample_size, label="auditing"):
+        state.merge(part)
+    return state
 
 
 def _is_read_error(exc: Exception) -> bool:
     import sqlalchemy as sa
 
     return isinstance(exc, (sa.exc.SQLAlchemyError, OSError))
-
-
-class _Progress:
-    """A rich progress line on stderr counting the decisions audited (or nothing)."""
-
-    def __init__(self, enabled: bool) -> None:
-        self.enabled = enabled
-
-    def __enter__(self) -> Callable[[int], None]:
-        if not self.enabled:
-            return lambda n: None
-        from rich.console import Console
-        from rich.progress import Progress, SpinnerColumn, TextColumn
-
-        self.bar = Progress(
-            SpinnerColumn(),
-            TextColumn("auditing: {task.completed} decisions"),
-            console=Console(stderr=True),
-            transient=True,
-        )
-        self.bar.start()
-        task = self.bar.add_task("audit", total=None)
-        return lambda n: self.bar.advance(task, n)
-
-    def __exit__(self, *exc: object) -> None:
-        if self.enabled:
-            self.bar.stop()

@@ -1,26 +1,16 @@
-"""Engines map a function over pieces and give the results in order: local processes or Dask."""
+"""Engines map a function over tasks and give the results in order: local processes or Dask."""
 
-from drawledger.replay.engines._dask import (
-    NO_PROFILER,
-    advance_bar,
-    cluster,
-    gather_pieces,
-    one_result,
-    run_pieces,
-    submit_first,
-)
-from drawledger.replay.engines._local import executor, fork_context, pool_result, progress_bar
+from drawledger.replay.engines._dask import NO_PROFILER, DaskEngine, cluster
+from drawledger.replay.engines._engine import ENGINES, Engine, Handle, open_engine
+from drawledger.replay.engines._local import LocalEngine
 
 __all__ = [
+    "ENGINES",
     "NO_PROFILER",
-    "advance_bar",
+    "DaskEngine",
+    "Engine",
+    "Handle",
+    "LocalEngine",
     "cluster",
-    "executor",
-    "fork_context",
-    "gather_pieces",
-    "one_result",
-    "pool_result",
-    "progress_bar",
-    "run_pieces",
-    "submit_first",
+    "open_engine",
 ]

@@ -1,4 +1,4 @@
-"""The Dask engine: a cluster, and a function mapped over pieces with results in piece order."""
+"""The Dask engine: a cluster, and tasks on it through the futures API."""
 
 from __future__ import annotations
 
@@ -7,16 +7,18 @@ import logging
 import os
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import CancelledError
-from typing import TYPE_CHECKING, Any, TypeVar
+from typing import TYPE_CHECKING, Any, Generic, TypeVar
 
 from drawledger.exceptions import DrawledgerError, ReplayError
-from drawledger.replay.sources import Piece
+from drawledger.replay.engines._progress import progress_bar
+from drawledger.replay.sources import Task
 
 if TYPE_CHECKING:
     from distributed import Client, Future
 
 
-T = TypeVar("T")
+R = TypeVar("R")
+S = TypeVar("S")
 
 
 CONNECT_TIMEOUT = 30.0  # seconds to reach a scheduler given by address
@@ -80,70 +82,20 @@ def first_line(exc: BaseException) -> str:
     return f"{type(exc).__name__}: {text[0]}" if text and text[0] else type(exc).__name__
 
 
-def run_pieces(
-    client: Client,
-    fn: Callable[..., tuple[int, Any]],
-    plan: Sequence[Piece],
-    *args: Any,
-    command: str,
-    advance: Callable[[int], None] | None = None,
-) -> Iterator[Any]:
-    """``fn(piece, *args)`` for every piece on the cluster; yields the results in piece order.
-
-    ``fn`` returns ``(decisions read, result)``; see ``gather_pieces``.
-    """
-    futures = [client.submit(fn, piece, *args, pure=False) for piece in plan]
-    yield from gather_pieces(client, futures, plan, command=command, advance=advance)
+def same(value: R) -> R:
+    return value
 
 
-def gather_pieces(
-    client: Client,
-    futures: Sequence[Future],
-    plan: Sequence[Piece],
-    *,
-    command: str,
-    advance: Callable[[int], None] | None = None,
-) -> Iterator[Any]:
-    """The results of one task per piece, in piece order; each task returns ``(decisions read,
-    result)``.
-
-    Every piece must come back, each with the number of decisions its part files hold; anything
-    else raises ``ReplayError`` (or the library error a task raised) after cancelling the other
-    tasks: no partial results. Results that arrive early wait in a buffer until the pieces
-    before them are yielded.
-    """
-    from distributed import as_completed
-
-    index = {f.key: i for i, f in enumerate(futures)}
-    waiting: dict[int, Any] = {}
-    ready = 0
-    try:
-        for future in as_completed(futures):
-            i = index.pop(future.key)
-            piece = plan[i]
-            n, result = piece_result(future, piece, command)
-            future.release()
-            if n != piece.rows:
-                raise ReplayError(
-                    f"{command}: {piece.label()} came back with {n} decisions, not "
-                    f"{piece.rows}; the ledger changed during the run or a part file is "
-                    "damaged; nothing is reported"
-                )
-            if advance is not None:
-                advance(n)
-            waiting[i] = result
-            while ready in waiting:
-                yield waiting.pop(ready)
-                ready += 1
-    except BaseException:
-        client.cancel(list(futures))
-        raise
-    if ready != len(plan):  # as_completed yields every future; this guards against a loss
-        missing = ", ".join(plan[i].label() for i in sorted(index.values())[:3])
-        raise ReplayError(f"{command}: no result for {missing}; nothing is reported")
+def describe(item: Any, index: int) -> str:
+    """How an error names a task's item: a Parquet piece by its label."""
+    if isinstance(item, Task):
+        if item.piece is not None:
+            return str(item.piece.label())
+        return f"chunk {index} ({item.rows} decisions)"
+    return f"task {index}"
 
 
-def piece_result(future: Future, piece: Piece, command: str) -> Any:
+def task_result(future: Future, command: str, what: str) -> Any:
     """A task's result; cluster failures become ``ReplayError``, library errors pass through."""
     from distributed import KilledWorker
 
@@ -153,50 +105,121 @@ def piece_result(future: Future, piece: Piece, command: str) -> Any:
         raise
     except KilledWorker as exc:
         raise ReplayError(
-            f"{command}: a Dask worker died while processing {piece.label()}, every time it "
-            f"was tried ({first_line(exc)}); nothing is reported. A decision function that "
-            "exhausts a worker's memory or exits the process causes this."
+            f"{command}: a Dask worker died while processing {what}, every time it was tried "
+            f"({first_line(exc)}); nothing is reported. A decision function that exhausts a "
+            "worker's memory or exits the process causes this."
         ) from None
     except (CancelledError, OSError, TimeoutError) as exc:
         raise ReplayError(
-            f"{command}: the Dask cluster lost {piece.label()} ({first_line(exc)}); "
-            "nothing is reported"
+            f"{command}: the Dask cluster lost {what} ({first_line(exc)}); nothing is reported"
         ) from None
     except Exception as exc:
-        raise ReplayError(
-            f"{command}: {piece.label()} failed on a Dask worker: {first_line(exc)}"
-        ) from None
+        raise ReplayError(f"{command}: {what} failed on a Dask worker: {first_line(exc)}") from None
 
 
-def submit_first(client: Client, fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Future:
-    """One task before the pieces (a higher priority: the pieces' results wait for it)."""
-    return client.submit(fn, *args, pure=False, priority=10, **kwargs)
+class Remote(Generic[R]):
+    """A side task on the cluster; its result stays there until asked for (or passed to
+    other tasks by reference)."""
+
+    def __init__(self, future: Future, command: str, what: str) -> None:
+        self.future, self.command, self.what = future, command, what
+
+    def result(self) -> R:
+        found: R = task_result(self.future, self.command, self.what)
+        return found
 
 
-def one_result(future: Future, command: str, what: str) -> Any:
-    from distributed import KilledWorker
+class DaskEngine:
+    """Tasks on the cluster of ``client``: results come back in item order, at most
+    ``WINDOW`` tasks per worker in flight; a failure cancels the other tasks (no partial
+    results) and reaches the caller as ``ReplayError`` (or the library error a task raised),
+    prefixed with ``command``. Each map's arguments are sent once, to tasks by reference."""
 
-    try:
-        return future.result()
-    except DrawledgerError:
-        raise
-    except KilledWorker as exc:
-        raise ReplayError(f"{command}: a Dask worker died during {what} every time it was "
-                          f"tried ({first_line(exc)}); nothing is reported") from None  # fmt: skip
-    except Exception as exc:
-        raise ReplayError(f"{command}: {what} failed on the Dask cluster: "
-                          f"{first_line(exc)}") from None  # fmt: skip
+    WINDOW = 4  # tasks in flight per worker
 
+    def __init__(self, client: Client, *, progress: bool = False, command: str) -> None:
+        self.client = client
+        self.progress = progress
+        self.command = command
 
-def advance_bar(enabled: bool, total: int, label: str) -> tuple[Callable[[int], None] | None, Any]:
-    import sys
+    @property
+    def workers(self) -> int:
+        return max(1, len(self.client.scheduler_info().get("workers", {})))
 
-    if not enabled or not sys.stderr.isatty():
-        return None, None
-    from rich.console import Console
-    from rich.progress import Progress
+    def _shared(self, args: tuple[Any, ...]) -> list[Any]:
+        from distributed import Future
 
-    bar = Progress(console=Console(stderr=True), transient=True)
-    task = bar.add_task(label, total=total)
-    bar.start()
-    return (lambda n: bar.advance(task, n)), bar
+        out = []
+        for a in args:
+            if isinstance(a, Remote):
+                out.append(a.future)
+            elif isinstance(a, Future):
+                out.append(a)
+            else:  # made by a task, not scattered: a worker that dies with it makes it again
+                out.append(self.client.submit(same, a, pure=False, priority=10))
+        return out
+
+    def _ordered(
+        self, submit: Callable[[int], Future], items: Sequence[Any], label: str | None
+    ) -> Iterator[Any]:
+        from distributed import as_completed
+
+        window = self.WINDOW * self.workers
+        running = as_completed()
+        index: dict[object, int] = {}
+        futures: list[Future] = []
+        waiting: dict[int, Any] = {}
+        ready = 0
+
+        def fill() -> None:
+            while len(futures) < len(items) and len(futures) - ready < window:
+                future = submit(len(futures))
+                index[future.key] = len(futures)
+                futures.append(future)
+                running.add(future)
+
+        with progress_bar(self.progress, items, label) as advance:
+            try:
+                fill()
+                for future in running:
+                    i = index.pop(future.key)
+                    waiting[i] = task_result(future, self.command, describe(items[i], i))
+                    future.release()
+                    advance(i)
+                    while ready in waiting:
+                        yield waiting.pop(ready)
+                        ready += 1
+                    fill()
+            except BaseException:
+                self.client.cancel([f for f in futures if f.key in index])
+                raise
+        if ready != len(items):  # as_completed yields every future; this guards against a loss
+            missing = ", ".join(describe(items[i], i) for i in sorted(index.values())[:3])
+            raise ReplayError(f"{self.command}: no result for {missing}; nothing is reported")
+
+    def map(
+        self, fn: Callable[..., R], items: Sequence[Any], *args: Any, label: str | None = None
+    ) -> Iterator[R]:
+        shared = self._shared(args)
+        return self._ordered(
+            lambda i: self.client.submit(fn, items[i], *shared, pure=False), items, label
+        )
+
+    def keep(
+        self, fn: Callable[..., Any], items: Sequence[Any], *args: Any,
+        summary: Callable[[Any], S], label: str | None = None,
+    ) -> tuple[list[Future], list[S]]:  # fmt: skip
+        """``fn(item, *args)`` kept on the workers as futures: a task given one runs where
+        its data is (a lost one is made again); ``summary`` of each comes back."""
+        shared = self._shared(args)
+        kept = [self.client.submit(fn, item, *shared, pure=False) for item in items]
+        summaries = list(self._ordered(
+            lambda i: self.client.submit(summary, kept[i], pure=False), items, label
+        ))  # fmt: skip
+        return kept, summaries
+
+    def submit(self, fn: Callable[..., R], *args: Any, label: str) -> Remote[R]:
+        """A side task before the maps' tasks (a higher priority: results wait for it)."""
+        plain = [a.future if isinstance(a, Remote) else a for a in args]
+        future = self.client.submit(fn, *plain, pure=False, priority=10)
+        return Remote(future, self.command, label)

@@ -6,15 +6,14 @@ import math
 import os
 from collections import Counter
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from drawledger.exceptions import ReplayError
+from drawledger.replay.engines import open_engine
 from drawledger.replay.estimate import _estimators as est
-from drawledger.replay.estimate._dask import estimate_pass
-from drawledger.replay.estimate._local import local_runner
 from drawledger.replay.estimate._piece import Job
 from drawledger.replay.estimate._policies import Policy, Target
 from drawledger.replay.estimate._report import (
@@ -28,9 +27,9 @@ from drawledger.replay.estimate._report import (
     EstimateReport,
     SweepReport,
 )
-from drawledger.replay.estimate._rewards import choose_stream, read_rewards, sql_streams
-from drawledger.replay.estimate._stages import Group, Pass, run_pass
-from drawledger.replay.integrity import check_integrity
+from drawledger.replay.estimate._rewards import choose_stream, sql_streams
+from drawledger.replay.estimate._runner import estimate_on
+from drawledger.replay.estimate._stages import Group, Pass
 from drawledger.replay.propensity import DEFAULT_BUDGET, DEFAULT_MC_SAMPLES, MONTE_CARLO
 from drawledger.replay.sources import (
     CHUNK_SIZE,
@@ -41,7 +40,7 @@ from drawledger.replay.sources import (
     plan,
     stream_partitions,
 )
-from drawledger.replay.verify import Settings
+from drawledger.replay.verify import Settings, absolute_paths
 
 if TYPE_CHECKING:
     pass
@@ -128,18 +127,14 @@ def _pass(
         tasks = plan(text, format=q.format)
     job = Job(tuple(policies), q.reward, stream, settings, q.seed, q.missing_reward,
               q.reward_range, by)  # fmt: skip
-    if q.engine == "dask":  # the stages as tasks on a cluster
-        parts = [t.piece for t in tasks if t.piece is not None]
-        return estimate_pass(root, parts, job, integrity_key=q.integrity_key,
-                             scheduler=q.scheduler, progress=q.progress, cap=cap,
-                             bootstrap=bootstrap, weights=weights), stream  # fmt: skip
-    rewards = read_rewards(text, q.format, q.reward)
-    if not rewards.count:
-        raise ReplayError(f"no outcome named {q.reward!r} in the ledger")
-    integrity = check_integrity(text, format=q.format, integrity_key=q.integrity_key)
-    flagged = frozenset(integrity.decision_ids)
-    with local_runner(tasks, flagged, rewards, q.jobs, q.progress) as runner:
-        return run_pass(runner, job, cap=cap, bootstrap=bootstrap, weights=weights), stream
+    target, format = text, q.format
+    if q.engine == "dask":  # the workers may run elsewhere: absolute paths
+        target, format = os.fspath(root), "parquet"
+        job = replace(job, settings=absolute_paths(settings))
+    with open_engine(q.engine, jobs=q.jobs, scheduler=q.scheduler, progress=q.progress,
+                     command="estimate") as engine:  # fmt: skip
+        return estimate_on(engine, target, format, tasks, job, integrity_key=q.integrity_key,
+                           cap=cap, bootstrap=bootstrap, weights=weights), stream  # fmt: skip
 
 
 @dataclass

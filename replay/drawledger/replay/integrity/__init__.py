@@ -2,10 +2,12 @@
 
 from drawledger.replay.integrity._check import check_integrity
 from drawledger.replay.integrity._dask import IntegrityTasks
+from drawledger.replay.integrity._engine import check_on
 from drawledger.replay.integrity._report import IntegrityReport
 
 __all__ = [
     "IntegrityReport",
     "IntegrityTasks",
     "check_integrity",
+    "check_on",
 ]

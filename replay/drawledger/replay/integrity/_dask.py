@@ -5,15 +5,11 @@ from __future__ import annotations
 import os
 from collections.abc import Sequence
 from pathlib import Path
-from typing import TYPE_CHECKING
 
 from drawledger import _parquet
-from drawledger.replay.engines import one_result, submit_first
+from drawledger.replay.engines import DaskEngine, Handle
 from drawledger.replay.integrity._parquet import parquet_chain, parquet_cross_checks
 from drawledger.replay.integrity._report import MAX_EXAMPLES, PROBLEMS, IntegrityReport, walk
-
-if TYPE_CHECKING:
-    from distributed import Client, Future
 
 
 def _integrity_ids(root: str, key: bytes) -> tuple[IntegrityReport, set[str]]:
@@ -64,6 +60,9 @@ def combine_reports(
     return total.finish()
 
 
+LABEL = "the integrity check"
+
+
 class IntegrityTasks:
     """The integrity check of a Parquet ledger as tasks: one ledger-wide, one per writer group.
 
@@ -74,32 +73,30 @@ class IntegrityTasks:
     duplicates, the chains are walked again with them.
     """
 
-    def __init__(self, client: Client, root: Path, integrity_key: bytes | str | None) -> None:
+    def __init__(self, engine: DaskEngine, root: Path, integrity_key: bytes | str | None) -> None:
         key = integrity_key.encode() if isinstance(integrity_key, str) else (integrity_key or b"")
         sizes: dict[str, int] = {}
         for table in ("decisions", "outcomes"):
             for p in _parquet.parts(root, table):
                 sizes[p.tag] = sizes.get(p.tag, 0) + p.last - p.first + 1
-        workers = max(1, len(client.scheduler_info().get("workers", {})))
-        groups: list[list[str]] = [[] for _ in range(min(len(sizes), 2 * workers))]
+        groups: list[list[str]] = [[] for _ in range(min(len(sizes), 2 * engine.workers))]
         loads = [0] * len(groups)
         for tag in sorted(sizes, key=lambda t: (-sizes[t], t)):  # largest to the lightest
             k = loads.index(min(loads))
             groups[k].append(tag)
             loads[k] += sizes[tag]
-        self.client, self.root, self.key = client, os.fspath(root), key
+        self.engine, self.root, self.key = engine, os.fspath(root), key
         self.groups = [sorted(g) for g in groups]
-        self.found = submit_first(client, _integrity_ids, self.root, key)
+        self.found = engine.submit(_integrity_ids, self.root, key, label=LABEL)
         self.chains = self._walks(frozenset())
 
-    def _walks(self, dup_ids: frozenset[str]) -> list[Future]:
-        return [submit_first(self.client, _integrity_chains, self.root, self.key, g, dup_ids)
-                for g in self.groups]  # fmt: skip
+    def _walks(self, dup_ids: frozenset[str]) -> list[Handle[IntegrityReport]]:
+        return [self.engine.submit(_integrity_chains, self.root, self.key, g, dup_ids,
+                                   label=LABEL) for g in self.groups]  # fmt: skip
 
-    def report(self, command: str) -> IntegrityReport:
+    def result(self) -> IntegrityReport:
         """The combined report (waits for the tasks)."""
-        found = one_result(self.found, command, "the integrity check")
+        found = self.found.result()
         if found[1]:
             self.chains = self._walks(frozenset(found[1]))
-        chains = [one_result(f, command, "the integrity check") for f in self.chains]
-        return combine_reports(found, *chains)
+        return combine_reports(found, *(f.result() for f in self.chains))

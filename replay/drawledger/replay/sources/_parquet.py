@@ -131,6 +131,14 @@ def read_piece(piece: Piece) -> tuple[list[Row], list[Row]]:
     return rows, draws
 
 
+def piece_ids(piece: Piece) -> set[str]:
+    """The decision ids of a piece, read alone (one column of each part file)."""
+    ids: set[str] = set()
+    for path in piece.parts:
+        ids.update(pq.read_table(path, columns=["decision_id"]).column(0).to_pylist())
+    return ids
+
+
 def read_piece_frames(piece: Piece) -> tuple[Any, Any]:
     """Decisions and draws of a piece as DataFrames, as ``iter_decision_chunks`` gives them."""
     decisions = [_parquet.read_part(Path(p), "decisions") for p in piece.parts]

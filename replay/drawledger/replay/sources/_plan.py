@@ -10,12 +10,14 @@ from typing import Any
 import pandas as pd
 import sqlalchemy as sa
 
+from drawledger._sinks import sqlalchemy_url
 from drawledger.exceptions import (
     LedgerError,
 )
 from drawledger.replay.sources._parquet import (
     Piece,
     partitions,
+    piece_ids,
     pieces,
     read_piece,
     read_piece_frames,
@@ -43,34 +45,71 @@ class Task:
 
     def read(self, engine: sa.Engine | None = None) -> tuple[list[Row], list[Row]]:
         """Its rows; SQL through ``engine``, else through this process's own engine."""
-        if self.piece is not None:
-            return read_piece(self.piece)
-        engine = engine or _engine(self.target)
         rows: list[Row] = []
         draws: list[Row] = []
+        if self.piece is not None:
+            rows, draws = read_piece(self.piece)
+            self._check_count(len(rows))
+            return rows, draws
+        engine = engine or _engine(self.target)
         for sl in self.slices:
             r, d = read_sql_slice(engine, sl)
             rows.extend(r)
             draws.extend(d)
         return rows, draws
 
+    def _check_count(self, n: int) -> None:
+        """Part files are never rewritten: a piece that reads otherwise than its footers said
+        is damaged or was replaced during the run, and nothing computed from it is trusted."""
+        if self.piece is not None and n != self.rows:
+            raise LedgerError(
+                f"{self.piece.label()} read {n} decisions, its part files' footers say "
+                f"{self.rows}; the ledger changed during the run or a part file is damaged"
+            )
+
+    def decision_ids(self) -> set[str] | None:
+        """The decision ids of a Parquet piece without reading its rows (None for SQL)."""
+        return None if self.piece is None else piece_ids(self.piece)
+
     def read_frames(self, engine: sa.Engine | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
         """Its decisions and draws as DataFrames (Parquet pieces without a detour via rows)."""
         if self.piece is not None:
-            return read_piece_frames(self.piece)
+            decisions, draws = read_piece_frames(self.piece)
+            self._check_count(len(decisions))
+            return decisions, draws
         rows, draws = self.read(engine)
         return rows_frame(rows, "decisions"), rows_frame(draws, "draws")
 
 
-_ENGINES: dict[tuple[int, str], sa.Engine] = {}
+_ENGINES: dict[tuple[int, str], tuple[sa.Engine, object]] = {}
 
 
 def _engine(target: str) -> sa.Engine:
-    """One engine per process and ledger (a forked process opens its own connections)."""
+    """One engine per process and ledger (a forked process opens its own connections).
+
+    An SQLite file replaced at the same path (a new demo, a restored backup) gets a new engine:
+    a connection to the old file would go on reading the old data.
+    """
     key = (os.getpid(), target)
-    if key not in _ENGINES:
-        _ENGINES[key] = open_engine(target)
-    return _ENGINES[key]
+    identity = _file_identity(target)
+    cached = _ENGINES.get(key)
+    if cached is None or cached[1] != identity:
+        if cached is not None:
+            cached[0].dispose()
+        _ENGINES[key] = (open_engine(target), identity)
+    return _ENGINES[key][0]
+
+
+def _file_identity(target: str) -> object:
+    """(device, inode) of an SQLite ledger file; None for a server's URL."""
+    url = sa.make_url(sqlalchemy_url(target))
+    if url.get_backend_name() != "sqlite" or not url.database:
+        return None
+    try:
+        stat = os.stat(url.database)
+    except OSError:
+        return None
+    return stat.st_dev, stat.st_ino
 
 
 def plan(target: str | os.PathLike[str], *, format: str | None = None,

@@ -13,86 +13,61 @@ cluster. Reasons a decision is not verified (docs/replay.md):
 from __future__ import annotations
 
 import os
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterable
 from collections.abc import Set as AbstractSet
-from concurrent.futures import Executor, Future
-from typing import Any
 
 import pandas as pd
 
+from drawledger._schema import DEC
 from drawledger.exceptions import (
     ReplayError,
 )
-from drawledger.replay.engines import executor, pool_result, progress_bar
-from drawledger.replay.integrity import IntegrityReport, check_integrity
+from drawledger.replay.engines import Engine, open_engine
+from drawledger.replay.integrity import IntegrityReport, check_on
 from drawledger.replay.propensity import DEFAULT_BUDGET, DEFAULT_MC_SAMPLES
-from drawledger.replay.sources import CHUNK_SIZE, PARALLEL_CHUNK_SIZE, Task, iter_chunks, plan
+from drawledger.replay.sources import CHUNK_SIZE, PARALLEL_CHUNK_SIZE, Task, parquet_root, plan
 from drawledger.replay.verify import _export
 from drawledger.replay.verify._chunk import verify_chunk
-from drawledger.replay.verify._dask import verify_on_dask
 from drawledger.replay.verify._report import VerifyReport, build_report, rows_with_outcomes
-from drawledger.replay.verify._types import ChunkResult, Settings
+from drawledger.replay.verify._types import ChunkResult, Settings, absolute_paths
 
 
-def _verify_task(
-    task: Task, flagged: AbstractSet[str], settings: Settings, only_flagged: bool
-) -> ChunkResult | None:
-    """Read one chunk and check it (None: ``only_flagged`` and no flagged decision in it)."""
+def _verify_task(task: Task, flagged: AbstractSet[str], settings: Settings) -> ChunkResult | None:
+    """Read one chunk and check it, with the decisions the integrity check ``flagged``; None
+    when flags are given but the chunk holds none of them (a Parquet piece's ids are read
+    alone first)."""
+    ids = task.decision_ids() if flagged else None
+    if ids is not None and not flagged & ids:
+        return None
     rows, draws = task.read()
-    mine = flagged & {r[0] for r in rows} if flagged else frozenset()
-    if only_flagged and not mine:
+    mine = flagged & {r[DEC.decision_id] for r in rows} if flagged else frozenset()
+    if flagged and not mine:
         return None
     return verify_chunk(rows, draws, mine, settings)
 
 
-def _mapped(
-    pool: Executor, tasks: list[Task], args: tuple[Any, ...], window: int
-) -> Iterator[tuple[int, ChunkResult | None]]:
-    """(decisions, result) of every task, in order, at most ``window`` tasks in flight."""
-    pending: list[tuple[int, Future[ChunkResult | None]]] = []
-    for task in tasks:
-        pending.append((task.rows, pool.submit(_verify_task, task, *args)))
-        if len(pending) >= window:
-            n, fut = pending.pop(0)
-            yield n, pool_result(fut)
-    for n, fut in pending:
-        yield n, pool_result(fut)
-
-
-def _in_processes(
-    ledger: str | os.PathLike[str],
-    format: str | None,
-    integrity_key: bytes | str | None,
-    settings: Settings,
-    pool: Executor,
-    jobs: int,
-    size: int,
-    progress: bool,
-) -> tuple[list[ChunkResult], IntegrityReport]:
-    """Chunks read and replayed in ``pool`` while one of its processes checks the integrity.
+def verify_on(
+    engine: Engine, ledger: str | os.PathLike[str], *, format: str | None,
+    integrity_key: bytes | str | None, settings: Settings, size: int,
+) -> tuple[ChunkResult, IntegrityReport]:  # fmt: skip
+    """Every chunk replayed on ``engine`` while the integrity check runs beside them.
 
     Chunks are replayed without integrity flags; when the check flags decisions, the chunks
-    holding them are replayed again with the flags (so the result equals one process's).
+    holding them are replayed again with the flags, so the result is the same on every engine.
     """
-    checking = pool.submit(check_integrity, ledger, format=format, integrity_key=integrity_key)
     tasks = plan(ledger, format=format, size=size)
-    bar = progress_bar(progress, sum(t.rows for t in tasks))
-    parts: list[ChunkResult] = []
-    try:
-        for n, part in _mapped(pool, tasks, (frozenset(), settings, False), 2 * jobs):
-            assert part is not None
-            parts.append(part)
-            if bar is not None:
-                bar[0].advance(bar[1], n)
-    finally:
-        if bar is not None:
-            bar[0].stop()
-    integrity: IntegrityReport = pool_result(checking)
+    checking = check_on(engine, ledger, format=format, integrity_key=integrity_key)
+    parts = list(engine.map(_verify_task, tasks, frozenset(), settings, label="replaying"))
+    integrity = checking.result()
     if integrity.decision_ids:
         flags = frozenset(integrity.decision_ids)
-        again = _mapped(pool, tasks, (flags, settings, True), 2 * jobs)
-        parts = [p if a is None else a for p, (_, a) in zip(parts, again, strict=True)]
-    return parts, integrity
+        again = engine.map(_verify_task, tasks, flags, settings)
+        parts = [p if a is None else a for p, a in zip(parts, again, strict=True)]
+    total = ChunkResult()
+    for part in parts:
+        assert part is not None  # no flags on the first pass: every chunk checked
+        total.add(part)
+    return total, integrity
 
 
 def verify(
@@ -141,37 +116,14 @@ def verify(
         mc_samples=mc_samples,
         keep_rows=keep_rows or export is not None,
     )
-    if engine == "dask":  # the same chunks, replayed on a Dask cluster (replay/_dask.py)
-        report = verify_on_dask(ledger, format=format, settings=settings,
-                                integrity_key=integrity_key, scheduler=scheduler,
-                                chunk_size=chunk_size, progress=progress)  # fmt: skip
-        if export is not None:
-            _export.write_export(report.rows, export)
-        return report
-    total = ChunkResult()
-    pool = executor(jobs)
-    try:
-        if pool is None:
-            integrity = check_integrity(ledger, format=format, integrity_key=integrity_key)
-            bar = progress_bar(progress, integrity.decisions)
-            try:
-                for chunk, draws in iter_chunks(ledger, format=format, size=chunk_size):
-                    mine = integrity.decision_ids & {r[0] for r in chunk}
-                    total.add(verify_chunk(chunk, draws, mine, settings))
-                    if bar is not None:
-                        bar[0].advance(bar[1], len(chunk))
-            finally:
-                if bar is not None:
-                    bar[0].stop()
-        else:
-            size = min(chunk_size, PARALLEL_CHUNK_SIZE)
-            parts, integrity = _in_processes(ledger, format, integrity_key, settings, pool, jobs,
-                                             size, progress)  # fmt: skip
-            for part in parts:
-                total.add(part)
-    finally:
-        if pool is not None:
-            pool.shutdown(cancel_futures=True)
+    size = chunk_size if jobs == 1 else min(chunk_size, PARALLEL_CHUNK_SIZE)
+    if engine == "dask":  # the workers may run elsewhere: absolute paths, a Parquet ledger
+        ledger, format, size = parquet_root(ledger, format, "verify"), "parquet", chunk_size
+        settings = absolute_paths(settings)
+    with open_engine(engine, jobs=jobs, scheduler=scheduler, progress=progress,
+                     command="verify") as runner:  # fmt: skip
+        total, integrity = verify_on(runner, ledger, format=format, integrity_key=integrity_key,
+                                     settings=settings, size=size)  # fmt: skip
     rows = rows_with_outcomes(total.rows, ledger, format) if settings.keep_rows else pd.DataFrame()
     report = build_report(total, integrity, rows)
     if export is not None:

@@ -1,0 +1,72 @@
+"""The estimate's stages on an engine: stage 1 kept where the engine keeps data, the later
+stages sent to it."""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable, Sequence
+from typing import Any, TypeVar
+
+from drawledger.exceptions import ReplayError
+from drawledger.replay.engines import Engine
+from drawledger.replay.estimate._piece import Facts, Job, PieceData, evaluate_piece
+from drawledger.replay.estimate._rewards import Rewards, read_rewards
+from drawledger.replay.estimate._stages import Pass, run_pass
+from drawledger.replay.integrity import check_on
+from drawledger.replay.sources import Task
+
+T = TypeVar("T")
+
+
+def _evaluate(task: Task, flagged: frozenset[str], job: Job, rewards: Rewards) -> PieceData:
+    """Stage 1 of one chunk: its records replayed and re-run under every policy."""
+    rows, draws = task.read()
+    return evaluate_piece(rows, draws, flagged, job, rewards)
+
+
+def _facts(data: PieceData) -> Facts:
+    return data.facts
+
+
+def _count(rewards: Rewards) -> int:
+    return rewards.count
+
+
+class EngineRunner:
+    """The stages over every chunk on ``engine``: each chunk's data stays where the engine
+    keeps it between the stages (a file, a Dask worker), so this process holds a chunk's
+    data at most, and the later stages of a chunk run where its data is."""
+
+    def __init__(self, engine: Engine, tasks: Sequence[Task], flagged: frozenset[str],
+                 rewards: Any) -> None:  # fmt: skip
+        self.engine = engine
+        self.tasks = tasks
+        self.flagged = flagged
+        self.rewards = rewards
+        self.kept: Sequence[Any] = ()
+
+    def first(self, job: Job) -> list[Facts]:
+        self.kept, facts = self.engine.keep(
+            _evaluate, self.tasks, self.flagged, job, self.rewards, summary=_facts,
+            label="replaying and evaluating",
+        )  # fmt: skip
+        return facts
+
+    def map(self, fn: Callable[[PieceData, Any], T], arg: Any) -> list[T]:
+        return list(self.engine.map(fn, self.kept, arg))
+
+
+def estimate_on(
+    engine: Engine, ledger: str, format: str | None, tasks: Sequence[Task], job: Job, *,
+    integrity_key: bytes | str | None, cap: float, bootstrap: int, weights: bool,
+) -> Pass:  # fmt: skip
+    """``run_pass`` on ``engine``: the rewards table read by one side task (kept on the engine)
+    and the integrity check beside it; the flagged decisions reach every chunk."""
+    checking = check_on(engine, ledger, format=format, integrity_key=integrity_key)
+    rewards = engine.submit(read_rewards, os.fspath(ledger), format, job.reward,
+                            label="reading outcomes")  # fmt: skip
+    if not engine.submit(_count, rewards, label="reading outcomes").result():
+        raise ReplayError(f"no outcome named {job.reward!r} in the ledger")
+    flagged = frozenset(checking.result().decision_ids)
+    runner = EngineRunner(engine, tasks, flagged, rewards)
+    return run_pass(runner, job, cap=cap, bootstrap=bootstrap, weights=weights)
