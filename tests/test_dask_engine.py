@@ -1,4 +1,4 @@
-"""The Dask engine (replay/_dask.py) gives the local engine's results on a partitioned ledger.
+"""The Dask engine gives the local engine's results on a partitioned ledger.
 
 One Dask cluster (a scheduler and two single-threaded worker processes on 127.0.0.1) serves the
 module; every engine call reaches it by its address, as ``--scheduler`` would. The scheduler

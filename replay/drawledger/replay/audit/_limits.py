@@ -97,7 +97,7 @@ TEST_LABELS = {
 }
 
 
-HASH_KEY = b"drawledger.audit"  # the blake2b key of decision ids and units (replay/_keys.py)
+HASH_KEY = b"drawledger.audit"  # blake2b key of decision ids and units (replay._keys)
 
 
 STEP = np.uint64(0x9E3779B97F4A7C15)

@@ -253,7 +253,7 @@ def _mix(x: NDArray[np.uint64]) -> NDArray[np.uint64]:
     return x ^ (x >> np.uint64(31))
 
 
-# The blake2b key of decision ids (replay/_keys.py): their bootstrap counts and folds.
+# The blake2b key of decision ids (drawledger.replay._keys): their bootstrap counts and folds.
 ID_KEY = b"drawledger.estimate"
 
 
@@ -261,7 +261,7 @@ def poisson_counts(keys: ArrayLike, start: int, stop: int, seed: int = 0) -> Arr
     """Poisson(1) resampling counts of replicates ``start..stop-1``, shape (stop - start, n).
 
     The count of a record in a replicate is a function of its 64-bit ``keys`` entry (the
-    blake2b key of the decision id, replay/_keys.py), the replicate number and ``seed`` alone:
+    blake2b key of the decision id, replay._keys), the replicate number and ``seed`` alone:
     any chunking or partitioning of the records gives the same resamples, so per-chunk sums
     combine exactly. A uniform from the mixed bits goes through the inverse Poisson(1)
     distribution function.
