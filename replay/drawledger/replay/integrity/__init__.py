@@ -3,9 +3,10 @@
 from drawledger.replay.integrity._check import check_integrity
 from drawledger.replay.integrity._dask import IntegrityTasks
 from drawledger.replay.integrity._engine import check_on
-from drawledger.replay.integrity._report import IntegrityReport
+from drawledger.replay.integrity._report import PROBLEMS, IntegrityReport
 
 __all__ = [
+    "PROBLEMS",
     "IntegrityReport",
     "IntegrityTasks",
     "check_integrity",

@@ -12,6 +12,7 @@ from typing import ClassVar
 
 from drawledger.replay.audit import TEST_LABELS, AuditReport
 from drawledger.replay.estimate import EstimateReport, SweepReport
+from drawledger.replay.integrity import PROBLEMS
 from drawledger.replay.report._figures import (
     Image,
     audit_figure,
@@ -38,14 +39,6 @@ __all__ = [
     "whatif_block",
 ]
 
-INTEGRITY_PROBLEMS = (
-    "gaps",
-    "broken_links",
-    "duplicates",
-    "bad_hashes",
-    "orphan_draws",
-    "orphan_outcomes",
-)
 STREAM_COUNTS = ("decisions", "verified", "mismatched", "unreplayable")
 
 
@@ -177,7 +170,7 @@ def verify_section(v: VerifyReport) -> VerifySection:
                 num(d.get(p, 0)),
                 ", ".join(d.get("examples", {}).get(p, [])),
             )
-            for p in INTEGRITY_PROBLEMS
+            for p in PROBLEMS
         ],
     )
     reasons = [Reason(r, num(n), v.examples.get(r, [])[:3]) for r, n in v.by_reason.items()]
