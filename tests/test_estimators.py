@@ -15,6 +15,7 @@ from strategies import chunk_cuts, weighted_rewards
 from drawledger.exceptions import ReplayError
 from drawledger.replay._keys import id_keys
 from drawledger.replay.estimate import _estimators as est
+from drawledger.replay.estimate._reward_model import RidgeStats, dr_terms
 
 HAND_W = [2.0, 0.0, 2.0, 0.5]
 HAND_R = [1.0, 1.0, 0.0, 1.0]
@@ -269,7 +270,7 @@ def test_ridge_reward_model_matches_scikit_learn_ridge():
     x = rng.normal(size=(300, 4))
     r = x @ [0.5, -1.0, 0.0, 2.0] + 0.3 + rng.normal(scale=0.1, size=300)
     zeros = np.zeros(300, dtype=int)
-    model = est.RidgeStats.of(x, zeros, r, zeros, folds=1, actions=1).fit(ridge=3.0)
+    model = RidgeStats.of(x, zeros, r, zeros, folds=1, actions=1).fit(ridge=3.0)
     phi = np.hstack([np.ones((300, 1)), x])
     ref = Ridge(alpha=3.0, fit_intercept=False).fit(phi, r - r.mean())
     np.testing.assert_allclose(model.coef[0, 0], ref.coef_, rtol=1e-9, atol=1e-12)
@@ -283,13 +284,13 @@ def test_cross_fitting_predicts_each_fold_from_the_others_and_stats_combine():
     a = rng.integers(0, 3, 400)
     r = rng.random(400)
     fold = np.arange(400) % 2
-    whole = est.RidgeStats.of(x, a, r, fold, folds=2, actions=4)
-    halves = est.RidgeStats.of(x[:150], a[:150], r[:150], fold[:150], folds=2, actions=4) + \
-        est.RidgeStats.of(x[150:], a[150:], r[150:], fold[150:], folds=2, actions=4)  # fmt: skip
+    whole = RidgeStats.of(x, a, r, fold, folds=2, actions=4)
+    halves = RidgeStats.of(x[:150], a[:150], r[:150], fold[:150], folds=2, actions=4) + \
+        RidgeStats.of(x[150:], a[150:], r[150:], fold[150:], folds=2, actions=4)  # fmt: skip
     np.testing.assert_allclose(halves.gram, whole.gram, rtol=1e-12)
     model = whole.fit()
     # Fold 0 is predicted by a model that never saw fold 0: refitting without it agrees.
-    only1 = est.RidgeStats.of(x[fold == 1], a[fold == 1], r[fold == 1], np.zeros(200, int),
+    only1 = RidgeStats.of(x[fold == 1], a[fold == 1], r[fold == 1], np.zeros(200, int),
                               folds=1, actions=4).fit()  # fmt: skip
     zeros = np.zeros(200, int)
     np.testing.assert_allclose(model.predict(x[fold == 0], zeros),
@@ -304,9 +305,9 @@ def test_dr_terms_worked_by_hand():
     q = (0.2, 0.6), pi = (0.5, 0.5), logged action 1 with w = 2 and r = 1:
     0.5 * 0.2 + 0.5 * 0.6 + 2 * (1 - 0.6) = 1.2 (worked by hand).
     """
-    d = est.dr_terms([[0.2, 0.6]], [[0.5, 0.5]], [1], [2.0], [1.0])
+    d = dr_terms([[0.2, 0.6]], [[0.5, 0.5]], [1], [2.0], [1.0])
     assert [1.2] == pytest.approx(d.tolist())
-    clipped = est.dr_terms([[-0.5, 1.5]], [[0.5, 0.5]], [1], [2.0], [1.0], (0.0, 1.0))
+    clipped = dr_terms([[-0.5, 1.5]], [[0.5, 0.5]], [1], [2.0], [1.0], (0.0, 1.0))
     assert [0.5 + 2 * 0.0] == pytest.approx(clipped.tolist())
 
 
@@ -339,11 +340,11 @@ def test_weight_quantiles_are_numpy_quantiles():
                                interval="bernstein"), "ranges"),
         (lambda: est.bootstrap_sums(np.ones((3, 2)), np.zeros(3, np.uint64), 0), "at least one"),
         (lambda: est.support_deficit([[0.5, 0.5]], [[1.0]]), "same shape"),
-        (lambda: est.RidgeStats.of([[1.0]], [0], [1.0], [0], folds=1, actions=1).fit(0.0),
+        (lambda: RidgeStats.of([[1.0]], [0], [1.0], [0], folds=1, actions=1).fit(0.0),
          "ridge penalty"),
-        (lambda: est.RidgeStats.of([[1.0]], [3], [1.0], [0], folds=1, actions=2), "range"),
-        (lambda: est.RidgeStats.of([1.0], [0], [1.0], [0], folds=1, actions=1), "2-d"),
-        (lambda: est.RidgeStats.of([[1.0]], [0, 1], [1.0], [0], folds=1, actions=2), "one row"),
+        (lambda: RidgeStats.of([[1.0]], [3], [1.0], [0], folds=1, actions=2), "range"),
+        (lambda: RidgeStats.of([1.0], [0], [1.0], [0], folds=1, actions=1), "2-d"),
+        (lambda: RidgeStats.of([[1.0]], [0, 1], [1.0], [0], folds=1, actions=2), "one row"),
     ],
 )  # fmt: skip
 def test_bad_inputs_raise_a_replay_error_naming_the_problem(call, message):

@@ -15,6 +15,7 @@ import pytest
 from sklearn.datasets import load_digits
 
 from drawledger.replay.estimate import _estimators as est
+from drawledger.replay.estimate._reward_model import RidgeStats, dr_terms
 
 LOGGING_T, TARGET_T = 1.0, 0.3
 FOLDS = 5
@@ -48,8 +49,8 @@ def _replicate(data: dict[str, np.ndarray], rep: int) -> dict[str, dict[str, flo
     rows = np.arange(n)
     w = pi[rows, a] / mu[rows, a]
     fold = rng.permutation(n) % FOLDS
-    model = est.RidgeStats.of(x, a, r, fold, folds=FOLDS, actions=10).fit()
-    dr = est.dr_terms(model.predict(x, fold), pi, a, w, r, (0.0, 1.0))
+    model = RidgeStats.of(x, a, r, fold, folds=FOLDS, actions=10).fit()
+    dr = dr_terms(model.predict(x, fold), pi, a, w, r, (0.0, 1.0))
     m = est.Moments.of(est.policy_columns(w, r, cap=1e9, dr=dr))
     return est.summarize(m, reward_range=(0.0, 1.0), names=("ips", "snips", "dr"))
 

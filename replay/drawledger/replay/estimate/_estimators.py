@@ -43,8 +43,6 @@ __all__ = [
     "Estimand",
     "K",
     "Moments",
-    "RewardModel",
-    "RidgeStats",
     "Term",
     "W",
     "bernstein_halfwidth",
@@ -53,7 +51,6 @@ __all__ = [
     "clt_interval",
     "column_spans",
     "delta_variance",
-    "dr_terms",
     "estimands",
     "kish_ess",
     "percentile_interval",
@@ -80,7 +77,7 @@ _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 _POISSON_CDF = np.cumsum([math.exp(-1.0) / math.factorial(k) for k in range(19)])
 
 
-def _floats(x: ArrayLike, what: str) -> Array:
+def as_floats(x: ArrayLike, what: str) -> Array:
     a = np.asarray(x, dtype=np.float64)
     if not np.all(np.isfinite(a)):
         raise ReplayError(f"{what} contains NaN or an infinity")
@@ -89,8 +86,8 @@ def _floats(x: ArrayLike, what: str) -> Array:
 
 def policy_columns(w: ArrayLike, r: ArrayLike, *, cap: float, dr: ArrayLike | None = None) -> Array:
     """The per-record columns of one policy, shape (n, WIDTH); ``dr`` is 0 when not given."""
-    wt = _floats(w, "weights")
-    rt = _floats(r, "rewards")
+    wt = as_floats(w, "weights")
+    rt = as_floats(r, "rewards")
     if wt.ndim != 1 or wt.shape != rt.shape:
         raise ReplayError(f"weights {wt.shape} and rewards {rt.shape} must be 1-d of one length")
     if np.any(wt < 0.0):
@@ -105,7 +102,7 @@ def policy_columns(w: ArrayLike, r: ArrayLike, *, cap: float, dr: ArrayLike | No
     if dr is None:
         z[:, DR] = 0.0
     else:
-        d = _floats(dr, "doubly robust terms")
+        d = as_floats(dr, "doubly robust terms")
         if d.shape != wt.shape:
             raise ReplayError("doubly robust terms must have one entry per record")
         z[:, DR] = d
@@ -399,115 +396,11 @@ def support_deficit(target: ArrayLike, logging: ArrayLike) -> Array:
 
     Both arguments are (n, actions) probability matrices over a common action index.
     """
-    t = _floats(target, "target probabilities")
-    lg = _floats(logging, "logging probabilities")
+    t = as_floats(target, "target probabilities")
+    lg = as_floats(logging, "logging probabilities")
     if t.shape != lg.shape:
         raise ReplayError("target and logging probabilities must have the same shape")
     return np.where(lg > 0.0, 0.0, t).sum(axis=1)
-
-
-# -- doubly robust reward model -------------------------------------------------------------
-def _design(x: Array) -> Array:
-    return np.hstack([np.ones((x.shape[0], 1)), x])
-
-
-@dataclass(frozen=True)
-class RidgeStats:
-    """Gram matrices and cross-products of [1, x] per (fold, action), combinable by addition."""
-
-    gram: Array  # (folds, actions, p + 1, p + 1)
-    xr: Array  # (folds, actions, p + 1)
-
-    @classmethod
-    def of(
-        cls, x: ArrayLike, action: ArrayLike, r: ArrayLike, fold: ArrayLike, *, folds: int,
-        actions: int,
-    ) -> RidgeStats:  # fmt: skip
-        xs = _floats(x, "features")
-        if xs.ndim != 2:
-            raise ReplayError("features must be a 2-d matrix")
-        rs = _floats(r, "rewards")
-        a = np.asarray(action, dtype=np.int64)
-        f = np.asarray(fold, dtype=np.int64)
-        if not (a.shape == f.shape == rs.shape == (xs.shape[0],)):
-            raise ReplayError("features, actions, rewards and folds must have one row per record")
-        if a.size and (a.min() < 0 or a.max() >= actions or f.min() < 0 or f.max() >= folds):
-            raise ReplayError("action or fold index out of range")
-        phi = _design(xs)
-        p = phi.shape[1]
-        gram = np.zeros((folds, actions, p, p))
-        xr = np.zeros((folds, actions, p))
-        key = f * actions + a
-        order = np.argsort(key, kind="stable")
-        keys, starts = np.unique(key[order], return_index=True)
-        ends = np.append(starts[1:], order.size)
-        for k, s, e in zip(keys, starts, ends, strict=True):
-            rows = order[s:e]
-            block = phi[rows]
-            gram[k // actions, k % actions] = block.T @ block
-            xr[k // actions, k % actions] = block.T @ rs[rows]
-        return cls(gram, xr)
-
-    def __add__(self, other: RidgeStats) -> RidgeStats:
-        return RidgeStats(self.gram + other.gram, self.xr + other.xr)
-
-    def fit(self, ridge: float = 1.0) -> RewardModel:
-        """Per fold, a ridge regression per action fitted on the other folds.
-
-        Rewards are centred on the training folds' mean and every coefficient (intercept
-        included) is shrunk, so an action never logged in training predicts that mean.
-        """
-        if not ridge > 0.0:
-            raise ReplayError(f"the ridge penalty must be > 0, got {ridge!r}")
-        folds, actions, p, _ = self.gram.shape
-        total_g = self.gram.sum(axis=0)
-        total_b = self.xr.sum(axis=0)
-        coef = np.zeros((folds, actions, p))
-        base = np.zeros(folds)
-        eye = np.eye(p) * ridge
-        for f in range(folds):
-            g = total_g - self.gram[f] if folds > 1 else total_g
-            b = total_b - self.xr[f] if folds > 1 else total_b
-            count = g[:, 0, 0].sum()
-            base[f] = b[:, 0].sum() / count if count > 0 else 0.0
-            centred = b - base[f] * g[:, :, 0]
-            coef[f] = np.linalg.solve(g + eye, centred[..., None])[..., 0]
-        return RewardModel(coef, base)
-
-
-@dataclass(frozen=True)
-class RewardModel:
-    """Cross-fitted predictions q(x, a) = [1, x] . coef[fold, a] + base[fold]."""
-
-    coef: Array  # (folds, actions, p + 1)
-    base: Array  # (folds,)
-
-    def predict(self, x: ArrayLike, fold: ArrayLike) -> Array:
-        """Predicted reward of every action for each record, shape (n, actions)."""
-        phi = _design(_floats(x, "features"))
-        f = np.asarray(fold, dtype=np.int64)
-        out = np.empty((phi.shape[0], self.coef.shape[1]))
-        for k in range(self.coef.shape[0]):
-            rows = f == k
-            out[rows] = phi[rows] @ self.coef[k].T + self.base[k]
-        return out
-
-
-def dr_terms(
-    q: ArrayLike, target: ArrayLike, action: ArrayLike, w: ArrayLike, r: ArrayLike,
-    reward_range: tuple[float, float] | None = None,
-) -> Array:  # fmt: skip
-    """sum_a pi(a|x) q(x, a) + w (r - q(x, a_logged)) per record (Dudik, Langford & Li 2011).
-
-    ``q`` and ``target`` are (n, actions); predictions are clipped into ``reward_range``.
-    """
-    qa = _floats(q, "reward predictions")
-    if reward_range is not None:
-        qa = np.clip(qa, reward_range[0], reward_range[1])
-    pi = _floats(target, "target probabilities")
-    a = np.asarray(action, dtype=np.int64)
-    logged = qa[np.arange(a.size), a]
-    return (pi * qa).sum(axis=1) + _floats(w, "weights") * (_floats(r, "rewards") - logged)
 
 
 # -- the summary of one policy or of a paired difference ------------------------------------

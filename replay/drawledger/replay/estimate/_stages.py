@@ -23,6 +23,7 @@ from drawledger.replay.estimate._piece import (
     PieceData,
     too_many_segments,
 )
+from drawledger.replay.estimate._reward_model import RewardModel, RidgeStats, dr_terms
 
 T = TypeVar("T")
 
@@ -85,10 +86,10 @@ def _codes(data: PieceData, schema: Schema) -> np.ndarray:
     return np.array([schema.codes[a] for a in data.facts.actions], dtype=np.int64)
 
 
-def ridge_piece(data: PieceData, schema: Schema) -> est.RidgeStats:
+def ridge_piece(data: PieceData, schema: Schema) -> RidgeStats:
     """Stage 2: the reward model's Gram matrices of the piece."""
     action = _codes(data, schema)[data.action] if data.facts.n else data.action
-    return est.RidgeStats.of(_features(data, schema), action, data.r,
+    return RidgeStats.of(_features(data, schema), action, data.r,
                              (data.keys % FOLDS).astype(np.int64), folds=FOLDS,
                              actions=len(schema.codes))  # fmt: skip
 
@@ -98,7 +99,7 @@ class SumPlan:
     """What the last stage needs: the reward model and the estimate's settings."""
 
     schema: Schema | None
-    model: est.RewardModel | None
+    model: RewardModel | None
     dr: tuple[bool, ...]  # per policy: doubly robust column computed
     cap: float
     reward_range: tuple[float, float]
@@ -164,7 +165,7 @@ def sum_piece(data: PieceData, plan: SumPlan) -> Sums:
         dr, dists = None, data.dists[j]
         if plan.dr[j] and q is not None and code is not None and dists is not None:
             dense = dists.dense(q.shape[1], code)
-            dr = est.dr_terms(q, dense, code[data.action], w, data.r, plan.reward_range)
+            dr = dr_terms(q, dense, code[data.action], w, data.r, plan.reward_range)
         cols.append(est.policy_columns(w, data.r, cap=plan.cap, dr=dr))
     base = cols[-1]
     deficits = [np.zeros(n) if d is None else d for d in data.deficit]
@@ -258,7 +259,7 @@ def run_pass(runner: Runner, job: Job, *, cap: float, bootstrap: int, weights: b
     )  # fmt: skip
 
 
-def _fit(stats: Sequence[est.RidgeStats]) -> est.RewardModel:
+def _fit(stats: Sequence[RidgeStats]) -> RewardModel:
     total = stats[0]
     for s in stats[1:]:
         total = total + s
