@@ -3,16 +3,14 @@
 from __future__ import annotations
 
 import hashlib
-import os
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import sqlalchemy as sa
 
-from drawledger.exceptions import LedgerError, ReplayError
-from drawledger.replay.sources import is_parquet, open_engine
+from drawledger.exceptions import ReplayError
+from drawledger.replay.sources import outcome_values
 
 
 def _digests(ids: Iterable[Any]) -> np.ndarray:
@@ -67,47 +65,10 @@ class Rewards:
         return out
 
 
-def _reward_part(path: str, reward: str) -> tuple[np.ndarray, np.ndarray]:
-    """Digests of the decision ids and values of the ``reward`` outcomes of one Parquet part."""
-    import pyarrow as pa
-    import pyarrow.compute as pc
-    import pyarrow.parquet as pq
-
-    from drawledger import _parquet
-
-    columns = ["decision_id", "name", "value"]
-    try:
-        table = pq.read_table(path, columns=columns, schema=_parquet.SCHEMAS["outcomes"])
-    except (OSError, pa.ArrowException) as exc:
-        raise LedgerError(f"cannot read ledger part {path!r}: {exc}") from None
-    table = table.filter(pc.equal(table.column("name"), reward))
-    values = table.column("value").to_numpy(zero_copy_only=False).astype(np.float64)
-    return _digests(table.column("decision_id").to_pylist()), values
-
-
 def read_rewards(ledger: str, format: str | None, reward: str) -> Rewards:
     """The ``reward`` outcome of every decision of a ledger (24 bytes per decision)."""
-    if is_parquet(ledger, format):
-        import pyarrow.parquet as pq
-
-        from drawledger import _parquet
-
-        files = [os.fspath(p.path) for p in _parquet.parts(ledger, "outcomes")]
-        capacity = sum(pq.read_metadata(f).num_rows for f in files)
-        return Rewards.of((_reward_part(f, reward) for f in files), capacity)
-    engine = open_engine(ledger)
-    try:
-        with engine.connect() as conn:
-            capacity = conn.execute(sa.text("SELECT COUNT(*) FROM outcomes WHERE name = :n"),
-                                    {"n": reward}).scalar_one()  # fmt: skip
-            result = conn.execution_options(yield_per=100_000).execute(
-                sa.text("SELECT decision_id, value FROM outcomes WHERE name = :n"), {"n": reward}
-            )
-            parts = ((_digests(r[0] for r in rows), np.array([r[1] for r in rows], dtype=float))
-                     for rows in result.partitions())  # fmt: skip
-            return Rewards.of(parts, int(capacity))
-    finally:
-        engine.dispose()
+    capacity, parts = outcome_values(ledger, format, reward)
+    return Rewards.of(((_digests(ids), values) for ids, values in parts), capacity)
 
 
 def choose_stream(streams: Sequence[str], stream: str | None, ledger: str) -> str:
@@ -123,13 +84,3 @@ def choose_stream(streams: Sequence[str], stream: str | None, ledger: str) -> st
         raise ReplayError(f"the ledger has several decision streams ({', '.join(streams)}); "
                           "choose one with --stream")  # fmt: skip
     return streams[0]
-
-
-def sql_streams(ledger: str) -> list[str]:
-    engine = open_engine(ledger)
-    try:
-        with engine.connect() as conn:
-            found = conn.execute(sa.text("SELECT DISTINCT stream FROM decisions")).scalars()
-            return sorted(str(s) for s in found if s is not None)
-    finally:
-        engine.dispose()

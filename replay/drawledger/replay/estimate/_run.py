@@ -27,7 +27,7 @@ from drawledger.replay.estimate._report import (
     EstimateReport,
     SweepReport,
 )
-from drawledger.replay.estimate._rewards import choose_stream, sql_streams
+from drawledger.replay.estimate._rewards import choose_stream
 from drawledger.replay.estimate._runner import estimate_on
 from drawledger.replay.estimate._stages import Group, Pass
 from drawledger.replay.propensity import DEFAULT_BUDGET, DEFAULT_MC_SAMPLES, MONTE_CARLO
@@ -38,6 +38,7 @@ from drawledger.replay.sources import (
     parquet_root,
     pieces,
     plan,
+    sql_streams,
     stream_partitions,
 )
 from drawledger.replay.verify import Settings, absolute_paths

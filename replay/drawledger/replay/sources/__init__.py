@@ -1,6 +1,7 @@
 """The one way to read a ledger: cut any ledger (SQLite, PostgreSQL, Parquet) into pieces and read
 them, whole tables or chunks of decisions with their draws."""
 
+from drawledger.replay.sources._outcomes import outcome_totals, outcome_values, sql_streams
 from drawledger.replay.sources._parquet import (
     Piece,
     parquet_root,
@@ -36,6 +37,8 @@ __all__ = [
     "iter_chunks",
     "iter_decision_chunks",
     "open_engine",
+    "outcome_totals",
+    "outcome_values",
     "parquet_root",
     "partitions",
     "pieces",
@@ -43,6 +46,7 @@ __all__ = [
     "read_piece",
     "read_piece_frames",
     "read_tables",
+    "sql_streams",
     "stream_partitions",
     "writer_pages",
 ]

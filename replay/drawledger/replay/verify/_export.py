@@ -16,10 +16,9 @@ from pathlib import Path
 from typing import Any
 
 import pandas as pd
-import sqlalchemy as sa
 
 from drawledger.exceptions import ReplayError
-from drawledger.replay.sources import is_parquet, open_engine
+from drawledger.replay.sources import outcome_totals
 
 __all__ = ["BASE_COLUMNS", "flatten_inputs", "join_outcomes", "read_outcomes", "write_export"]
 
@@ -69,24 +68,7 @@ def check_export_path(path: str | os.PathLike[str]) -> Path:
 
 def read_outcomes(target: str | os.PathLike[str], *, format: str | None = None) -> pd.DataFrame:
     """Outcome totals: one row per decision id, one column per outcome name (sum of values)."""
-    if is_parquet(target, format):
-        from drawledger._parquet import read_table
-
-        raw = read_table(os.fspath(target), "outcomes")[["decision_id", "name", "value"]]
-        totals = raw.groupby(["decision_id", "name"], sort=False)["value"].sum().reset_index()
-    else:
-        engine = open_engine(target)
-        try:
-            with engine.connect() as conn:
-                totals = pd.read_sql_query(
-                    sa.text(
-                        "SELECT decision_id, name, SUM(value) AS value FROM outcomes "
-                        "GROUP BY decision_id, name"
-                    ),
-                    conn,
-                )
-        finally:
-            engine.dispose()
+    totals = outcome_totals(target, format=format)
     if totals.empty:
         return pd.DataFrame(index=pd.Index([], name="decision_id"))
     wide = totals.pivot(index="decision_id", columns="name", values="value")
