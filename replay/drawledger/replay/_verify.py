@@ -23,12 +23,14 @@ from collections.abc import Set as AbstractSet
 from concurrent.futures import Executor, Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
+from operator import itemgetter
 from typing import Any
 
 import orjson
 import pandas as pd
 import sqlalchemy as sa
 
+from drawledger._probability import decision_propensity
 from drawledger._records import (  # _default, _OPTS: the SDK's own JSON encoding, bit for bit
     _OPTS,
     DECISION_COLUMNS,
@@ -201,14 +203,8 @@ def _encode(records: Sequence[DrawRecord]) -> list[tuple[Any, ...]]:
 
 def _logged(encoded: Sequence[tuple[Any, ...]], action_json: str) -> tuple[float, str]:
     """The propensity the SDK logs for these draws and action (ledger._record_decision)."""
-    if not encoded:
-        return 1.0, "exact"
-    if len(encoded) == 1 and encoded[0][4] == action_json:
-        return encoded[0][5], "exact"
-    prop = 1.0
-    for e in encoded:
-        prop *= e[5]
-    return prop, "path"
+    single = len(encoded) == 1 and encoded[0][4] == action_json
+    return decision_propensity(encoded, single, itemgetter(5))
 
 
 # -- one decision --------------------------------------------------------------------------------
