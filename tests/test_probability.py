@@ -149,6 +149,7 @@ def test_decision_propensity_worked_examples() -> None:
 
 
 # -- densities against scipy.stats -----------------------------------------------------------
+@settings(deadline=None)
 @given(st.floats(-1e3, 1e3), st.floats(1e-3, 1e3), st.floats(-8.0, 8.0))
 def test_normal_density_matches_scipy(mean: float, sd: float, z: float) -> None:
     """scipy.stats.norm.pdf as the outside reference."""
@@ -157,6 +158,7 @@ def test_normal_density_matches_scipy(mean: float, sd: float, z: float) -> None:
     assert expected == pytest.approx(density("normal", {"mean": mean, "sd": sd}, x), rel=1e-12)
 
 
+@settings(deadline=None)
 @given(st.floats(-5.0, 5.0), st.floats(0.05, 3.0), st.floats(-8.0, 8.0))
 def test_lognormal_density_matches_scipy(mu: float, sigma: float, z: float) -> None:
     """scipy.stats.lognorm.pdf (shape s = sigma, scale = exp(mu)) as the outside reference."""
@@ -166,6 +168,7 @@ def test_lognormal_density_matches_scipy(mu: float, sigma: float, z: float) -> N
     assert expected == pytest.approx(got, rel=1e-12)
 
 
+@settings(deadline=None)
 @given(st.floats(-1e6, 1e6), st.floats(1e-3, 1e6), st.floats(-0.5, 1.5))
 def test_uniform_density_matches_scipy(low: float, width: float, t: float) -> None:
     """scipy.stats.uniform.pdf (loc = low, scale = high - low) as the outside reference."""
@@ -261,6 +264,7 @@ def test_recorded_arguments_must_name_every_parameter() -> None:
 # -- the audit's vectorized versions agree ---------------------------------------------------
 # The audit keeps numpy copies of these formulas to evaluate many declarations at once
 # (_audit._probabilities, _parse_continuous, _parse_slate); they must say what the SDK says.
+@settings(deadline=None)
 @given(
     valid_draws().filter(lambda call: call[0] in OPTION_KINDS)
     | bucket_shares().map(lambda shares: ("bucket", {"shares": shares}))
@@ -273,6 +277,7 @@ def test_audit_probabilities_agree(call: tuple[str, dict[str, Any]]) -> None:
     assert probs == pytest.approx(p[0].tolist(), rel=1e-12, abs=1e-300)
 
 
+@settings(deadline=None)
 @given(st.integers(-(2**40), 2**40), st.integers(1, 100))
 def test_audit_integer_probabilities_agree(low: int, n: int) -> None:
     args = {"low": low, "high": low + n}
@@ -281,7 +286,7 @@ def test_audit_integer_probabilities_agree(low: int, n: int) -> None:
     assert [probability("integers", args, v) for v in range(low, low + n)] == p[0].tolist()
 
 
-@settings(max_examples=200)
+@settings(max_examples=200, deadline=None)
 @given(valid_draws().filter(lambda call: call[0] in CONTINUOUS_KINDS), seeds)
 def test_audit_densities_agree(call: tuple[str, dict[str, Any]], seed: bytes) -> None:
     kind, args = call
@@ -297,7 +302,7 @@ def test_audit_densities_agree(call: tuple[str, dict[str, Any]], seed: bytes) ->
     assert expected == pytest.approx(float(parsed.declared[0]), rel=1e-12, abs=1e-300)
 
 
-@settings(max_examples=200)
+@settings(max_examples=200, deadline=None)
 @given(valid_draws().filter(lambda call: call[0] == "slate"), seeds)
 def test_audit_slate_probabilities_agree(call: tuple[str, dict[str, Any]], seed: bytes) -> None:
     _, args = call
