@@ -170,3 +170,22 @@ def junk_draws(draw: st.DrawFn) -> tuple[str, dict[str, Any]]:
     """A draw kind with each argument either valid or junk."""
     kind, args = draw(valid_draws())
     return kind, {name: draw(st.one_of(st.just(value), junk)) for name, value in args.items()}
+
+
+@st.composite
+def small_slates(draw: st.DrawFn) -> dict[str, Any]:
+    """slate arguments small enough to list every ordered slate (at most 5 options, k <= 3)."""
+    options = draw(option_lists(max_size=5))
+    weights = draw(
+        st.lists(st.one_of(st.just(0.0), st.floats(1e-3, 1e3)), min_size=len(options),
+                 max_size=len(options)).filter(lambda w: any(x > 0 for x in w))
+    )  # fmt: skip
+    k = draw(st.integers(1, min(3, sum(1 for x in weights if x > 0))))
+    return {"options": options, "weights": weights, "k": k}
+
+
+@st.composite
+def bucket_shares(draw: st.DrawFn) -> dict[str, float]:
+    """Shares of a bucket draw: distinct arms with shares summing to 1 (within rounding)."""
+    arms = draw(option_lists())
+    return dict(zip(arms, draw(prob_vectors(len(arms), len(arms))), strict=True))

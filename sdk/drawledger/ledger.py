@@ -9,6 +9,7 @@ import hashlib
 import inspect
 import itertools
 import math
+import operator
 import os
 import socket
 import textwrap
@@ -21,6 +22,7 @@ from pathlib import Path
 from typing import Any, Generic, ParamSpec, TypeVar
 
 from drawledger import _records, _sinks, _stream
+from drawledger._probability import decision_propensity
 from drawledger._writer import Chain, SpillFile, Stats, Writer
 from drawledger.draw import Draw, DrawRecord, bucket_assign
 from drawledger.exceptions import (
@@ -37,6 +39,7 @@ P = ParamSpec("P")
 R = TypeVar("R")
 
 RESERVED = frozenset({"unit", "decision_id"})
+_PROB = operator.itemgetter(6)  # DrawRecord.prob
 DRAW_KINDS = frozenset(
     {"categorical", "bernoulli", "uniform", "integers", "normal", "lognormal", "softmax",
      "epsilon_greedy", "slate", "bucket"}
@@ -361,17 +364,10 @@ class Ledger:
     ) -> None:
         action_json = _records.to_json(action, decision._action_what)
         draws = draw.records
-        if not draws:
-            prop, kind = 1.0, "exact"
-        elif len(draws) == 1 and (
+        single = len(draws) == 1 and (
             draws[0].value is action or _json_or_none(draws[0].value) == action_json
-        ):
-            prop, kind = draws[0].prob, "exact"
-        else:
-            prop = 1.0
-            for d in draws:
-                prop *= d.prob
-            kind = "path"
+        )
+        prop, kind = decision_propensity(draws, single, _PROB)
         self._append_decision(
             decision_id, decision.stream, unit, None, decision.name, decision.code_hash,
             inputs, params, action_json, prop, kind, draw.seed.hex(), draws, (action, action_json),

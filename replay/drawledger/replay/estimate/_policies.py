@@ -20,15 +20,9 @@ from typing import Any
 
 import numpy as np
 
+from drawledger._probability import CONTINUOUS_KINDS, density, distribution
 from drawledger._records import from_json, to_json
-from drawledger.draw import (
-    Draw,
-    DrawRecord,
-    epsilon_greedy_probs,
-    lognormal_pdf,
-    normal_pdf,
-    softmax_probs,
-)
+from drawledger.draw import Draw, DrawRecord
 from drawledger.exceptions import DrawledgerError, ReplayError
 from drawledger.ledger import Decision
 from drawledger.replay.propensity import (
@@ -124,9 +118,6 @@ def _load_callable(spec: str, path: Sequence[str], allow: Sequence[str]) -> Any:
     return fn
 
 
-_OPTION_KINDS = ("categorical", "softmax", "epsilon_greedy")
-
-
 _TEXT_KEYS: dict[str, str] = {}
 
 
@@ -143,36 +134,14 @@ def _key(value: Any) -> str:
 
 
 def _single_draw_distribution(rec: DrawRecord) -> dict[str, float] | None:
-    a = rec.args
-    if rec.kind in _OPTION_KINDS:
-        if rec.kind == "categorical":
-            probs = a["probs"]
-        elif rec.kind == "softmax":
-            probs = softmax_probs(a["scores"], a["temperature"])
-        else:
-            probs = epsilon_greedy_probs(a["scores"], a["epsilon"])
-        dist: dict[str, float] = {}
-        for option, p in zip(a["options"], probs, strict=True):
-            k = _key(option)
-            dist[k] = dist.get(k, 0.0) + p
-        return dist
-    if rec.kind == "bernoulli":
-        return {"true": a["p"], "false": 1.0 - a["p"]}
-    return None
+    return distribution(rec.kind, rec.args, _key)
 
 
 def _density_of(rec: DrawRecord, x: Any) -> float:
     """Density of a continuous draw, by its recorded arguments, at the value x."""
-    a = rec.args
-    if isinstance(x, bool) or not isinstance(x, (int, float)):
-        return 0.0
-    if rec.kind == "uniform":
-        return 1.0 / (a["high"] - a["low"]) if a["low"] <= x <= a["high"] else 0.0
-    if rec.kind == "normal":
-        return normal_pdf(x, a["mean"], a["sd"])
-    if rec.kind == "lognormal":
-        return lognormal_pdf(x, a["mu"], a["sigma"])
-    raise ReplayError(f"no density for a {rec.kind} draw")
+    if rec.kind not in CONTINUOUS_KINDS:
+        raise ReplayError(f"no density for a {rec.kind} draw")
+    return density(rec.kind, rec.args, x)
 
 
 @dataclass

@@ -15,15 +15,9 @@ from collections import Counter
 from collections.abc import Callable, Mapping, Sequence
 from typing import Any, NamedTuple
 
+from drawledger._probability import DISCRETE_KINDS, density, probability, probability_among
 from drawledger._records import from_json, to_json
-from drawledger.draw import (
-    Draw,
-    DrawRecord,
-    epsilon_greedy_probs,
-    lognormal_pdf,
-    normal_pdf,
-    softmax_probs,
-)
+from drawledger.draw import Draw, DrawRecord
 from drawledger.exceptions import ReplayError
 from drawledger.ledger import Decision
 
@@ -151,12 +145,7 @@ class _DensityDraw(BranchingDraw):
 
 
 def _density_at(rec: DrawRecord, x: float) -> float:
-    a = rec.args
-    if rec.kind == "uniform":
-        return 1.0 / (a["high"] - a["low"]) if a["low"] <= x <= a["high"] else 0.0
-    if rec.kind == "normal":
-        return normal_pdf(x, a["mean"], a["sd"])
-    return lognormal_pdf(x, a["mu"], a["sigma"])
+    return density(rec.kind, rec.args, x)
 
 
 Run = Callable[[Draw], Any]
@@ -235,35 +224,11 @@ def _density(run: Run, target_json: str, budget: int) -> float | None:
 
 
 def _option_probability(options: list[Any], probs: Sequence[float], action_json: str) -> float:
-    if all(isinstance(o, str) for o in options) and len(set(options)) == len(options):
-        target = from_json(action_json)
-        return next((p for o, p in zip(options, probs, strict=True) if o == target), 0.0)
-    return math.fsum(
-        p for o, p in zip(options, probs, strict=True) if to_json(o, "option") == action_json
-    )
+    return probability_among(options, probs, from_json(action_json))
 
 
 def _slate_probability(args: Mapping[str, Any], action_json: str) -> float | None:
-    options, weights = args["options"], args["weights"]
-    keys = [to_json(o, "option") for o in options]
-    if len(set(keys)) != len(keys):
-        return None  # repeated options: several index sequences give the same slate
-    chosen = from_json(action_json)
-    if not isinstance(chosen, list) or len(chosen) != args["k"]:
-        return 0.0
-    remaining = list(range(len(options)))
-    prob = 1.0
-    for item in chosen:
-        key = to_json(item, "slate item")
-        hit = next((i for i in remaining if keys[i] == key), None)
-        if hit is None:
-            return 0.0
-        total = 0.0
-        for i in remaining:
-            total += weights[i]
-        prob *= weights[hit] / total
-        remaining.remove(hit)
-    return prob
+    return probability("slate", args, from_json(action_json))
 
 
 def _distinct_values(rec: DrawRecord) -> bool:
@@ -290,24 +255,9 @@ def single_draw_probability(
     """
     if value_json == action_json and _distinct_values(rec):
         return rec.prob
-    a, kind = rec.args, rec.kind
-    if kind == "categorical":
-        return _option_probability(a["options"], a["probs"], action_json)
-    if kind == "softmax":
-        return _option_probability(a["options"], softmax_probs(a["scores"], a["temperature"]),
-                                   action_json)  # fmt: skip
-    if kind == "epsilon_greedy":
-        probs = epsilon_greedy_probs(a["scores"], a["epsilon"])
-        return _option_probability(a["options"], probs, action_json)
-    if kind == "bernoulli":
-        return {"true": a["p"], "false": 1.0 - a["p"]}.get(action_json, 0.0)
-    if kind == "integers":
-        value = from_json(action_json)
-        inside = type(value) is int and a["low"] <= value < a["high"]
-        return 1.0 / (a["high"] - a["low"]) if inside else 0.0
-    if kind == "slate":
-        return _slate_probability(a, action_json)
-    return None
+    if rec.kind not in DISCRETE_KINDS:
+        return None
+    return probability(rec.kind, rec.args, from_json(action_json))
 
 
 class Found(NamedTuple):

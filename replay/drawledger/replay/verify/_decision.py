@@ -5,10 +5,12 @@ from __future__ import annotations
 import math
 from collections import Counter
 from collections.abc import Mapping, Sequence
+from operator import itemgetter
 from typing import Any
 
 import orjson
 
+from drawledger._probability import decision_propensity
 from drawledger._records import (  # the SDK's own JSON encoding, bit for bit
     JSON_OPTIONS,
     from_json,
@@ -109,14 +111,8 @@ def _encode(records: Sequence[DrawRecord]) -> list[tuple[Any, ...]]:
 
 def _logged(encoded: Sequence[tuple[Any, ...]], action_json: str) -> tuple[float, str]:
     """The propensity the SDK logs for these draws and action (ledger._record_decision)."""
-    if not encoded:
-        return 1.0, "exact"
-    if len(encoded) == 1 and encoded[0][4] == action_json:
-        return encoded[0][5], "exact"
-    prop = 1.0
-    for e in encoded:
-        prop *= e[5]
-    return prop, "path"
+    single = len(encoded) == 1 and encoded[0][4] == action_json
+    return decision_propensity(encoded, single, itemgetter(5))
 
 
 class _Checked:
