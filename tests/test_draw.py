@@ -442,3 +442,12 @@ def test_junk_arguments_raise_only_draw_argument_errors(
     else:
         assert 1 == len(d.records)
         assert math.isfinite(d.records[0].prob) and d.records[0].prob > 0.0
+
+
+def test_a_density_too_narrow_to_record_is_refused() -> None:
+    """Found by the junk-arguments property above: a log-normal with sigma 2.1e-86 draws
+    exp(mu), where the density underflows to 0; recording 0 would claim an impossible draw."""
+    d = Draw(bytes(16))
+    with pytest.raises(DrawArgumentError, match=r"density .* is 0\.0, which cannot be recorded"):
+        d.lognormal(0.25, 2.1e-86)
+    assert [] == d.records

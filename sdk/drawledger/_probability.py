@@ -115,6 +115,15 @@ def _fail(kind: str, name: str | None, problem: str) -> DrawArgumentError:
     return DrawArgumentError(f"{label}: {problem}")
 
 
+def recordable_density(kind: str, name: str | None, value: float, density: float) -> float:
+    """``density`` when it can be recorded (finite and positive); an error otherwise (a spread
+    so narrow that the density at the drawn value under- or overflows)."""
+    if not 0.0 < density < math.inf:
+        raise _fail(kind, name, f"the density at the drawn value {value!r} is {density!r}, "
+                    "which cannot be recorded: the spread is too narrow")  # fmt: skip
+    return density
+
+
 def _real(kind: str, name: str | None, label: str, x: Any) -> float:
     """A finite real number as a float (bools, strings and non-finite values are refused)."""
     if type(x) is not float:

@@ -30,6 +30,7 @@ from drawledger._probability import (
     normal_args,
     normal_pdf,
     plackett_luce,
+    recordable_density,
     slate_args,
     softmax_args,
     softmax_probs,
@@ -241,7 +242,7 @@ class Draw:
         m, s = normal_args(mean, sd, name)
         u = self._uniform()
         value = m + s * ppnd16(u if u < 1.0 else BELOW_ONE)
-        density = normal_pdf(value, m, s)
+        density = recordable_density("normal", name, value, normal_pdf(value, m, s))
         self._record("normal", name, {"mean": m, "sd": s}, [u], value, density, True)
         return value
 
@@ -250,7 +251,7 @@ class Draw:
         m, s = lognormal_args(mu, sigma, name)
         u = self._uniform()
         value = _exp(m + s * ppnd16(u if u < 1.0 else BELOW_ONE))
-        density = lognormal_pdf(value, m, s)
+        density = recordable_density("lognormal", name, value, lognormal_pdf(value, m, s))
         self._record("lognormal", name, {"mu": m, "sigma": s}, [u], value, density, True)
         return value
 
