@@ -131,3 +131,78 @@ def test_replay_doc_examples_run(tmp_path: Path) -> None:
     assert 0 == done.returncode, done.stdout + done.stderr
     assert 300 == json.loads((tmp_path / "verify.json").read_text())["verified"]
     assert 300 == len(pd.read_csv(tmp_path / "propensities.csv"))
+
+
+# -- a crafted ledger never chooses what verify does --------------------------------------------
+def _point(ledger: Path, decision_id: str, fn: str) -> None:
+    """Make one recorded decision name another function (its hash no longer matches)."""
+    with sqlite3.connect(ledger) as conn:
+        conn.execute("UPDATE decisions SET fn = ? WHERE decision_id = ?", (fn, decision_id))
+
+
+EXITS = """
+from pathlib import Path
+Path({canary!r}).write_text("ran")
+raise SystemExit(0)
+"""
+
+
+def test_a_module_that_exits_on_import_fails_its_records_not_the_run(
+    shop: Path, tmp_path: Path
+) -> None:
+    """SystemExit(0) raised while importing a module a ledger names is that record's
+    replay-error: the run ends with its own verdict (exit 1) and writes its JSON."""
+    code, canary = tmp_path / "code", tmp_path / "ran"
+    code.mkdir()
+    (code / "leaves.py").write_text(EXITS.format(canary=str(canary)))
+    _point(shop, "card-3", "leaves:decide")
+    out = tmp_path / "verify.json"
+    assert 1 == main(["verify", str(shop), "--path", SUPPORT, "--path", str(code),
+                      "--json", str(out)])  # fmt: skip
+    data = json.loads(out.read_text())
+    assert {"replay-error": 1, "integrity": 1} == data["by_reason"]
+    assert "SystemExit" in data["examples"]["replay-error"][0]["detail"]
+    assert 16 == data["decisions"]
+    sys.modules.pop("leaves", None)
+
+
+def test_decision_code_that_exits_fails_its_record_not_the_run(shop: Path, tmp_path: Path) -> None:
+    code = tmp_path / "code"
+    code.mkdir()
+    (code / "quits.py").write_text(
+        "import drawledger as dl\n"
+        "ledger = dl.Ledger(dl.__file__ + '.unused.db')\n"  # never written: nothing is recorded
+        "@ledger.decision('recipe-card')\n"
+        "def decide(ctx, draw: dl.Draw, *, temperature: float = 0.7):\n"
+        "    raise SystemExit(0)\n"
+    )
+    _point(shop, "card-4", "quits:decide")
+    out = tmp_path / "verify.json"
+    assert 1 == main(["verify", str(shop), "--path", SUPPORT, "--path", str(code),
+                      "--json", str(out)])  # fmt: skip
+    data = json.loads(out.read_text())
+    assert 1 == data["by_reason"].get("replay-error")
+    assert "SystemExit" in data["examples"]["replay-error"][0]["detail"]
+    sys.modules.pop("quits", None)
+
+
+@pytest.mark.parametrize(
+    ("files", "fn"),
+    [
+        ({"svc/__init__.py": "", "svc/__main__.py": "{canary}"}, "svc.__main__:main"),
+        ({"scripts/wipe.py": "{canary}"}, "scripts.wipe:x"),  # a folder without __init__.py
+    ],
+)
+def test_entry_points_and_folders_without_init_are_never_imported(
+    shop: Path, tmp_path: Path, files: dict[str, str], fn: str
+) -> None:
+    code, canary = tmp_path / "code", tmp_path / "ran"
+    for name, text in files.items():
+        (code / name).parent.mkdir(parents=True, exist_ok=True)
+        (code / name).write_text(text.format(canary=f"open({str(canary)!r}, 'w').write('ran')"))
+    _point(shop, "card-5", fn)
+    out = tmp_path / "verify.json"
+    assert 1 == main(["verify", str(shop), "--path", SUPPORT, "--path", str(code),
+                      "--json", str(out)])  # fmt: skip
+    assert not canary.exists()
+    assert 1 == json.loads(out.read_text())["by_reason"].get("missing-function")

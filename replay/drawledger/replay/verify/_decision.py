@@ -242,7 +242,9 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
         records = draw.records
         first = _encode(records)
         action = _json(first_action, "action")
-    except Exception as exc:
+    except KeyboardInterrupt:
+        raise  # Ctrl-C stops the whole run (exit 130, nothing reported)
+    except BaseException as exc:  # SystemExit and the like are this decision's failure only
         out.add("replay-error", f"{type(exc).__name__}: {exc}")
         return
     _compare_draws(out, first, draws)
@@ -261,7 +263,9 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
         same = again.records == records and returned == first_action
         if not same:  # objects without value equality: compare their recorded form
             same = _encode(again.records) == first and to_json(returned, "action") == action
-    except Exception as exc:
+    except KeyboardInterrupt:
+        raise
+    except BaseException as exc:
         out.add("nondeterministic", f"a second run raised {type(exc).__name__}: {exc}")
     else:
         if not same:
@@ -270,7 +274,9 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
     try:
         out.propensity = _propensity(ctx, decision, inputs, params, action_key, records, first,
                                      action, (row[DEC.inputs], row[DEC.params]))  # fmt: skip
-    except Exception as exc:
+    except KeyboardInterrupt:
+        raise
+    except BaseException as exc:
         out.add("replay-error", f"propensity: {type(exc).__name__}: {exc}")
 
 

@@ -53,6 +53,18 @@ def _under(origin: str | None, dirs: list[Path]) -> bool:
     return any(where.is_relative_to(d) for d in dirs)
 
 
+def _package_module(base: Path, module: str) -> bool:
+    """``a.b.c`` is ``base/a/b/c.py`` (or a package ``base/a/b/c/``) with ``base/a`` and
+    ``base/a/b`` regular packages: folders without ``__init__.py`` are not imported from."""
+    *parents, last = module.split(".")
+    folder = base
+    for part in parents:
+        folder = folder / part
+        if not (folder / "__init__.py").is_file():
+            return False
+    return (folder / f"{last}.py").is_file() or (folder / last / "__init__.py").is_file()
+
+
 def lookup_qualname(obj: Any, qualname: str) -> Any:
     """Walk ``a.b.c`` through ``vars()`` only, so no attribute hook of the target runs."""
     for part in qualname.split("."):
@@ -70,14 +82,17 @@ def import_allowed(
     module: str, path: Iterable[str | os.PathLike[str]], allow: Iterable[str]
 ) -> Any:
     """Import ``module`` if it is allowed, else raise ``MissingFunctionError`` (nothing runs)."""
+    if "__main__" in module.split("."):
+        raise MissingFunctionError(
+            f"module {module!r} is a script's entry point; replay never imports one "
+            "(define decisions in an importable module)"
+        )
     dirs = [Path(p).expanduser().resolve() for p in path]
     by_prefix = _allowed_prefix(module, allow)
-    top = module.split(".")[0]
-    spec = importlib.machinery.PathFinder.find_spec(top, [str(d) for d in dirs]) if dirs else None
-    if spec is None and not by_prefix:
+    if not by_prefix and not any(_package_module(d, module) for d in dirs):
         raise MissingFunctionError(
-            f"module {module!r} is not under a --path directory or an --allow prefix "
-            "(replay imports nothing else)"
+            f"module {module!r} is not under a --path directory or an --allow prefix (replay "
+            "imports nothing else; under --path, every folder on its way needs an __init__.py)"
         )
     added = [str(d) for d in dirs if str(d) not in sys.path]
     sys.path[:0] = added
@@ -85,7 +100,9 @@ def import_allowed(
         loaded = importlib.import_module(module)
     except ModuleNotFoundError as exc:
         raise MissingFunctionError(f"module {module!r} cannot be imported: {exc}") from None
-    except Exception as exc:
+    except KeyboardInterrupt:
+        raise  # Ctrl-C stops the whole run (exit 130, nothing reported)
+    except BaseException as exc:  # SystemExit and the like fail this module's records only
         raise ReplayError(f"importing {module!r} failed: {type(exc).__name__}: {exc}") from None
     finally:
         for d in added:
