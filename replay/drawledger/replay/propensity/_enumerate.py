@@ -15,7 +15,7 @@ from collections import Counter
 from collections.abc import Callable, Mapping, Sequence
 from typing import Any, NamedTuple
 
-from drawledger._probability import DISCRETE_KINDS, density, probability, probability_among
+from drawledger._probability import DISCRETE_KINDS, density, probability
 from drawledger._records import from_json, to_json
 from drawledger.draw import Draw, DrawRecord
 from drawledger.exceptions import ReplayError
@@ -221,14 +221,6 @@ def _density(run: Run, target_json: str, budget: int) -> float | None:
         ):
             total += draw.weight
     return total if total > 0.0 else None
-
-
-def _option_probability(options: list[Any], probs: Sequence[float], action_json: str) -> float:
-    return probability_among(options, probs, from_json(action_json))
-
-
-def _slate_probability(args: Mapping[str, Any], action_json: str) -> float | None:
-    return probability("slate", args, from_json(action_json))
 
 
 def _distinct_values(rec: DrawRecord) -> bool:
