@@ -187,6 +187,16 @@ def test_demo_refuses_to_replace_another_ledger(tmp_path: Path) -> None:
         con.close()
 
 
+def test_demo_replaces_a_ledger_of_an_earlier_demo(tmp_path: Path) -> None:
+    """A demo ledger written before the demo's module moved is still the demo's own."""
+    run_demo(60, tmp_path)
+    with sqlite3.connect(tmp_path / "decisions.db") as con:
+        con.execute(
+            "UPDATE decisions SET fn = replace(fn, 'replay.demo.grocery', 'replay._grocery')"
+        )
+    assert run_demo(60, tmp_path).verification.ok
+
+
 @pytest.mark.parametrize("bad", [0, 49, 2_000_000, True, 1.5, "300"])
 def test_demo_rejects_bad_sizes(tmp_path: Path, bad: object) -> None:
     with pytest.raises(ReplayError, match="sessions"):

@@ -39,6 +39,7 @@ __all__ = ["DEFAULT_SESSIONS", "DemoResult", "run_demo"]
 DEFAULT_SESSIONS = 4_000
 MAX_SESSIONS = 1_000_000
 DEMO_MODULE = "drawledger.replay.demo.grocery"
+EARLIER_DEMO_MODULE = "drawledger.replay._grocery"  # what demo ledgers before 0.1 recorded
 ALLOW = (DEMO_MODULE,)
 REWARD = "checkout"
 TARGET_TEMPERATURE = 0.3
@@ -182,9 +183,10 @@ def _prepare_out(out: Path) -> Path:
                 with engine.connect() as conn:
                     others = conn.execute(
                         sa.text(
-                            "SELECT COUNT(*) FROM decisions WHERE fn IS NULL OR fn NOT LIKE :p"
+                            "SELECT COUNT(*) FROM decisions WHERE fn IS NULL OR "
+                            "(fn NOT LIKE :p AND fn NOT LIKE :q)"
                         ),
-                        {"p": f"{DEMO_MODULE}:%"},
+                        {"p": f"{DEMO_MODULE}:%", "q": f"{EARLIER_DEMO_MODULE}:%"},
                     ).scalar_one()
         except sa.exc.SQLAlchemyError:
             names, others = set(), 0
