@@ -74,7 +74,8 @@ def test_intervals_cover_the_true_value_of_the_target(cards):
     truth = shop.true_card_value(N_CARDS, 3, shop.softmax_table(0.3))
     for name in ("ips", "snips", "clipped", "dr"):
         e = report.estimates[name]
-        assert e["low"] <= truth <= e["high"] + e.get("bias_bound", 0.0), name
+        low, high = e.get("outer_low", e["low"]), e.get("outer_high", e["high"])
+        assert low <= truth <= high, name
     gain = truth - shop.true_card_value(N_CARDS, 3, shop.softmax_table(0.7))
     d = report.difference["snips"]
     assert d["low"] <= gain <= d["high"]
@@ -86,7 +87,7 @@ def test_json_has_the_design_keys_and_is_serializable(cards):
     assert {"ips", "snips", "clipped", "dr"} == set(out["estimates"])
     for e in out["estimates"].values():
         assert {"value", "low", "high"} <= set(e)
-    assert "bias_bound" in out["estimates"]["clipped"]
+    assert {"bias_low", "bias_bound", "outer_low", "outer_high"} <= set(out["estimates"]["clipped"])
     assert {"ess", "max_weight", "support_deficit"} <= set(out["diagnostics"])
     assert {"temperature": 0.3} == out["target"]["overrides"]
     assert 0 == out["excluded"]["total"]

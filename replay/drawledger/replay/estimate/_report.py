@@ -60,8 +60,10 @@ def _policy_text(d: Mapping[str, Any]) -> str:
 class Estimate:
     """One estimator's value with its interval [low, high].
 
-    For clipped IPS, the clipped-away part of the value lies in [bias_low, bias_bound], so the
-    target's value lies in [low + bias_low, high + bias_bound]; both are None for the others.
+    For clipped IPS, [low, high] is the interval of the clipped value; the clipped-away part
+    lies in [bias_low, bias_bound] (from a confidence bound on the kept mass), and the target's
+    value lies in the outer band [outer_low, outer_high] at the report's level (Bottou et al.
+    2013, docs/estimators.md). The four are None for the other estimators.
     """
 
     value: float | None
@@ -69,12 +71,15 @@ class Estimate:
     high: float | None
     bias_low: float | None = None
     bias_bound: float | None = None
+    outer_low: float | None = None
+    outer_high: float | None = None
 
     @classmethod
     def from_dict(cls, entry: Mapping[str, float | None]) -> Estimate:
         """An entry of the JSON's ``estimates`` (or ``difference``) object as an ``Estimate``."""
         return cls(entry["value"], entry["low"], entry["high"], entry.get("bias_low"),
-                   entry.get("bias_bound"))  # fmt: skip
+                   entry.get("bias_bound"), entry.get("outer_low"),
+                   entry.get("outer_high"))  # fmt: skip
 
 
 ESTIMATE_COLUMNS = tuple(f.name for f in fields(Estimate))
@@ -162,9 +167,11 @@ class EstimateReport:
                    f"{_policy_text(self.baseline)}), {self.n} verified records, "
                    f"{s['level']:.0%} {s['interval']} intervals")  # fmt: skip
         diffs = self.differences
-        rows = [(name, e.value, e.low, e.high, e.bias_bound, diffs[name].value, diffs[name].low,
-                 diffs[name].high) for name, e in self.results.items()]  # fmt: skip
-        head = ("estimator", "value", "low", "high", "bias bound", "diff", "diff low", "diff high")
+        rows = [(name, e.value, e.low, e.high, e.outer_low, e.outer_high, diffs[name].value,
+                 diffs[name].low, diffs[name].high)
+                for name, e in self.results.items()]  # fmt: skip
+        head = ("estimator", "value", "low", "high", "outer low", "outer high", "diff",
+                "diff low", "diff high")  # fmt: skip
         return html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
 
     def _tables(self) -> list[Any]:
@@ -176,12 +183,13 @@ class EstimateReport:
                   f"{_policy_text(self.baseline)}), {self.n} verified records, {level:.0%} "
                   f"{self.settings['interval']} intervals", title_justify="left",
                   box=SIMPLE)  # fmt: skip
-        for col in ("estimator", "value", "interval", "bias", "diff", "interval"):
+        for col in ("estimator", "value", "interval", "outer band", "diff", "interval"):
             t.add_column(col, justify="left" if col == "estimator" else "right", no_wrap=True)
         for name, e in self.estimates.items():
             d = self.difference[name]
-            bias = _fmt(e.get("bias_bound")) if name == "clipped" else ""
-            t.add_row(name, _fmt(e["value"]), _span(e), bias, _fmt(d["value"]), _span(d))
+            outer = _span({"low": e.get("outer_low"), "high": e.get("outer_high")}) \
+                if name == "clipped" else ""  # fmt: skip
+            t.add_row(name, _fmt(e["value"]), _span(e), outer, _fmt(d["value"]), _span(d))
         g = Table(title="diagnostics", title_justify="left", box=SIMPLE)
         g.add_column("measure")
         g.add_column("value", justify="right")
