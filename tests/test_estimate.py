@@ -202,6 +202,18 @@ def test_support_deficit_is_reported_not_silently_averaged(greedy):
     assert "cannot answer" in str(report)
 
 
+def test_support_deficit_warning_says_what_it_does_to_each_estimator(greedy):
+    """Deficit 0.25, rewards in [0, 1]: IPS and clipped IPS count the unseen share as 0 (at most
+    0.25 too low); SNIPS and DR fill it, so they can be off either way by up to 0.25."""
+    report = estimate(greedy, reward="checkout", overrides={"epsilon": 0.3})
+    [warning] = [w for w in report.warnings if w.startswith("support deficit")]
+    assert "ips and clipped count that share as reward 0 (biased toward 0 by up to 0.25)" in (
+        warning
+    )
+    assert ("snips gives it the seen actions' mean reward and dr its reward model's "
+            "predictions (biased up or down by up to 0.25)") in warning  # fmt: skip
+
+
 @pytest.fixture(scope="module")
 def delays(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """Reminder delays: log-normal around 90 minutes (spread 0.6)."""
@@ -236,6 +248,9 @@ def test_continuous_support_deficit_is_found_by_sampling_the_target(tmp_path):
     report = estimate(path, reward="checkout", overrides={"window": 120.0})
     assert 0.4 < report.diagnostics["support_deficit"] < 0.6  # binomial(400, 0.5) / 400
     assert not report.ok
+    [warning] = [w for w in report.warnings if w.startswith("support deficit")]
+    assert "snips gives it the seen actions' mean reward (biased up or down" in warning
+    assert "dr its" not in warning  # no dr estimate for continuous actions
     assert np.allclose(report.weights, 0.5)  # density 1/120 over 1/60 at every logged delay
 
 

@@ -160,6 +160,35 @@ def test_support_deficit_is_the_target_mass_where_logging_has_none():
     assert [0.4, 0.0] == pytest.approx(deficit.tolist())
 
 
+@pytest.mark.parametrize(
+    ("means", "ips_mean", "snips_mean", "truth"),
+    [((0.6, 0.8, 0.1), 0.28, 0.7, 0.34), ((0.2, 0.3, 0.9), 0.1, 0.25, 0.64)],
+)
+def test_a_support_deficit_pulls_ips_toward_0_and_snips_either_way(
+    means, ips_mean, snips_mean, truth
+):
+    """Logging (0.5, 0.5, 0) never shows the third action; the target (0.2, 0.2, 0.6) gives it
+    0.6. IPS tends to the seen part pi . r over the seen actions (truth minus 0.6 x the unseen
+    mean: always below a truth with rewards >= 0); SNIPS to the seen part over 0.4, the seen
+    actions' mean, above the truth when the unseen action is worse and below when it is
+    better (all worked by hand). 200 seeded runs of 500 records."""
+    mu, pi = np.array([0.5, 0.5, 0.0]), np.array([0.2, 0.2, 0.6])
+    ips, snips = [], []
+    for rep in range(200):
+        rng = np.random.default_rng(rep)
+        a = rng.choice(3, size=500, p=mu)
+        r = (rng.random(500) < np.take(means, a)).astype(float)
+        out = est.summarize(_moments(pi[a] / mu[a], r), reward_range=(0.0, 1.0),
+                            names=("ips", "snips"))  # fmt: skip
+        ips.append(out["ips"]["value"])
+        snips.append(out["snips"]["value"])
+    assert ips_mean == pytest.approx(np.mean(ips), abs=0.01)
+    assert snips_mean == pytest.approx(np.mean(snips), abs=0.01)
+    assert np.mean(ips) < truth
+    assert (np.mean(snips) > truth) == (means[2] < snips_mean)
+    assert abs(np.mean(snips) - truth) <= 0.6 * (1.0 - 0.0)  # the warning's bound
+
+
 def test_bernstein_halfwidth_is_maurer_pontil_theorem_4_two_sided():
     """Maurer & Pontil (2009) Theorem 4 with ln(2/delta) -> ln(4/delta) for two sides:
     sqrt(2 V ln(4/delta) / n) + 7 ln(4/delta) / (3 (n - 1)) for values in [0, 1]; the range

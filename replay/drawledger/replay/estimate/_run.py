@@ -188,7 +188,22 @@ def _excluded_warnings(p: Pass) -> list[str]:
     return [f"{p.total - p.n} of {p.total} decisions were excluded ({parts})"]
 
 
-def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool) -> list[str]:
+def _deficit_warning(deficit: float, reward_range: tuple[float, float], dr: bool) -> str:
+    """What a support deficit does to each estimator (docs/estimators.md): IPS and clipped IPS
+    count the unseen share as reward 0; SNIPS and DR fill it, so their error has either sign."""
+    lo, hi = reward_range
+    toward = deficit * max(abs(lo), abs(hi))
+    either = deficit * (hi - lo)
+    fill = ("snips gives it the seen actions' mean reward and dr its reward model's "
+            "predictions" if dr else "snips gives it the seen actions' mean reward")  # fmt: skip
+    return (f"support deficit {deficit:.3g}: the target puts that share of its probability on "
+            "actions the logging policy could not take; the data cannot answer this question. "
+            f"ips and clipped count that share as reward 0 (biased toward 0 by up to "
+            f"{toward:.3g}); {fill} (biased up or down by up to {either:.3g})")  # fmt: skip
+
+
+def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool,
+              reward_range: tuple[float, float]) -> list[str]:  # fmt: skip
     out = []
     d = summary["diagnostics"]
     deficit = d["support_deficit"]
@@ -196,9 +211,7 @@ def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool) -> list[
         out.append("the support deficit could not be computed (Monte Carlo propensities or a "
                    "callable target on continuous actions)")  # fmt: skip
     elif deficit > 0.0:
-        out.append(f"support deficit {deficit:.3g}: the target puts that share of its "
-                   "probability on actions the logging policy could not take; the data cannot "
-                   "answer this question (the estimates leave that part out)")  # fmt: skip
+        out.append(_deficit_warning(deficit, reward_range, dr))
     ess, n = d["ess"], summary["n"]
     if ess < MIN_ESS or ess < MIN_ESS_SHARE * n:
         out.append(f"effective sample size {ess:.1f} of {n} records is small: a few heavy "
@@ -294,7 +307,7 @@ def estimate(
     bounds = (p.bounds[0], p.bounds[-1])
     has_dr = p.dr[0] and p.dr[-1]
     summary = _summary(p.pairs[0], has_dr, bounds, s, p.weights)
-    warnings = _excluded_warnings(p) + _warnings(summary, p.methods[0], has_dr)
+    warnings = _excluded_warnings(p) + _warnings(summary, p.methods[0], has_dr, s.reward_range)
     describe = {**_describe(spec), "stream": stream_name, "functions": p.functions,
                 "reward": reward, "propensities": dict(p.methods[0])}  # fmt: skip
     assert p.weights is not None
@@ -359,7 +372,7 @@ def sweep(
         has_dr = p.dr[j] and p.dr[-1]
         summary = _summary(pair, has_dr, (p.bounds[j], p.bounds[-1]), s)
         base_estimates = summary["baseline"]
-        for w in _warnings(summary, p.methods[j], has_dr):
+        for w in _warnings(summary, p.methods[j], has_dr, s.reward_range):
             warnings.append(f"{param}={value!r}: {w}")
         ok = ok and not _problem(summary)
         points.append({"value": value, "estimates": summary["estimates"],
