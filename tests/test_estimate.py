@@ -327,6 +327,10 @@ def small(tmp_path_factory: pytest.TempPathFactory) -> Path:
         ({"level": 1.0}, ReplayError, "confidence level"),
         ({"reward_range": (1.0, 0.0)}, ReplayError, "low < high"),
         ({"reward_range": (0.0, 0.5)}, ReplayError, "outside reward_range"),
+        ({"reward_range": "0,1"}, ReplayError, "a pair (low, high) of numbers"),
+        ({"reward_range": (0.0, "1")}, ReplayError, "a pair (low, high) of numbers"),
+        ({"reward_range": (0.0, 0.5, 1.0)}, ReplayError, "a pair (low, high) of numbers"),
+        ({"reward_range": (0.0, math.inf)}, ReplayError, "low < high"),
         ({"by": "ctx.aisle"}, ReplayError, "neither a column"),
         ({"by": "ctx.scores"}, ReplayError, "not a single value"),
         ({"target": "estimate_shop"}, ReplayError, "not 'module:function'"),
@@ -340,6 +344,50 @@ def test_bad_questions_raise_clear_errors(small, kwargs, error, message):
     args: dict[str, Any] = {"reward": "checkout", **kwargs}
     with pytest.raises(error, match=re.escape(message)):
         estimate(small, **args)
+
+
+def test_a_given_reward_range_clips_every_interval_to_it(small):
+    """60 records at temperature 0.3: the empirical Bernstein bound (Maurer & Pontil 2009,
+    Theorem 4) of SNIPS reaches past 1 for rewards in [0, 1]. With reward_range=(0, 1) fixed in
+    advance every interval lies in [0, 1] (a difference in [-1, 1]), the range the value of a
+    policy with such rewards can take."""
+    kw: dict[str, Any] = {"reward": "checkout", "overrides": {"temperature": 0.3},
+                          "interval": "bernstein"}  # fmt: skip
+    assert 1.0 < estimate(small, **kw).estimates["snips"]["high"]
+    report = estimate(small, reward_range=(0.0, 1.0), **kw)
+    for name, e in report.estimates.items():
+        for key in ("low", "high", "outer_low", "outer_high"):
+            if e.get(key) is not None:
+                assert 0.0 <= e[key] <= 1.0, (name, key)
+    for name, d in report.difference.items():
+        assert -1.0 <= d["low"] <= d["high"] <= 1.0, name
+    assert "given" == report.settings["reward_range_source"]
+    clt = estimate(small, reward="checkout", overrides={"temperature": 0.3}, reward_range=(0, 1))
+    assert all(0.0 <= e["low"] <= e["high"] <= 1.0 for e in clt.estimates.values())
+
+
+def test_bernstein_without_a_given_range_says_it_has_no_guarantee(small):
+    """The observed range is read off the data, so the Bernstein bound's finite-sample
+    guarantee (Maurer & Pontil 2009, which needs a range fixed in advance) does not hold:
+    the table's title, a warning and the JSON settings say so; a given range lifts it."""
+    kw: dict[str, Any] = {"reward": "checkout", "overrides": {"temperature": 0.5},
+                          "interval": "bernstein"}  # fmt: skip
+    observed = estimate(small, **kw)
+    assert "observed" == observed.settings["reward_range_source"]
+    assert any("no finite-sample guarantee" in w for w in observed.warnings)
+    assert "(observed reward range: no finite-sample guarantee)" in str(observed)
+    given = estimate(small, reward_range=(0.0, 1.0), **kw)
+    assert not any("finite-sample" in w for w in given.warnings)
+    assert "(rewards in the given range [0, 1])" in str(given)
+    curve = sweep(
+        small,
+        param="temperature",
+        values=[0.5, 0.7],
+        **{k: v for k, v in kw.items() if k != "overrides"},
+    )
+    assert any("no finite-sample guarantee" in w for w in curve.warnings)
+    assert "observed" == curve.settings["reward_range_source"]
+    assert given.ok == observed.ok  # a note, not a refusal
 
 
 def test_a_callable_returning_no_probability_is_refused(small, monkeypatch):

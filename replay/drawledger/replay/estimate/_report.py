@@ -48,6 +48,18 @@ def _span(e: Mapping[str, float | None]) -> str:
     return f"[{_fmt(e['low'])}, {_fmt(e['high'])}]"
 
 
+def _intervals(settings: Mapping[str, Any]) -> str:
+    """The intervals' label ("95% clt intervals"). A Bernstein interval's guarantee needs a
+    reward range fixed in advance (Maurer & Pontil 2009): the label says which range it used."""
+    text = f"{settings['level']:.0%} {settings['interval']} intervals"
+    if settings["interval"] != "bernstein":
+        return text
+    if settings.get("reward_range_source") == "given":
+        lo, hi = settings["reward_range"]
+        return f"{text} (rewards in the given range [{lo:g}, {hi:g}])"
+    return f"{text} (observed reward range: no finite-sample guarantee)"
+
+
 def _policy_text(d: Mapping[str, Any]) -> str:
     if "callable" in d:
         return str(d["callable"])
@@ -165,7 +177,7 @@ class EstimateReport:
         s = self.settings
         caption = (f"{_policy_text(self.target)} on {self.target.get('stream')} (diff: minus "
                    f"{_policy_text(self.baseline)}), {self.n} verified records, "
-                   f"{s['level']:.0%} {s['interval']} intervals")  # fmt: skip
+                   f"{_intervals(s)}")  # fmt: skip
         diffs = self.differences
         rows = [(name, e.value, e.low, e.high, e.outer_low, e.outer_high, diffs[name].value,
                  diffs[name].low, diffs[name].high)
@@ -178,11 +190,9 @@ class EstimateReport:
         from rich.box import SIMPLE
         from rich.table import Table
 
-        level = self.settings["level"]
         t = Table(title=f"{_policy_text(self.target)} (diff: minus "
-                  f"{_policy_text(self.baseline)}), {self.n} verified records, {level:.0%} "
-                  f"{self.settings['interval']} intervals", title_justify="left",
-                  box=SIMPLE)  # fmt: skip
+                  f"{_policy_text(self.baseline)}), {self.n} verified records, "
+                  f"{_intervals(self.settings)}", title_justify="left", box=SIMPLE)  # fmt: skip
         for col in ("estimator", "value", "interval", "outer band", "diff", "interval"):
             t.add_column(col, justify="left" if col == "estimator" else "right", no_wrap=True)
         for name, e in self.estimates.items():
@@ -301,7 +311,7 @@ class SweepReport:
         """Every point and estimator as a row of an HTML table, then the warnings (notebooks)."""
         s = self.settings
         caption = (f"{self.param} sweep on {s.get('stream')}: {self.n} verified records, "
-                   f"{s['level']:.0%} {s['interval']} intervals")  # fmt: skip
+                   f"{_intervals(s)}")  # fmt: skip
         rows = [(p["value"], name, e["value"], e["low"], e["high"], p["diagnostics"]["ess"])
                 for p in self.points for name, e in p["estimates"].items()]  # fmt: skip
         head = (self.param, "estimator", "value", "low", "high", "ess")
@@ -317,8 +327,7 @@ class SweepReport:
         from rich.table import Table
 
         t = Table(title=f"{self.param} sweep: {self.n} verified records, "
-                  f"{self.settings['level']:.0%} {self.settings['interval']} intervals",
-                  title_justify="left", box=SIMPLE)  # fmt: skip
+                  f"{_intervals(self.settings)}", title_justify="left", box=SIMPLE)  # fmt: skip
         shown = [n for n in ("snips", "dr") if self.points and n in self.points[0]["estimates"]]
         t.add_column(self.param, justify="right")
         for name in shown:

@@ -7,6 +7,7 @@ import os
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
+from numbers import Real
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -71,6 +72,11 @@ def _check_options(
     if not isinstance(level, float) or not 0.0 < level < 1.0:
         raise ReplayError(f"the confidence level must lie in (0, 1), got {level!r}")
     if reward_range is not None:
+        if isinstance(reward_range, (str, bytes)) or not isinstance(reward_range, Sequence) \
+                or len(reward_range) != 2 or not all(isinstance(x, Real) and not isinstance(
+                    x, bool) for x in reward_range):  # fmt: skip
+            raise ReplayError(f"reward_range must be a pair (low, high) of numbers, "
+                              f"got {reward_range!r}")  # fmt: skip
         lo, hi = reward_range
         if not (math.isfinite(lo) and math.isfinite(hi) and lo < hi):
             raise ReplayError(
@@ -146,11 +152,23 @@ class _Settings:
     bootstrap: int
     seed: int
     reward_range: tuple[float, float]
+    range_given: bool  # fixed in advance (reward_range=), not the observed rewards
 
     def to_dict(self) -> dict[str, Any]:
         return {"clip": self.cap, "interval": self.interval, "level": self.level,
                 "bootstrap": self.bootstrap, "seed": self.seed,
-                "reward_range": list(self.reward_range)}  # fmt: skip
+                "reward_range": list(self.reward_range),
+                "reward_range_source": "given" if self.range_given else "observed"}  # fmt: skip
+
+    def notes(self) -> list[str]:
+        """The Bernstein bound's guarantee needs a reward range fixed in advance (Maurer &
+        Pontil 2009): without one, the interval says it has none."""
+        if self.interval != "bernstein" or self.range_given:
+            return []
+        lo, hi = self.reward_range
+        return [f"the bernstein intervals use the observed reward range [{lo:g}, {hi:g}] "
+                "(widened to include 0), so they carry no finite-sample guarantee; give "
+                "reward_range (--reward-range LOW,HIGH) fixed in advance for one"]  # fmt: skip
 
 
 def _summary(g: Group, has_dr: bool, bounds: tuple[float, float], s: _Settings,
@@ -165,7 +183,7 @@ def _summary(g: Group, has_dr: bool, bounds: tuple[float, float], s: _Settings,
     spans = np.concatenate([est.column_spans(b, s.cap, s.reward_range) for b in bounds])
     common: dict[str, Any] = {"reward_range": s.reward_range, "level": s.level,
                               "interval": s.interval, "boot": boot, "spans": spans,
-                              "names": names}  # fmt: skip
+                              "names": names, "clip": s.range_given}  # fmt: skip
     return {
         "n": int(m.n),
         "estimates": est.summarize(m, offset=0, **common),
@@ -250,7 +268,8 @@ def _question(
                             kw["scheduler"], reward_range)  # fmt: skip
     kw["path"] = tuple(os.fspath(p) for p in kw["path"])
     kw["allow"] = tuple(kw["allow"])
-    return _Question(reward=reward, reward_range=reward_range, **kw), cap, b
+    given = None if reward_range is None else (float(reward_range[0]), float(reward_range[1]))
+    return _Question(reward=reward, reward_range=given, **kw), cap, b
 
 
 def estimate(
@@ -303,11 +322,12 @@ def estimate(
     for policy in (spec, baseline):  # refuse a bad callable before the long pass
         Target(policy, q.path, q.allow)
     p, stream_name = _pass(ledger, q, [spec, baseline], cap=cap, bootstrap=b, by=by, weights=True)
-    s = _Settings(cap, interval, level, b, seed, p.reward_range)
+    s = _Settings(cap, interval, level, b, seed, p.reward_range, reward_range is not None)
     bounds = (p.bounds[0], p.bounds[-1])
     has_dr = p.dr[0] and p.dr[-1]
     summary = _summary(p.pairs[0], has_dr, bounds, s, p.weights)
-    warnings = _excluded_warnings(p) + _warnings(summary, p.methods[0], has_dr, s.reward_range)
+    warnings = [*_excluded_warnings(p), *_warnings(summary, p.methods[0], has_dr, s.reward_range),
+                *s.notes()]  # fmt: skip
     describe = {**_describe(spec), "stream": stream_name, "functions": p.functions,
                 "reward": reward, "propensities": dict(p.methods[0])}  # fmt: skip
     assert p.weights is not None
@@ -365,7 +385,7 @@ def sweep(
     policies.append(baseline)
     Target(baseline, q.path, q.allow)
     p, stream_name = _pass(ledger, q, policies, cap=cap, bootstrap=b, by=None, weights=False)
-    s = _Settings(cap, interval, level, b, seed, p.reward_range)
+    s = _Settings(cap, interval, level, b, seed, p.reward_range, reward_range is not None)
     points, warnings, ok = [], [], True
     base_estimates: dict[str, Any] = {}
     for j, (value, pair) in enumerate(zip(grid, p.pairs, strict=True)):
@@ -383,5 +403,5 @@ def sweep(
         param=param, values=grid, points=points,
         baseline={**_describe(baseline), "estimates": base_estimates},
         settings={**s.to_dict(), "overrides": fixed, "stream": stream_name, "reward": reward},
-        warnings=_excluded_warnings(p) + warnings, n=p.n, ok=ok,
+        warnings=_excluded_warnings(p) + warnings + s.notes(), n=p.n, ok=ok,
     )  # fmt: skip
