@@ -19,7 +19,7 @@ import scipy.stats
 
 import drawledger as dl
 from drawledger.exceptions import MissingFunctionError, ReplayError
-from drawledger.replay import EstimateReport, estimate, sweep, verify
+from drawledger.replay import EstimateReport, WhatIf, estimate, sweep, verify, write_report
 
 N_CARDS = 1500
 DOCS = Path(__file__).parent.parent / "docs" / "estimators.md"
@@ -239,6 +239,31 @@ def test_continuous_actions_use_density_ratios(delays):
     )[0]  # fmt: skip
     e = report.estimates["snips"]
     assert e["low"] <= truth <= e["high"]
+
+
+def test_uneven_weights_are_not_ok_in_estimate_sweep_and_the_report_badge(delays, tmp_path):
+    """The delays were logged around 90 minutes. At 35 the effective sample size is 9.9% of
+    the 1500 records, at 45 one weight carries 1.7% of the sum of the weights (both passed the
+    earlier rule: ESS >= 100 and >= 1% of n); at 60 neither rule fires. One rule decides the
+    warning, ``ok`` (the exit code) and the report's badge."""
+    curve = sweep(delays, reward="checkout", param="nominal_minutes", values=[35.0, 45.0, 60.0])
+    assert not curve.ok
+    heavy = [w for w in curve.warnings if "heavy weights" in w]
+    assert 2 == len(heavy)
+    assert heavy[0].startswith("nominal_minutes=35.0: effective sample size 148.6 is 9.9% of")
+    assert heavy[1].startswith("nominal_minutes=45.0: the largest weight carries 1.7% of the ")
+    d35, d45, d60 = (p["diagnostics"] for p in curve.points)
+    assert 100 <= d35["ess"] < 0.1 * 1500 <= d45["ess"]
+    assert d45["max_weight_share"] > 0.01 >= d60["max_weight_share"]
+    single = estimate(delays, reward="checkout", overrides={"nominal_minutes": 45.0})
+    assert not single.ok
+    assert any("the largest weight carries" in w for w in single.warnings)
+    fine = estimate(delays, reward="checkout", overrides={"nominal_minutes": 60.0})
+    assert fine.ok
+    whatifs = [WhatIf("delay", curve), WhatIf("at 60", fine)]
+    page = write_report(delays, tmp_path / "r.html", whatifs=whatifs)
+    text = page.path.read_text(encoding="utf-8")
+    assert 1 == text.count("read with care") and 1 == text.count("diagnostics ok")
 
 
 def test_continuous_support_deficit_is_found_by_sampling_the_target(tmp_path):

@@ -212,8 +212,8 @@ def _estimate_options(p: argparse.ArgumentParser) -> None:
         "decision function with --set parameters, or a --target callable) from the verified\n"
         "records: IPS, SNIPS, clipped IPS and doubly robust, each with an interval, the paired\n"
         "difference to a baseline (default: the logging policy), and overlap diagnostics.\n"
-        "Exit 0 when the data can answer, 1 when the target has a support deficit or a small\n"
-        "effective sample size (docs/estimators.md)."
+        "Exit 0 when the data can answer, 1 when the target has a support deficit or uneven\n"
+        "weights: a small effective sample size or one dominant weight (docs/estimators.md)."
     )
     p.add_argument("--target", metavar="MODULE:FUNCTION",
                    help="target policy as a callable f(inputs, action) -> probability, "

@@ -37,6 +37,9 @@ from drawledger.exceptions import ReplayError
 __all__ = [
     "DR",
     "KR",
+    "MAX_WEIGHT_SHARE",
+    "MIN_ESS",
+    "MIN_ESS_SHARE",
     "POLICY_COLUMNS",
     "WIDTH",
     "WR",
@@ -53,6 +56,8 @@ __all__ = [
     "delta_variance",
     "estimands",
     "kish_ess",
+    "max_weight_share",
+    "overlap_problems",
     "percentile_interval",
     "poisson_counts",
     "policy_columns",
@@ -374,6 +379,38 @@ def column_spans(weight_bound: float, cap: float, reward_range: tuple[float, flo
 
 
 # -- diagnostics ------------------------------------------------------------------------------
+# When the weights are too uneven to read an estimate as is (docs/estimators.md): thresholds
+# are common practice, no published value. Kish's ESS (Kish 1965) below MIN_ESS records or
+# below MIN_ESS_SHARE of the records; or the largest weight above MAX_WEIGHT_SHARE of the sum
+# of the weights, the diagnostic max w / sum w of Chatterjee & Diaconis (2018, "The sample
+# size required in importance sampling", Ann. Appl. Probab. 28; recalled from memory).
+MIN_ESS = 100.0
+MIN_ESS_SHARE = 0.1
+MAX_WEIGHT_SHARE = 0.01
+
+
+def max_weight_share(m: Moments, column: int = W) -> float | None:
+    """The largest weight's share of the sum of the weights (None when they sum to 0)."""
+    total = float(m.mean[column]) * m.n
+    return float(m.high[column]) / total if total > 0.0 else None
+
+
+def overlap_problems(ess: float, n: int, max_share: float | None) -> list[str]:
+    """Why the weights are too uneven for the estimate to be read as is (empty: they are not).
+
+    The one rule of estimate, sweep and the report's badges."""
+    out = []
+    if ess < MIN_ESS:
+        out.append(f"effective sample size {ess:.1f} of {n} records is below {MIN_ESS:g}")
+    elif ess < MIN_ESS_SHARE * n:
+        out.append(f"effective sample size {ess:.1f} is {ess / n:.1%} of the {n} records "
+                   f"(below {MIN_ESS_SHARE:.0%})")  # fmt: skip
+    if max_share is not None and max_share > MAX_WEIGHT_SHARE:
+        out.append(f"the largest weight carries {max_share:.1%} of the sum of the weights "
+                   f"(above {MAX_WEIGHT_SHARE:.0%})")  # fmt: skip
+    return out
+
+
 def kish_ess(m: Moments, column: int = W) -> float:
     """Kish's effective sample size (sum w)^2 / sum w^2, from the moments of the weights."""
     scale = float(m.high[column])  # in units of the largest weight: no underflow when squared

@@ -29,13 +29,6 @@ DEFAULT_CAP = 10.0
 DEFAULT_BOOTSTRAP = 1000
 
 
-# Warn below these effective sample sizes (common practice, no published threshold).
-MIN_ESS = 100.0
-
-
-MIN_ESS_SHARE = 0.01
-
-
 DR_NOTE = ("dr needs the policy's full action distribution (continuous actions, or more "
            "branches than the enumeration budget)")  # fmt: skip
 
@@ -206,6 +199,8 @@ class EstimateReport:
         diag = self.diagnostics
         g.add_row("effective sample size (Kish)", f"{diag['ess']:.1f}")
         g.add_row("max weight", f"{diag['max_weight']:.4g}")
+        if diag.get("max_weight_share") is not None:
+            g.add_row("max weight / sum of weights", f"{diag['max_weight_share']:.2%}")
         for q, v in diag["weight_quantiles"].items():
             g.add_row(f"weight quantile {q}", f"{v:.4g}")
         g.add_row("support deficit", _fmt(diag["support_deficit"]))

@@ -23,8 +23,6 @@ from drawledger.replay.estimate._report import (
     DR_NOTE,
     ESTIMATORS,
     INTERVALS,
-    MIN_ESS,
-    MIN_ESS_SHARE,
     EstimateReport,
     SweepReport,
 )
@@ -192,6 +190,7 @@ def _summary(g: Group, has_dr: bool, bounds: tuple[float, float], s: _Settings,
         "diagnostics": {
             "ess": est.kish_ess(m, est.W),
             "max_weight": float(m.high[est.W]),
+            "max_weight_share": est.max_weight_share(m, est.W),
             "support_deficit": g.deficit / g.known if g.known else None,
             "weight_quantiles": {} if weights is None else est.weight_quantiles(weights),
             "zero_weight_share": g.zeros / m.n,
@@ -230,10 +229,10 @@ def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool,
                    "callable target on continuous actions)")  # fmt: skip
     elif deficit > 0.0:
         out.append(_deficit_warning(deficit, reward_range, dr))
-    ess, n = d["ess"], summary["n"]
-    if ess < MIN_ESS or ess < MIN_ESS_SHARE * n:
-        out.append(f"effective sample size {ess:.1f} of {n} records is small: a few heavy "
-                   "weights drive the estimate, so intervals may be too narrow")  # fmt: skip
+    uneven = est.overlap_problems(d["ess"], summary["n"], d["max_weight_share"])
+    if uneven:
+        out.append(f"{'; '.join(uneven)}: a few heavy weights drive the estimate, so its "
+                   "intervals may be too narrow")  # fmt: skip
     mc = methods.get(MONTE_CARLO, 0)
     if mc:
         out.append(f"{mc} target propensities were estimated by Monte Carlo (noisy weights)")
@@ -245,7 +244,7 @@ def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool,
 def _problem(summary: dict[str, Any]) -> bool:
     d = summary["diagnostics"]
     deficit = d["support_deficit"]
-    small = d["ess"] < MIN_ESS or d["ess"] < MIN_ESS_SHARE * summary["n"]
+    small = bool(est.overlap_problems(d["ess"], summary["n"], d["max_weight_share"]))
     return bool((deficit is not None and deficit > 0.0) or small)
 
 
@@ -256,7 +255,8 @@ def _segments(p: Pass, bounds: tuple[float, float], s: _Settings, by: str) -> di
         groups.append({"value": value, "n": summary["n"], "estimates": summary["estimates"],
                        "difference": summary["difference"],
                        "diagnostics": {k: summary["diagnostics"][k] for k in
-                                       ("ess", "max_weight", "support_deficit")}})  # fmt: skip
+                                       ("ess", "max_weight", "max_weight_share",
+                                        "support_deficit")}})  # fmt: skip
     return {"by": by, "groups": groups}
 
 
@@ -398,7 +398,8 @@ def sweep(
         points.append({"value": value, "estimates": summary["estimates"],
                        "difference": summary["difference"],
                        "diagnostics": {k: summary["diagnostics"][k] for k in
-                                       ("ess", "max_weight", "support_deficit")}})  # fmt: skip
+                                       ("ess", "max_weight", "max_weight_share",
+                                        "support_deficit")}})  # fmt: skip
     return SweepReport(
         param=param, values=grid, points=points,
         baseline={**_describe(baseline), "estimates": base_estimates},

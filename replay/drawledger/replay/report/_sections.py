@@ -270,6 +270,7 @@ def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> Estim
             ("records used", num(r.n)),
             ("effective sample size (Kish)", num(None if d["ess"] is None else round(d["ess"]))),
             ("largest weight", num(d["max_weight"])),
+            ("largest weight / sum of weights", num(d.get("max_weight_share"))),
             ("support deficit", num(d.get("support_deficit"))),
             ("logging policy mean (observed)", num(r.logging_value)),
         ],
