@@ -231,8 +231,8 @@ def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool,
         out.append(_deficit_warning(deficit, reward_range, dr))
     uneven = est.overlap_problems(d["ess"], summary["n"], d["max_weight_share"])
     if uneven:
-        out.append(f"{'; '.join(uneven)}: a few heavy weights drive the estimate, so its "
-                   "intervals may be too narrow")  # fmt: skip
+        out.append(f"{'; '.join(uneven)}: the estimate rests on few records or a few heavy "
+                   "weights, so its intervals may be too narrow")  # fmt: skip
     mc = methods.get(MONTE_CARLO, 0)
     if mc:
         out.append(f"{mc} target propensities were estimated by Monte Carlo (noisy weights)")
