@@ -19,7 +19,7 @@ import scipy.stats
 
 import drawledger as dl
 from drawledger.exceptions import MissingFunctionError, ReplayError
-from drawledger.replay import EstimateReport, estimate, sweep, verify
+from drawledger.replay import EstimateReport, WhatIf, estimate, sweep, verify, write_report
 
 N_CARDS = 1500
 DOCS = Path(__file__).parent.parent / "docs" / "estimators.md"
@@ -74,7 +74,8 @@ def test_intervals_cover_the_true_value_of_the_target(cards):
     truth = shop.true_card_value(N_CARDS, 3, shop.softmax_table(0.3))
     for name in ("ips", "snips", "clipped", "dr"):
         e = report.estimates[name]
-        assert e["low"] <= truth <= e["high"] + e.get("bias_bound", 0.0), name
+        low, high = e.get("outer_low", e["low"]), e.get("outer_high", e["high"])
+        assert low <= truth <= high, name
     gain = truth - shop.true_card_value(N_CARDS, 3, shop.softmax_table(0.7))
     d = report.difference["snips"]
     assert d["low"] <= gain <= d["high"]
@@ -86,7 +87,7 @@ def test_json_has_the_design_keys_and_is_serializable(cards):
     assert {"ips", "snips", "clipped", "dr"} == set(out["estimates"])
     for e in out["estimates"].values():
         assert {"value", "low", "high"} <= set(e)
-    assert "bias_bound" in out["estimates"]["clipped"]
+    assert {"bias_low", "bias_bound", "outer_low", "outer_high"} <= set(out["estimates"]["clipped"])
     assert {"ess", "max_weight", "support_deficit"} <= set(out["diagnostics"])
     assert {"temperature": 0.3} == out["target"]["overrides"]
     assert 0 == out["excluded"]["total"]
@@ -201,6 +202,18 @@ def test_support_deficit_is_reported_not_silently_averaged(greedy):
     assert "cannot answer" in str(report)
 
 
+def test_support_deficit_warning_says_what_it_does_to_each_estimator(greedy):
+    """Deficit 0.25, rewards in [0, 1]: IPS and clipped IPS count the unseen share as 0 (at most
+    0.25 too low); SNIPS and DR fill it, so they can be off either way by up to 0.25."""
+    report = estimate(greedy, reward="checkout", overrides={"epsilon": 0.3})
+    [warning] = [w for w in report.warnings if w.startswith("support deficit")]
+    assert "ips and clipped count that share as reward 0 (biased toward 0 by up to 0.25)" in (
+        warning
+    )
+    assert ("snips gives it the seen actions' mean reward and dr its reward model's "
+            "predictions (biased up or down by up to 0.25)") in warning  # fmt: skip
+
+
 @pytest.fixture(scope="module")
 def delays(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """Reminder delays: log-normal around 90 minutes (spread 0.6)."""
@@ -228,6 +241,31 @@ def test_continuous_actions_use_density_ratios(delays):
     assert e["low"] <= truth <= e["high"]
 
 
+def test_uneven_weights_are_not_ok_in_estimate_sweep_and_the_report_badge(delays, tmp_path):
+    """The delays were logged around 90 minutes. At 35 the effective sample size is 9.9% of
+    the 1500 records, at 45 one weight carries 1.7% of the sum of the weights (both passed the
+    earlier rule: ESS >= 100 and >= 1% of n); at 60 neither rule fires. One rule decides the
+    warning, ``ok`` (the exit code) and the report's badge."""
+    curve = sweep(delays, reward="checkout", param="nominal_minutes", values=[35.0, 45.0, 60.0])
+    assert not curve.ok
+    heavy = [w for w in curve.warnings if "heavy weights" in w]
+    assert 2 == len(heavy)
+    assert heavy[0].startswith("nominal_minutes=35.0: effective sample size 148.6 is 9.9% of")
+    assert heavy[1].startswith("nominal_minutes=45.0: the largest weight carries 1.7% of the ")
+    d35, d45, d60 = (p["diagnostics"] for p in curve.points)
+    assert 100 <= d35["ess"] < 0.1 * 1500 <= d45["ess"]
+    assert d45["max_weight_share"] > 0.01 >= d60["max_weight_share"]
+    single = estimate(delays, reward="checkout", overrides={"nominal_minutes": 45.0})
+    assert not single.ok
+    assert any("the largest weight carries" in w for w in single.warnings)
+    fine = estimate(delays, reward="checkout", overrides={"nominal_minutes": 60.0})
+    assert fine.ok
+    whatifs = [WhatIf("delay", curve), WhatIf("at 60", fine)]
+    page = write_report(delays, tmp_path / "r.html", whatifs=whatifs)
+    text = page.path.read_text(encoding="utf-8")
+    assert 1 == text.count("read with care") and 1 == text.count("diagnostics ok")
+
+
 def test_continuous_support_deficit_is_found_by_sampling_the_target(tmp_path):
     """Logging delays are uniform on (0, 60); a 120-minute window puts half its mass beyond."""
     path = _record(tmp_path / "window.db", shop.simulate_delays, 400, seed=9,
@@ -235,6 +273,9 @@ def test_continuous_support_deficit_is_found_by_sampling_the_target(tmp_path):
     report = estimate(path, reward="checkout", overrides={"window": 120.0})
     assert 0.4 < report.diagnostics["support_deficit"] < 0.6  # binomial(400, 0.5) / 400
     assert not report.ok
+    [warning] = [w for w in report.warnings if w.startswith("support deficit")]
+    assert "snips gives it the seen actions' mean reward (biased up or down" in warning
+    assert "dr its" not in warning  # no dr estimate for continuous actions
     assert np.allclose(report.weights, 0.5)  # density 1/120 over 1/60 at every logged delay
 
 
@@ -311,6 +352,10 @@ def small(tmp_path_factory: pytest.TempPathFactory) -> Path:
         ({"level": 1.0}, ReplayError, "confidence level"),
         ({"reward_range": (1.0, 0.0)}, ReplayError, "low < high"),
         ({"reward_range": (0.0, 0.5)}, ReplayError, "outside reward_range"),
+        ({"reward_range": "0,1"}, ReplayError, "a pair (low, high) of numbers"),
+        ({"reward_range": (0.0, "1")}, ReplayError, "a pair (low, high) of numbers"),
+        ({"reward_range": (0.0, 0.5, 1.0)}, ReplayError, "a pair (low, high) of numbers"),
+        ({"reward_range": (0.0, math.inf)}, ReplayError, "low < high"),
         ({"by": "ctx.aisle"}, ReplayError, "neither a column"),
         ({"by": "ctx.scores"}, ReplayError, "not a single value"),
         ({"target": "estimate_shop"}, ReplayError, "not 'module:function'"),
@@ -324,6 +369,50 @@ def test_bad_questions_raise_clear_errors(small, kwargs, error, message):
     args: dict[str, Any] = {"reward": "checkout", **kwargs}
     with pytest.raises(error, match=re.escape(message)):
         estimate(small, **args)
+
+
+def test_a_given_reward_range_clips_every_interval_to_it(small):
+    """60 records at temperature 0.3: the empirical Bernstein bound (Maurer & Pontil 2009,
+    Theorem 4) of SNIPS reaches past 1 for rewards in [0, 1]. With reward_range=(0, 1) fixed in
+    advance every interval lies in [0, 1] (a difference in [-1, 1]), the range the value of a
+    policy with such rewards can take."""
+    kw: dict[str, Any] = {"reward": "checkout", "overrides": {"temperature": 0.3},
+                          "interval": "bernstein"}  # fmt: skip
+    assert 1.0 < estimate(small, **kw).estimates["snips"]["high"]
+    report = estimate(small, reward_range=(0.0, 1.0), **kw)
+    for name, e in report.estimates.items():
+        for key in ("low", "high", "outer_low", "outer_high"):
+            if e.get(key) is not None:
+                assert 0.0 <= e[key] <= 1.0, (name, key)
+    for name, d in report.difference.items():
+        assert -1.0 <= d["low"] <= d["high"] <= 1.0, name
+    assert "given" == report.settings["reward_range_source"]
+    clt = estimate(small, reward="checkout", overrides={"temperature": 0.3}, reward_range=(0, 1))
+    assert all(0.0 <= e["low"] <= e["high"] <= 1.0 for e in clt.estimates.values())
+
+
+def test_bernstein_without_a_given_range_says_it_has_no_guarantee(small):
+    """The observed range is read off the data, so the Bernstein bound's finite-sample
+    guarantee (Maurer & Pontil 2009, which needs a range fixed in advance) does not hold:
+    the table's title, a warning and the JSON settings say so; a given range lifts it."""
+    kw: dict[str, Any] = {"reward": "checkout", "overrides": {"temperature": 0.5},
+                          "interval": "bernstein"}  # fmt: skip
+    observed = estimate(small, **kw)
+    assert "observed" == observed.settings["reward_range_source"]
+    assert any("no finite-sample guarantee" in w for w in observed.warnings)
+    assert "(observed reward range: no finite-sample guarantee)" in str(observed)
+    given = estimate(small, reward_range=(0.0, 1.0), **kw)
+    assert not any("finite-sample" in w for w in given.warnings)
+    assert "(rewards in the given range [0, 1])" in str(given)
+    curve = sweep(
+        small,
+        param="temperature",
+        values=[0.5, 0.7],
+        **{k: v for k, v in kw.items() if k != "overrides"},
+    )
+    assert any("no finite-sample guarantee" in w for w in curve.warnings)
+    assert "observed" == curve.settings["reward_range_source"]
+    assert given.ok == observed.ok  # a note, not a refusal
 
 
 def test_a_callable_returning_no_probability_is_refused(small, monkeypatch):

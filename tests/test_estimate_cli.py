@@ -2,15 +2,18 @@
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 from typing import Any
 
 import estimate_shop as shop
 import orjson
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import drawledger as dl
-from drawledger.cli import _assignments, _sweep_grid, main
+from drawledger.cli import _assignments, _reward_range, _sweep_grid, main
 
 SUPPORT = str(Path(__file__).parent / "support")
 
@@ -76,7 +79,7 @@ def test_sweep_writes_a_table_a_figure_and_json(cards, tmp_path, capsys):
         ["--baseline-target", "estimate_shop:best_card"],
         ["--set", "temperature=0.3", "--by", "ctx.segment"],
         ["--set", "temperature=0.3", "--interval", "bootstrap", "--bootstrap", "100"],
-        ["--set", "temperature=0.3", "--interval", "bernstein", "--reward-range", "0:1"],
+        ["--set", "temperature=0.3", "--interval", "bernstein", "--reward-range", "0,1"],
         ["--set", "temperature=0.3", "--clip", "1.5", "--level", "0.9", "--seed", "3"],
         ["--set", "temperature=0.3", "--missing-reward", "exclude", "--stream", "recipe-card"],
     ],
@@ -115,7 +118,9 @@ def test_what_if_options_reach_the_library(cards, tmp_path, capsys, extra):
         (["--sweep", "temperature=0.1:1:3", "--by", "unit"], "cannot be combined"),
         (["--set", "temperature=0.3", "--target", "estimate_shop:best_card"], "either --set"),
         (["--baseline-set", "temperature=1", "--baseline-target", "m:f"], "not both"),
-        (["--reward-range", "0-1"], "expected LOW:HIGH"),
+        (["--reward-range", "0-1"], "expected LOW,HIGH"),
+        (["--reward-range", "1,0"], "LOW < HIGH"),
+        (["--reward-range", "0,0.5"], "outside reward_range"),
         (["--missing-reward", "maybe"], "a number or 'exclude'"),
         (["--interval", "bootstrap", "--bootstrap", "-5"], "resamples >= 0"),
         (["--stream", "banner"], "no decisions of stream 'banner'"),
@@ -143,3 +148,41 @@ def test_set_values_are_json_when_they_parse_else_text():
 
 def test_sweep_grid_is_evenly_spaced_and_inclusive():
     assert ("temperature", [0.2, 0.4, 0.6, 0.8, 1.0]) == _sweep_grid("temperature=0.2:1.0:5")
+
+
+def test_reward_range_reads_low_comma_high_or_low_colon_high():
+    assert (0.0, 1.0) == _reward_range("0,1")
+    assert (0.0, 1.0) == _reward_range("0:1")
+    assert (-1.5, 2.0) == _reward_range("-1.5,2")
+
+
+@given(st.text(max_size=12))
+@settings(max_examples=200, deadline=None)
+def test_reward_range_text_is_two_ordered_numbers_or_one_line_error(text):
+    try:
+        lo, hi = _reward_range(text)
+    except ValueError as e:
+        assert str(e).startswith(f"--reward-range {text!r}: ")
+        assert 1 == len(str(e).splitlines())
+    else:
+        assert math.isfinite(lo) and math.isfinite(hi) and lo < hi
+
+
+def test_bernstein_note_and_given_range_reach_the_json(cards, tmp_path, capsys):
+    """Without --reward-range the Bernstein interval says it has no finite-sample guarantee
+    (Maurer & Pontil 2009 need a range fixed in advance), on the terminal and in the JSON."""
+    out_json = tmp_path / "b.json"
+    argv = ["--reward", "checkout", "--path", SUPPORT, "--set", "temperature=0.3",
+            "--interval", "bernstein", "--json", str(out_json)]  # fmt: skip
+    code, out, _ = _run(capsys, cards, *argv)
+    assert 0 == code
+    assert "no finite-sample guarantee" in out
+    data = orjson.loads(out_json.read_bytes())
+    assert "observed" == data["settings"]["reward_range_source"]
+    assert any("no finite-sample guarantee" in w for w in data["warnings"])
+    code, out, _ = _run(capsys, cards, *argv, "--reward-range", "0,1")
+    data = orjson.loads(out_json.read_bytes())
+    assert (0, "given") == (code, data["settings"]["reward_range_source"])
+    assert "no finite-sample guarantee" not in out
+    for e in data["estimates"].values():
+        assert 0.0 <= e["low"] <= e["high"] <= 1.0

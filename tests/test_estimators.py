@@ -64,44 +64,167 @@ def test_ips_clt_interval_matches_scipy_normal_interval():
 
 
 def test_clipping_zeroes_weights_at_or_above_the_cap_and_bounds_the_bias():
-    """Bottou et al. (2013), JMLR 14: weights >= R count as 0; the bias lies in [0, M (1 - W)].
+    """Bottou et al. (2013), JMLR 14, section 4: weights >= R count as 0; the clipped-away
+    value lies in [0, M (1 - W)], bounded with a lower confidence bound on W.
 
-    With R = 2 the kept weights are [0, 0, 0, 0.5]: W = 0.125, clipped estimate 0.5 / 4,
-    bias bound 1 * (1 - 0.125) (worked by hand).
+    With R = 2 the kept weights are six 0.5 and two 0: W = 0.375 and the clipped estimate is
+    0.5 * 5 / 8 (worked by hand). At level 0.95 the one-sided bound W_low at 0.975 is
+    W - z_{0.975} se, se = sqrt(0.75 * 0.25 * 0.5^2 / 8) (z from scipy.stats.norm), so the
+    bias bound is 1 - W_low; the band adds it to the clipped value's 97.5% interval.
     """
-    z = est.policy_columns(HAND_W, HAND_R, cap=2.0)
-    assert [0.0, 0.0, 0.0, 0.5] == z[:, est.K].tolist()
+    w = [0.5, 0.5, 0.5, 0.5, 0.5, 0.5, 3.0, 3.0]
+    r = [1.0, 1.0, 1.0, 1.0, 1.0, 0.0, 1.0, 0.0]
+    z = est.policy_columns(w, r, cap=2.0)
+    assert [0.5] * 6 + [0.0, 0.0] == z[:, est.K].tolist()
     out = est.summarize(est.Moments.of(z), reward_range=(0.0, 1.0), names=("clipped",))
-    assert 0.125 == out["clipped"]["value"]
-    assert 0.875 == out["clipped"]["bias_bound"]
-    assert 0.0 == out["clipped"]["bias_low"]
+    clipped = out["clipped"]
+    assert 2.5 / 8 == clipped["value"]
+    w_low = 0.375 - scipy.stats.norm.ppf(0.975) * math.sqrt(0.75 * 0.25 * 0.5**2 / 8)
+    assert 1.0 - w_low == pytest.approx(clipped["bias_bound"], rel=1e-12)
+    assert 0.0 == clipped["bias_low"]
+    inner = est.clt_interval(est.estimands()["clipped"], est.Moments.of(z), 0.975)
+    assert inner[0] == pytest.approx(clipped["outer_low"], rel=1e-12)
+    assert inner[1] + 1.0 - w_low == pytest.approx(clipped["outer_high"], rel=1e-12)
 
 
-def test_clipped_band_covers_the_truth_when_weights_are_heavy():
-    """The truth lies in [low, high + bias_bound] although IPS weights reach 80.
+# Clipped-away rewards at M = 1: logging mu = (0.6, 0.38, 0.02), target pi = (0.3, 0.4, 0.3),
+# Bernoulli rewards with means (0.02, 0.05, 1.0). The third action's weight 15 is clipped at
+# R = 10 and its mass 0.3 sits at the top of the reward range, so the truth
+# 0.006 + 0.02 + 0.3 = 0.326 (worked by hand) lies at the upper end of the bias interval: a
+# bias bound from the point estimate of W covered it in about 77% of runs at nominal 95%.
+_MU, _PI, _MEANS = np.array([0.6, 0.38, 0.02]), np.array([0.3, 0.4, 0.3]), [0.02, 0.05, 1.0]
+_TRUTH = 0.326
 
-    Logging mu = (0.9, 0.09, 0.01), target pi = (0.1, 0.1, 0.8), Bernoulli rewards with means
-    (0.2, 0.5, 0.9): the true value is 0.02 + 0.05 + 0.72 = 0.79 (worked by hand); with the cap
-    R = 10 the third action is clipped and its mass 0.8 goes to the bias bound.
-    """
-    mu, pi, means = np.array([0.9, 0.09, 0.01]), np.array([0.1, 0.1, 0.8]), [0.2, 0.5, 0.9]
-    truth = float(pi @ means)
+
+def _clipped_band_coverage(runs: int, n: int, interval: str = "clt") -> int:
+    """Seeded runs whose outer band of clipped IPS (95%) holds the true value."""
     covered = 0
-    for rep in range(200):
+    for rep in range(runs):
         rng = np.random.default_rng(rep)
-        a = rng.choice(3, size=400, p=mu)
-        r = (rng.random(400) < np.take(means, a)).astype(float)
-        out = est.summarize(_moments(pi[a] / mu[a], r, cap=10.0), reward_range=(0.0, 1.0),
-                            names=("clipped",))["clipped"]  # fmt: skip
-        covered += out["low"] <= truth <= out["high"] + out["bias_bound"]
-        assert 0.0 < out["bias_bound"] <= 1.0
-    assert covered >= 194  # at least 97% of 200 (the band is conservative)
+        a = rng.choice(3, size=n, p=_MU)
+        r = (rng.random(n) < np.take(_MEANS, a)).astype(float)
+        z = est.policy_columns(_PI[a] / _MU[a], r, cap=10.0)
+        kw: dict = {}
+        if interval == "bootstrap":
+            keys = rng.integers(0, 2**64, size=n, dtype=np.uint64)
+            kw["boot"] = _boot_means(z, keys, 400, rep)
+        elif interval == "bernstein":
+            kw["spans"] = est.column_spans(float((_PI / _MU).max()), 10.0, (0.0, 1.0))
+        out = est.summarize(est.Moments.of(z), reward_range=(0.0, 1.0), names=("clipped",),
+                            interval=interval, **kw)["clipped"]  # fmt: skip
+        covered += out["outer_low"] <= _TRUTH <= out["outer_high"]
+    return covered
+
+
+def _at_least_nominal(covered: int, runs: int, level: float = 0.95) -> bool:
+    """Coverage not significantly below ``level``: one-sided exact binomial test
+    (scipy.stats.binomtest) at alarm level 0.001 (common practice)."""
+    return scipy.stats.binomtest(covered, runs, level, alternative="less").pvalue > 0.001
+
+
+def test_clipped_outer_band_covers_the_truth_when_clipped_rewards_sit_at_the_maximum():
+    """100 seeded runs of 400 records: the band holds the truth at least at its level."""
+    covered = _clipped_band_coverage(100, 400)
+    assert _at_least_nominal(covered, 100), covered
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize(("interval", "runs"), [("clt", 2000), ("bootstrap", 1000),
+                                                ("bernstein", 1000)])  # fmt: skip
+def test_clipped_outer_band_coverage_is_at_least_nominal_over_many_runs(interval, runs):
+    covered = _clipped_band_coverage(runs, 400, interval)
+    assert _at_least_nominal(covered, runs), covered
+
+
+def test_clipped_outer_band_of_a_difference_covers_the_true_difference():
+    """Target pi minus a baseline that is clipped too: (0.2, 0.5, 0.3) over mu has weight 15
+    on the third action; its true value is 0.004 + 0.025 + 0.3 = 0.329 (by hand), so the true
+    difference is 0.326 - 0.329 = -0.003. Both kept masses are bounded (delta / 4 each)."""
+    base = np.array([0.2, 0.5, 0.3])
+    covered = 0
+    for rep in range(100):
+        rng = np.random.default_rng(rep)
+        a = rng.choice(3, size=400, p=_MU)
+        r = (rng.random(400) < np.take(_MEANS, a)).astype(float)
+        z = np.hstack([est.policy_columns(_PI[a] / _MU[a], r, cap=10.0),
+                       est.policy_columns(base[a] / _MU[a], r, cap=10.0)])  # fmt: skip
+        out = est.summarize(est.Moments.of(z), reward_range=(0.0, 1.0), names=("clipped",),
+                            baseline=est.WIDTH)["clipped"]  # fmt: skip
+        covered += out["outer_low"] <= -0.003 <= out["outer_high"]
+    assert _at_least_nominal(covered, 100), covered
+
+
+def test_overlap_rule_flags_ess_205_of_4000_with_a_largest_weight_of_150():
+    """The demo's reminder sweep at 30 minutes (4000 sessions): ESS 204.6, largest weight 150.6,
+    4.1% of the sum of the weights. Both rules fire; the thresholds are common practice."""
+    problems = est.overlap_problems(204.6, 4000, 150.6 / 3714.0)
+    assert 2 == len(problems)
+    assert "effective sample size 204.6 is 5.1% of the 4000 records (below 10%)" == problems[0]
+    assert "the largest weight carries 4.1% of the sum of the weights (above 1%)" == problems[1]
+
+
+def test_overlap_rule_thresholds_and_the_largest_weights_share():
+    assert [] == est.overlap_problems(400.0, 4000, 0.01)
+    assert ["effective sample size 399.0 is 10.0% of the 4000 records (below 10%)"] == (
+        est.overlap_problems(399.0, 4000, None)
+    )
+    assert ["effective sample size 99.0 of 99 records is below 100"] == (
+        est.overlap_problems(99.0, 99, 0.01)
+    )
+    m = _moments([1.0, 3.0, 0.0, 4.0], [0.0, 1.0, 1.0, 0.0])
+    assert 0.5 == est.max_weight_share(m)  # 4 / (1 + 3 + 0 + 4), by hand
+    assert est.max_weight_share(_moments([0.0, 0.0], [1.0, 0.0])) is None
 
 
 def test_support_deficit_is_the_target_mass_where_logging_has_none():
     """Logging (0.5, 0.5, 0) never takes the third action; target (0.3, 0.3, 0.4) gives it 0.4."""
     deficit = est.support_deficit([[0.3, 0.3, 0.4], [0.2, 0.8, 0.0]], [[0.5, 0.5, 0.0]] * 2)
     assert [0.4, 0.0] == pytest.approx(deficit.tolist())
+
+
+@pytest.mark.parametrize(
+    ("means", "ips_mean", "snips_mean", "truth"),
+    [((0.6, 0.8, 0.1), 0.28, 0.7, 0.34), ((0.2, 0.3, 0.9), 0.1, 0.25, 0.64)],
+)
+def test_a_support_deficit_pulls_ips_toward_0_and_snips_either_way(
+    means, ips_mean, snips_mean, truth
+):
+    """Logging (0.5, 0.5, 0) never shows the third action; the target (0.2, 0.2, 0.6) gives it
+    0.6. IPS tends to the seen part pi . r over the seen actions (truth minus 0.6 x the unseen
+    mean: always below a truth with rewards >= 0); SNIPS to the seen part over 0.4, the seen
+    actions' mean, above the truth when the unseen action is worse and below when it is
+    better (all worked by hand). 200 seeded runs of 500 records."""
+    mu, pi = np.array([0.5, 0.5, 0.0]), np.array([0.2, 0.2, 0.6])
+    ips, snips = [], []
+    for rep in range(200):
+        rng = np.random.default_rng(rep)
+        a = rng.choice(3, size=500, p=mu)
+        r = (rng.random(500) < np.take(means, a)).astype(float)
+        out = est.summarize(_moments(pi[a] / mu[a], r), reward_range=(0.0, 1.0),
+                            names=("ips", "snips"))  # fmt: skip
+        ips.append(out["ips"]["value"])
+        snips.append(out["snips"]["value"])
+    assert ips_mean == pytest.approx(np.mean(ips), abs=0.01)
+    assert snips_mean == pytest.approx(np.mean(snips), abs=0.01)
+    assert np.mean(ips) < truth
+    assert (np.mean(snips) > truth) == (means[2] < snips_mean)
+    assert abs(np.mean(snips) - truth) <= 0.6 * (1.0 - 0.0)  # the warning's bound
+
+
+def test_clipped_outer_band_covers_the_truth_despite_a_support_deficit():
+    """The unseen share is part of 1 - W: logging (0.5, 0.5, 0), target (0.2, 0.2, 0.6),
+    reward means (0.2, 0.3, 1.0), so the truth is 0.04 + 0.06 + 0.6 = 0.7 (by hand) while IPS
+    tends to 0.1. 100 seeded runs of 500 records."""
+    mu, pi, means = np.array([0.5, 0.5, 0.0]), np.array([0.2, 0.2, 0.6]), (0.2, 0.3, 1.0)
+    covered = 0
+    for rep in range(100):
+        rng = np.random.default_rng(rep)
+        a = rng.choice(3, size=500, p=mu)
+        r = (rng.random(500) < np.take(means, a)).astype(float)
+        out = est.summarize(_moments(pi[a] / mu[a], r), reward_range=(0.0, 1.0),
+                            names=("clipped",))["clipped"]  # fmt: skip
+        covered += out["outer_low"] <= 0.7 <= out["outer_high"]
+    assert _at_least_nominal(covered, 100), covered
 
 
 def test_bernstein_halfwidth_is_maurer_pontil_theorem_4_two_sided():

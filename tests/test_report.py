@@ -104,7 +104,7 @@ def test_report_shows_every_test_estimate_and_true_value(demo_run: Any, demo_htm
     for minutes, true in zip((30, 45, 60, 75, 90), demo_run.truth["delay"], strict=True):
         assert f"<td>{minutes}</td>" in demo_html
         assert f"{true:.4f}" in demo_html
-    assert "bias bound" in demo_html
+    assert "outer band" in demo_html
     assert "@media print" in demo_html and "@page" in demo_html
     assert "ethics" in demo_html and "personal data" in demo_html
 

@@ -97,7 +97,9 @@ def test_estimate_frame_has_one_row_per_estimator(reports):
     report = reports["estimate"]
     frame = report.to_frame()
     assert ["ips", "snips", "clipped", "dr"] == list(frame.index)
-    assert ["value", "low", "high", "bias_low", "bias_bound"] == list(frame.columns)
+    assert ["value", "low", "high", "bias_low", "bias_bound", "outer_low", "outer_high"] == list(
+        frame.columns
+    )
     assert report.estimates["snips"]["high"] == frame.loc["snips", "high"]
 
 

@@ -8,6 +8,7 @@ A command whose optional extra is not installed says which one, in one line, and
 from __future__ import annotations
 
 import argparse
+import math
 import sys
 from collections.abc import Callable, Sequence
 from typing import Any
@@ -137,6 +138,21 @@ def _sweep_grid(text: str) -> tuple[str, list[float]]:
     return key, [round(start + (stop - start) * i / (steps - 1), 12) for i in range(steps)]
 
 
+def _reward_range(text: str) -> tuple[float, float]:
+    """``LOW,HIGH`` (or ``LOW:HIGH``) as two finite numbers with LOW < HIGH."""
+    parts = text.replace(":", ",").split(",")
+    try:
+        if len(parts) != 2:
+            raise ValueError
+        lo, hi = float(parts[0]), float(parts[1])
+    except ValueError:
+        raise ValueError(f"--reward-range {text!r}: expected LOW,HIGH, for example "
+                         "0,1") from None  # fmt: skip
+    if not (math.isfinite(lo) and math.isfinite(hi) and lo < hi):
+        raise ValueError(f"--reward-range {text!r}: LOW and HIGH must be finite with LOW < HIGH")
+    return lo, hi
+
+
 def _estimate(args: argparse.Namespace) -> int:
     """Estimate a target policy; exit 1 when the data cannot answer (support deficit, tiny ESS)."""
     import os
@@ -157,16 +173,7 @@ def _estimate(args: argparse.Namespace) -> int:
     if overrides and args.target:
         raise ValueError("give either --set (changed parameters) or --target (a callable)")
     baseline = _assignments(args.baseline_set, "--baseline-set") or args.baseline_target
-    reward_range = None
-    if args.reward_range is not None:
-        lo, sep, hi = args.reward_range.partition(":")
-        try:
-            reward_range = (float(lo), float(hi))
-        except ValueError:
-            sep = ""
-        if not sep:
-            raise ValueError(f"--reward-range {args.reward_range!r}: expected LOW:HIGH, "
-                             "for example 0:1")  # fmt: skip
+    reward_range = None if args.reward_range is None else _reward_range(args.reward_range)
     missing: float | None = None
     if args.missing_reward != "exclude":
         try:
@@ -205,8 +212,8 @@ def _estimate_options(p: argparse.ArgumentParser) -> None:
         "decision function with --set parameters, or a --target callable) from the verified\n"
         "records: IPS, SNIPS, clipped IPS and doubly robust, each with an interval, the paired\n"
         "difference to a baseline (default: the logging policy), and overlap diagnostics.\n"
-        "Exit 0 when the data can answer, 1 when the target has a support deficit or a small\n"
-        "effective sample size (docs/estimators.md)."
+        "Exit 0 when the data can answer, 1 when the target has a support deficit or uneven\n"
+        "weights: a small effective sample size or one dominant weight (docs/estimators.md)."
     )
     p.add_argument("--target", metavar="MODULE:FUNCTION",
                    help="target policy as a callable f(inputs, action) -> probability, "
@@ -229,8 +236,10 @@ def _estimate_options(p: argparse.ArgumentParser) -> None:
                    help="bootstrap resamples with --interval bootstrap (default 1000)")  # fmt: skip
     p.add_argument("--level", type=float, default=0.95, help="confidence level (default 0.95)")
     p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap and sampled checks")
-    p.add_argument("--reward-range", metavar="LOW:HIGH",
-                   help="reward bounds (default: observed, widened to include 0)")  # fmt: skip
+    p.add_argument("--reward-range", metavar="LOW,HIGH",
+                   help="reward bounds fixed in advance: used by the bernstein bound, clip the "
+                   "intervals, refuse rewards outside (default: the observed range, widened "
+                   "to include 0; for a negative LOW write --reward-range=-1,1)")  # fmt: skip
     p.add_argument("--missing-reward", default="0", metavar="VALUE",
                    help="reward when the outcome is missing, or 'exclude' (default 0)")  # fmt: skip
     p.add_argument("--jobs", type=int, default=1, metavar="N",

@@ -117,7 +117,9 @@ class DemoResult:
         lines.append(f"  {'estimator':<10}{'estimate':>9}   {'95% interval':<18}  true value")
         missed = False
         for name, e in t.estimates.items():
-            extra = f"   bias bound {_f(e['bias_bound'])}" if "bias_bound" in e else ""
+            extra = ""
+            if "outer_low" in e:
+                extra = f"   outer band [{_f(e['outer_low'])}, {_f(e['outer_high'])}]"
             mark = _mark(e, truth)
             missed = missed or mark == " *"
             lines.append(

@@ -37,6 +37,9 @@ from drawledger.exceptions import ReplayError
 __all__ = [
     "DR",
     "KR",
+    "MAX_WEIGHT_SHARE",
+    "MIN_ESS",
+    "MIN_ESS_SHARE",
     "POLICY_COLUMNS",
     "WIDTH",
     "WR",
@@ -53,6 +56,8 @@ __all__ = [
     "delta_variance",
     "estimands",
     "kish_ess",
+    "max_weight_share",
+    "overlap_problems",
     "percentile_interval",
     "poisson_counts",
     "policy_columns",
@@ -374,6 +379,38 @@ def column_spans(weight_bound: float, cap: float, reward_range: tuple[float, flo
 
 
 # -- diagnostics ------------------------------------------------------------------------------
+# When the weights are too uneven to read an estimate as is (docs/estimators.md): thresholds
+# are common practice, no published value. Kish's ESS (Kish 1965) below MIN_ESS records or
+# below MIN_ESS_SHARE of the records; or the largest weight above MAX_WEIGHT_SHARE of the sum
+# of the weights, the diagnostic max w / sum w of Chatterjee & Diaconis (2018, "The sample
+# size required in importance sampling", Ann. Appl. Probab. 28; recalled from memory).
+MIN_ESS = 100.0
+MIN_ESS_SHARE = 0.1
+MAX_WEIGHT_SHARE = 0.01
+
+
+def max_weight_share(m: Moments, column: int = W) -> float | None:
+    """The largest weight's share of the sum of the weights (None when they sum to 0)."""
+    total = float(m.mean[column]) * m.n
+    return float(m.high[column]) / total if total > 0.0 else None
+
+
+def overlap_problems(ess: float, n: int, max_share: float | None) -> list[str]:
+    """Why the weights are too uneven for the estimate to be read as is (empty: they are not).
+
+    The one rule of estimate, sweep and the report's badges."""
+    out = []
+    if ess < MIN_ESS:
+        out.append(f"effective sample size {ess:.1f} of {n} records is below {MIN_ESS:g}")
+    elif ess < MIN_ESS_SHARE * n:
+        out.append(f"effective sample size {ess:.1f} is {ess / n:.1%} of the {n} records "
+                   f"(below {MIN_ESS_SHARE:.0%})")  # fmt: skip
+    if max_share is not None and max_share > MAX_WEIGHT_SHARE:
+        out.append(f"the largest weight carries {max_share:.1%} of the sum of the weights "
+                   f"(above {MAX_WEIGHT_SHARE:.0%})")  # fmt: skip
+    return out
+
+
 def kish_ess(m: Moments, column: int = W) -> float:
     """Kish's effective sample size (sum w)^2 / sum w^2, from the moments of the weights."""
     scale = float(m.high[column])  # in units of the largest weight: no underflow when squared
@@ -408,6 +445,38 @@ def _clean(x: float) -> float | None:
     return float(x) if math.isfinite(x) else None
 
 
+def _interval(
+    est: Estimand, m: Moments, interval: str, level: float, boot: Array | None,
+    spans: Sequence[float] | Array | None,
+) -> tuple[float, float]:  # fmt: skip
+    if interval == "clt":
+        return clt_interval(est, m, level)
+    if interval == "bootstrap":
+        if boot is None:
+            raise ReplayError("the bootstrap interval needs bootstrap resamples")
+        return percentile_interval(est, boot, level)
+    if interval == "bernstein":
+        if spans is None:
+            raise ReplayError("the Bernstein interval needs the ranges of the columns")
+        return bernstein_interval(est, m, spans, level)
+    raise ReplayError(f"unknown interval {interval!r}; use clt, bootstrap or bernstein")
+
+
+def _within(low: float, high: float, box: tuple[float, float]) -> tuple[float, float]:
+    """[low, high] intersected with ``box`` (left alone when they do not meet: the interval
+    then says the estimate is off, which clipping would hide)."""
+    lo, hi = max(low, box[0]), min(high, box[1])
+    return (lo, hi) if lo <= hi else (low, high)
+
+
+def _lost_mass(m: Moments, column: int, interval: str, level: float, boot: Array | None,
+               spans: Sequence[float] | Array | None) -> float:  # fmt: skip
+    """An upper confidence bound on 1 - W, the target's mass on clipped records, at one-sided
+    level (1 + level) / 2: the lower end of W's two-sided interval at ``level``."""
+    w_low, _ = _interval(Estimand((Term(1.0, column),)), m, interval, level, boot, spans)
+    return min(1.0, max(0.0, 1.0 - w_low)) if math.isfinite(w_low) else 1.0
+
+
 def summarize(
     m: Moments,
     *,
@@ -419,47 +488,58 @@ def summarize(
     offset: int = 0,
     baseline: int | None = None,
     names: Sequence[str] = ("ips", "snips", "clipped", "dr"),
+    clip: bool = False,
 ) -> dict[str, dict[str, float | None]]:
     """Estimates with intervals of the policy at ``offset`` (minus the one at ``baseline``).
 
     ``interval`` is "clt" (delta method), "bootstrap" (percentiles of ``boot``, replicate
     column means from ``bootstrap_sums``) or "bernstein" (needs ``spans``, see
-    ``column_spans``). The clipped
-    entry carries the bias interval [bias_low, bias_bound] of Bottou et al. (2013): the target
-    mass on clipped records is 1 - W (W the mean kept weight) and the rewards lie in
-    ``reward_range``, so the clipped-away value lies in [lo (1 - W), hi (1 - W)].
+    ``column_spans``). With ``clip`` the intervals are cut to the values a policy with rewards
+    in ``reward_range`` can have (use it only for a range fixed in advance).
+
+    The clipped entry also carries the outer band [outer_low, outer_high] of Bottou et al.
+    (2013, JMLR 14, section 4, the outer confidence interval): the target's value is the
+    clipped value plus the value of the clipped-away mass 1 - W (W = E[kept weight]), which
+    lies in [min(lo, 0) (1 - W), max(hi, 0) (1 - W)] for rewards in [lo, hi]. The band splits
+    delta = 1 - level between the clipped value's two-sided interval (at level 1 - delta / 2)
+    and a one-sided lower bound W_low on W (delta / 2; for a difference delta / 4 for each
+    policy), a union bound; [bias_low, bias_bound] is the bias interval from 1 - W_low.
     """
     if m.n == 0:
         raise ReplayError("no records to estimate from")
     if not 0.0 < level < 1.0:
         raise ReplayError(f"the confidence level must lie in (0, 1), got {level!r}")
     lo_r, hi_r = reward_range
+    neg, pos = min(lo_r, 0.0), max(hi_r, 0.0)
     ests = estimands(offset)
     base = estimands(baseline) if baseline is not None else None
+    delta = 1.0 - level
+    # What the value of a policy (or a difference of two) can be, and a clipped value.
+    box = (lo_r, hi_r) if base is None else (lo_r - hi_r, hi_r - lo_r)
+    kept_box = (neg, pos) if base is None else (neg - pos, pos - neg)
     out: dict[str, dict[str, float | None]] = {}
     for name in names:
         est = ests[name] if base is None else ests[name].minus(base[name])
         value = float(est.value(m.mean))
-        if interval == "clt":
-            low, high = clt_interval(est, m, level)
-        elif interval == "bootstrap":
-            if boot is None:
-                raise ReplayError("the bootstrap interval needs bootstrap resamples")
-            low, high = percentile_interval(est, boot, level)
-        elif interval == "bernstein":
-            if spans is None:
-                raise ReplayError("the Bernstein interval needs the ranges of the columns")
-            low, high = bernstein_interval(est, m, spans, level)
-        else:
-            raise ReplayError(f"unknown interval {interval!r}; use clt, bootstrap or bernstein")
+        low, high = _interval(est, m, interval, level, boot, spans)
+        if clip:
+            low, high = _within(low, high, kept_box if name == "clipped" else box)
         entry = {"value": _clean(value), "low": _clean(low), "high": _clean(high)}
         if name == "clipped":
-            lost = max(0.0, 1.0 - float(m.mean[offset + K]))
-            b_low, b_high = lo_r * lost, hi_r * lost
+            # Union bound: delta / 2 for the clipped value, delta / 2 for the kept mass(es).
+            inner_lo, inner_hi = _interval(est, m, interval, 1.0 - delta / 2.0, boot, spans)
+            w_level = 1.0 - delta if base is None else 1.0 - delta / 2.0
+            lost = _lost_mass(m, offset + K, interval, w_level, boot, spans)
+            b_low, b_high = neg * lost, pos * lost
             if baseline is not None:
-                lost_b = max(0.0, 1.0 - float(m.mean[baseline + K]))
-                b_low, b_high = b_low - hi_r * lost_b, b_high - lo_r * lost_b
+                lost_b = _lost_mass(m, baseline + K, interval, w_level, boot, spans)
+                b_low, b_high = b_low - pos * lost_b, b_high - neg * lost_b
+            outer = (inner_lo + b_low, inner_hi + b_high)
+            if clip:
+                outer = _within(*outer, box)
             entry["bias_low"] = b_low
             entry["bias_bound"] = b_high
+            entry["outer_low"] = _clean(outer[0])
+            entry["outer_high"] = _clean(outer[1])
         out[name] = entry
     return out

@@ -29,13 +29,6 @@ DEFAULT_CAP = 10.0
 DEFAULT_BOOTSTRAP = 1000
 
 
-# Warn below these effective sample sizes (common practice, no published threshold).
-MIN_ESS = 100.0
-
-
-MIN_ESS_SHARE = 0.01
-
-
 DR_NOTE = ("dr needs the policy's full action distribution (continuous actions, or more "
            "branches than the enumeration budget)")  # fmt: skip
 
@@ -46,6 +39,18 @@ def _fmt(x: float | None) -> str:
 
 def _span(e: Mapping[str, float | None]) -> str:
     return f"[{_fmt(e['low'])}, {_fmt(e['high'])}]"
+
+
+def _intervals(settings: Mapping[str, Any]) -> str:
+    """The intervals' label ("95% clt intervals"). A Bernstein interval's guarantee needs a
+    reward range fixed in advance (Maurer & Pontil 2009): the label says which range it used."""
+    text = f"{settings['level']:.0%} {settings['interval']} intervals"
+    if settings["interval"] != "bernstein":
+        return text
+    if settings.get("reward_range_source") == "given":
+        lo, hi = settings["reward_range"]
+        return f"{text} (rewards in the given range [{lo:g}, {hi:g}])"
+    return f"{text} (observed reward range: no finite-sample guarantee)"
 
 
 def _policy_text(d: Mapping[str, Any]) -> str:
@@ -60,8 +65,10 @@ def _policy_text(d: Mapping[str, Any]) -> str:
 class Estimate:
     """One estimator's value with its interval [low, high].
 
-    For clipped IPS, the clipped-away part of the value lies in [bias_low, bias_bound], so the
-    target's value lies in [low + bias_low, high + bias_bound]; both are None for the others.
+    For clipped IPS, [low, high] is the interval of the clipped value; the clipped-away part
+    lies in [bias_low, bias_bound] (from a confidence bound on the kept mass), and the target's
+    value lies in the outer band [outer_low, outer_high] at the report's level (Bottou et al.
+    2013, docs/estimators.md). The four are None for the other estimators.
     """
 
     value: float | None
@@ -69,12 +76,15 @@ class Estimate:
     high: float | None
     bias_low: float | None = None
     bias_bound: float | None = None
+    outer_low: float | None = None
+    outer_high: float | None = None
 
     @classmethod
     def from_dict(cls, entry: Mapping[str, float | None]) -> Estimate:
         """An entry of the JSON's ``estimates`` (or ``difference``) object as an ``Estimate``."""
         return cls(entry["value"], entry["low"], entry["high"], entry.get("bias_low"),
-                   entry.get("bias_bound"))  # fmt: skip
+                   entry.get("bias_bound"), entry.get("outer_low"),
+                   entry.get("outer_high"))  # fmt: skip
 
 
 ESTIMATE_COLUMNS = tuple(f.name for f in fields(Estimate))
@@ -160,34 +170,37 @@ class EstimateReport:
         s = self.settings
         caption = (f"{_policy_text(self.target)} on {self.target.get('stream')} (diff: minus "
                    f"{_policy_text(self.baseline)}), {self.n} verified records, "
-                   f"{s['level']:.0%} {s['interval']} intervals")  # fmt: skip
+                   f"{_intervals(s)}")  # fmt: skip
         diffs = self.differences
-        rows = [(name, e.value, e.low, e.high, e.bias_bound, diffs[name].value, diffs[name].low,
-                 diffs[name].high) for name, e in self.results.items()]  # fmt: skip
-        head = ("estimator", "value", "low", "high", "bias bound", "diff", "diff low", "diff high")
+        rows = [(name, e.value, e.low, e.high, e.outer_low, e.outer_high, diffs[name].value,
+                 diffs[name].low, diffs[name].high)
+                for name, e in self.results.items()]  # fmt: skip
+        head = ("estimator", "value", "low", "high", "outer low", "outer high", "diff",
+                "diff low", "diff high")  # fmt: skip
         return html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
 
     def _tables(self) -> list[Any]:
         from rich.box import SIMPLE
         from rich.table import Table
 
-        level = self.settings["level"]
         t = Table(title=f"{_policy_text(self.target)} (diff: minus "
-                  f"{_policy_text(self.baseline)}), {self.n} verified records, {level:.0%} "
-                  f"{self.settings['interval']} intervals", title_justify="left",
-                  box=SIMPLE)  # fmt: skip
-        for col in ("estimator", "value", "interval", "bias", "diff", "interval"):
+                  f"{_policy_text(self.baseline)}), {self.n} verified records, "
+                  f"{_intervals(self.settings)}", title_justify="left", box=SIMPLE)  # fmt: skip
+        for col in ("estimator", "value", "interval", "outer band", "diff", "interval"):
             t.add_column(col, justify="left" if col == "estimator" else "right", no_wrap=True)
         for name, e in self.estimates.items():
             d = self.difference[name]
-            bias = _fmt(e.get("bias_bound")) if name == "clipped" else ""
-            t.add_row(name, _fmt(e["value"]), _span(e), bias, _fmt(d["value"]), _span(d))
+            outer = _span({"low": e.get("outer_low"), "high": e.get("outer_high")}) \
+                if name == "clipped" else ""  # fmt: skip
+            t.add_row(name, _fmt(e["value"]), _span(e), outer, _fmt(d["value"]), _span(d))
         g = Table(title="diagnostics", title_justify="left", box=SIMPLE)
         g.add_column("measure")
         g.add_column("value", justify="right")
         diag = self.diagnostics
         g.add_row("effective sample size (Kish)", f"{diag['ess']:.1f}")
         g.add_row("max weight", f"{diag['max_weight']:.4g}")
+        if diag.get("max_weight_share") is not None:
+            g.add_row("max weight / sum of weights", f"{diag['max_weight_share']:.2%}")
         for q, v in diag["weight_quantiles"].items():
             g.add_row(f"weight quantile {q}", f"{v:.4g}")
         g.add_row("support deficit", _fmt(diag["support_deficit"]))
@@ -293,7 +306,7 @@ class SweepReport:
         """Every point and estimator as a row of an HTML table, then the warnings (notebooks)."""
         s = self.settings
         caption = (f"{self.param} sweep on {s.get('stream')}: {self.n} verified records, "
-                   f"{s['level']:.0%} {s['interval']} intervals")  # fmt: skip
+                   f"{_intervals(s)}")  # fmt: skip
         rows = [(p["value"], name, e["value"], e["low"], e["high"], p["diagnostics"]["ess"])
                 for p in self.points for name, e in p["estimates"].items()]  # fmt: skip
         head = (self.param, "estimator", "value", "low", "high", "ess")
@@ -309,8 +322,7 @@ class SweepReport:
         from rich.table import Table
 
         t = Table(title=f"{self.param} sweep: {self.n} verified records, "
-                  f"{self.settings['level']:.0%} {self.settings['interval']} intervals",
-                  title_justify="left", box=SIMPLE)  # fmt: skip
+                  f"{_intervals(self.settings)}", title_justify="left", box=SIMPLE)  # fmt: skip
         shown = [n for n in ("snips", "dr") if self.points and n in self.points[0]["estimates"]]
         t.add_column(self.param, justify="right")
         for name in shown:

@@ -7,6 +7,7 @@ import os
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
+from numbers import Real
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -22,8 +23,6 @@ from drawledger.replay.estimate._report import (
     DR_NOTE,
     ESTIMATORS,
     INTERVALS,
-    MIN_ESS,
-    MIN_ESS_SHARE,
     EstimateReport,
     SweepReport,
 )
@@ -71,6 +70,11 @@ def _check_options(
     if not isinstance(level, float) or not 0.0 < level < 1.0:
         raise ReplayError(f"the confidence level must lie in (0, 1), got {level!r}")
     if reward_range is not None:
+        if isinstance(reward_range, (str, bytes)) or not isinstance(reward_range, Sequence) \
+                or len(reward_range) != 2 or not all(isinstance(x, Real) and not isinstance(
+                    x, bool) for x in reward_range):  # fmt: skip
+            raise ReplayError(f"reward_range must be a pair (low, high) of numbers, "
+                              f"got {reward_range!r}")  # fmt: skip
         lo, hi = reward_range
         if not (math.isfinite(lo) and math.isfinite(hi) and lo < hi):
             raise ReplayError(
@@ -146,11 +150,23 @@ class _Settings:
     bootstrap: int
     seed: int
     reward_range: tuple[float, float]
+    range_given: bool  # fixed in advance (reward_range=), not the observed rewards
 
     def to_dict(self) -> dict[str, Any]:
         return {"clip": self.cap, "interval": self.interval, "level": self.level,
                 "bootstrap": self.bootstrap, "seed": self.seed,
-                "reward_range": list(self.reward_range)}  # fmt: skip
+                "reward_range": list(self.reward_range),
+                "reward_range_source": "given" if self.range_given else "observed"}  # fmt: skip
+
+    def notes(self) -> list[str]:
+        """The Bernstein bound's guarantee needs a reward range fixed in advance (Maurer &
+        Pontil 2009): without one, the interval says it has none."""
+        if self.interval != "bernstein" or self.range_given:
+            return []
+        lo, hi = self.reward_range
+        return [f"the bernstein intervals use the observed reward range [{lo:g}, {hi:g}] "
+                "(widened to include 0), so they carry no finite-sample guarantee; give "
+                "reward_range (--reward-range LOW,HIGH) fixed in advance for one"]  # fmt: skip
 
 
 def _summary(g: Group, has_dr: bool, bounds: tuple[float, float], s: _Settings,
@@ -165,7 +181,7 @@ def _summary(g: Group, has_dr: bool, bounds: tuple[float, float], s: _Settings,
     spans = np.concatenate([est.column_spans(b, s.cap, s.reward_range) for b in bounds])
     common: dict[str, Any] = {"reward_range": s.reward_range, "level": s.level,
                               "interval": s.interval, "boot": boot, "spans": spans,
-                              "names": names}  # fmt: skip
+                              "names": names, "clip": s.range_given}  # fmt: skip
     return {
         "n": int(m.n),
         "estimates": est.summarize(m, offset=0, **common),
@@ -174,6 +190,7 @@ def _summary(g: Group, has_dr: bool, bounds: tuple[float, float], s: _Settings,
         "diagnostics": {
             "ess": est.kish_ess(m, est.W),
             "max_weight": float(m.high[est.W]),
+            "max_weight_share": est.max_weight_share(m, est.W),
             "support_deficit": g.deficit / g.known if g.known else None,
             "weight_quantiles": {} if weights is None else est.weight_quantiles(weights),
             "zero_weight_share": g.zeros / m.n,
@@ -188,7 +205,22 @@ def _excluded_warnings(p: Pass) -> list[str]:
     return [f"{p.total - p.n} of {p.total} decisions were excluded ({parts})"]
 
 
-def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool) -> list[str]:
+def _deficit_warning(deficit: float, reward_range: tuple[float, float], dr: bool) -> str:
+    """What a support deficit does to each estimator (docs/estimators.md): IPS and clipped IPS
+    count the unseen share as reward 0; SNIPS and DR fill it, so their error has either sign."""
+    lo, hi = reward_range
+    toward = deficit * max(abs(lo), abs(hi))
+    either = deficit * (hi - lo)
+    fill = ("snips gives it the seen actions' mean reward and dr its reward model's "
+            "predictions" if dr else "snips gives it the seen actions' mean reward")  # fmt: skip
+    return (f"support deficit {deficit:.3g}: the target puts that share of its probability on "
+            "actions the logging policy could not take; the data cannot answer this question. "
+            f"ips and clipped count that share as reward 0 (biased toward 0 by up to "
+            f"{toward:.3g}); {fill} (biased up or down by up to {either:.3g})")  # fmt: skip
+
+
+def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool,
+              reward_range: tuple[float, float]) -> list[str]:  # fmt: skip
     out = []
     d = summary["diagnostics"]
     deficit = d["support_deficit"]
@@ -196,13 +228,11 @@ def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool) -> list[
         out.append("the support deficit could not be computed (Monte Carlo propensities or a "
                    "callable target on continuous actions)")  # fmt: skip
     elif deficit > 0.0:
-        out.append(f"support deficit {deficit:.3g}: the target puts that share of its "
-                   "probability on actions the logging policy could not take; the data cannot "
-                   "answer this question (the estimates leave that part out)")  # fmt: skip
-    ess, n = d["ess"], summary["n"]
-    if ess < MIN_ESS or ess < MIN_ESS_SHARE * n:
-        out.append(f"effective sample size {ess:.1f} of {n} records is small: a few heavy "
-                   "weights drive the estimate, so intervals may be too narrow")  # fmt: skip
+        out.append(_deficit_warning(deficit, reward_range, dr))
+    uneven = est.overlap_problems(d["ess"], summary["n"], d["max_weight_share"])
+    if uneven:
+        out.append(f"{'; '.join(uneven)}: the estimate rests on few records or a few heavy "
+                   "weights, so its intervals may be too narrow")  # fmt: skip
     mc = methods.get(MONTE_CARLO, 0)
     if mc:
         out.append(f"{mc} target propensities were estimated by Monte Carlo (noisy weights)")
@@ -214,7 +244,7 @@ def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool) -> list[
 def _problem(summary: dict[str, Any]) -> bool:
     d = summary["diagnostics"]
     deficit = d["support_deficit"]
-    small = d["ess"] < MIN_ESS or d["ess"] < MIN_ESS_SHARE * summary["n"]
+    small = bool(est.overlap_problems(d["ess"], summary["n"], d["max_weight_share"]))
     return bool((deficit is not None and deficit > 0.0) or small)
 
 
@@ -225,7 +255,8 @@ def _segments(p: Pass, bounds: tuple[float, float], s: _Settings, by: str) -> di
         groups.append({"value": value, "n": summary["n"], "estimates": summary["estimates"],
                        "difference": summary["difference"],
                        "diagnostics": {k: summary["diagnostics"][k] for k in
-                                       ("ess", "max_weight", "support_deficit")}})  # fmt: skip
+                                       ("ess", "max_weight", "max_weight_share",
+                                        "support_deficit")}})  # fmt: skip
     return {"by": by, "groups": groups}
 
 
@@ -237,7 +268,8 @@ def _question(
                             kw["scheduler"], reward_range)  # fmt: skip
     kw["path"] = tuple(os.fspath(p) for p in kw["path"])
     kw["allow"] = tuple(kw["allow"])
-    return _Question(reward=reward, reward_range=reward_range, **kw), cap, b
+    given = None if reward_range is None else (float(reward_range[0]), float(reward_range[1]))
+    return _Question(reward=reward, reward_range=given, **kw), cap, b
 
 
 def estimate(
@@ -290,11 +322,12 @@ def estimate(
     for policy in (spec, baseline):  # refuse a bad callable before the long pass
         Target(policy, q.path, q.allow)
     p, stream_name = _pass(ledger, q, [spec, baseline], cap=cap, bootstrap=b, by=by, weights=True)
-    s = _Settings(cap, interval, level, b, seed, p.reward_range)
+    s = _Settings(cap, interval, level, b, seed, p.reward_range, reward_range is not None)
     bounds = (p.bounds[0], p.bounds[-1])
     has_dr = p.dr[0] and p.dr[-1]
     summary = _summary(p.pairs[0], has_dr, bounds, s, p.weights)
-    warnings = _excluded_warnings(p) + _warnings(summary, p.methods[0], has_dr)
+    warnings = [*_excluded_warnings(p), *_warnings(summary, p.methods[0], has_dr, s.reward_range),
+                *s.notes()]  # fmt: skip
     describe = {**_describe(spec), "stream": stream_name, "functions": p.functions,
                 "reward": reward, "propensities": dict(p.methods[0])}  # fmt: skip
     assert p.weights is not None
@@ -352,23 +385,24 @@ def sweep(
     policies.append(baseline)
     Target(baseline, q.path, q.allow)
     p, stream_name = _pass(ledger, q, policies, cap=cap, bootstrap=b, by=None, weights=False)
-    s = _Settings(cap, interval, level, b, seed, p.reward_range)
+    s = _Settings(cap, interval, level, b, seed, p.reward_range, reward_range is not None)
     points, warnings, ok = [], [], True
     base_estimates: dict[str, Any] = {}
     for j, (value, pair) in enumerate(zip(grid, p.pairs, strict=True)):
         has_dr = p.dr[j] and p.dr[-1]
         summary = _summary(pair, has_dr, (p.bounds[j], p.bounds[-1]), s)
         base_estimates = summary["baseline"]
-        for w in _warnings(summary, p.methods[j], has_dr):
+        for w in _warnings(summary, p.methods[j], has_dr, s.reward_range):
             warnings.append(f"{param}={value!r}: {w}")
         ok = ok and not _problem(summary)
         points.append({"value": value, "estimates": summary["estimates"],
                        "difference": summary["difference"],
                        "diagnostics": {k: summary["diagnostics"][k] for k in
-                                       ("ess", "max_weight", "support_deficit")}})  # fmt: skip
+                                       ("ess", "max_weight", "max_weight_share",
+                                        "support_deficit")}})  # fmt: skip
     return SweepReport(
         param=param, values=grid, points=points,
         baseline={**_describe(baseline), "estimates": base_estimates},
         settings={**s.to_dict(), "overrides": fixed, "stream": stream_name, "reward": reward},
-        warnings=_excluded_warnings(p) + warnings, n=p.n, ok=ok,
+        warnings=_excluded_warnings(p) + warnings + s.notes(), n=p.n, ok=ok,
     )  # fmt: skip

@@ -184,9 +184,8 @@ def estimate_figure(r: EstimateReport, truth: float | None) -> Image:
         e = r.estimates[name]
         colour = COLOURS.get(name, GREY)
         if e["low"] is not None and e["high"] is not None:
-            if name == "clipped" and e.get("bias_bound") is not None:
-                lo = e["low"] + (e.get("bias_low") or 0.0)
-                hi = e["high"] + (e["bias_bound"] or 0.0)
+            lo, hi = e.get("outer_low"), e.get("outer_high")
+            if name == "clipped" and lo is not None and hi is not None:
                 ax.plot(
                     [lo, hi],
                     [i, i],
@@ -194,7 +193,7 @@ def estimate_figure(r: EstimateReport, truth: float | None) -> Image:
                     lw=9,
                     alpha=0.25,
                     solid_capstyle="butt",
-                    label="interval + clipping bias bound",
+                    label="outer band (value + clipped-away mass)",
                 )
             ax.plot([e["low"], e["high"]], [i, i], color=colour, lw=3, solid_capstyle="butt")
         if e["value"] is not None:

@@ -238,7 +238,9 @@ def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> Estim
     rows = []
     for name, e in r.estimates.items():
         d = r.difference.get(name, {})
-        bias = num(e.get("bias_bound")) if name == "clipped" else ""
+        outer = ""
+        if name == "clipped":
+            outer = f"[{num(e.get('outer_low'))}, {num(e.get('outer_high'))}]"
         covered = ""
         if truth is not None and e["low"] is not None and e["high"] is not None:
             covered = "yes" if e["low"] <= truth <= e["high"] else "no"
@@ -247,7 +249,7 @@ def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> Estim
                 name,
                 num(e["value"]),
                 f"[{num(e['low'])}, {num(e['high'])}]",
-                bias,
+                outer,
                 num(d.get("value")),
                 f"[{num(d.get('low'))}, {num(d.get('high'))}]",
                 *((num(truth), covered) if truth is not None else ()),
@@ -257,7 +259,7 @@ def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> Estim
         "estimator",
         "estimate",
         f"{level:.0%} interval",
-        "bias bound",
+        "outer band",
         "minus logging",
         "interval",
     ] + (["true value", "covered"] if truth is not None else [])
@@ -268,6 +270,7 @@ def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> Estim
             ("records used", num(r.n)),
             ("effective sample size (Kish)", num(None if d["ess"] is None else round(d["ess"]))),
             ("largest weight", num(d["max_weight"])),
+            ("largest weight / sum of weights", num(d.get("max_weight_share"))),
             ("support deficit", num(d.get("support_deficit"))),
             ("logging policy mean (observed)", num(r.logging_value)),
         ],

@@ -2,7 +2,7 @@
 
 The page holds the integrity and verification summary (with the reasons of every failure), the
 randomization audit (its table, a histogram of the probability integral transform and observed
-against declared frequencies per draw), and what-if estimates (intervals with the bias bound of
+against declared frequencies per draw), and what-if estimates (intervals with the outer band of
 clipped IPS, the distribution of importance weights with the effective sample size, and sweep
 curves with interval bands). Figures are drawn with matplotlib and embedded as SVG data URIs:
 the file makes no external request, opens offline, and prints (a print stylesheet is included).
