@@ -114,9 +114,14 @@ class EstimateReport:
     decisions: int
     weights: np.ndarray = field(repr=False)
     ok: bool = True
+    alerts: list[str] = field(default_factory=list)
+    accepted_failures: dict[str, Any] | None = None
+    missing_rewards: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {
+            "alerts": self.alerts,
+            "accepted_failures": self.accepted_failures,
             "n": self.n,
             "target": self.target,
             "estimates": self.estimates,
@@ -125,6 +130,7 @@ class EstimateReport:
             "difference": self.difference,
             "logging_value": self.logging_value,
             "excluded": {"total": self.decisions - self.n, "by_reason": self.excluded},
+            "missing_rewards": self.missing_rewards,
             "settings": self.settings,
             "warnings": self.warnings,
             "ok": self.ok,
@@ -165,7 +171,8 @@ class EstimateReport:
         rows = [(name, e.value, e.low, e.high, e.bias_bound, diffs[name].value, diffs[name].low,
                  diffs[name].high) for name, e in self.results.items()]  # fmt: skip
         head = ("estimator", "value", "low", "high", "bias bound", "diff", "diff low", "diff high")
-        return html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
+        notes = [*(f"ALERT: {a}" for a in self.alerts), *(f"warning: {w}" for w in self.warnings)]
+        return html_table(caption, head, rows, notes)
 
     def _tables(self) -> list[Any]:
         from rich.box import SIMPLE
@@ -207,6 +214,7 @@ class EstimateReport:
         return out
 
     def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
+        yield from _alerts(self.alerts)
         yield from self._tables()
         for w in self.warnings:
             yield f"[yellow]warning:[/yellow] {w}"
@@ -217,6 +225,14 @@ class EstimateReport:
 
     def __str__(self) -> str:
         return self.render()
+
+
+def _alerts(lines: list[str]) -> RenderResult:
+    """The alerts above everything else, each a line of its own (text, never markup)."""
+    from rich.text import Text
+
+    for line in lines:
+        yield Text.assemble(("ALERT: ", "bold red"), line)
 
 
 def _plain(renderable: Any) -> str:
@@ -240,6 +256,9 @@ class SweepReport:
     warnings: list[str]
     n: int
     ok: bool = True
+    alerts: list[str] = field(default_factory=list)
+    accepted_failures: dict[str, Any] | None = None
+    missing_rewards: dict[str, Any] = field(default_factory=dict)
 
     @property
     def table(self) -> pd.DataFrame:
@@ -297,17 +316,21 @@ class SweepReport:
         rows = [(p["value"], name, e["value"], e["low"], e["high"], p["diagnostics"]["ess"])
                 for p in self.points for name, e in p["estimates"].items()]  # fmt: skip
         head = (self.param, "estimator", "value", "low", "high", "ess")
-        return html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
+        notes = [*(f"ALERT: {a}" for a in self.alerts), *(f"warning: {w}" for w in self.warnings)]
+        return html_table(caption, head, rows, notes)
 
     def to_dict(self) -> dict[str, Any]:
-        return {"n": self.n, "param": self.param, "points": self.points,
+        return {"alerts": self.alerts, "accepted_failures": self.accepted_failures,
+                "n": self.n, "param": self.param, "points": self.points,
                 "baseline": self.baseline, "settings": self.settings,
-                "warnings": self.warnings, "ok": self.ok}  # fmt: skip
+                "missing_rewards": self.missing_rewards, "warnings": self.warnings,
+                "ok": self.ok}  # fmt: skip
 
     def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
         from rich.box import SIMPLE
         from rich.table import Table
 
+        yield from _alerts(self.alerts)
         t = Table(title=f"{self.param} sweep: {self.n} verified records, "
                   f"{self.settings['level']:.0%} {self.settings['interval']} intervals",
                   title_justify="left", box=SIMPLE)  # fmt: skip

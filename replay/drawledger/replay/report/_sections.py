@@ -127,6 +127,7 @@ class EstimateBlock:
     weights: Image
     diagnostics: Table
     warnings: Sequence[str]
+    alerts: Sequence[str] = ()
 
 
 @dataclass(frozen=True)
@@ -143,6 +144,7 @@ class SweepBlock:
     figure: Image
     table: Table
     warnings: Sequence[str]
+    alerts: Sequence[str] = ()
 
 
 def verify_section(v: VerifyReport) -> VerifySection:
@@ -285,6 +287,7 @@ def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> Estim
         weights=weights_figure(r),
         diagnostics=diagnostics,
         warnings=r.warnings,
+        alerts=r.alerts,
     )
 
 
@@ -314,6 +317,7 @@ def _sweep_block(title: str, s: SweepReport, truth: Sequence[float] | None) -> S
         figure=sweep_figure(s, truth),
         table=Table(head, rows),
         warnings=_grouped(s.warnings, s.param),
+        alerts=s.alerts,
     )
 
 
