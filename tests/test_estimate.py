@@ -16,10 +16,13 @@ import pytest
 import scipy.integrate
 import scipy.special
 import scipy.stats
+from hypothesis import HealthCheck, assume, given, settings
+from hypothesis import strategies as st
 
 import drawledger as dl
 from drawledger.exceptions import EstimateRefusedError, MissingFunctionError, ReplayError
 from drawledger.replay import EstimateReport, estimate, sweep, verify
+from drawledger.replay.verify import REASONS
 
 N_CARDS = 1500
 DOCS = Path(__file__).parent.parent / "docs" / "estimators.md"
@@ -329,6 +332,24 @@ def test_unknown_reasons_to_accept_are_refused(small):
         estimate(small, reward="checkout", accept_verification_failures=["code-change"])
     with pytest.raises(ReplayError, match="a list of reasons"):
         estimate(small, reward="checkout", accept_verification_failures="code-changed")
+    with pytest.raises(ReplayError, match="must be True or False"):
+        estimate(small, reward="checkout", accept_integrity_failures="yes")
+
+
+@settings(
+    max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(accept=st.one_of(
+    st.none(), st.integers(), st.text(max_size=8), st.binary(max_size=4),
+    st.lists(st.one_of(st.none(), st.integers(), st.text(max_size=8), st.lists(st.integers())),
+             min_size=1, max_size=3),
+))  # fmt: skip
+def test_bad_reasons_to_accept_raise_one_clear_error_before_any_read(small, accept):
+    """Anything but a list of known reasons is refused with a ReplayError, never a traceback
+    from deeper down (the ledger is not read: the options are checked first)."""
+    assume(not (isinstance(accept, list) and all(r in (*REASONS, "all") for r in accept)))
+    with pytest.raises(ReplayError, match=r"accept_verification_failures must be|unknown verif"):
+        estimate(small, reward="checkout", accept_verification_failures=accept)
 
 
 @pytest.mark.parametrize("name", ["two.db", "two-parquet"])
@@ -344,10 +365,10 @@ def test_a_reward_the_stream_never_received_is_refused_naming_its_outcomes(tmp_p
         led.outcome(f"r{i}", "reminder_open", 1.0)
     led.close()
     message = ("no decision of stream 'recipe-card' has a 'reminder_open' outcome; its "
-               "outcomes are: basket_size, checkout")  # fmt: skip
+               "outcomes are: 'basket_size', 'checkout'")  # fmt: skip
     with pytest.raises(ReplayError, match=message):
         estimate(tmp_path / name, reward="reminder_open", stream="recipe-card")
-    with pytest.raises(ReplayError, match="its outcomes are: basket_size, checkout"):
+    with pytest.raises(ReplayError, match="its outcomes are: 'basket_size', 'checkout'"):
         estimate(tmp_path / name, reward="reminder_open", stream="recipe-card",
                  missing_reward=None)  # fmt: skip
 

@@ -216,7 +216,7 @@ def test_a_reward_the_stream_never_received_exits_2_naming_its_outcomes(tmp_path
                           "--stream", "recipe-card")  # fmt: skip
     assert (2, "") == (code, out)
     assert ("drawledger estimate: error: no decision of stream 'recipe-card' has a "
-            "'reminder_open' outcome; its outcomes are: checkout\n") == err  # fmt: skip
+            "'reminder_open' outcome; its outcomes are: 'checkout'\n") == err  # fmt: skip
 
 
 def test_an_unknown_reason_to_accept_exits_2(cards, capsys):

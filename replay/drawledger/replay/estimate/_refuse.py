@@ -5,7 +5,7 @@ failures the caller accepted carries at the top of its output."""
 from __future__ import annotations
 
 from collections import Counter
-from collections.abc import Callable, Collection, Sequence
+from collections.abc import Callable, Collection, Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -22,16 +22,20 @@ MISSING_SHARE = 0.05
 
 ALL = "all"
 
+SHOW_NAMES = 10  # outcome names listed when a reward is refused
+
 
 def accepted_reasons(accept: Collection[str], integrity: bool) -> frozenset[str]:
     """The verification reasons the caller accepts (``"all"``: every one); accepting
     integrity failures accepts the ``integrity`` reason they give the decisions involved."""
-    if isinstance(accept, str):
+    items = None if isinstance(accept, str | bytes) or not isinstance(accept, Iterable) \
+        else list(accept)  # fmt: skip
+    if items is None or not all(isinstance(r, str) for r in items):
         raise ReplayError("accept_verification_failures must be a list of reasons, such as "
-                          "['code-changed'], not a single string")  # fmt: skip
+                          f"['code-changed'], got {accept!r}")  # fmt: skip
     if not isinstance(integrity, bool):
         raise ReplayError(f"accept_integrity_failures must be True or False, got {integrity!r}")
-    chosen = set(accept)
+    chosen = set(items)
     unknown = sorted(str(r) for r in chosen - set(REASONS) - {ALL})
     if unknown:
         raise ReplayError(f"unknown verification reason {unknown[0]!r} to accept; use "
@@ -93,8 +97,11 @@ def check_stream(facts: Sequence[Facts], reward: str, stream: str,
     found = Failures.of(facts)
     if found.total and not found.rewarded:
         have = names()
+        shown = ", ".join(repr(n) for n in have[:SHOW_NAMES]) or "none"
+        if len(have) > SHOW_NAMES:
+            shown += f" and {len(have) - SHOW_NAMES} more"
         raise ReplayError(f"no decision of stream {stream!r} has a {reward!r} outcome; its "
-                          "outcomes are: " + (", ".join(have) if have else "none"))  # fmt: skip
+                          f"outcomes are: {shown}")  # fmt: skip
     refused: Counter[str] = Counter()
     for f in facts:
         refused.update(f.refused)
