@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import importlib
 import math
 import re
 import shutil
 import sqlite3
+import sys
 from pathlib import Path
 from typing import Any
 
@@ -21,6 +23,7 @@ from hypothesis import strategies as st
 
 import drawledger as dl
 from drawledger.exceptions import EstimateRefusedError, MissingFunctionError, ReplayError
+from drawledger.ledger import REGISTRY
 from drawledger.replay import EstimateReport, estimate, sweep, verify
 from drawledger.replay.verify import REASONS
 
@@ -325,6 +328,63 @@ def test_accepted_verification_failures_mark_the_estimate_biased(sloppy):
                                        "of 200 decisions")  # fmt: skip
     assert "biased" in report.alerts[0]
     assert not report.ok
+
+
+CODE = """
+import drawledger as dl
+
+ledger = dl.Ledger({ledger!r})
+
+
+@ledger.decision("recipe-card")
+def pick(scores: list[float], draw: dl.Draw, *, temperature: float = 0.7) -> str:
+    cards = ["one-pot-pasta", "green-curry", "taco-night"]
+{body}
+"""
+SOFTMAX = '    return draw.softmax(cards, scores, temperature=temperature, name="card")'
+
+
+def _changed_code(root: Path, edited: str) -> tuple[Path, Path]:
+    """40 decisions recorded by a module in ``root/code``, whose body is then ``edited``."""
+    code, ledger = root / "code", root / "changed.db"
+    code.mkdir()
+    name = f"changed_{root.name[-12:].replace('-', '_')}"
+    (code / f"{name}.py").write_text(CODE.format(ledger=str(ledger), body=SOFTMAX))
+    sys.path.insert(0, str(code))
+    try:
+        module = importlib.import_module(name)
+        for i in range(40):
+            card = module.pick([1.0 + i % 3, 2.0, 0.5], decision_id=f"d{i}")
+            module.ledger.outcome(f"d{i}", "checkout", float(card == "green-curry"))
+        module.ledger.close()
+    finally:
+        sys.path.remove(str(code))
+        sys.modules.pop(name, None)
+        for key in [k for k in REGISTRY if k.startswith(name + ":")]:
+            del REGISTRY[key]
+    (code / f"{name}.py").write_text(CODE.format(ledger=str(ledger), body=edited))
+    return ledger, code
+
+
+def test_accepted_code_changes_that_replay_as_recorded_are_used(tmp_path):
+    """A comment changes the code hash, not the draws: refused by default; with code-changed
+    accepted every decision is used (nothing dropped, nothing biased)."""
+    ledger, code = _changed_code(tmp_path, "    # a comment changes the hash\n" + SOFTMAX)
+    with pytest.raises(EstimateRefusedError, match=r"40 of 40 .*\(code-changed: 40\)"):
+        estimate(ledger, reward="checkout", path=[code])
+    report = estimate(ledger, reward="checkout", path=[code],
+                      accept_verification_failures=["code-changed"])  # fmt: skip
+    assert (40, None, []) == (report.n, report.accepted_failures, report.alerts)
+    assert report.warnings[0].startswith("40 decisions ran under decision code that has changed")
+
+
+def test_accepting_code_changes_does_not_accept_what_they_changed(tmp_path):
+    edited = SOFTMAX.replace("scores,", "[2 * x for x in scores],")
+    ledger, code = _changed_code(tmp_path, edited)
+    with pytest.raises(EstimateRefusedError, match="args") as refused:
+        estimate(ledger, reward="checkout", path=[code],
+                 accept_verification_failures=["code-changed"])  # fmt: skip
+    assert "code-changed" not in refused.value.problems
 
 
 def test_unknown_reasons_to_accept_are_refused(small):

@@ -79,6 +79,7 @@ class Facts:
     failed_reasons: Counter[str] = field(default_factory=Counter)  # theirs
     refused_n: int = 0  # of them, with a reason the caller did not accept
     refused: Counter[str] = field(default_factory=Counter)  # those reasons
+    code_changed: int = 0  # decisions used although their code changed (accepted)
 
 
 @dataclass
@@ -149,12 +150,22 @@ def _empty(facts: Facts, k: int) -> PieceData:
                      [none] * k, [none] * k, [None] * k, None, None, None)  # fmt: skip
 
 
-def _failures(reasons: pd.Series, facts: Facts, accept: frozenset[str]) -> None:
+CHANGED = frozenset({"code-changed"})
+
+
+def _failures(reasons: pd.Series, facts: Facts, accept: frozenset[str]) -> np.ndarray:
     """Count the decisions that failed verification by reason, and those with a reason the
-    caller did not accept (declared draws are not failures: the audit tests them)."""
-    for text in reasons.fillna("not verified"):
+    caller did not accept (declared draws are not failures: the audit tests them). Returns
+    which of them are kept: with ``code-changed`` accepted, a decision whose only reason it is
+    replayed every draw, value, probability and action as recorded, so it is used."""
+    keep = np.zeros(len(reasons), dtype=bool)
+    for i, text in enumerate(reasons.fillna("not verified")):
         found = set(str(text).split(";"))
         if found <= NOT_FAILING:
+            continue
+        if found == CHANGED and CHANGED <= accept:
+            facts.code_changed += 1
+            keep[i] = True
             continue
         facts.failed += 1
         facts.failed_reasons.update(found)
@@ -162,6 +173,7 @@ def _failures(reasons: pd.Series, facts: Facts, accept: frozenset[str]) -> None:
         if refused:
             facts.refused_n += 1
             facts.refused.update(refused)
+    return keep
 
 
 def _usable(frame: pd.DataFrame, fns: dict[str, Any], rewards: Rewards,
@@ -178,11 +190,12 @@ def _usable(frame: pd.DataFrame, fns: dict[str, Any], rewards: Rewards,
             excluded[reason] += int(mask.sum())
             frame = frame[~mask]
 
-    verified = frame["verified"].astype(bool).to_numpy()
-    for reasons in frame.loc[~verified, "reason"].fillna("not verified"):
+    failed = ~frame["verified"].astype(bool).to_numpy()
+    usable = ~failed
+    usable[failed] = _failures(frame.loc[failed, "reason"], facts, job.accept)
+    for reasons in frame.loc[~usable, "reason"].fillna("not verified"):
         excluded.update(str(reasons).split(";"))
-    _failures(frame.loc[~verified, "reason"], facts, job.accept)
-    frame = frame[verified]
+    frame = frame[usable]
     drop(np.array([not fns[d] for d in frame["decision_id"]], dtype=bool),
          "no decision function (bucket assignment)")  # fmt: skip
     drop((frame["propensity_method"] == MONTE_CARLO).to_numpy(),

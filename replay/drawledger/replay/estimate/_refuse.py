@@ -79,6 +79,7 @@ class Failures:
     filled: int  # records used whose reward is the missing-reward value
     failed: int  # decisions that failed verification (all left out)
     reasons: dict[str, int]  # their reasons
+    code_changed: int  # decisions used although their code changed (accepted)
 
     @classmethod
     def of(cls, facts: Sequence[Facts]) -> Failures:
@@ -87,7 +88,7 @@ class Failures:
             reasons.update(f.failed_reasons)
         return cls(sum(f.total for f in facts), sum(f.rewarded for f in facts),
                    sum(f.filled for f in facts), sum(f.failed for f in facts),
-                   dict(sorted(reasons.items())))  # fmt: skip
+                   dict(sorted(reasons.items())), sum(f.code_changed for f in facts))  # fmt: skip
 
 
 def check_stream(facts: Sequence[Facts], reward: str, stream: str,

@@ -186,10 +186,15 @@ def _summary(g: Group, has_dr: bool, bounds: tuple[float, float], s: _Settings,
 
 
 def _excluded_warnings(p: Pass) -> list[str]:
+    out = []
+    if p.failures.code_changed:
+        out.append(f"{p.failures.code_changed} decisions ran under decision code that has "
+                   "changed since; they replayed every draw as recorded and are used "
+                   "(code-changed accepted)")  # fmt: skip
     if not p.excluded:
-        return []
+        return out
     parts = ", ".join(f"{k}: {v}" for k, v in sorted(p.excluded.items()))
-    return [f"{p.total - p.n} of {p.total} decisions were excluded ({parts})"]
+    return [*out, f"{p.total - p.n} of {p.total} decisions were excluded ({parts})"]
 
 
 def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool) -> list[str]:
