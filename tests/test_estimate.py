@@ -287,6 +287,7 @@ def test_a_ledger_that_fails_its_integrity_check_is_refused(cards, tmp_path):
     assert edited == out["accepted_failures"]["dropped"]
     assert report.alerts[0].startswith("INTEGRITY FAILURES ACCEPTED (bad_hashes")
     assert "biased" in report.alerts[1]
+    assert report._repr_html_().startswith("<p><b>ALERT:</b> INTEGRITY FAILURES ACCEPTED")
     assert not report.ok
     curve = sweep(path, reward="checkout", param="temperature", values=[0.3, 1.0],
                   accept_integrity_failures=True)  # fmt: skip

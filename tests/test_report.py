@@ -269,7 +269,7 @@ def test_report_says_at_the_top_why_an_estimate_was_refused(
             ALLOW, "--reward", "checkout", "--set", "temperature=0.5", "--stream",
             "recipe-card"]  # fmt: skip
     assert 1 == main(argv)
-    assert "estimate refused: the ledger fails its integrity check" in capsys.readouterr().out
+    assert capsys.readouterr().out.startswith("estimate refused: the ledger fails its integrity")
     text = html.read_text(encoding="utf-8")
     header = text.split("</header>", 1)[0]
     assert '<p class="banner">Estimate refused: the ledger fails its integrity check' in header
@@ -285,6 +285,8 @@ def test_report_of_an_estimate_from_accepted_failures_has_a_banner(
                           stream="recipe-card", accept_integrity_failures=True,
                           accept_verification_failures=["integrity"])  # fmt: skip
     assert not report.ok
+    assert report.render().startswith("ALERT: What if: recipe-card with temperature = 0.5: "
+                                      "INTEGRITY FAILURES ACCEPTED")  # fmt: skip
     text = html.read_text(encoding="utf-8")
     header = text.split("</header>", 1)[0]
     assert "INTEGRITY FAILURES ACCEPTED" in header

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import html
 import os
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
@@ -171,8 +172,8 @@ class EstimateReport:
         rows = [(name, e.value, e.low, e.high, e.bias_bound, diffs[name].value, diffs[name].low,
                  diffs[name].high) for name, e in self.results.items()]  # fmt: skip
         head = ("estimator", "value", "low", "high", "bias bound", "diff", "diff low", "diff high")
-        notes = [*(f"ALERT: {a}" for a in self.alerts), *(f"warning: {w}" for w in self.warnings)]
-        return html_table(caption, head, rows, notes)
+        table = html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
+        return _html_alerts(self.alerts) + table
 
     def _tables(self) -> list[Any]:
         from rich.box import SIMPLE
@@ -225,6 +226,11 @@ class EstimateReport:
 
     def __str__(self) -> str:
         return self.render()
+
+
+def _html_alerts(lines: list[str]) -> str:
+    """The alerts as paragraphs above the table (escaped)."""
+    return "".join(f"<p><b>ALERT:</b> {html.escape(line)}</p>" for line in lines)
 
 
 def _alerts(lines: list[str]) -> RenderResult:
@@ -316,8 +322,8 @@ class SweepReport:
         rows = [(p["value"], name, e["value"], e["low"], e["high"], p["diagnostics"]["ess"])
                 for p in self.points for name, e in p["estimates"].items()]  # fmt: skip
         head = (self.param, "estimator", "value", "low", "high", "ess")
-        notes = [*(f"ALERT: {a}" for a in self.alerts), *(f"warning: {w}" for w in self.warnings)]
-        return html_table(caption, head, rows, notes)
+        table = html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
+        return _html_alerts(self.alerts) + table
 
     def to_dict(self) -> dict[str, Any]:
         return {"alerts": self.alerts, "accepted_failures": self.accepted_failures,

@@ -85,13 +85,16 @@ class HtmlReport:
         }
 
     def render(self) -> str:
+        """One line of what was written, after the refused estimates and the alerts."""
         v, a = self.verification, self.audit
-        return (
+        top = [f"estimate refused: {r}" for r in self.refused]
+        top += [f"ALERT: {w.title}: {line}" for w in self.whatifs for line in w.result.alerts]
+        return "".join(f"{line}\n" for line in top) + (
             f"wrote {self.path}: {v.decisions} decisions, {v.verified} verified, "
             f"{v.mismatched} mismatched, {v.unreplayable} unreplayable; integrity "
             f"{'ok' if v.integrity.ok else 'FAILED'}; audit "
             f"{'no alarm' if a.ok else f'{len(a.alarms)} alarm(s)'}"
-        ) + "".join(f"\nestimate refused: {r}" for r in self.refused)
+        )
 
     def __str__(self) -> str:
         return self.render()
