@@ -465,6 +465,9 @@ def test_a_few_missing_rewards_are_counted_without_an_alert(tmp_path):
     report = estimate(tmp_path / "late.db", reward="checkout")
     assert {"filled": 1, "share": 0.025, "value": 0.0} == report.missing_rewards
     assert [] == report.alerts
+    assert re.search(r"records without the reward \(counted as 0\) +1 \(2\.5%\)", str(report))
+    curve = sweep(tmp_path / "late.db", reward="checkout", param="temperature", values=[0.3, 1])
+    assert "records without the reward (counted as 0): 1 (2.5%)" in str(curve)
 
 
 def test_a_ledger_with_several_streams_needs_one_chosen(tmp_path):

@@ -201,6 +201,9 @@ class EstimateReport:
         g.add_row("support deficit", _fmt(diag["support_deficit"]))
         if self.logging_value is not None:
             g.add_row("logging policy mean reward", _fmt(self.logging_value))
+        filled = _filled(self.missing_rewards)
+        if filled:
+            g.add_row(*filled)
         out: list[Any] = [t, g]
         if self.segments is not None:
             s = Table(title=f"segments by {self.segments['by']}", title_justify="left", box=SIMPLE)
@@ -226,6 +229,14 @@ class EstimateReport:
 
     def __str__(self) -> str:
         return self.render()
+
+
+def _filled(missing: Mapping[str, Any]) -> tuple[str, str] | None:
+    """The diagnostic of the records whose reward was missing and filled in (None: none)."""
+    if not missing.get("filled"):
+        return None
+    return (f"records without the reward (counted as {missing['value']:g})",
+            f"{missing['filled']} ({missing['share']:.1%})")  # fmt: skip
 
 
 def _html_alerts(lines: list[str]) -> str:
@@ -335,6 +346,7 @@ class SweepReport:
     def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
         from rich.box import SIMPLE
         from rich.table import Table
+        from rich.text import Text
 
         yield from _alerts(self.alerts)
         t = Table(title=f"{self.param} sweep: {self.n} verified records, "
@@ -354,6 +366,9 @@ class SweepReport:
             t.add_row(f"{p['value']:g}" if isinstance(p["value"], float) else str(p["value"]),
                       *cells, f"{p['diagnostics']['ess']:.1f}")  # fmt: skip
         yield t
+        filled = _filled(self.missing_rewards)
+        if filled:
+            yield Text(f"{filled[0]}: {filled[1]}")
         for w in self.warnings:
             yield f"[yellow]warning:[/yellow] {w}"
 

@@ -272,6 +272,7 @@ def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> Estim
             ("largest weight", num(d["max_weight"])),
             ("support deficit", num(d.get("support_deficit"))),
             ("logging policy mean (observed)", num(r.logging_value)),
+            *_filled(r),
         ],
         cls="narrow",
     )
@@ -289,6 +290,15 @@ def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> Estim
         warnings=r.warnings,
         alerts=r.alerts,
     )
+
+
+def _filled(r: EstimateReport) -> list[tuple[str, str]]:
+    """The diagnostic of the records whose reward was missing and filled in, if any."""
+    m = r.missing_rewards
+    if not m.get("filled"):
+        return []
+    return [(f"records without the reward (counted as {m['value']:g})",
+             f"{num(m['filled'])} ({m['share']:.1%})")]  # fmt: skip
 
 
 def _sweep_block(title: str, s: SweepReport, truth: Sequence[float] | None) -> SweepBlock:
