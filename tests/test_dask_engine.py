@@ -31,7 +31,7 @@ import pytest
 
 import drawledger as dl
 from drawledger.cli import main
-from drawledger.exceptions import ReplayError
+from drawledger.exceptions import EstimateRefusedError, ReplayError
 from drawledger.replay import estimate, sources, sweep, verify
 from drawledger.replay.audit import audit
 from drawledger.replay.engines import NO_PROFILER
@@ -268,12 +268,25 @@ def test_a_sweep_equals_the_local_engine(ledger: Path, scheduler: str) -> None:
         assert expected["snips"] == pytest.approx(point["estimates"]["snips"]["value"], rel=1e-9)
 
 
+def test_an_estimate_of_a_gapped_ledger_is_refused_on_both_engines(
+    gapped: Path, scheduler: str
+) -> None:
+    """Parts deleted from the ledger fail its integrity check: no estimate on either engine."""
+    kw: dict[str, Any] = dict(reward="checkout", stream="recipe-card", path=[SUPPORT])
+    for engine in ({}, {"engine": "dask", "scheduler": scheduler}):
+        with pytest.raises(EstimateRefusedError, match=r"integrity check \(.*gaps: ") as refused:
+            estimate(gapped, **kw, **engine)
+        assert refused.value.problems["gaps"] > 0
+
+
 def test_estimate_errors_match_the_local_engine(ledger: Path, scheduler: str) -> None:
     cases: list[tuple[dict[str, Any], str]] = [
         ({}, "several decision streams"),
         ({"stream": "window-seat"}, "no decisions of stream"),
         ({"stream": "recipe-card", "reward": "refund"}, "no outcome named"),
-    ]
+        ({"stream": "reminder-delay"}, "no decision of stream 'reminder-delay' has a 'checkout' "
+         "outcome; its outcomes are: none"),
+    ]  # fmt: skip
     for kw, message in cases:
         args: dict[str, Any] = {"reward": "checkout", "path": [SUPPORT], **kw}
         with pytest.raises(ReplayError, match=message):

@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import importlib
 import math
 import re
 import shutil
 import sqlite3
+import sys
 from pathlib import Path
 from typing import Any
 
@@ -16,10 +18,14 @@ import pytest
 import scipy.integrate
 import scipy.special
 import scipy.stats
+from hypothesis import HealthCheck, assume, given, settings
+from hypothesis import strategies as st
 
 import drawledger as dl
-from drawledger.exceptions import MissingFunctionError, ReplayError
+from drawledger.exceptions import EstimateRefusedError, MissingFunctionError, ReplayError
+from drawledger.ledger import REGISTRY
 from drawledger.replay import EstimateReport, WhatIf, estimate, sweep, verify, write_report
+from drawledger.replay.verify import REASONS
 
 N_CARDS = 1500
 DOCS = Path(__file__).parent.parent / "docs" / "estimators.md"
@@ -279,17 +285,194 @@ def test_continuous_support_deficit_is_found_by_sampling_the_target(tmp_path):
     assert np.allclose(report.weights, 0.5)  # density 1/120 over 1/60 at every logged delay
 
 
-def test_excluded_records_are_counted_by_reason(cards, tmp_path):
-    """Tampered records fail verification: they are left out and counted, not estimated."""
+def test_accepted_failures_leave_records_out_counted_by_reason(cards, tmp_path):
+    """Tampered records fail the integrity check and verification; once both are accepted
+    they are left out and counted, and the report is marked at the top and not ok."""
     path = tmp_path / "tampered.db"
     shutil.copy(cards, path)
     with sqlite3.connect(path) as conn:
         conn.execute("UPDATE decisions SET propensity = propensity / 2 WHERE rowid <= 4")
-    report = estimate(path, reward="checkout", overrides={"temperature": 0.3})
+    ask: dict[str, Any] = dict(reward="checkout", overrides={"temperature": 0.3})
+    with pytest.raises(EstimateRefusedError, match="integrity check"):
+        estimate(path, **ask)
+    with pytest.raises(EstimateRefusedError, match=r"4 of 1500 decisions .* \(probability: 4\)"):
+        estimate(path, accept_integrity_failures=True, **ask)
+    report = estimate(path, accept_integrity_failures=True,
+                      accept_verification_failures=["probability"], **ask)  # fmt: skip
     assert N_CARDS - 4 == report.n
     assert 4 == report.to_dict()["excluded"]["total"]
     assert 4 == report.excluded["probability"]
     assert any(w.startswith(f"4 of {N_CARDS} decisions were excluded") for w in report.warnings)
+    assert not report.ok
+    assert {"integrity": 4, "probability": 4} == report.accepted_failures["verification"]
+    assert str(report).startswith("ALERT: INTEGRITY FAILURES ACCEPTED")
+
+
+def test_a_ledger_that_fails_its_integrity_check_is_refused(cards, tmp_path):
+    """Outcome values edited without the key (every checkout 0 made 1) used to move SNIPS and
+    exit 0 with a warning; now nothing is estimated unless the failures are accepted."""
+    path = tmp_path / "edited.db"
+    shutil.copy(cards, path)
+    with sqlite3.connect(path) as conn:
+        edited = conn.execute("UPDATE outcomes SET value = 1.0 WHERE value = 0.0").rowcount
+    ask: dict[str, Any] = dict(reward="checkout", overrides={"temperature": 0.3})
+    with pytest.raises(EstimateRefusedError, match=f"bad_hashes: {edited}") as refused:
+        estimate(path, **ask)
+    assert ("integrity", {"bad_hashes": edited}) == (refused.value.check, refused.value.problems)
+    with pytest.raises(EstimateRefusedError, match="integrity check"):
+        sweep(path, reward="checkout", param="temperature", values=[0.3, 1.0])
+    report = estimate(path, accept_integrity_failures=True, **ask)
+    out = report.to_dict()
+    assert ["alerts", "accepted_failures"] == list(out)[:2]
+    assert {"bad_hashes": edited} == out["accepted_failures"]["integrity"]
+    assert edited == out["accepted_failures"]["dropped"]
+    assert report.alerts[0].startswith("INTEGRITY FAILURES ACCEPTED (bad_hashes")
+    assert "biased" in report.alerts[1]
+    assert report._repr_html_().startswith("<p><b>ALERT:</b> INTEGRITY FAILURES ACCEPTED")
+    assert not report.ok
+    curve = sweep(path, reward="checkout", param="temperature", values=[0.3, 1.0],
+                  accept_integrity_failures=True)  # fmt: skip
+    assert not curve.ok and curve.to_dict()["accepted_failures"]["integrity"]
+
+
+def test_a_clean_ledger_has_no_alerts_and_nothing_accepted(cards):
+    out = estimate(cards, reward="checkout", overrides={"temperature": 0.3}).to_dict()
+    assert ([], None) == (out["alerts"], out["accepted_failures"])
+    assert {"filled": 0, "share": 0.0, "value": 0.0} == out["missing_rewards"]
+
+
+@pytest.fixture(scope="module")
+def sloppy(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """200 sloppy-card decisions: the card comes from the random module, not from draw."""
+    return _record(tmp_path_factory.mktemp("sloppy") / "sloppy.db", shop.simulate_cards, 200,
+                   seed=5, decision=shop.sloppy_card)  # fmt: skip
+
+
+def test_a_stream_whose_decisions_fail_replay_is_refused(sloppy):
+    """The few decisions that replay by chance are a biased subset: refused, with counts."""
+    with pytest.raises(EstimateRefusedError, match="failed verification") as refused:
+        estimate(sloppy, reward="checkout")
+    assert "verification" == refused.value.check
+    assert 100 < refused.value.problems["action"] <= 200
+    with pytest.raises(EstimateRefusedError, match="action"):
+        estimate(sloppy, reward="checkout", accept_verification_failures=["nondeterministic"])
+    with pytest.raises(EstimateRefusedError, match="failed verification"):
+        sweep(sloppy, reward="checkout", param="temperature", values=[0.3, 1.0])
+
+
+def test_accepted_verification_failures_mark_the_estimate_biased(sloppy):
+    report = estimate(sloppy, reward="checkout", accept_verification_failures=["all"])
+    accepted = report.accepted_failures
+    assert accepted is not None
+    assert 200 == accepted["decisions"] == report.n + accepted["dropped"]
+    assert accepted["dropped"] / 200 == pytest.approx(accepted["dropped_share"])
+    assert report.alerts[0].startswith(f"VERIFICATION FAILURES ACCEPTED: {accepted['dropped']} "
+                                       "of 200 decisions")  # fmt: skip
+    assert "biased" in report.alerts[0]
+    assert not report.ok
+
+
+CODE = """
+import drawledger as dl
+
+ledger = dl.Ledger({ledger!r})
+
+
+@ledger.decision("recipe-card")
+def pick(scores: list[float], draw: dl.Draw, *, temperature: float = 0.7) -> str:
+    cards = ["one-pot-pasta", "green-curry", "taco-night"]
+{body}
+"""
+SOFTMAX = '    return draw.softmax(cards, scores, temperature=temperature, name="card")'
+
+
+def _changed_code(root: Path, edited: str) -> tuple[Path, Path]:
+    """40 decisions recorded by a module in ``root/code``, whose body is then ``edited``."""
+    code, ledger = root / "code", root / "changed.db"
+    code.mkdir()
+    name = f"changed_{root.name[-12:].replace('-', '_')}"
+    (code / f"{name}.py").write_text(CODE.format(ledger=str(ledger), body=SOFTMAX))
+    sys.path.insert(0, str(code))
+    try:
+        module = importlib.import_module(name)
+        for i in range(40):
+            card = module.pick([1.0 + i % 3, 2.0, 0.5], decision_id=f"d{i}")
+            module.ledger.outcome(f"d{i}", "checkout", float(card == "green-curry"))
+        module.ledger.close()
+    finally:
+        sys.path.remove(str(code))
+        sys.modules.pop(name, None)
+        for key in [k for k in REGISTRY if k.startswith(name + ":")]:
+            del REGISTRY[key]
+    (code / f"{name}.py").write_text(CODE.format(ledger=str(ledger), body=edited))
+    return ledger, code
+
+
+def test_accepted_code_changes_that_replay_as_recorded_are_used(tmp_path):
+    """A comment changes the code hash, not the draws: refused by default; with code-changed
+    accepted every decision is used (nothing dropped, nothing biased)."""
+    ledger, code = _changed_code(tmp_path, "    # a comment changes the hash\n" + SOFTMAX)
+    with pytest.raises(EstimateRefusedError, match=r"40 of 40 .*\(code-changed: 40\)"):
+        estimate(ledger, reward="checkout", path=[code])
+    report = estimate(ledger, reward="checkout", path=[code],
+                      accept_verification_failures=["code-changed"])  # fmt: skip
+    assert (40, None, []) == (report.n, report.accepted_failures, report.alerts)
+    assert report.warnings[0].startswith("40 decisions ran under decision code that has changed")
+
+
+def test_accepting_code_changes_does_not_accept_what_they_changed(tmp_path):
+    edited = SOFTMAX.replace("scores,", "[2 * x for x in scores],")
+    ledger, code = _changed_code(tmp_path, edited)
+    with pytest.raises(EstimateRefusedError, match="args") as refused:
+        estimate(ledger, reward="checkout", path=[code],
+                 accept_verification_failures=["code-changed"])  # fmt: skip
+    assert "code-changed" not in refused.value.problems
+
+
+def test_unknown_reasons_to_accept_are_refused(small):
+    with pytest.raises(ReplayError, match="unknown verification reason 'code-change'"):
+        estimate(small, reward="checkout", accept_verification_failures=["code-change"])
+    with pytest.raises(ReplayError, match="a list of reasons"):
+        estimate(small, reward="checkout", accept_verification_failures="code-changed")
+    with pytest.raises(ReplayError, match="must be True or False"):
+        estimate(small, reward="checkout", accept_integrity_failures="yes")
+
+
+@settings(
+    max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(accept=st.one_of(
+    st.none(), st.integers(), st.text(max_size=8), st.binary(max_size=4),
+    st.lists(st.one_of(st.none(), st.integers(), st.text(max_size=8), st.lists(st.integers())),
+             min_size=1, max_size=3),
+))  # fmt: skip
+def test_bad_reasons_to_accept_raise_one_clear_error_before_any_read(small, accept):
+    """Anything but a list of known reasons is refused with a ReplayError, never a traceback
+    from deeper down (the ledger is not read: the options are checked first)."""
+    assume(not (isinstance(accept, list) and all(r in (*REASONS, "all") for r in accept)))
+    with pytest.raises(ReplayError, match=r"accept_verification_failures must be|unknown verif"):
+        estimate(small, reward="checkout", accept_verification_failures=accept)
+
+
+@pytest.mark.parametrize("name", ["two.db", "two-parquet"])
+def test_a_reward_the_stream_never_received_is_refused_naming_its_outcomes(tmp_path, name):
+    """Reminder opens exist, but only for reminders: on the cards they would all count as 0."""
+    led = dl.Ledger(tmp_path / name, format="parquet" if "parquet" in name else None)
+    shop.use(led, seed=2)
+    for i in range(20):
+        shop.feature_card(shop.context(i % 4), decision_id=f"c{i}")
+        shop.reminder_delay({"items": 2}, decision_id=f"r{i}")
+        led.outcome(f"c{i}", "checkout", float(i % 3 == 0))
+        led.outcome(f"c{i}", "basket_size", 3.0)
+        led.outcome(f"r{i}", "reminder_open", 1.0)
+    led.close()
+    message = ("no decision of stream 'recipe-card' has a 'reminder_open' outcome; its "
+               "outcomes are: 'basket_size', 'checkout'")  # fmt: skip
+    with pytest.raises(ReplayError, match=message):
+        estimate(tmp_path / name, reward="reminder_open", stream="recipe-card")
+    with pytest.raises(ReplayError, match="its outcomes are: 'basket_size', 'checkout'"):
+        estimate(tmp_path / name, reward="reminder_open", stream="recipe-card",
+                 missing_reward=None)  # fmt: skip
 
 
 def test_missing_rewards_count_as_zero_or_are_excluded(tmp_path):
@@ -302,10 +485,30 @@ def test_missing_rewards_count_as_zero_or_are_excluded(tmp_path):
     led.close()
     zero = estimate(tmp_path / "missing.db", reward="checkout", overrides={"temperature": 0.3})
     assert 40 == zero.n and 0.25 == zero.logging_value
+    assert {"filled": 30, "share": 0.75, "value": 0.0} == zero.to_dict()["missing_rewards"]
+    assert zero.alerts[0].startswith("30 of 40 records used (75.0%) have no 'checkout' outcome")
     kept = estimate(tmp_path / "missing.db", reward="checkout", missing_reward=None,
                     overrides={"temperature": 0.3})  # fmt: skip
     assert 10 == kept.n and 1.0 == kept.logging_value
     assert {"no checkout outcome": 30} == kept.excluded
+    assert ([], 0) == (kept.alerts, kept.missing_rewards["filled"])
+
+
+def test_a_few_missing_rewards_are_counted_without_an_alert(tmp_path):
+    """1 of 40 (2.5%) is below the 5% alert share; it is still counted in the JSON."""
+    led = dl.Ledger(tmp_path / "late.db")
+    shop.use(led, seed=1)
+    for i in range(40):
+        shop.feature_card(shop.context(i % 4), decision_id=f"d{i}")
+        if i:
+            led.outcome(f"d{i}", "checkout", float(i % 2))
+    led.close()
+    report = estimate(tmp_path / "late.db", reward="checkout")
+    assert {"filled": 1, "share": 0.025, "value": 0.0} == report.missing_rewards
+    assert [] == report.alerts
+    assert re.search(r"records without the reward \(counted as 0\) +1 \(2\.5%\)", str(report))
+    curve = sweep(tmp_path / "late.db", reward="checkout", param="temperature", values=[0.3, 1])
+    assert "records without the reward (counted as 0): 1 (2.5%)" in str(curve)
 
 
 def test_a_ledger_with_several_streams_needs_one_chosen(tmp_path):

@@ -3,6 +3,9 @@
 from __future__ import annotations
 
 import math
+import re
+import shutil
+import sqlite3
 from pathlib import Path
 from typing import Any
 
@@ -186,3 +189,80 @@ def test_bernstein_note_and_given_range_reach_the_json(cards, tmp_path, capsys):
     assert "no finite-sample guarantee" not in out
     for e in data["estimates"].values():
         assert 0.0 <= e["low"] <= e["high"] <= 1.0
+
+
+@pytest.fixture
+def edited(cards: str, tmp_path: Path) -> str:
+    """The cards ledger with every checkout of 0 edited to 1 without the integrity key."""
+    path = tmp_path / "edited.db"
+    shutil.copy(cards, path)
+    with sqlite3.connect(path) as conn:
+        conn.execute("UPDATE outcomes SET value = 1.0 WHERE value = 0.0")
+    return str(path)
+
+
+def test_a_ledger_that_fails_integrity_is_refused_with_exit_1(edited, tmp_path, capsys):
+    out_json = tmp_path / "estimate.json"
+    out_json.write_text('{"ok": true}')  # an earlier run's result must not survive
+    code, out, err = _run(capsys, edited, "--reward", "checkout", "--set", "temperature=0.3",
+                          "--json", str(out_json))  # fmt: skip
+    assert 1 == code
+    assert "" == out
+    assert 1 == len(err.strip().splitlines())
+    assert err.startswith("drawledger estimate: refused: the ledger fails its integrity check "
+                          "(bad_hashes: ")  # fmt: skip
+    data = orjson.loads(out_json.read_bytes())
+    assert (False, "integrity") == (data["ok"], data["refused"]["check"])
+    code, _, err = _run(capsys, edited, "--reward", "checkout", "--sweep",
+                        "temperature=0.3:0.9:3")  # fmt: skip
+    assert 1 == code and "refused: the ledger fails its integrity check" in err
+
+
+def test_accepted_integrity_failures_are_said_first_and_exit_1(edited, tmp_path, capsys):
+    out_json = tmp_path / "estimate.json"
+    code, out, err = _run(capsys, edited, "--reward", "checkout", "--set", "temperature=0.3",
+                          "--accept-integrity-failures", "--json", str(out_json))  # fmt: skip
+    assert (1, "") == (code, err)
+    assert out.startswith("ALERT: INTEGRITY FAILURES ACCEPTED (bad_hashes: ")
+    data = orjson.loads(out_json.read_bytes())
+    assert "alerts" == next(iter(data))
+    assert data["accepted_failures"]["integrity"]["bad_hashes"] > 0
+    assert data["ok"] is False
+
+
+def test_a_stream_failing_replay_is_refused_unless_its_reasons_are_accepted(tmp_path, capsys):
+    path = tmp_path / "sloppy.db"
+    led = dl.Ledger(path)
+    shop.simulate_cards(led, 120, seed=8, decision=shop.sloppy_card)
+    led.close()
+    code, out, err = _run(capsys, str(path), "--reward", "checkout", "--path", SUPPORT)
+    assert (1, "") == (code, out)
+    assert re.match(r"drawledger estimate: refused: \d+ of 120 decisions of stream "
+                    r"'sloppy-card' failed verification \(action: \d+", err)  # fmt: skip
+    code, out, err = _run(capsys, str(path), "--reward", "checkout", "--path", SUPPORT,
+                          "--accept-verification-failures", "action,nondeterministic")  # fmt: skip
+    assert (1, "") == (code, err)
+    assert out.startswith("ALERT: VERIFICATION FAILURES ACCEPTED: ")
+    assert "biased" in out.split("logging policy")[0]
+
+
+def test_a_reward_the_stream_never_received_exits_2_naming_its_outcomes(tmp_path, capsys):
+    led = dl.Ledger(tmp_path / "two.db")
+    shop.use(led, seed=2)
+    for i in range(10):
+        shop.feature_card(shop.context(i % 4), decision_id=f"c{i}")
+        shop.reminder_delay({"items": 2}, decision_id=f"r{i}")
+        led.outcome(f"c{i}", "checkout", 1.0)
+        led.outcome(f"r{i}", "reminder_open", 1.0)
+    led.close()
+    code, out, err = _run(capsys, str(tmp_path / "two.db"), "--reward", "reminder_open",
+                          "--stream", "recipe-card")  # fmt: skip
+    assert (2, "") == (code, out)
+    assert ("drawledger estimate: error: no decision of stream 'recipe-card' has a "
+            "'reminder_open' outcome; its outcomes are: 'checkout'\n") == err  # fmt: skip
+
+
+def test_an_unknown_reason_to_accept_exits_2(cards, capsys):
+    code, _, err = _run(capsys, cards, "--reward", "checkout",
+                        "--accept-verification-failures", "luck")  # fmt: skip
+    assert 2 == code and "unknown verification reason 'luck'" in err

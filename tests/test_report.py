@@ -199,7 +199,7 @@ def test_report_replaces_an_existing_file_whole(demo_run: Any, tmp_path: Path) -
     assert html.read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
     assert [html] == list(tmp_path.iterdir())
     d = result.to_dict()
-    assert {"ok", "html", "verify", "audit", "whatifs"} == set(d)
+    assert {"ok", "html", "verify", "audit", "whatifs", "refused"} == set(d)
     assert str(html) == d["html"]
     assert result.render().startswith(f"wrote {html}:")
 
@@ -248,3 +248,47 @@ def test_report_escapes_script_quotes_and_ampersands_from_the_ledger(tmp_path: P
     page = parse(text)
     assert [] == [t for t, _ in page.tags if t == "script"]
     assert f"audit of {stream} categorical" in [attrs["alt"] for attrs in images(page)]
+
+
+def _edited_demo(demo_run: Any, tmp_path: Path) -> Path:
+    """The demo ledger with every checkout of 0 edited to 1 without the integrity key."""
+    ledger = tmp_path / "edited.db"
+    shutil.copy(demo_run.ledger, ledger)
+    with sqlite3.connect(ledger) as con:
+        con.execute("UPDATE outcomes SET value = 1.0 WHERE value = 0.0")
+    return ledger
+
+
+def test_report_says_at_the_top_why_an_estimate_was_refused(
+    demo_run: Any, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A ledger that fails integrity: the page is written without the estimate, and the top
+    of the page and the terminal say it was refused; exit 1."""
+    html = tmp_path / "r.html"
+    argv = ["report", str(_edited_demo(demo_run, tmp_path)), "--html", str(html), "--allow",
+            ALLOW, "--reward", "checkout", "--set", "temperature=0.5", "--stream",
+            "recipe-card"]  # fmt: skip
+    assert 1 == main(argv)
+    assert capsys.readouterr().out.startswith("estimate refused: the ledger fails its integrity")
+    text = html.read_text(encoding="utf-8")
+    header = text.split("</header>", 1)[0]
+    assert '<p class="banner">Estimate refused: the ledger fails its integrity check' in header
+    assert "temperature = 0.5" not in text
+
+
+def test_report_of_an_estimate_from_accepted_failures_has_a_banner(
+    demo_run: Any, tmp_path: Path
+) -> None:
+    html = tmp_path / "r.html"
+    report = write_report(_edited_demo(demo_run, tmp_path), html, allow=[ALLOW],
+                          reward="checkout", overrides={"temperature": 0.5},
+                          stream="recipe-card", accept_integrity_failures=True,
+                          accept_verification_failures=["integrity"])  # fmt: skip
+    assert not report.ok
+    assert report.render().startswith("ALERT: What if: recipe-card with temperature = 0.5: "
+                                      "INTEGRITY FAILURES ACCEPTED")  # fmt: skip
+    text = html.read_text(encoding="utf-8")
+    header = text.split("</header>", 1)[0]
+    assert "INTEGRITY FAILURES ACCEPTED" in header
+    block = text.split("<h3>What if: recipe-card with temperature = 0.5", 1)[1]
+    assert block.split("</h3>", 1)[1].lstrip().startswith('<p class="banner">INTEGRITY')

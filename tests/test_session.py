@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import re
+import shutil
+import sqlite3
 from pathlib import Path
 from typing import Any
 
@@ -11,7 +13,7 @@ import pytest
 
 import drawledger as dl
 import drawledger.replay as replay
-from drawledger.exceptions import LedgerError, ReplayError
+from drawledger.exceptions import EstimateRefusedError, LedgerError, ReplayError
 from drawledger.replay import AuditReport, VerifyReport
 
 N = 60
@@ -127,6 +129,26 @@ def test_handle_report_writes_the_html_page(cards, tmp_path):
     result = replay.open(cards).report(html)
     assert html.is_file()
     assert result.verification.ok and isinstance(result.audit, AuditReport)
+
+
+def test_handle_estimate_sweep_and_report_refuse_an_edited_ledger_unless_accepted(cards, tmp_path):
+    """Outcomes edited without the key fail the integrity check: the handle's estimate and
+    sweep raise, its report says why at the top; the accept keywords pass through."""
+    edited = tmp_path / "edited.db"
+    shutil.copy(cards, edited)
+    with sqlite3.connect(edited) as conn:
+        conn.execute("UPDATE outcomes SET value = 1.0 WHERE value = 0.0")
+    handle = replay.open(edited)
+    with pytest.raises(EstimateRefusedError, match="integrity check"):
+        handle.estimate("checkout", overrides={"temperature": 0.3})
+    with pytest.raises(EstimateRefusedError, match="integrity check"):
+        handle.sweep("checkout", "temperature", [0.3, 1.0])
+    page = handle.report(tmp_path / "r.html", reward="checkout", overrides={"temperature": 0.3})
+    assert not page.ok and page.refused[0].startswith("the ledger fails its integrity check")
+    accepted = handle.estimate("checkout", overrides={"temperature": 0.3},
+                               accept_integrity_failures=True,
+                               accept_verification_failures=["integrity"])  # fmt: skip
+    assert not accepted.ok and accepted.accepted_failures is not None
 
 
 @pytest.mark.parametrize(

@@ -13,7 +13,7 @@ import sys
 from collections.abc import Callable, Sequence
 from typing import Any
 
-from drawledger.exceptions import DrawledgerError
+from drawledger.exceptions import DrawledgerError, EstimateRefusedError
 
 EXIT_OK, EXIT_FOUND, EXIT_USAGE = 0, 1, 2
 
@@ -187,23 +187,49 @@ def _estimate(args: argparse.Namespace) -> int:
         bootstrap=args.bootstrap, level=args.level, seed=args.seed, reward_range=reward_range,
         missing_reward=missing, progress=sys.stderr.isatty(), jobs=args.jobs,
         integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None,
-        engine=args.engine, scheduler=args.scheduler,
+        engine=args.engine, scheduler=args.scheduler, **_accepted(args),
     )  # fmt: skip
     report: Any
-    if args.sweep is not None:
-        param, values = _sweep_grid(args.sweep)
-        report = sweep(args.ledger, param=param, values=values, overrides=overrides or None,
-                       **common)  # fmt: skip
-        if args.plot:
-            report.figure().savefig(args.plot)
-    else:
-        report = estimate(args.ledger, overrides=overrides or None, target=args.target,
-                          by=args.by, **common)  # fmt: skip
+    try:
+        if args.sweep is not None:
+            param, values = _sweep_grid(args.sweep)
+            report = sweep(args.ledger, param=param, values=values, overrides=overrides or None,
+                           **common)  # fmt: skip
+        else:
+            report = estimate(args.ledger, overrides=overrides or None, target=args.target,
+                              by=args.by, **common)  # fmt: skip
+    except EstimateRefusedError as exc:
+        if args.json:  # never leave an earlier run's estimate in the file
+            refused = {"check": exc.check, "problems": exc.problems, "message": str(exc)}
+            with open(args.json, "wb") as out:
+                out.write(orjson.dumps({"ok": False, "refused": refused},
+                                       option=orjson.OPT_INDENT_2) + b"\n")  # fmt: skip
+        raise
+    if args.sweep is not None and args.plot:
+        report.figure().savefig(args.plot)
     if args.json:
         with open(args.json, "wb") as out:
             out.write(orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n")
     Console(highlight=False).print(report)
     return EXIT_OK if report.ok else EXIT_FOUND
+
+
+def _accepted(args: argparse.Namespace) -> dict[str, Any]:
+    """The failures the user accepts (``--accept-verification-failures a,b`` or repeated)."""
+    reasons = [r.strip() for item in args.accept_verification_failures for r in item.split(",")]
+    return {"accept_integrity_failures": args.accept_integrity_failures,
+            "accept_verification_failures": [r for r in reasons if r]}  # fmt: skip
+
+
+def _accept_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--accept-integrity-failures", action="store_true",
+                   help="estimate even though the ledger fails its integrity check: the "
+                   "flagged decisions are dropped, the output says so first, exit 1")  # fmt: skip
+    p.add_argument("--accept-verification-failures", action="append", default=[],
+                   metavar="REASON",
+                   help="estimate even though decisions failed verification for REASON "
+                   "(repeatable or comma-separated; 'all': any reason): they are dropped, "
+                   "the output says so first, exit 1")  # fmt: skip
 
 
 def _estimate_options(p: argparse.ArgumentParser) -> None:
@@ -212,8 +238,11 @@ def _estimate_options(p: argparse.ArgumentParser) -> None:
         "decision function with --set parameters, or a --target callable) from the verified\n"
         "records: IPS, SNIPS, clipped IPS and doubly robust, each with an interval, the paired\n"
         "difference to a baseline (default: the logging policy), and overlap diagnostics.\n"
-        "Exit 0 when the data can answer, 1 when the target has a support deficit or uneven\n"
-        "weights: a small effective sample size or one dominant weight (docs/estimators.md)."
+        "Exit 0 when the data can answer; 1 when the target has a support deficit or uneven\n"
+        "weights (a small effective sample size or one dominant weight), when the estimate is\n"
+        "refused because the ledger fails its integrity check or decisions of the stream failed\n"
+        "verification, or when such failures were accepted (docs/estimators.md); 2 for bad\n"
+        "usage, such as a reward that no decision of the stream has."
     )
     p.add_argument("--target", metavar="MODULE:FUNCTION",
                    help="target policy as a callable f(inputs, action) -> probability, "
@@ -244,6 +273,7 @@ def _estimate_options(p: argparse.ArgumentParser) -> None:
                    help="reward when the outcome is missing, or 'exclude' (default 0)")  # fmt: skip
     p.add_argument("--jobs", type=int, default=1, metavar="N",
                    help="verify in N processes (default 1)")  # fmt: skip
+    _accept_options(p)
 
 
 # The default demo size: the whole demo finishes in well under a minute on a laptop.
@@ -269,6 +299,7 @@ def _report(args: argparse.Namespace) -> int:
         args.ledger, args.html, path=args.path, allow=args.allow, reward=args.reward,
         overrides=_assignments(args.overrides, "--set") or None, stream=args.stream,
         progress=True, integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None,
+        **_accepted(args),
     )  # fmt: skip
     print(report.render())
     return EXIT_OK if report.ok else EXIT_FOUND
@@ -370,7 +401,8 @@ def build_parser() -> argparse.ArgumentParser:
         "Write one self-contained HTML file (no external requests, figures inline): integrity\n"
         "and verification with reasons, the randomization audit with its figures and, with\n"
         "--reward and --set, the estimate of a target policy with its weights. Exit 0 when\n"
-        "verification and the audit passed, 1 when they found a problem."
+        "verification and the audit passed, 1 when they found a problem or the estimate was\n"
+        "refused (the page then says why) or made from accepted failures."
     )
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     p.add_argument("--html", required=True, metavar="FILE", help="where to write the report")
@@ -380,6 +412,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--set", action="append", default=[], metavar="K=V", dest="overrides",
                    help="policy parameter of the target policy (repeatable)")  # fmt: skip
     p.add_argument("--stream", metavar="S", help="decision stream of the estimate")
+    _accept_options(p)
 
     p = add("ingest", "load declared draws or spill files into a ledger",
             "drawledger ingest legacy-draws.jsonl decisions.db", _ingest)  # fmt: skip
@@ -407,6 +440,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         print(f"drawledger: {args.command} needs {_EXTRA_NAMES[extra]} ({exc.name} is missing): "
               f"pip install 'drawledger[{extra}]'", file=sys.stderr)  # fmt: skip
         return EXIT_USAGE
+    except EstimateRefusedError as exc:  # a verdict about the data, not bad usage
+        if args.debug:
+            raise
+        print(f"drawledger {args.command}: refused: {str(exc).splitlines()[0]}", file=sys.stderr)
+        return EXIT_FOUND
     except (DrawledgerError, OSError, ValueError) as exc:
         if args.debug:
             raise

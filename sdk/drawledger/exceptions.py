@@ -11,6 +11,7 @@ __all__ = [
     "DecisionDefinitionError",
     "DrawArgumentError",
     "DrawledgerError",
+    "EstimateRefusedError",
     "LedgerClosedError",
     "LedgerError",
     "MissingFunctionError",
@@ -49,6 +50,24 @@ class LedgerClosedError(LedgerError):
 
 class ReplayError(DrawledgerError, RuntimeError):
     """Replay, audit or estimation could not run on the given ledger or arguments."""
+
+
+class EstimateRefusedError(ReplayError):
+    """An estimate was refused: the records it would use failed the integrity check or
+    verification, and the caller did not accept those failures.
+
+    A verdict about the data, not a usage error (the command line exits 1). ``check`` is
+    "integrity" or "verification"; ``problems`` counts the failures by kind (an integrity
+    problem such as ``bad_hashes``, or a verification reason such as ``action``).
+    """
+
+    def __init__(self, message: str, check: str = "", problems: dict[str, int] | None = None):
+        super().__init__(message)
+        self.check = check
+        self.problems = dict(problems or {})
+
+    def __reduce__(self) -> tuple[object, ...]:
+        return (type(self), (str(self), self.check, self.problems))
 
 
 class MissingFunctionError(ReplayError):

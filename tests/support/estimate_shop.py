@@ -86,8 +86,19 @@ def mixed_delay(basket: dict[str, Any], draw: dl.Draw, *, share: float = 0.5) ->
     return draw.normal(90.0, 15.0, name="delay")
 
 
+_SLOPPY = random.Random(5)
+
+
+@_placeholder.decision("sloppy-card")
+def sloppy_card(ctx: dict[str, Any], draw: dl.Draw, *, temperature: float = 0.7) -> str:
+    """A bug: the card comes from the random module, not from ``draw``, so nothing records
+    its probability and replay picks another card unless it matches by chance."""
+    probs = softmax_probs(ctx["scores"], temperature)
+    return _SLOPPY.choices(ctx["cards"], probs)[0]
+
+
 DECISIONS = (feature_card, greedy_card, reminder_delay, reminder_window, explore_card,
-             send_reminder, mixed_delay)  # fmt: skip
+             send_reminder, mixed_delay, sloppy_card)  # fmt: skip
 
 
 def use(ledger: dl.Ledger, seed: int | None = None) -> None:

@@ -9,7 +9,7 @@ keywords. Nothing is read until one of them runs.
 from __future__ import annotations
 
 import os
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Literal, TypedDict
 
@@ -121,6 +121,8 @@ class SweepArgs(TypedDict, total=False):
     seed: int
     reward_range: tuple[float, float] | None
     missing_reward: float | None
+    accept_integrity_failures: bool
+    accept_verification_failures: Collection[str]
 
 
 class EstimateArgs(SweepArgs, total=False):
@@ -136,6 +138,8 @@ class ReportArgs(TypedDict, total=False):
     overrides: Mapping[str, Any] | None
     stream: str | None
     title: str | None
+    accept_integrity_failures: bool
+    accept_verification_failures: Collection[str]
 
 
 class IntegrityArgs(TypedDict, total=False):

@@ -18,7 +18,7 @@ from drawledger.replay.estimate._estimators import ID_KEY
 from drawledger.replay.estimate._policies import Policy, Records, Target, evaluate
 from drawledger.replay.estimate._rewards import Rewards
 from drawledger.replay.propensity import MONTE_CARLO
-from drawledger.replay.verify import BASE_COLUMNS, Settings, verify_chunk
+from drawledger.replay.verify import BASE_COLUMNS, NOT_FAILING, Settings, verify_chunk
 
 T = TypeVar("T")
 
@@ -50,6 +50,7 @@ class Job:
     missing_reward: float | None
     reward_range: tuple[float, float] | None
     by: str | None = None
+    accept: frozenset[str] = frozenset()  # verification reasons the caller accepts
 
 
 @dataclass
@@ -72,6 +73,13 @@ class Facts:
     dists: list[bool] = field(default_factory=list)  # per policy: full distributions known
     bounds: list[float | None] = field(default_factory=list)  # per policy: largest weight
     labels: list[str] = field(default_factory=list)  # segment values, codes index this
+    rewarded: int = 0  # decisions of the stream with the reward (verified or not)
+    filled: int = 0  # records used whose reward is the missing-reward value
+    failed: int = 0  # decisions that failed verification
+    failed_reasons: Counter[str] = field(default_factory=Counter)  # theirs
+    refused_n: int = 0  # of them, with a reason the caller did not accept
+    refused: Counter[str] = field(default_factory=Counter)  # those reasons
+    code_changed: int = 0  # decisions used although their code changed (accepted)
 
 
 @dataclass
@@ -142,10 +150,39 @@ def _empty(facts: Facts, k: int) -> PieceData:
                      [none] * k, [none] * k, [None] * k, None, None, None)  # fmt: skip
 
 
+CHANGED = frozenset({"code-changed"})
+
+
+def _failures(reasons: pd.Series, facts: Facts, accept: frozenset[str]) -> np.ndarray:
+    """Count the decisions that failed verification by reason, and those with a reason the
+    caller did not accept (declared draws are not failures: the audit tests them). Returns
+    which of them are kept: with ``code-changed`` accepted, a decision whose only reason it is
+    replayed every draw, value, probability and action as recorded, so it is used."""
+    keep = np.zeros(len(reasons), dtype=bool)
+    for i, text in enumerate(reasons.fillna("not verified")):
+        found = set(str(text).split(";"))
+        if found <= NOT_FAILING:
+            continue
+        if found == CHANGED and CHANGED <= accept:
+            facts.code_changed += 1
+            keep[i] = True
+            continue
+        facts.failed += 1
+        facts.failed_reasons.update(found)
+        refused = found - accept
+        if refused:
+            facts.refused_n += 1
+            facts.refused.update(refused)
+    return keep
+
+
 def _usable(frame: pd.DataFrame, fns: dict[str, Any], rewards: Rewards,
-            job: Job) -> tuple[pd.DataFrame, np.ndarray, Counter[str]]:  # fmt: skip
+            job: Job, facts: Facts) -> tuple[pd.DataFrame, np.ndarray, Counter[str]]:  # fmt: skip
     """The records an estimate uses, their rewards, and the others counted by reason."""
     excluded: Counter[str] = Counter()
+    found = rewards.lookup(frame["decision_id"])
+    facts.rewarded = int((~np.isnan(found)).sum())
+    frame = frame.assign(_reward=found)
 
     def drop(mask: np.ndarray, reason: str) -> None:
         nonlocal frame
@@ -153,24 +190,27 @@ def _usable(frame: pd.DataFrame, fns: dict[str, Any], rewards: Rewards,
             excluded[reason] += int(mask.sum())
             frame = frame[~mask]
 
-    verified = frame["verified"].astype(bool).to_numpy()
-    for reasons in frame.loc[~verified, "reason"].fillna("not verified"):
+    failed = ~frame["verified"].astype(bool).to_numpy()
+    usable = ~failed
+    usable[failed] = _failures(frame.loc[failed, "reason"], facts, job.accept)
+    for reasons in frame.loc[~usable, "reason"].fillna("not verified"):
         excluded.update(str(reasons).split(";"))
-    frame = frame[verified]
+    frame = frame[usable]
     drop(np.array([not fns[d] for d in frame["decision_id"]], dtype=bool),
          "no decision function (bucket assignment)")  # fmt: skip
     drop((frame["propensity_method"] == MONTE_CARLO).to_numpy(),
          "logging propensity only estimated by Monte Carlo")  # fmt: skip
     drop(~(pd.to_numeric(frame["propensity"], errors="coerce").to_numpy(dtype=float) > 0.0),
          "no positive replayed propensity")  # fmt: skip
-    r = rewards.lookup(frame["decision_id"])
+    r = frame["_reward"].to_numpy(dtype=np.float64)
     if job.missing_reward is None:
         missing = np.isnan(r)
         drop(missing, f"no {job.reward} outcome")
         r = r[~missing]
     else:
+        facts.filled = int(np.isnan(r).sum())
         r = np.where(np.isnan(r), job.missing_reward, r)
-    return frame, r, excluded
+    return frame.drop(columns="_reward"), r, excluded
 
 
 def _flatten(obj: Any, prefix: str, out: dict[str, float]) -> None:
@@ -253,7 +293,8 @@ def evaluate_piece(rows: Sequence[tuple[Any, ...]], draws: Iterable[tuple[Any, .
     texts: dict[str, tuple[Any, Any, Any]] = {}
     for row in rows:
         texts.setdefault(row[DEC.decision_id], (row[DEC.fn], row[DEC.inputs], row[DEC.params]))
-    frame, r, facts.excluded = _usable(frame, {d: t[0] for d, t in texts.items()}, rewards, job)
+    fns = {d: t[0] for d, t in texts.items()}
+    frame, r, facts.excluded = _usable(frame, fns, rewards, job, facts)
     if job.reward_range is not None:
         facts.outside = int(((r < job.reward_range[0]) | (r > job.reward_range[1])).sum())
     if frame.empty or facts.outside:

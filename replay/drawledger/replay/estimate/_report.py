@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import html
 import os
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
@@ -124,9 +125,14 @@ class EstimateReport:
     decisions: int
     weights: np.ndarray = field(repr=False)
     ok: bool = True
+    alerts: list[str] = field(default_factory=list)
+    accepted_failures: dict[str, Any] | None = None
+    missing_rewards: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {
+            "alerts": self.alerts,
+            "accepted_failures": self.accepted_failures,
             "n": self.n,
             "target": self.target,
             "estimates": self.estimates,
@@ -135,6 +141,7 @@ class EstimateReport:
             "difference": self.difference,
             "logging_value": self.logging_value,
             "excluded": {"total": self.decisions - self.n, "by_reason": self.excluded},
+            "missing_rewards": self.missing_rewards,
             "settings": self.settings,
             "warnings": self.warnings,
             "ok": self.ok,
@@ -177,7 +184,8 @@ class EstimateReport:
                 for name, e in self.results.items()]  # fmt: skip
         head = ("estimator", "value", "low", "high", "outer low", "outer high", "diff",
                 "diff low", "diff high")  # fmt: skip
-        return html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
+        table = html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
+        return _html_alerts(self.alerts) + table
 
     def _tables(self) -> list[Any]:
         from rich.box import SIMPLE
@@ -206,6 +214,9 @@ class EstimateReport:
         g.add_row("support deficit", _fmt(diag["support_deficit"]))
         if self.logging_value is not None:
             g.add_row("logging policy mean reward", _fmt(self.logging_value))
+        filled = _filled(self.missing_rewards)
+        if filled:
+            g.add_row(*filled)
         out: list[Any] = [t, g]
         if self.segments is not None:
             s = Table(title=f"segments by {self.segments['by']}", title_justify="left", box=SIMPLE)
@@ -220,6 +231,7 @@ class EstimateReport:
         return out
 
     def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
+        yield from _alerts(self.alerts)
         yield from self._tables()
         for w in self.warnings:
             yield f"[yellow]warning:[/yellow] {w}"
@@ -230,6 +242,27 @@ class EstimateReport:
 
     def __str__(self) -> str:
         return self.render()
+
+
+def _filled(missing: Mapping[str, Any]) -> tuple[str, str] | None:
+    """The diagnostic of the records whose reward was missing and filled in (None: none)."""
+    if not missing.get("filled"):
+        return None
+    return (f"records without the reward (counted as {missing['value']:g})",
+            f"{missing['filled']} ({missing['share']:.1%})")  # fmt: skip
+
+
+def _html_alerts(lines: list[str]) -> str:
+    """The alerts as paragraphs above the table (escaped)."""
+    return "".join(f"<p><b>ALERT:</b> {html.escape(line)}</p>" for line in lines)
+
+
+def _alerts(lines: list[str]) -> RenderResult:
+    """The alerts above everything else, each a line of its own (text, never markup)."""
+    from rich.text import Text
+
+    for line in lines:
+        yield Text.assemble(("ALERT: ", "bold red"), line)
 
 
 def _plain(renderable: Any) -> str:
@@ -253,6 +286,9 @@ class SweepReport:
     warnings: list[str]
     n: int
     ok: bool = True
+    alerts: list[str] = field(default_factory=list)
+    accepted_failures: dict[str, Any] | None = None
+    missing_rewards: dict[str, Any] = field(default_factory=dict)
 
     @property
     def table(self) -> pd.DataFrame:
@@ -310,17 +346,22 @@ class SweepReport:
         rows = [(p["value"], name, e["value"], e["low"], e["high"], p["diagnostics"]["ess"])
                 for p in self.points for name, e in p["estimates"].items()]  # fmt: skip
         head = (self.param, "estimator", "value", "low", "high", "ess")
-        return html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
+        table = html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
+        return _html_alerts(self.alerts) + table
 
     def to_dict(self) -> dict[str, Any]:
-        return {"n": self.n, "param": self.param, "points": self.points,
+        return {"alerts": self.alerts, "accepted_failures": self.accepted_failures,
+                "n": self.n, "param": self.param, "points": self.points,
                 "baseline": self.baseline, "settings": self.settings,
-                "warnings": self.warnings, "ok": self.ok}  # fmt: skip
+                "missing_rewards": self.missing_rewards, "warnings": self.warnings,
+                "ok": self.ok}  # fmt: skip
 
     def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
         from rich.box import SIMPLE
         from rich.table import Table
+        from rich.text import Text
 
+        yield from _alerts(self.alerts)
         t = Table(title=f"{self.param} sweep: {self.n} verified records, "
                   f"{_intervals(self.settings)}", title_justify="left", box=SIMPLE)  # fmt: skip
         shown = [n for n in ("snips", "dr") if self.points and n in self.points[0]["estimates"]]
@@ -337,6 +378,9 @@ class SweepReport:
             t.add_row(f"{p['value']:g}" if isinstance(p["value"], float) else str(p["value"]),
                       *cells, f"{p['diagnostics']['ess']:.1f}")  # fmt: skip
         yield t
+        filled = _filled(self.missing_rewards)
+        if filled:
+            yield Text(f"{filled[0]}: {filled[1]}")
         for w in self.warnings:
             yield f"[yellow]warning:[/yellow] {w}"
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 import os
 from collections import Counter
-from collections.abc import Mapping, Sequence
+from collections.abc import Collection, Mapping, Sequence
 from dataclasses import dataclass, replace
 from numbers import Real
 from typing import TYPE_CHECKING, Any
@@ -17,6 +17,7 @@ from drawledger.replay.engines import open_engine
 from drawledger.replay.estimate import _estimators as est
 from drawledger.replay.estimate._piece import Job
 from drawledger.replay.estimate._policies import Policy, Target
+from drawledger.replay.estimate._refuse import accepted_reasons, alerts, failure_fields
 from drawledger.replay.estimate._report import (
     DEFAULT_BOOTSTRAP,
     DEFAULT_CAP,
@@ -109,6 +110,8 @@ class _Question:
     integrity_key: bytes | str | None
     engine: str
     scheduler: str | None
+    accept_integrity: bool
+    accept: frozenset[str]
 
 
 def _pass(
@@ -131,7 +134,7 @@ def _pass(
         stream = choose_stream(sql_streams(text), q.stream, text)
         tasks = plan(text, format=q.format)
     job = Job(tuple(policies), q.reward, stream, settings, q.seed, q.missing_reward,
-              q.reward_range, by)  # fmt: skip
+              q.reward_range, by, q.accept)  # fmt: skip
     target, format = text, q.format
     if q.engine == "dask":  # the workers may run elsewhere: absolute paths
         target, format = os.fspath(root), "parquet"
@@ -139,7 +142,8 @@ def _pass(
     with open_engine(q.engine, jobs=q.jobs, scheduler=q.scheduler, progress=q.progress,
                      command="estimate") as engine:  # fmt: skip
         return estimate_on(engine, target, format, tasks, job, integrity_key=q.integrity_key,
-                           cap=cap, bootstrap=bootstrap, weights=weights), stream  # fmt: skip
+                           cap=cap, bootstrap=bootstrap, weights=weights,
+                           accept_integrity=q.accept_integrity), stream  # fmt: skip
 
 
 @dataclass
@@ -199,10 +203,15 @@ def _summary(g: Group, has_dr: bool, bounds: tuple[float, float], s: _Settings,
 
 
 def _excluded_warnings(p: Pass) -> list[str]:
+    out = []
+    if p.failures.code_changed:
+        out.append(f"{p.failures.code_changed} decisions ran under decision code that has "
+                   "changed since; they replayed every draw as recorded and are used "
+                   "(code-changed accepted)")  # fmt: skip
     if not p.excluded:
-        return []
+        return out
     parts = ", ".join(f"{k}: {v}" for k, v in sorted(p.excluded.items()))
-    return [f"{p.total - p.n} of {p.total} decisions were excluded ({parts})"]
+    return [*out, f"{p.total - p.n} of {p.total} decisions were excluded ({parts})"]
 
 
 def _deficit_warning(deficit: float, reward_range: tuple[float, float], dr: bool) -> str:
@@ -241,6 +250,15 @@ def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool,
     return out
 
 
+def _accepted(p: Pass) -> bool:
+    """Failures were accepted: the estimate comes from a ledger or stream that failed."""
+    return bool(p.integrity or p.failures.failed)
+
+
+def _found(p: Pass, missing_reward: float | None) -> dict[str, Any]:
+    return failure_fields(p.failures, p.integrity, missing_reward, p.n)
+
+
 def _problem(summary: dict[str, Any]) -> bool:
     d = summary["diagnostics"]
     deficit = d["support_deficit"]
@@ -266,6 +284,8 @@ def _question(
 ) -> tuple[_Question, float, int]:  # fmt: skip
     cap, b = _check_options(reward, interval, bootstrap, clip, level, kw["engine"],
                             kw["scheduler"], reward_range)  # fmt: skip
+    kw["accept"] = accepted_reasons(kw.pop("accept_verification_failures"),
+                                    kw["accept_integrity"])  # fmt: skip
     kw["path"] = tuple(os.fspath(p) for p in kw["path"])
     kw["allow"] = tuple(kw["allow"])
     given = None if reward_range is None else (float(reward_range[0]), float(reward_range[1]))
@@ -296,6 +316,8 @@ def estimate(
     integrity_key: bytes | str | None = None,
     engine: str = "local",
     scheduler: str | None = None,
+    accept_integrity_failures: bool = False,
+    accept_verification_failures: Collection[str] = (),
 ) -> EstimateReport:
     """Estimate the mean ``reward`` of a target policy from the verified records of a ledger.
 
@@ -310,14 +332,23 @@ def estimate(
     ``by`` splits the estimate into segments by a column of the verified records or a dotted
     field of the inputs. ``jobs`` and ``integrity_key`` go to ``verify``; ``engine="dask"``
     replays and re-executes the decisions on the Dask cluster at ``scheduler``. Raises
-    ``ReplayError`` when the question cannot be run.
+    ``ReplayError`` when the question cannot be run (a reward no decision of the stream has).
+
+    No estimate is made from a ledger that fails its integrity check, or from a stream whose
+    decisions failed verification (the ones that replayed by chance are a biased subset):
+    ``EstimateRefusedError`` names the failures. ``accept_integrity_failures=True`` and
+    ``accept_verification_failures`` (reasons such as ``["code-changed"]``, or ``["all"]``)
+    accept them: the failing decisions are dropped, the report's ``alerts`` say so first,
+    ``accepted_failures`` counts them, and ``ok`` is False.
     """
     if overrides is not None and target is not None:
         raise ReplayError("give either overrides (changed parameters) or a callable target")
     q, cap, b = _question(reward, interval, bootstrap, clip, level, reward_range, stream=stream,
                           path=path, allow=allow, seed=seed, missing_reward=missing_reward,
                           format=format, progress=progress, jobs=jobs, engine=engine,
-                          integrity_key=integrity_key, scheduler=scheduler)  # fmt: skip
+                          integrity_key=integrity_key, scheduler=scheduler,
+                          accept_integrity=accept_integrity_failures,
+                          accept_verification_failures=accept_verification_failures)  # fmt: skip
     spec: Policy = target if target is not None else dict(overrides or {})
     for policy in (spec, baseline):  # refuse a bad callable before the long pass
         Target(policy, q.path, q.allow)
@@ -328,6 +359,8 @@ def estimate(
     summary = _summary(p.pairs[0], has_dr, bounds, s, p.weights)
     warnings = [*_excluded_warnings(p), *_warnings(summary, p.methods[0], has_dr, s.reward_range),
                 *s.notes()]  # fmt: skip
+    top = alerts(p.failures, p.integrity, reward, missing_reward, p.n)
+    found = _found(p, missing_reward)
     describe = {**_describe(spec), "stream": stream_name, "functions": p.functions,
                 "reward": reward, "propensities": dict(p.methods[0])}  # fmt: skip
     assert p.weights is not None
@@ -337,7 +370,9 @@ def estimate(
         baseline_estimates=summary["baseline"], difference=summary["difference"],
         excluded=dict(p.excluded), warnings=warnings, settings=s.to_dict(),
         segments=None if by is None else _segments(p, bounds, s, by),
-        decisions=p.total, weights=p.weights, ok=not _problem(summary),
+        decisions=p.total, weights=p.weights, ok=not _problem(summary) and not _accepted(p),
+        alerts=top, accepted_failures=found["accepted_failures"],
+        missing_rewards=found["missing_rewards"],
     )  # fmt: skip
 
 
@@ -365,6 +400,8 @@ def sweep(
     integrity_key: bytes | str | None = None,
     engine: str = "local",
     scheduler: str | None = None,
+    accept_integrity_failures: bool = False,
+    accept_verification_failures: Collection[str] = (),
 ) -> SweepReport:
     """Estimates of the policies ``overrides + {param: v}`` for each v in ``values``.
 
@@ -379,7 +416,9 @@ def sweep(
     q, cap, b = _question(reward, interval, bootstrap, clip, level, reward_range, stream=stream,
                           path=path, allow=allow, seed=seed, missing_reward=missing_reward,
                           format=format, progress=progress, jobs=jobs, engine=engine,
-                          integrity_key=integrity_key, scheduler=scheduler)  # fmt: skip
+                          integrity_key=integrity_key, scheduler=scheduler,
+                          accept_integrity=accept_integrity_failures,
+                          accept_verification_failures=accept_verification_failures)  # fmt: skip
     fixed = dict(overrides or {})
     policies: list[Policy] = [{**fixed, param: v} for v in grid]
     policies.append(baseline)
@@ -404,5 +443,7 @@ def sweep(
         param=param, values=grid, points=points,
         baseline={**_describe(baseline), "estimates": base_estimates},
         settings={**s.to_dict(), "overrides": fixed, "stream": stream_name, "reward": reward},
-        warnings=_excluded_warnings(p) + warnings + s.notes(), n=p.n, ok=ok,
+        warnings=_excluded_warnings(p) + warnings + s.notes(), n=p.n, ok=ok and not _accepted(p),
+        alerts=alerts(p.failures, p.integrity, reward, missing_reward, p.n),
+        **_found(p, missing_reward),
     )  # fmt: skip

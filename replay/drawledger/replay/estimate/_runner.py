@@ -10,10 +10,11 @@ from typing import Any, TypeVar
 from drawledger.exceptions import ReplayError
 from drawledger.replay.engines import Engine
 from drawledger.replay.estimate._piece import Facts, Job, PieceData, evaluate_piece
+from drawledger.replay.estimate._refuse import Failures, check_stream, integrity_verdict
 from drawledger.replay.estimate._rewards import Rewards, read_rewards
 from drawledger.replay.estimate._stages import Pass, run_pass
 from drawledger.replay.integrity import check_on
-from drawledger.replay.sources import Task
+from drawledger.replay.sources import Task, stream_outcome_names
 
 T = TypeVar("T")
 
@@ -59,14 +60,27 @@ class EngineRunner:
 def estimate_on(
     engine: Engine, ledger: str, format: str | None, tasks: Sequence[Task], job: Job, *,
     integrity_key: bytes | str | None, cap: float, bootstrap: int, weights: bool,
+    accept_integrity: bool,
 ) -> Pass:  # fmt: skip
     """``run_pass`` on ``engine``: the rewards table read by one side task (kept on the engine)
-    and the integrity check beside it; the flagged decisions reach every chunk."""
+    and the integrity check beside it; the flagged decisions reach every chunk. A failed
+    integrity check refuses the estimate unless ``accept_integrity``."""
     checking = check_on(engine, ledger, format=format, integrity_key=integrity_key)
     rewards = engine.submit(read_rewards, os.fspath(ledger), format, job.reward,
                             label="reading outcomes")  # fmt: skip
     if not engine.submit(_count, rewards, label="reading outcomes").result():
         raise ReplayError(f"no outcome named {job.reward!r} in the ledger")
-    flagged = frozenset(checking.result().decision_ids)
+    report = checking.result()
+    integrity = integrity_verdict(report, accept_integrity)
+    flagged = frozenset(report.decision_ids)
     runner = EngineRunner(engine, tasks, flagged, rewards)
-    return run_pass(runner, job, cap=cap, bootstrap=bootstrap, weights=weights)
+
+    def names() -> list[str]:
+        return engine.submit(stream_outcome_names, ledger, format, job.stream,
+                             label="reading outcome names").result()  # fmt: skip
+
+    def check(facts: Sequence[Facts]) -> Failures:
+        return check_stream(facts, job.reward, job.stream, names)
+
+    return run_pass(runner, job, cap=cap, bootstrap=bootstrap, weights=weights, check=check,
+                    integrity=integrity)  # fmt: skip

@@ -23,6 +23,7 @@ from drawledger.replay.estimate._piece import (
     PieceData,
     too_many_segments,
 )
+from drawledger.replay.estimate._refuse import Failures
 from drawledger.replay.estimate._reward_model import RewardModel, RidgeStats, dr_terms
 
 T = TypeVar("T")
@@ -203,11 +204,17 @@ class Pass:
     pairs: list[Group]  # per target
     segments: dict[str, Group]
     weights: np.ndarray | None
+    failures: Failures
+    integrity: dict[str, int]  # integrity problems the caller accepted
 
 
-def run_pass(runner: Runner, job: Job, *, cap: float, bootstrap: int, weights: bool) -> Pass:
-    """The three stages over every piece; raises ``ReplayError`` when nothing can be used."""
+def run_pass(runner: Runner, job: Job, *, cap: float, bootstrap: int, weights: bool,
+             check: Callable[[Sequence[Facts]], Failures],
+             integrity: dict[str, int]) -> Pass:  # fmt: skip
+    """The three stages over every piece; ``check`` refuses what stage 1 found unusable;
+    raises ``ReplayError`` when nothing can be used."""
     facts = runner.first(job)
+    failures = check(facts)
     k = len(job.policies)
     excluded: Counter[str] = Counter()
     for f in facts:
@@ -255,7 +262,8 @@ def run_pass(runner: Runner, job: Job, *, cap: float, bootstrap: int, weights: b
         functions=sorted({fn for f in used for fn in f.functions}), methods=methods,
         reward_range=plan.reward_range, dr=dists, bounds=bounds, pairs=pairs,
         segments={v: Group.combine(g) for v, g in segments.items()},
-        weights=np.concatenate(kept) if weights else None,
+        weights=np.concatenate(kept) if weights else None, failures=failures,
+        integrity=integrity,
     )  # fmt: skip
 
 

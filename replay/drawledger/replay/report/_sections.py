@@ -127,6 +127,7 @@ class EstimateBlock:
     weights: Image
     diagnostics: Table
     warnings: Sequence[str]
+    alerts: Sequence[str] = ()
 
 
 @dataclass(frozen=True)
@@ -143,6 +144,7 @@ class SweepBlock:
     figure: Image
     table: Table
     warnings: Sequence[str]
+    alerts: Sequence[str] = ()
 
 
 def verify_section(v: VerifyReport) -> VerifySection:
@@ -273,6 +275,7 @@ def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> Estim
             ("largest weight / sum of weights", num(d.get("max_weight_share"))),
             ("support deficit", num(d.get("support_deficit"))),
             ("logging policy mean (observed)", num(r.logging_value)),
+            *_filled(r),
         ],
         cls="narrow",
     )
@@ -288,7 +291,17 @@ def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> Estim
         weights=weights_figure(r),
         diagnostics=diagnostics,
         warnings=r.warnings,
+        alerts=r.alerts,
     )
+
+
+def _filled(r: EstimateReport) -> list[tuple[str, str]]:
+    """The diagnostic of the records whose reward was missing and filled in, if any."""
+    m = r.missing_rewards
+    if not m.get("filled"):
+        return []
+    return [(f"records without the reward (counted as {m['value']:g})",
+             f"{num(m['filled'])} ({m['share']:.1%})")]  # fmt: skip
 
 
 def _sweep_block(title: str, s: SweepReport, truth: Sequence[float] | None) -> SweepBlock:
@@ -317,6 +330,7 @@ def _sweep_block(title: str, s: SweepReport, truth: Sequence[float] | None) -> S
         figure=sweep_figure(s, truth),
         table=Table(head, rows),
         warnings=_grouped(s.warnings, s.param),
+        alerts=s.alerts,
     )
 
 

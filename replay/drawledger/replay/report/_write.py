@@ -16,7 +16,7 @@ from __future__ import annotations
 import datetime as _dt
 import os
 import sys
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -24,7 +24,7 @@ from typing import Any
 from jinja2 import Environment, PackageLoader, StrictUndefined
 
 from drawledger import __version__
-from drawledger.exceptions import ReplayError
+from drawledger.exceptions import EstimateRefusedError, ReplayError
 from drawledger.replay.audit import AuditReport, audit
 from drawledger.replay.estimate import EstimateReport, SweepReport, estimate
 from drawledger.replay.report._format import num, policy
@@ -65,11 +65,14 @@ class HtmlReport:
     verification: VerifyReport
     audit: AuditReport
     whatifs: list[WhatIf] = field(default_factory=list)
+    refused: list[str] = field(default_factory=list)  # estimates refused, and why
 
     @property
     def ok(self) -> bool:
-        """Verification and audit passed (estimate warnings do not make a report fail)."""
-        return self.verification.ok and self.audit.ok
+        """Verification and audit passed, no estimate was refused or made from accepted
+        failures (estimate warnings do not make a report fail)."""
+        accepted = any(w.result.accepted_failures for w in self.whatifs)
+        return self.verification.ok and self.audit.ok and not self.refused and not accepted
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -78,11 +81,15 @@ class HtmlReport:
             "verify": self.verification.to_dict(),
             "audit": self.audit.to_dict(),
             "whatifs": [{"title": w.title, **w.result.to_dict()} for w in self.whatifs],
+            "refused": self.refused,
         }
 
     def render(self) -> str:
+        """One line of what was written, after the refused estimates and the alerts."""
         v, a = self.verification, self.audit
-        return (
+        top = [f"estimate refused: {r}" for r in self.refused]
+        top += [f"ALERT: {w.title}: {line}" for w in self.whatifs for line in w.result.alerts]
+        return "".join(f"{line}\n" for line in top) + (
             f"wrote {self.path}: {v.decisions} decisions, {v.verified} verified, "
             f"{v.mismatched} mismatched, {v.unreplayable} unreplayable; integrity "
             f"{'ok' if v.integrity.ok else 'FAILED'}; audit "
@@ -108,6 +115,8 @@ def write_report(
     title: str | None = None,
     progress: bool = False,
     integrity_key: bytes | str | None = None,
+    accept_integrity_failures: bool = False,
+    accept_verification_failures: Collection[str] = (),
 ) -> HtmlReport:
     """Write one self-contained HTML report of ``ledger`` to ``html``.
 
@@ -117,7 +126,10 @@ def write_report(
     sweeps; ``reward`` with ``overrides`` (and ``stream`` when the ledger has several) adds the
     estimate of that target policy. ``integrity_key`` is the key the ledger's hashes were
     written with, if any. ``progress`` shows progress bars when stderr is a terminal. The
-    file is written whole or not at all.
+    file is written whole or not at all. An estimate that ``estimate`` refuses (a ledger that
+    fails its integrity check, a stream with verification failures) is not drawn: the page
+    says why at the top, as it does for one made from failures accepted with
+    ``accept_integrity_failures`` / ``accept_verification_failures``.
     """
     target = Path(os.fspath(html))
     if target.suffix.lower() not in (".html", ".htm"):
@@ -134,37 +146,49 @@ def write_report(
     if audit_report is None:
         audit_report = audit(ledger, progress=progress)
     questions = list(whatifs)
+    refused: list[str] = []
     if reward is not None:
-        result = estimate(
-            ledger,
-            reward=reward,
-            overrides=dict(overrides or {}),
-            stream=stream,
-            path=path,
-            allow=allow,
-            progress=progress,
-            integrity_key=integrity_key,
-        )
-        questions.append(WhatIf(f"What if: {policy(result.target)}", result))
+        try:
+            result = estimate(
+                ledger,
+                reward=reward,
+                overrides=dict(overrides or {}),
+                stream=stream,
+                path=path,
+                allow=allow,
+                progress=progress,
+                integrity_key=integrity_key,
+                accept_integrity_failures=accept_integrity_failures,
+                accept_verification_failures=accept_verification_failures,
+            )
+        except EstimateRefusedError as exc:
+            refused.append(str(exc))
+        else:
+            questions.append(WhatIf(f"What if: {policy(result.target)}", result))
     if progress:
         from rich.console import Console
 
         with Console(stderr=True).status("drawing the report's figures"):
-            page = _page(os.fspath(ledger), verification, audit_report, questions, title)
+            page = _page(os.fspath(ledger), verification, audit_report, questions, title,
+                         refused)  # fmt: skip
     else:
-        page = _page(os.fspath(ledger), verification, audit_report, questions, title)
+        page = _page(os.fspath(ledger), verification, audit_report, questions, title, refused)
     tmp = target.with_name(f".{target.name}.tmp")
     tmp.write_text(page, encoding="utf-8")
     tmp.replace(target)
-    return HtmlReport(target, verification, audit_report, questions)
+    return HtmlReport(target, verification, audit_report, questions, refused)
 
 
 def _page(
-    ledger: str, v: VerifyReport, a: AuditReport, questions: Sequence[WhatIf], title: str | None
-) -> str:
+    ledger: str, v: VerifyReport, a: AuditReport, questions: Sequence[WhatIf], title: str | None,
+    refused: Sequence[str] = (),
+) -> str:  # fmt: skip
+    alerts = [f"Estimate refused: {r}" for r in refused]
+    alerts += [f"{w.title}: {a}" for w in questions for a in w.result.alerts]
     return TEMPLATES.get_template("page.html.j2").render(
         heading=title or "drawledger report",
-        ok=v.ok and a.ok,
+        ok=v.ok and a.ok and not refused and not any(w.result.accepted_failures for w in questions),
+        alerts=alerts,
         ledger=ledger,
         decisions=num(v.decisions),
         generated=_dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),

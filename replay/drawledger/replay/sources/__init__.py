@@ -1,7 +1,12 @@
 """The one way to read a ledger: cut any ledger (SQLite, PostgreSQL, Parquet) into pieces and read
 them, whole tables or chunks of decisions with their draws."""
 
-from drawledger.replay.sources._outcomes import outcome_totals, outcome_values, sql_streams
+from drawledger.replay.sources._outcomes import (
+    outcome_totals,
+    outcome_values,
+    sql_streams,
+    stream_outcome_names,
+)
 from drawledger.replay.sources._parquet import (
     Piece,
     parquet_root,
@@ -47,6 +52,7 @@ __all__ = [
     "read_piece_frames",
     "read_tables",
     "sql_streams",
+    "stream_outcome_names",
     "stream_partitions",
     "writer_pages",
 ]

@@ -97,3 +97,38 @@ def sql_streams(target: str | os.PathLike[str]) -> list[str]:
             return sorted(str(s) for s in found if s is not None)
     finally:
         engine.dispose()
+
+
+def stream_outcome_names(target: str | os.PathLike[str], format: str | None,
+                         stream: str) -> list[str]:  # fmt: skip
+    """The outcome names recorded for decisions of ``stream``, sorted."""
+    if is_parquet(target, format):
+        import pyarrow.parquet as pq
+
+        from drawledger import _parquet
+        from drawledger.replay.sources._parquet import stream_partitions
+
+        ids: set[str] = set()
+        for partition in stream_partitions(target).get(stream, []):
+            for path in partition.parts:
+                ids.update(pq.read_table(path, columns=["decision_id"]).column(0).to_pylist())
+        names: set[str] = set()
+        for part in _parquet.parts(os.fspath(target), "outcomes"):
+            table = pq.read_table(os.fspath(part.path), columns=["decision_id", "name"])
+            for did, name in zip(*(c.to_pylist() for c in table.columns), strict=True):
+                if did in ids:
+                    names.add(str(name))
+        return sorted(names)
+    engine = open_engine(target)
+    try:
+        with engine.connect() as conn:
+            found = conn.execute(
+                sa.text(
+                    "SELECT DISTINCT o.name FROM outcomes o JOIN decisions d "
+                    "ON d.decision_id = o.decision_id WHERE d.stream = :s"
+                ),
+                {"s": stream},
+            ).scalars()
+            return sorted(str(n) for n in found if n is not None)
+    finally:
+        engine.dispose()

@@ -12,10 +12,12 @@ from drawledger.replay.verify._imports import (
 )
 from drawledger.replay.verify._report import VerifyReport
 from drawledger.replay.verify._run import verify
-from drawledger.replay.verify._types import Settings, absolute_paths
+from drawledger.replay.verify._types import NOT_FAILING, REASONS, Settings, absolute_paths
 
 __all__ = [
     "BASE_COLUMNS",
+    "NOT_FAILING",
+    "REASONS",
     "Settings",
     "VerifyReport",
     "absolute_paths",
