@@ -248,3 +248,14 @@ def test_report_escapes_script_quotes_and_ampersands_from_the_ledger(tmp_path: P
     page = parse(text)
     assert [] == [t for t, _ in page.tags if t == "script"]
     assert f"audit of {stream} categorical" in [attrs["alt"] for attrs in images(page)]
+
+
+def test_an_error_line_shows_control_characters_escaped(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """The one error line never carries an escape sequence or a bidirectional override."""
+    html = str(tmp_path / "r\x1b[2J\u202e.txt")
+    assert 2 == main(["report", str(tmp_path / "x.db"), "--html", html])
+    err = capsys.readouterr().err
+    assert r"r\x1b[2J\u202e.txt" in err
+    assert "\x1b" not in err

@@ -206,3 +206,18 @@ def test_entry_points_and_folders_without_init_are_never_imported(
                       "--json", str(out)])  # fmt: skip
     assert not canary.exists()
     assert 1 == json.loads(out.read_text())["by_reason"].get("missing-function")
+
+
+def test_ledger_text_reaches_the_terminal_as_text_never_as_markup_or_escapes(
+    tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
+    """A stream ``[/]`` no longer crashes verify; ``price[eur]`` keeps its brackets; ESC and a
+    right-to-left override show as ``\\x1b`` and ``\\u202e`` (no forged "verify passed")."""
+    hostile = "[/]price[eur]\x1b[2J\u202e\nverify passed"
+    led = dl.Ledger(tmp_path / "hostile.db")
+    led.record_draw(hostile, "bernoulli", {"p": 0.5}, True, 0.5, decision_id=hostile)
+    led.close()
+    assert 0 == main(["verify", str(tmp_path / "hostile.db")])
+    out = capsys.readouterr().out
+    assert r"[/]price[eur]\x1b[2J\u202e\x0averify passed" in out
+    assert [] == [c for c in out if c in "\x1b\u202e"]

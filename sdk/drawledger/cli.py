@@ -12,6 +12,7 @@ import sys
 from collections.abc import Callable, Sequence
 from typing import Any
 
+from drawledger._text import visible
 from drawledger.exceptions import DrawledgerError
 
 EXIT_OK, EXIT_FOUND, EXIT_USAGE = 0, 1, 2
@@ -60,7 +61,7 @@ def _ingest(args: argparse.Namespace) -> int:
     if report.malformed:
         n, reason = report.malformed[0]
         print(f"drawledger ingest: error: {len(report.malformed)} malformed lines skipped "
-              f"(first: line {n}: {reason})", file=sys.stderr)  # fmt: skip
+              f"(first: line {n}: {visible(reason)})", file=sys.stderr)  # fmt: skip
     elif report.spilled:
         print(f"drawledger ingest: error: {report.spilled} declared draws could not be written "
               "and were spilled; ingest that spill file again", file=sys.stderr)  # fmt: skip
@@ -401,7 +402,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except (DrawledgerError, OSError, ValueError) as exc:
         if args.debug:
             raise
-        message = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
+        message = visible(str(exc).splitlines()[0]) if str(exc) else exc.__class__.__name__
         print(f"drawledger {args.command}: error: {message}", file=sys.stderr)
         return EXIT_USAGE
 
