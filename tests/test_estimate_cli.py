@@ -143,3 +143,20 @@ def test_set_values_are_json_when_they_parse_else_text():
 
 def test_sweep_grid_is_evenly_spaced_and_inclusive():
     assert ("temperature", [0.2, 0.4, 0.6, 0.8, 1.0]) == _sweep_grid("temperature=0.2:1.0:5")
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["--json", "{tmp}/missing/e.json"], "--json {tmp}/missing/e.json: no folder"),
+        (["--sweep", "temperature=0.3:1:2", "--plot", "{tmp}/missing/c.png"], "--plot"),
+        (["--sweep", "temperature=0.3:1:2", "--plot", "{tmp}/c.gif"], ".png, .svg or .pdf"),
+    ],
+)
+def test_an_unwritable_output_is_refused_before_any_work(tmp_path, capsys, argv, message):
+    """The ledger is missing too: the output is named, so it was checked before the run."""
+    args = [a.replace("{tmp}", str(tmp_path)) for a in argv]
+    code, _, err = _run(capsys, str(tmp_path / "nope.db"), "--reward", "checkout", *args)
+    assert 2 == code
+    assert message.replace("{tmp}", str(tmp_path)) in err
+    assert 1 == len(err.strip().splitlines())

@@ -149,7 +149,7 @@ def test_report_command_adds_the_estimate_of_a_target(
     ("argv", "message"),
     [
         (["--html", "{tmp}/r.txt"], "ending in .html"),
-        (["--html", "{tmp}/missing/r.html"], "no directory"),
+        (["--html", "{tmp}/missing/r.html"], "no folder"),
         (["--html", "{tmp}/r.html", "--set", "temperature=0.3"], "needs the reward"),
     ],
 )
@@ -259,3 +259,15 @@ def test_an_error_line_shows_control_characters_escaped(
     err = capsys.readouterr().err
     assert r"r\x1b[2J\u202e.txt" in err
     assert "\x1b" not in err
+
+
+def test_a_link_planted_at_the_old_temporary_name_is_not_followed(
+    demo_run: Any, tmp_path: Path
+) -> None:
+    victim = tmp_path / "victim.txt"
+    victim.write_text("keep")
+    (tmp_path / ".report.html.tmp").symlink_to(victim)
+    write_report(demo_run.ledger, tmp_path / "report.html", verification=demo_run.verification,
+                 audit_report=demo_run.audit)  # fmt: skip
+    assert "keep" == victim.read_text()
+    assert (tmp_path / "report.html").read_text(encoding="utf-8").startswith("<!DOCTYPE html>")

@@ -49,6 +49,32 @@ def _not_yet(command: str) -> Handler:
     return run
 
 
+PLOT_SUFFIXES = (".png", ".svg", ".pdf")
+
+
+def _check_outputs(args: argparse.Namespace) -> None:
+    """Every output file of the command can be written, checked before any work starts."""
+    from drawledger._files import check_output
+
+    for flag in ("json", "export", "plot", "html"):
+        path = getattr(args, flag, None)
+        if path is not None:
+            check_output(path, f"--{flag}")
+    plot = getattr(args, "plot", None)
+    if plot is not None and not plot.lower().endswith(PLOT_SUFFIXES):
+        raise ValueError(f"--plot {visible(plot)}: give a name ending in .png, .svg or .pdf")
+
+
+def _write_json(path: str, data: dict[str, Any]) -> None:
+    """The result as indented JSON, written whole or not at all."""
+    import orjson
+
+    from drawledger._files import replacing
+
+    with replacing(path) as out:
+        out.write(orjson.dumps(data, option=orjson.OPT_INDENT_2) + b"\n")
+
+
 def _ingest(args: argparse.Namespace) -> int:
     """Load a spill file or declared draws; exit 2 when a line or record could not be loaded."""
     import os
@@ -72,7 +98,6 @@ def _verify(args: argparse.Namespace) -> int:
     """Replay every decision; exit 1 when one is not verified or the integrity check fails."""
     import os
 
-    import orjson
     from rich.console import Console
 
     from drawledger.replay import verify
@@ -85,23 +110,20 @@ def _verify(args: argparse.Namespace) -> int:
         scheduler=args.scheduler,
     )  # fmt: skip
     if args.json:
-        with open(args.json, "wb") as out:
-            out.write(orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n")
+        _write_json(args.json, report.to_dict())
     Console(highlight=False).print(report)
     return EXIT_OK if report.ok else EXIT_FOUND
 
 
 def _audit(args: argparse.Namespace) -> int:
     """Test the randomization of every stream; exit 1 when an alarm fires."""
-    import orjson
     from rich.console import Console
 
     from drawledger.replay import audit
 
     report = audit(args.ledger, progress=True, engine=args.engine, scheduler=args.scheduler)
     if args.json:
-        with open(args.json, "wb") as out:
-            out.write(orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n")
+        _write_json(args.json, report.to_dict())
     Console(highlight=False).print(report)
     return EXIT_OK if report.ok else EXIT_FOUND
 
@@ -142,7 +164,6 @@ def _estimate(args: argparse.Namespace) -> int:
     """Estimate a target policy; exit 1 when the data cannot answer (support deficit, tiny ESS)."""
     import os
 
-    import orjson
     from rich.console import Console
 
     from drawledger.replay import estimate, sweep
@@ -189,13 +210,15 @@ def _estimate(args: argparse.Namespace) -> int:
         report = sweep(args.ledger, param=param, values=values, overrides=overrides or None,
                        **common)  # fmt: skip
         if args.plot:
-            report.figure().savefig(args.plot)
+            from drawledger._files import replacing
+
+            with replacing(args.plot) as out:
+                report.figure().savefig(out, format=args.plot.rsplit(".", 1)[-1].lower())
     else:
         report = estimate(args.ledger, overrides=overrides or None, target=args.target,
                           by=args.by, **common)  # fmt: skip
     if args.json:
-        with open(args.json, "wb") as out:
-            out.write(orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n")
+        _write_json(args.json, report.to_dict())
     Console(highlight=False).print(report)
     return EXIT_OK if report.ok else EXIT_FOUND
 
@@ -388,6 +411,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         if getattr(args, "engine", "local") == "dask":
             import dask  # noqa: F401  (missing: the one line below, before any work starts)
             import distributed  # noqa: F401
+        _check_outputs(args)
         return handler(args)
     except KeyboardInterrupt:
         print(f"drawledger {args.command}: interrupted", file=sys.stderr)

@@ -24,6 +24,7 @@ from typing import Any
 from jinja2 import Environment, PackageLoader, StrictUndefined
 
 from drawledger import __version__
+from drawledger._files import check_output, replacing
 from drawledger.exceptions import ReplayError
 from drawledger.replay.audit import AuditReport, audit
 from drawledger.replay.estimate import EstimateReport, SweepReport, estimate
@@ -122,8 +123,7 @@ def write_report(
     target = Path(os.fspath(html))
     if target.suffix.lower() not in (".html", ".htm"):
         raise ReplayError(f"the report is an HTML file: give a name ending in .html, not {target}")
-    if not target.parent.is_dir():
-        raise ReplayError(f"cannot write {target}: no directory {target.parent}")
+    check_output(target, "the report")
     if overrides and reward is None:
         raise ReplayError("a target policy (--set) needs the reward to estimate (--reward)")
     progress = progress and sys.stderr.isatty()
@@ -153,9 +153,8 @@ def write_report(
             page = _page(os.fspath(ledger), verification, audit_report, questions, title)
     else:
         page = _page(os.fspath(ledger), verification, audit_report, questions, title)
-    tmp = target.with_name(f".{target.name}.tmp")
-    tmp.write_text(page, encoding="utf-8")
-    tmp.replace(target)
+    with replacing(target) as out:
+        out.write(page.encode("utf-8"))
     return HtmlReport(target, verification, audit_report, questions)
 
 
