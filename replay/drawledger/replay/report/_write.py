@@ -28,7 +28,7 @@ from drawledger._files import check_output, replacing
 from drawledger.exceptions import ReplayError
 from drawledger.replay.audit import AuditReport, audit
 from drawledger.replay.estimate import EstimateReport, SweepReport, estimate
-from drawledger.replay.report._format import num, policy
+from drawledger.replay.report._format import name, num, plain, policy
 from drawledger.replay.report._sections import audit_section, verify_section, whatif_block
 from drawledger.replay.verify import VerifyReport, verify
 
@@ -41,7 +41,9 @@ TEMPLATES = Environment(
     trim_blocks=True,
     lstrip_blocks=True,
     keep_trailing_newline=True,
+    finalize=plain,
 )
+TEMPLATES.filters["name"] = name
 
 
 @dataclass(frozen=True)
@@ -169,6 +171,6 @@ def _page(
         generated=_dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
         version=__version__,
         verify=verify_section(v),
-        audit=audit_section(a),
+        audit=audit_section(a, {s: c.get("decisions", 0) for s, c in v.by_stream.items()}),
         whatifs=[whatif_block(w.title, w.result, w.truth) for w in questions],
     )
