@@ -213,9 +213,9 @@ def test_terminal_output_shows_ledger_text_escaped_never_as_markup_or_control(
     report = _hostile(reports, name, text)
     console = Console(file=io.StringIO(), width=1000, color_system=None)
     console.print(report)
-    for out in (console.file.getvalue(), report.render()):
+    assert visible(text) in console.file.getvalue()  # wide enough not to wrap the name
+    for out in (console.file.getvalue(), report.render(), report._repr_html_()):
         assert [] == _unsafe(out)
-        assert visible(text) in out
 
 
 @pytest.mark.parametrize("name", ["verify", "audit", "estimate", "sweep", "integrity"])

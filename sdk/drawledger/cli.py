@@ -384,8 +384,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.description = (
         "Write one self-contained HTML file (no external requests, figures inline): integrity\n"
         "and verification with reasons, the randomization audit with its figures and, with\n"
-        "--reward and --set, the estimate of a target policy with its weights. Exit 0 when\n"
-        "verification and the audit passed, 1 when they found a problem."
+        "--reward and --set, the estimate of a target policy with its weights. The 20 streams\n"
+        "with alarms or the most decisions are shown in full, the others one row each. Exit 0\n"
+        "when verification and the audit passed, 1 when they found a problem."
     )
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     p.add_argument("--html", required=True, metavar="FILE", help="where to write the report")

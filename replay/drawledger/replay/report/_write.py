@@ -8,7 +8,10 @@ curves with interval bands). Figures are drawn with matplotlib and embedded as S
 the file makes no external request, opens offline, and prints (a print stylesheet is included).
 
 The page is rendered from the Jinja2 templates in ``templates/`` with autoescaping: every text
-from a ledger (stream names, decision ids, reasons, options, policy parameters) is escaped.
+from a ledger (stream names, decision ids, reasons, options, policy parameters) is escaped, its
+control and bidirectional characters shown as escapes, and names cut for display (their whole
+text in a title). At most ``FULL_STREAMS`` streams are shown in full; the others get one row
+each, so the page's size and the time to draw it stay bounded (docs/operations.md).
 """
 
 from __future__ import annotations
