@@ -315,6 +315,7 @@ def test_beyond_the_limit_streams_get_one_row_each_and_the_page_says_so(
     assert 1 + 3 == len(images(page))
     assert "8 streams: the 3 with alarms or the most decisions are shown in full" in text
     assert '<p class="note">8 streams' in text
+    assert "at most 1 draws per stream; 1 more draws are in the table only" in text
     others = re.search(r"<h3>Other streams</h3>.*?</table>", text, re.S)
     assert others is not None
     assert 5 == others.group(0).count("<tr>") - 1

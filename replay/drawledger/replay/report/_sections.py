@@ -124,7 +124,8 @@ class AuditPanel:
 @dataclass(frozen=True)
 class AuditSection:
     """The audit; ``others`` is the compact table of the streams not shown in full (one row
-    each), ``note`` says how many streams are shown in full (empty when all are)."""
+    each), ``note`` says how many streams are shown in full and how many draws have no figure
+    (empty when everything is shown)."""
 
     ok: bool
     alarms: int
@@ -251,8 +252,12 @@ def audit_section(a: AuditReport, decisions: Mapping[str, int] | None = None) ->
         )
     per_stream: Counter[str] = Counter()
     panels = []
+    undrawn = 0
     for f in a.figures:
-        if f.stream not in full or per_stream[f.stream] >= PANELS_PER_STREAM:
+        if f.stream not in full:
+            continue
+        if per_stream[f.stream] >= PANELS_PER_STREAM:
+            undrawn += 1
             continue
         per_stream[f.stream] += 1
         draw = f" '{f.draw}'" if f.draw else ""
@@ -260,11 +265,15 @@ def audit_section(a: AuditReport, decisions: Mapping[str, int] | None = None) ->
         panels.append(AuditPanel(f.stream, f.kind, draw, num(f.n), bool(f.options), image))
     others = _other_streams(a, full, counts)
     streams = len(full) + (len(others.rows) if others else 0)
-    note = ""
+    notes = []
     if others is not None:
-        note = (f"{num(streams)} streams: the {num(len(full))} with alarms or the most decisions "
-                f"are shown in full (tests and figures); the other {num(len(others.rows))} have "
-                "one row each in a compact table.")  # fmt: skip
+        notes.append(f"{num(streams)} streams: the {num(len(full))} with alarms or the most "
+                     f"decisions are shown in full (tests and figures); the other "
+                     f"{num(len(others.rows))} have one row each in a compact table.")  # fmt: skip
+    if undrawn:
+        notes.append(f"Figures are drawn for at most {PANELS_PER_STREAM} draws per stream; "
+                     f"{num(undrawn)} more draws are in the table only.")  # fmt: skip
+    note = " ".join(notes)
     return AuditSection(
         a.ok, len(a.alarms), f"{a.alpha:g}", num(a.decisions), rows, panels, others, note
     )
