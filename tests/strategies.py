@@ -189,3 +189,19 @@ def bucket_shares(draw: st.DrawFn) -> dict[str, float]:
     """Shares of a bucket draw: distinct arms with shares summing to 1 (within rounding)."""
     arms = draw(option_lists())
     return dict(zip(arms, draw(prob_vectors(len(arms), len(arms))), strict=True))
+
+
+# Pieces of text a ledger may hold to attack a terminal or a page: rich markup, emoji codes,
+# escape sequences (CSI, OSC hyperlinks, C1 CSI), lone control characters, bidirectional
+# overrides and isolates, line separators, a lone surrogate, HTML.
+HOSTILE_PIECES = (
+    "[/]", "[bold red]", "[link=https://example.invalid]", "price[eur]", ":warning:", "\x1b",
+    "\x1b[2J", "\x1b[31m", "\x1b]8;;https://example.invalid\x07", "\x9b1m", "\r", "\n", "\t",
+    "\x00", "\x07", "\x08", "\x7f", "\x85", "\u202e", "\u2066", "\u200f", "\u2028", "\ufeff",
+    "\ud800", "<script>", "&amp;", "$x$", "\\",
+)  # fmt: skip
+hostile_text = st.lists(
+    st.one_of(st.sampled_from(HOSTILE_PIECES), st.text(min_size=1, max_size=3)),
+    min_size=1,
+    max_size=4,
+).map("".join)

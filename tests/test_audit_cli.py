@@ -69,7 +69,7 @@ def test_alarm_exits_1_and_the_json_names_the_failing_test(
     [
         (["audit", "{tmp}/missing.db"], "no such file"),
         (["audit", "{tmp}/ok.db", "--scheduler", "tcp://127.0.0.1:1"], "needs the dask engine"),
-        (["audit", "{tmp}/ok.db", "--json", "{tmp}/no/such/dir/audit.json"], "No such file"),
+        (["audit", "{tmp}/ok.db", "--json", "{tmp}/no/such/dir/audit.json"], "no folder"),
     ],
 )
 def test_bad_usage_exits_2_with_one_line(
@@ -98,3 +98,30 @@ def test_empty_ledger_passes(tmp_path: Path, capsys: pytest.CaptureFixture[str])
     open_sink(tmp_path / "empty.db").close()  # the three tables, no rows
     assert 0 == main(["audit", str(tmp_path / "empty.db")])
     assert "No draws to audit" in capsys.readouterr().out
+
+
+# A stream name that is rich markup, a screen-clearing escape and a right-to-left override
+# ahead of a forged verdict.
+HOSTILE = "[/]price[eur]\x1b[2J\u202e\rno alarm"
+
+
+def test_ledger_text_reaches_the_terminal_as_text_never_as_markup_or_escapes(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    led = dl.Ledger(tmp_path / "hostile.db")
+    for i in range(40):
+        led.record_draw(HOSTILE, "bernoulli", {"p": 0.5}, i % 2 == 0, 0.5, decision_id=f"d-{i}")
+    led.close()
+    assert 0 == main(["audit", str(tmp_path / "hostile.db")])
+    out = capsys.readouterr().out
+    assert r"[/]price[eur]\x1b[2J\u202e\x0dno alarm" in out
+    assert [] == [c for c in out if c in "\x1b\u202e\r"]
+
+
+def test_an_unwritable_json_is_refused_before_any_work(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """The ledger is missing too: the JSON's folder is named, so it was checked first."""
+    json_path = tmp_path / "missing" / "audit.json"
+    assert 2 == main(["audit", str(tmp_path / "nope.db"), "--json", str(json_path)])
+    assert f"--json {json_path}: no folder" in capsys.readouterr().err

@@ -266,3 +266,20 @@ def test_an_unknown_reason_to_accept_exits_2(cards, capsys):
     code, _, err = _run(capsys, cards, "--reward", "checkout",
                         "--accept-verification-failures", "luck")  # fmt: skip
     assert 2 == code and "unknown verification reason 'luck'" in err
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["--json", "{tmp}/missing/e.json"], "--json {tmp}/missing/e.json: no folder"),
+        (["--sweep", "temperature=0.3:1:2", "--plot", "{tmp}/missing/c.png"], "--plot"),
+        (["--sweep", "temperature=0.3:1:2", "--plot", "{tmp}/c.gif"], ".png, .svg or .pdf"),
+    ],
+)
+def test_an_unwritable_output_is_refused_before_any_work(tmp_path, capsys, argv, message):
+    """The ledger is missing too: the output is named, so it was checked before the run."""
+    args = [a.replace("{tmp}", str(tmp_path)) for a in argv]
+    code, _, err = _run(capsys, str(tmp_path / "nope.db"), "--reward", "checkout", *args)
+    assert 2 == code
+    assert message.replace("{tmp}", str(tmp_path)) in err
+    assert 1 == len(err.strip().splitlines())

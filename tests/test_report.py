@@ -6,17 +6,22 @@ import base64
 import re
 import shutil
 import sqlite3
+import unicodedata
 import xml.etree.ElementTree as ET
 from html.parser import HTMLParser
 from pathlib import Path
 from typing import Any
 
 import pytest
+from hypothesis import given
+from markupsafe import escape
+from strategies import hostile_text
 
 import drawledger as dl
 from drawledger.cli import main
 from drawledger.exceptions import ReplayError
 from drawledger.replay import verify, write_report
+from drawledger.replay.report import _format
 
 ALLOW = "drawledger.replay.demo.grocery"
 LEGACY = Path(__file__).resolve().parent.parent / "examples" / "legacy-draws.jsonl"
@@ -149,7 +154,7 @@ def test_report_command_adds_the_estimate_of_a_target(
     ("argv", "message"),
     [
         (["--html", "{tmp}/r.txt"], "ending in .html"),
-        (["--html", "{tmp}/missing/r.html"], "no directory"),
+        (["--html", "{tmp}/missing/r.html"], "no folder"),
         (["--html", "{tmp}/r.html", "--set", "temperature=0.3"], "needs the reward"),
     ],
 )
@@ -184,7 +189,7 @@ def test_report_of_declared_draws(tmp_path: Path) -> None:
     text = result.path.read_text(encoding="utf-8")
     assert "<code>declared</code>" in text
     for stream in ("slot-discount", "tip-prompt", "promo-countdown"):
-        assert f"<b>{stream}</b>" in text
+        assert f'<b><span class="name">{stream}</span></b>' in text
     assert "No what-if question was asked" in text
     assert 1 + len(result.audit.figures) == len(images(parse(text)))
 
@@ -238,8 +243,10 @@ def test_report_escapes_script_quotes_and_ampersands_from_the_ledger(tmp_path: P
             led.record_draw(stream, "categorical", {"options": ["a", "b"], "probs": [0.5, 0.5]},
                             "ab"[i % 2], 0.5, decision_id=f'<script>"d-{i}"&')  # fmt: skip
     text = write_report(ledger, tmp_path / "hostile.html").path.read_text(encoding="utf-8")
-    assert "<td>&lt;script&gt;alert(&#34;x&#34;)&lt;/script&gt; &amp; co</td>" in text
-    assert "<code>&lt;script&gt;&#34;d-0&#34;&amp;</code>" in text
+    assert (
+        '<span class="name">&lt;script&gt;alert(&#34;x&#34;)&lt;/script&gt; &amp; co</span>' in text
+    )
+    assert '<code><span class="name">&lt;script&gt;&#34;d-0&#34;&amp;</span></code>' in text
     assert (
         'alt="audit of &lt;script&gt;alert(&#34;x&#34;)&lt;/script&gt; &amp; co categorical"'
         in text
@@ -290,5 +297,106 @@ def test_report_of_an_estimate_from_accepted_failures_has_a_banner(
     text = html.read_text(encoding="utf-8")
     header = text.split("</header>", 1)[0]
     assert "INTEGRITY FAILURES ACCEPTED" in header
-    block = text.split("<h3>What if: recipe-card with temperature = 0.5", 1)[1]
+    block = text.split('<h3><span class="name">What if: recipe-card with temperature = 0.5', 1)[1]
     assert block.split("</h3>", 1)[1].lstrip().startswith('<p class="banner">INTEGRITY')
+
+
+def test_an_error_line_shows_control_characters_escaped(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """The one error line never carries an escape sequence or a bidirectional override."""
+    html = str(tmp_path / "r\x1b[2J\u202e.txt")
+    assert 2 == main(["report", str(tmp_path / "x.db"), "--html", html])
+    err = capsys.readouterr().err
+    assert r"r\x1b[2J\u202e.txt" in err
+    assert "\x1b" not in err
+
+
+def test_a_link_planted_at_the_old_temporary_name_is_not_followed(
+    demo_run: Any, tmp_path: Path
+) -> None:
+    victim = tmp_path / "victim.txt"
+    victim.write_text("keep")
+    (tmp_path / ".report.html.tmp").symlink_to(victim)
+    write_report(demo_run.ledger, tmp_path / "report.html", verification=demo_run.verification,
+                 audit_report=demo_run.audit)  # fmt: skip
+    assert "keep" == victim.read_text()
+    assert (tmp_path / "report.html").read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
+
+
+def _svg_width(attrs: dict[str, str | None]) -> float:
+    root = ET.fromstring(base64.b64decode((attrs["src"] or "").split(",", 1)[1]))
+    return float(re.sub(r"[a-z]+$", "", root.attrib["width"]))
+
+
+def _declared(led: dl.Ledger, stream: str, n: int, values: str = "ab", draw: str = "") -> None:
+    args = {"options": ["a", "b"], "probs": [0.5, 0.5]}
+    for i in range(n):
+        led.record_draw(stream, "categorical", args, values[i % len(values)], 0.5,
+                        decision_id=f"{stream[:20]}-{draw}-{i}")  # fmt: skip
+
+
+def test_beyond_the_limit_streams_get_one_row_each_and_the_page_says_so(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """With a limit of 3 streams in full: the stream with an alarm (though the smallest) and
+    the two largest are drawn, at most one figure each; the rest are rows of a compact table."""
+    from drawledger.replay.report import _sections
+
+    monkeypatch.setattr(_sections, "FULL_STREAMS", 3, raising=False)
+    monkeypatch.setattr(_sections, "PANELS_PER_STREAM", 1, raising=False)
+    ledger = tmp_path / "many.db"
+    with dl.Ledger(ledger) as led:
+        _declared(led, "drifting", 60, values="a")  # declared 50/50, always "a": an alarm
+        for k in range(6):
+            _declared(led, f"stream-{k}", 70 + 10 * k)
+        _declared(led, "two-draws", 200, draw="x")
+        led.record_draw("two-draws", "bernoulli", {"p": 0.5}, True, 0.5, decision_id="extra")
+    text = write_report(ledger, tmp_path / "many.html").path.read_text(encoding="utf-8")
+    page = parse(text)
+    captions = re.findall(r'<figcaption><b><span class="name">([^<]*)</span>', text)
+    assert ["drifting", "stream-5", "two-draws"] == sorted(captions)
+    assert 1 + 3 == len(images(page))
+    assert "8 streams: the 3 with alarms or the most decisions are shown in full" in text
+    assert '<p class="note">8 streams' in text
+    assert "at most 1 draws per stream; 1 more draws are in the table only" in text
+    others = re.search(r"<h3>Other streams</h3>.*?</table>", text, re.S)
+    assert others is not None
+    assert 5 == others.group(0).count("<tr>") - 1
+
+
+def test_long_names_are_cut_with_the_whole_name_as_title_and_figures_stay_narrow(
+    tmp_path: Path,
+) -> None:
+    """A 20,000-character stream name shows as 59 characters and an ellipsis (the whole name in
+    the title attribute), and no figure grows wider than a page."""
+    stream = "s" * 20_000
+    ledger = tmp_path / "long.db"
+    with dl.Ledger(ledger) as led:
+        _declared(led, stream, 40)
+    text = write_report(ledger, tmp_path / "long.html").path.read_text(encoding="utf-8")
+    assert f'<span class="name" title="{stream}">{"s" * 59}…</span>' in text
+    assert "overflow-wrap: anywhere" in text
+    assert [] == [w for w in map(_svg_width, images(parse(text))) if w > 1000]
+
+
+def test_control_and_bidirectional_characters_show_as_escapes_in_page_and_figures(
+    tmp_path: Path,
+) -> None:
+    stream = "card\x1b[2J\u202ereversed\r\n\x07"
+    ledger = tmp_path / "ctl.db"
+    with dl.Ledger(ledger) as led:
+        _declared(led, stream, 40)
+    text = write_report(ledger, tmp_path / "ctl.html").path.read_text(encoding="utf-8")
+    assert r"card\x1b[2J\u202ereversed\x0d\x0a\x07" in text
+    assert [] == [c for c in text if c in "\x1b\u202e\r\x07"]
+    assert 2 == len(images(parse(text)))
+
+
+@given(text=hostile_text)
+def test_names_and_text_on_the_page_hold_no_control_characters_or_markup(text: str) -> None:
+    # Unicode general categories: Cc control, Cf format (bidirectional controls among them),
+    # Cs surrogate, Zl/Zp separators.
+    for out in (str(_format.name(text)), str(escape(_format.plain(text)))):
+        assert [] == [c for c in out if unicodedata.category(c) in {"Cc", "Cf", "Cs", "Zl", "Zp"}]
+        assert "<script>" not in out

@@ -5,16 +5,20 @@ from __future__ import annotations
 import dataclasses
 import io
 import tempfile
+import unicodedata
 from pathlib import Path
 from typing import Any
 
 import orjson
 import pandas as pd
 import pytest
+from hypothesis import HealthCheck, given, settings
 from rich.console import Console
+from strategies import hostile_text
 
 import drawledger as dl
 import drawledger.replay as replay
+from drawledger._text import visible
 from drawledger.replay import Estimate, Report
 
 ODD = '<b>&"'  # a stream name that HTML must escape
@@ -164,3 +168,64 @@ def test_html_escapes_examples_of_the_integrity_report():
 def test_html_escapes_estimate_warnings(reports):
     report = dataclasses.replace(reports["estimate"], warnings=["support <lost> & found"])
     assert "<p>warning: support &lt;lost&gt; &amp; found</p>" in report._repr_html_()
+
+
+def _hostile(reports: dict[str, Any], name: str, text: str) -> Any:
+    """The report ``name`` with ``text`` wherever a ledger's text shows: streams, decision ids,
+    details, draw and field names, the target, warnings."""
+    integrity = replay.IntegrityReport()
+    integrity.note("gaps", text)
+    integrity.finish()
+    if name == "integrity":
+        return integrity
+    if name == "verify":
+        v = reports["verify"]
+        return dataclasses.replace(
+            v,
+            by_stream={text: v.by_stream[ODD]},
+            by_reason={"value": 1},
+            examples={"value": [(text, text)]},
+            integrity=integrity,
+        )
+    if name == "audit":
+        a = reports["audit"]
+        tests = tuple(dataclasses.replace(t, stream=text, draw=text, field=text) for t in a.tests)
+        return dataclasses.replace(a, tests=tests)
+    if name == "estimate":
+        e = reports["estimate"]
+        return dataclasses.replace(e, target={**e.target, "callable": text}, warnings=[text])
+    return dataclasses.replace(reports["sweep"], param=text, warnings=[text])
+
+
+def _unsafe(out: str) -> list[str]:
+    # Control (Cc), format (Cf, the bidirectional overrides among them), surrogate (Cs) and
+    # line or paragraph separator (Zl, Zp) characters: the Unicode general categories.
+    bad = {"Cc", "Cf", "Cs", "Zl", "Zp"}
+    return sorted({c for c in out if c != "\n" and unicodedata.category(c) in bad})
+
+
+@pytest.mark.parametrize("name", ["verify", "audit", "estimate", "sweep", "integrity"])
+@settings(
+    max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(text=hostile_text)
+def test_terminal_output_shows_ledger_text_escaped_never_as_markup_or_control(
+    reports: dict[str, Any], name: str, text: str
+) -> None:
+    report = _hostile(reports, name, text)
+    console = Console(file=io.StringIO(), width=1000, color_system=None)
+    console.print(report)
+    assert visible(text) in console.file.getvalue()  # wide enough not to wrap the name
+    for out in (console.file.getvalue(), report.render(), report._repr_html_()):
+        assert [] == _unsafe(out)
+
+
+@pytest.mark.parametrize("name", ["verify", "audit", "estimate", "sweep", "integrity"])
+def test_terminal_output_writes_markup_and_escapes_as_text(
+    reports: dict[str, Any], name: str
+) -> None:
+    """A stream ``[/]`` no longer crashes, ``price[eur]`` keeps its brackets, and ESC and
+    U+202E show as ``\\x1b`` and ``\\u202e`` (a forged line cannot be drawn)."""
+    report = _hostile(reports, name, "[/]price[eur]\x1b[2J\u202e[link=x]y")
+    out = report.render()
+    assert r"[/]price[eur]\x1b[2J\u202e[link=x]y" in out

@@ -206,3 +206,61 @@ def test_entry_points_and_folders_without_init_are_never_imported(
                       "--json", str(out)])  # fmt: skip
     assert not canary.exists()
     assert 1 == json.loads(out.read_text())["by_reason"].get("missing-function")
+
+
+def test_ledger_text_reaches_the_terminal_as_text_never_as_markup_or_escapes(
+    tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
+    """A stream ``[/]`` no longer crashes verify; ``price[eur]`` keeps its brackets; ESC and a
+    right-to-left override show as ``\\x1b`` and ``\\u202e`` (no forged "verify passed")."""
+    hostile = "[/]price[eur]\x1b[2J\u202e\nverify passed"
+    led = dl.Ledger(tmp_path / "hostile.db")
+    led.record_draw(hostile, "bernoulli", {"p": 0.5}, True, 0.5, decision_id=hostile)
+    led.close()
+    assert 0 == main(["verify", str(tmp_path / "hostile.db")])
+    out = capsys.readouterr().out
+    assert r"[/]price[eur]\x1b[2J\u202e\x0averify passed" in out
+    assert [] == [c for c in out if c in "\x1b\u202e"]
+
+
+def test_an_unwritable_json_is_refused_before_any_work(
+    tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
+    """The ledger is missing too: the JSON's folder is named, so it was checked first."""
+    json_path = tmp_path / "missing" / "verify.json"
+    assert 2 == main(["verify", str(tmp_path / "nope.db"), "--json", str(json_path)])
+    assert f"--json {json_path}: no folder" in capsys.readouterr().err
+
+
+def test_a_link_planted_at_the_old_temporary_name_is_not_followed(
+    shop: Path, tmp_path: Path
+) -> None:
+    """The export and the JSON go through a new file of a random name, never an existing one."""
+    victim = tmp_path / "victim.txt"
+    victim.write_text("keep")
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / ".props.csv.partial").symlink_to(victim)
+    assert 0 == main(["verify", str(shop), "--allow", "shop_decisions", "--export",
+                      str(out / "props.csv"), "--json", str(out / "v.json")])  # fmt: skip
+    assert "keep" == victim.read_text()
+    assert 16 == len(pd.read_csv(out / "props.csv"))
+    assert {".props.csv.partial", "props.csv", "v.json"} == {p.name for p in out.iterdir()}
+
+
+def test_csv_export_writes_formulas_as_text_and_numbers_as_numbers(tmp_path: Path) -> None:
+    """Text cells (and column names) starting with = + - @ get a leading quote (OWASP, CSV
+    injection); a negative reward and a plain negative number as text stay as they are."""
+    led = dl.Ledger(tmp_path / "x.db")
+    formula = '=HYPERLINK("https://example.invalid","open")'
+    led.record_draw("card", "bernoulli", {"p": 0.5}, True, 0.5, unit=formula, decision_id="d-0")
+    led.record_draw("card", "bernoulli", {"p": 0.5}, False, 0.5, unit="-7", decision_id="d-1")
+    led.outcome("d-0", "@refund", -2.5)
+    led.outcome("d-1", "checkout", -1.0)
+    led.close()
+    target = tmp_path / "props.csv"
+    assert 0 == main(["verify", str(tmp_path / "x.db"), "--export", str(target)])
+    data = pd.read_csv(target, dtype={"unit": str})
+    assert ["'" + formula, "-7"] == list(data["unit"])
+    assert -1.0 == data["checkout"][1]
+    assert -2.5 == data["'@refund"][0]

@@ -37,6 +37,7 @@ from drawledger._schema import (
     Positions,
     TableSpec,
 )
+from drawledger._text import visible
 from drawledger.exceptions import DrawledgerError, LedgerError
 from drawledger.ledger import Ledger
 
@@ -89,7 +90,7 @@ class IngestReport:
             f"{self.outcomes} spilled outcomes, {self.declared} declared draws; "
             f"{self.already_present} already in the ledger; {len(self.malformed)} malformed"
         ]
-        out += [f"  line {n}: {reason}" for n, reason in self.malformed[:MAX_SHOWN]]
+        out += [f"  line {n}: {visible(reason)}" for n, reason in self.malformed[:MAX_SHOWN]]
         if len(self.malformed) > MAX_SHOWN:
             out.append(f"  ... and {len(self.malformed) - MAX_SHOWN} more malformed lines")
         if self.spilled:

@@ -13,6 +13,7 @@ import sys
 from collections.abc import Callable, Sequence
 from typing import Any
 
+from drawledger._text import visible
 from drawledger.exceptions import DrawledgerError, EstimateRefusedError
 
 EXIT_OK, EXIT_FOUND, EXIT_USAGE = 0, 1, 2
@@ -49,6 +50,32 @@ def _not_yet(command: str) -> Handler:
     return run
 
 
+PLOT_SUFFIXES = (".png", ".svg", ".pdf")
+
+
+def _check_outputs(args: argparse.Namespace) -> None:
+    """Every output file of the command can be written, checked before any work starts."""
+    from drawledger._files import check_output
+
+    for flag in ("json", "export", "plot", "html"):
+        path = getattr(args, flag, None)
+        if path is not None:
+            check_output(path, f"--{flag}")
+    plot = getattr(args, "plot", None)
+    if plot is not None and not plot.lower().endswith(PLOT_SUFFIXES):
+        raise ValueError(f"--plot {visible(plot)}: give a name ending in .png, .svg or .pdf")
+
+
+def _write_json(path: str, data: dict[str, Any]) -> None:
+    """The result as indented JSON, written whole or not at all."""
+    import orjson
+
+    from drawledger._files import replacing
+
+    with replacing(path) as out:
+        out.write(orjson.dumps(data, option=orjson.OPT_INDENT_2) + b"\n")
+
+
 def _ingest(args: argparse.Namespace) -> int:
     """Load a spill file or declared draws; exit 2 when a line or record could not be loaded."""
     import os
@@ -61,7 +88,7 @@ def _ingest(args: argparse.Namespace) -> int:
     if report.malformed:
         n, reason = report.malformed[0]
         print(f"drawledger ingest: error: {len(report.malformed)} malformed lines skipped "
-              f"(first: line {n}: {reason})", file=sys.stderr)  # fmt: skip
+              f"(first: line {n}: {visible(reason)})", file=sys.stderr)  # fmt: skip
     elif report.spilled:
         print(f"drawledger ingest: error: {report.spilled} declared draws could not be written "
               "and were spilled; ingest that spill file again", file=sys.stderr)  # fmt: skip
@@ -72,7 +99,6 @@ def _verify(args: argparse.Namespace) -> int:
     """Replay every decision; exit 1 when one is not verified or the integrity check fails."""
     import os
 
-    import orjson
     from rich.console import Console
 
     from drawledger.replay import verify
@@ -85,23 +111,20 @@ def _verify(args: argparse.Namespace) -> int:
         scheduler=args.scheduler,
     )  # fmt: skip
     if args.json:
-        with open(args.json, "wb") as out:
-            out.write(orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n")
+        _write_json(args.json, report.to_dict())
     Console(highlight=False).print(report)
     return EXIT_OK if report.ok else EXIT_FOUND
 
 
 def _audit(args: argparse.Namespace) -> int:
     """Test the randomization of every stream; exit 1 when an alarm fires."""
-    import orjson
     from rich.console import Console
 
     from drawledger.replay import audit
 
     report = audit(args.ledger, progress=True, engine=args.engine, scheduler=args.scheduler)
     if args.json:
-        with open(args.json, "wb") as out:
-            out.write(orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n")
+        _write_json(args.json, report.to_dict())
     Console(highlight=False).print(report)
     return EXIT_OK if report.ok else EXIT_FOUND
 
@@ -157,7 +180,6 @@ def _estimate(args: argparse.Namespace) -> int:
     """Estimate a target policy; exit 1 when the data cannot answer (support deficit, tiny ESS)."""
     import os
 
-    import orjson
     from rich.console import Console
 
     from drawledger.replay import estimate, sweep
@@ -201,15 +223,15 @@ def _estimate(args: argparse.Namespace) -> int:
     except EstimateRefusedError as exc:
         if args.json:  # never leave an earlier run's estimate in the file
             refused = {"check": exc.check, "problems": exc.problems, "message": str(exc)}
-            with open(args.json, "wb") as out:
-                out.write(orjson.dumps({"ok": False, "refused": refused},
-                                       option=orjson.OPT_INDENT_2) + b"\n")  # fmt: skip
+            _write_json(args.json, {"ok": False, "refused": refused})
         raise
     if args.sweep is not None and args.plot:
-        report.figure().savefig(args.plot)
+        from drawledger._files import replacing
+
+        with replacing(args.plot) as out:
+            report.figure().savefig(out, format=args.plot.rsplit(".", 1)[-1].lower())
     if args.json:
-        with open(args.json, "wb") as out:
-            out.write(orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n")
+        _write_json(args.json, report.to_dict())
     Console(highlight=False).print(report)
     return EXIT_OK if report.ok else EXIT_FOUND
 
@@ -400,9 +422,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.description = (
         "Write one self-contained HTML file (no external requests, figures inline): integrity\n"
         "and verification with reasons, the randomization audit with its figures and, with\n"
-        "--reward and --set, the estimate of a target policy with its weights. Exit 0 when\n"
-        "verification and the audit passed, 1 when they found a problem or the estimate was\n"
-        "refused (the page then says why) or made from accepted failures."
+        "--reward and --set, the estimate of a target policy with its weights. The 20 streams\n"
+        "with alarms or the most decisions are shown in full, the others one row each. Exit 0\n"
+        "when verification and the audit passed, 1 when they found a problem or the estimate\n"
+        "was refused (the page then says why) or made from accepted failures."
     )
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     p.add_argument("--html", required=True, metavar="FILE", help="where to write the report")
@@ -429,6 +452,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         if getattr(args, "engine", "local") == "dask":
             import dask  # noqa: F401  (missing: the one line below, before any work starts)
             import distributed  # noqa: F401
+        _check_outputs(args)
         return handler(args)
     except KeyboardInterrupt:
         print(f"drawledger {args.command}: interrupted", file=sys.stderr)
@@ -448,7 +472,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except (DrawledgerError, OSError, ValueError) as exc:
         if args.debug:
             raise
-        message = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
+        message = visible(str(exc).splitlines()[0]) if str(exc) else exc.__class__.__name__
         print(f"drawledger {args.command}: error: {message}", file=sys.stderr)
         return EXIT_USAGE
 

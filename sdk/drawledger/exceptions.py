@@ -17,6 +17,7 @@ __all__ = [
     "MissingFunctionError",
     "NotADecisionError",
     "NotSerializableError",
+    "OutputError",
     "ReplayError",
 ]
 
@@ -84,3 +85,8 @@ class NotADecisionError(ReplayError):
 
 class BadRecordError(ReplayError):
     """A ledger record cannot be decoded: corrupt JSON, NaN, wrong types, a malformed seed."""
+
+
+class OutputError(DrawledgerError, OSError):
+    """An output file (a JSON result, an export, a report, a plot) cannot be written where asked:
+    its folder is missing or not writable, or the name is a folder."""

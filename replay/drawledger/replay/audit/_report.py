@@ -9,6 +9,7 @@ from typing import TYPE_CHECKING, Any
 import pandas as pd
 
 from drawledger.replay._html import html_table
+from drawledger.replay._terminal import shown
 from drawledger.replay.audit import _stats
 from drawledger.replay.audit._limits import (
     ALPHA,
@@ -122,7 +123,7 @@ class AuditReport:
         yield f"[bold]Randomization audit of {self.decisions} decisions[/]"
         style = {AS_DECLARED: "green", NOT_AS_DECLARED: "bold red", NOT_ENOUGH_DATA: "dim"}
         for stream in dict.fromkeys(t.stream for t in self.tests):
-            table = Table(title=stream, title_justify="left", title_style="bold")
+            table = Table(title=shown(stream), title_justify="left", title_style="bold")
             table.add_column("draw / test", no_wrap=True)
             for name in ("n", "statistic", "p"):
                 table.add_column(name, justify="right", no_wrap=True)
@@ -137,10 +138,10 @@ class AuditReport:
                 if draw != previous:
                     if previous is not None:
                         table.add_section()
-                    table.add_row(f"[bold]{draw}[/]")
+                    table.add_row(shown(draw, style="bold"))
                     previous = draw
                 table.add_row(
-                    "  " + TEST_LABELS[t.test] + (f" {t.field}" if t.field else ""),
+                    shown("  " + TEST_LABELS[t.test] + (f" {t.field}" if t.field else "")),
                     str(t.n),
                     _fmt(t.statistic),
                     _fmt_p(t.p_adjusted),

@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 
 from drawledger.replay._html import html_table
+from drawledger.replay._terminal import shown, warning
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -191,9 +192,9 @@ class EstimateReport:
         from rich.box import SIMPLE
         from rich.table import Table
 
-        t = Table(title=f"{_policy_text(self.target)} (diff: minus "
+        t = Table(title=shown(f"{_policy_text(self.target)} (diff: minus "
                   f"{_policy_text(self.baseline)}), {self.n} verified records, "
-                  f"{_intervals(self.settings)}", title_justify="left", box=SIMPLE)  # fmt: skip
+                  f"{_intervals(self.settings)}"), title_justify="left", box=SIMPLE)  # fmt: skip
         for col in ("estimator", "value", "interval", "outer band", "diff", "interval"):
             t.add_column(col, justify="left" if col == "estimator" else "right", no_wrap=True)
         for name, e in self.estimates.items():
@@ -219,12 +220,13 @@ class EstimateReport:
             g.add_row(*filled)
         out: list[Any] = [t, g]
         if self.segments is not None:
-            s = Table(title=f"segments by {self.segments['by']}", title_justify="left", box=SIMPLE)
+            s = Table(title=shown(f"segments by {self.segments['by']}"), title_justify="left",
+                      box=SIMPLE)  # fmt: skip
             for col in ("segment", "n", "snips", "interval", "ess", "deficit"):
                 s.add_column(col, justify="left" if col == "segment" else "right", no_wrap=True)
             for seg in self.segments["groups"]:
                 e = seg["estimates"]["snips"]
-                s.add_row(str(seg["value"]), str(seg["n"]), _fmt(e["value"]), _span(e),
+                s.add_row(shown(seg["value"]), str(seg["n"]), _fmt(e["value"]), _span(e),
                           f"{seg['diagnostics']['ess']:.1f}",
                           _fmt(seg["diagnostics"]["support_deficit"]))  # fmt: skip
             out.append(s)
@@ -234,7 +236,7 @@ class EstimateReport:
         yield from _alerts(self.alerts)
         yield from self._tables()
         for w in self.warnings:
-            yield f"[yellow]warning:[/yellow] {w}"
+            yield warning(w)
 
     def render(self) -> str:
         """The tables and warnings as plain text."""
@@ -262,7 +264,7 @@ def _alerts(lines: list[str]) -> RenderResult:
     from rich.text import Text
 
     for line in lines:
-        yield Text.assemble(("ALERT: ", "bold red"), line)
+        yield Text.assemble(("ALERT: ", "bold red"), shown(line))
 
 
 def _plain(renderable: Any) -> str:
@@ -362,27 +364,27 @@ class SweepReport:
         from rich.text import Text
 
         yield from _alerts(self.alerts)
-        t = Table(title=f"{self.param} sweep: {self.n} verified records, "
-                  f"{_intervals(self.settings)}", title_justify="left", box=SIMPLE)  # fmt: skip
-        shown = [n for n in ("snips", "dr") if self.points and n in self.points[0]["estimates"]]
-        t.add_column(self.param, justify="right")
-        for name in shown:
+        t = Table(title=shown(f"{self.param} sweep: {self.n} verified records, "
+                  f"{_intervals(self.settings)}"), title_justify="left", box=SIMPLE)  # fmt: skip
+        names = [n for n in ("snips", "dr") if self.points and n in self.points[0]["estimates"]]
+        t.add_column(shown(self.param), justify="right")
+        for name in names:
             t.add_column(name, justify="right")
             t.add_column("interval", justify="right", no_wrap=True)
         t.add_column("ess", justify="right")
         for p in self.points:
             cells = []
-            for name in shown:
+            for name in names:
                 e = p["estimates"][name]
                 cells += [_fmt(e["value"]), _span(e)]
-            t.add_row(f"{p['value']:g}" if isinstance(p["value"], float) else str(p["value"]),
+            t.add_row(f"{p['value']:g}" if isinstance(p["value"], float) else shown(p["value"]),
                       *cells, f"{p['diagnostics']['ess']:.1f}")  # fmt: skip
         yield t
         filled = _filled(self.missing_rewards)
         if filled:
             yield Text(f"{filled[0]}: {filled[1]}")
         for w in self.warnings:
-            yield f"[yellow]warning:[/yellow] {w}"
+            yield warning(w)
 
     def render(self) -> str:
         """The table and warnings as plain text."""

@@ -8,6 +8,7 @@ from typing import TYPE_CHECKING, Any, NamedTuple
 
 from drawledger import _records
 from drawledger._schema import DEC, DRAW, OUT
+from drawledger._text import visible
 from drawledger.replay._html import html_table
 
 if TYPE_CHECKING:
@@ -81,7 +82,7 @@ class IntegrityReport:
         for p in PROBLEMS:
             n = getattr(self, p)
             if n:
-                shown = ", ".join(self.examples.get(p, []))
+                shown = ", ".join(visible(d) for d in self.examples.get(p, []))
                 note = " (not a failure: see docs/ledger.md)" if p == "orphan_outcomes" else ""
                 lines.append(f"  {p.replace('_', ' ')}: {n}{note}; e.g. {shown}")
         if self.uncommitted_parts:

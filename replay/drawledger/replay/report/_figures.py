@@ -1,8 +1,9 @@
 """The report's figures, drawn with matplotlib and kept as SVG data URIs.
 
 Text in the SVG is drawn as paths (no fonts needed) and the SVG carries no date, so the same
-data give the same figure. Labels that come from a ledger are shown as written: a '$' would
-otherwise start matplotlib's mathematical text.
+data give the same figure. Labels that come from a ledger are shown as written (a '$' would
+otherwise start matplotlib's mathematical text), with control and bidirectional characters as
+escapes and cut to ``LABEL_LIMIT`` characters.
 """
 
 from __future__ import annotations
@@ -15,6 +16,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from drawledger._text import clipped
 from drawledger.replay.audit import AuditFigure
 from drawledger.replay.estimate import EstimateReport, SweepReport
 from drawledger.replay.report._format import policy
@@ -41,6 +43,12 @@ GREY = "#777777"
 COLOURS = {"ips": "#4477aa", "snips": "#ee6677", "clipped": "#228833", "dr": "#aa3377"}
 TRUTH_COLOUR = "#222222"
 SWEEP_ESTIMATORS = ("snips", "dr")
+
+# Labels in figures are cut to this many characters, alternative texts to ALT_LIMIT; a bar
+# chart of options shows at most MAX_OPTIONS bars (the rest summed into one).
+LABEL_LIMIT = 40
+ALT_LIMIT = 200
+MAX_OPTIONS = 24
 
 
 @dataclass(frozen=True)
@@ -82,19 +90,43 @@ def _embed(fig: Figure, alt: str) -> Image:
     return Image(alt, f"data:image/svg+xml;base64,{data}")
 
 
-def _plain(text: str) -> str:
-    """Text for a matplotlib label, shown as written (a '$' would start mathematical text)."""
-    return text.replace("$", r"\$")
+def _plain(text: str, limit: int = LABEL_LIMIT) -> str:
+    """Text for a matplotlib label, shown as written (a '$' would start mathematical text),
+    control and bidirectional characters as escapes, cut to ``limit`` characters."""
+    return clipped(text, limit).replace("$", r"\$")
+
+
+def _alt(text: str) -> str:
+    """Alternative text of a figure: control characters as escapes, at most ``ALT_LIMIT``."""
+    return clipped(text, ALT_LIMIT)
 
 
 def _option_label(text: str) -> str:
     label = text[1:-1] if len(text) >= 2 and text[0] == text[-1] == '"' else text
-    return _plain(label if len(label) <= 18 else label[:17] + "…")
+    return _plain(label, 18)
 
 
-def verify_figure(v: VerifyReport) -> Image:
-    """Decisions of each stream: verified, mismatched and unreplayable, as stacked bars."""
-    streams = sorted(v.by_stream)
+def _top_options(f: AuditFigure) -> tuple[list[str], list[float], list[float]]:
+    """The options of a figure, the ``MAX_OPTIONS - 1`` most expected ones and the rest summed
+    into one bar, so that a draw with thousands of options still gives a readable figure."""
+    labels = [_option_label(o) for o in f.options]
+    observed, expected = list(f.observed), list(f.expected)
+    if len(labels) <= MAX_OPTIONS:
+        return labels, observed, expected
+    keep = sorted(range(len(labels)), key=lambda i: -expected[i])[: MAX_OPTIONS - 1]
+    rest = sorted(set(range(len(labels))) - set(keep))
+    return (
+        [labels[i] for i in keep] + [f"{len(rest)} others"],
+        [observed[i] for i in keep] + [sum(observed[i] for i in rest)],
+        [expected[i] for i in keep] + [sum(expected[i] for i in rest)],
+    )
+
+
+def verify_figure(v: VerifyReport, limit: int) -> Image:
+    """Decisions of each stream, of the ``limit`` streams with the most: verified, mismatched
+    and unreplayable, as stacked bars."""
+    largest = sorted(v.by_stream, key=lambda s: (-v.by_stream[s].get("decisions", 0), s))
+    streams = sorted(largest[:limit])
     fig = _figure(5.0, 0.45 * len(streams) + 1.0)
     ax = fig.add_subplot()
     left = np.zeros(len(streams))
@@ -111,7 +143,8 @@ def verify_figure(v: VerifyReport) -> Image:
     ax.set_xlabel("decisions")
     ax.legend(fontsize=8, loc="lower right", frameon=False, ncols=3, bbox_to_anchor=(1.0, 1.0))
     _style(ax)
-    return _embed(fig, "decisions by stream: verified, mismatched and unreplayable")
+    shown = f"the {len(streams)} largest streams" if len(v.by_stream) > limit else "stream"
+    return _embed(fig, f"decisions by {shown}: verified, mismatched and unreplayable")
 
 
 def audit_figure(f: AuditFigure, edges: Sequence[float]) -> Image:
@@ -156,10 +189,10 @@ def audit_figure(f: AuditFigure, edges: Sequence[float]) -> Image:
     _style(ax)
     if with_options:
         bx = fig.add_subplot(1, 2, 2)
-        labels = [_option_label(o) for o in f.options]
+        labels, observed, expected = _top_options(f)
         x = np.arange(len(labels))
-        bx.bar(x - 0.2, f.observed, width=0.4, color="#4477aa", label="observed")
-        bx.bar(x + 0.2, f.expected, width=0.4, color="#cccccc", label="declared")
+        bx.bar(x - 0.2, observed, width=0.4, color="#4477aa", label="observed")
+        bx.bar(x + 0.2, expected, width=0.4, color="#cccccc", label="declared")
         bx.set_xticks(
             x,
             labels,
@@ -172,7 +205,7 @@ def audit_figure(f: AuditFigure, edges: Sequence[float]) -> Image:
         _style(bx)
     fig.tight_layout()
     name = f" {f.draw!r}" if f.draw else ""
-    return _embed(fig, f"audit of {f.stream} {f.kind}{name}")
+    return _embed(fig, _alt(f"audit of {f.stream} {f.kind}{name}"))
 
 
 def estimate_figure(r: EstimateReport, truth: float | None) -> Image:
@@ -202,14 +235,14 @@ def estimate_figure(r: EstimateReport, truth: float | None) -> Image:
         ax.axvline(r.logging_value, color=GREY, ls=":", lw=1.2, label="logging policy (observed)")
     if truth is not None:
         ax.axvline(truth, color=TRUTH_COLOUR, ls="--", lw=1.2, label="true value (simulator)")
-    ax.set_yticks(range(len(names)), names)
+    ax.set_yticks(range(len(names)), [_plain(n) for n in names])
     ax.set_ylim(len(names) - 0.5, -0.5)
     level = r.settings.get("level", 0.95)
     reward = _plain(str(r.target.get("reward", "reward")))
     ax.set_xlabel(f"mean {reward} with {level:.0%} intervals")
     ax.legend(fontsize=7, frameon=False, loc="upper center", bbox_to_anchor=(0.5, -0.35), ncols=3)
     _style(ax)
-    return _embed(fig, f"estimates of {policy(r.target)}")
+    return _embed(fig, _alt(f"estimates of {policy(r.target)}"))
 
 
 def weights_figure(r: EstimateReport) -> Image:
@@ -263,4 +296,4 @@ def sweep_figure(s: SweepReport, truth: Sequence[float] | None) -> Image:
     ax.set_ylabel(f"mean {_plain(str(s.settings.get('reward', 'reward')))}")
     ax.legend(fontsize=7, frameon=False)
     _style(ax)
-    return _embed(fig, f"sweep of {s.param}")
+    return _embed(fig, _alt(f"sweep of {s.param}"))

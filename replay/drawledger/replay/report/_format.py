@@ -7,10 +7,17 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
+from markupsafe import Markup, escape
 
-__all__ = ["num", "p_value", "policy"]
+from drawledger._text import clipped, visible
+
+__all__ = ["NAME_LIMIT", "name", "num", "p_value", "plain", "policy"]
 
 MISSING = "–"
+
+# Names from a ledger (streams, draws, decision ids, targets) are cut to this many characters
+# on the page; the whole name is the element's title (its tooltip).
+NAME_LIMIT = 60
 
 
 def num(x: float | None, digits: int = 4) -> str:
@@ -43,3 +50,20 @@ def policy(target: Mapping[str, Any]) -> str:
     text = ", ".join(f"{k} = {v}" for k, v in overrides.items()) or "the logging policy"
     stream = target.get("stream")
     return f"{stream} with {text}" if stream else text
+
+
+def plain(value: object) -> object:
+    """What the page prints for ``{{ value }}``: text with control and bidirectional characters
+    as escapes (``\\x1b``, ``\\u202e``); markup the templates built, and numbers, as they are."""
+    if isinstance(value, Markup) or not isinstance(value, str):
+        return value
+    return visible(value)
+
+
+def name(value: object, limit: int = NAME_LIMIT) -> Markup:
+    """A name from a ledger as an isolated span: escaped, cut to ``limit`` characters with an
+    ellipsis, and when cut, the whole (escaped) name as its title."""
+    whole = visible(value)
+    shown = clipped(whole, limit)
+    title = Markup(' title="{}"').format(whole) if shown != whole else ""
+    return Markup('<span class="name"{}>{}</span>').format(title, escape(shown))

@@ -6,11 +6,19 @@ out and escape it. Nothing here is markup.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections import Counter
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import ClassVar
 
-from drawledger.replay.audit import TEST_LABELS, AuditReport
+from drawledger.replay.audit import (
+    AS_DECLARED,
+    NOT_AS_DECLARED,
+    NOT_ENOUGH_DATA,
+    TEST_LABELS,
+    AuditReport,
+    AuditTest,
+)
 from drawledger.replay.estimate import EstimateReport, SweepReport
 from drawledger.replay.integrity import PROBLEMS
 from drawledger.replay.report._figures import (
@@ -35,11 +43,23 @@ __all__ = [
     "Table",
     "VerifySection",
     "audit_section",
+    "full_streams",
     "verify_section",
     "whatif_block",
 ]
 
 STREAM_COUNTS = ("decisions", "verified", "mismatched", "unreplayable")
+
+# The report shows at most this many streams in full (every test, and figures); the others get
+# one row each in a compact table, so that the page's size and the time to draw it stay bounded
+# however many streams a ledger has. Streams with an alarm come first, then the largest.
+FULL_STREAMS = 20
+
+# Figures of at most this many draws per stream shown in full.
+PANELS_PER_STREAM = 6
+
+# The style of each verdict on the page.
+VERDICT_CLASSES = {AS_DECLARED: "ok", NOT_AS_DECLARED: "bad", NOT_ENOUGH_DATA: "dim"}
 
 
 @dataclass(frozen=True)
@@ -103,12 +123,19 @@ class AuditPanel:
 
 @dataclass(frozen=True)
 class AuditSection:
+    """The audit; ``others`` is the compact table of the streams not shown in full (one row
+    each), ``note`` says how many streams are shown in full and how many draws have no figure
+    (empty when everything is shown)."""
+
     ok: bool
     alarms: int
     alpha: str
     decisions: str
     rows: Sequence[AuditRow]
     panels: Sequence[AuditPanel]
+    others: Table | None = None
+    note: str = ""
+    classes: ClassVar[dict[str, str]] = VERDICT_CLASSES
 
 
 @dataclass(frozen=True)
@@ -181,7 +208,7 @@ def verify_section(v: VerifyReport) -> VerifySection:
         keyed="keyed" if i.keyed else "unkeyed",
         writers=num(i.writers),
         summary=summary,
-        figure=verify_figure(v) if v.by_stream else None,
+        figure=verify_figure(v, FULL_STREAMS) if v.by_stream else None,
         streams=streams,
         reasons=reasons,
         integrity_ok=i.ok,
@@ -191,12 +218,27 @@ def verify_section(v: VerifyReport) -> VerifySection:
     )
 
 
-def audit_section(a: AuditReport) -> AuditSection:
+def full_streams(a: AuditReport, decisions: Mapping[str, int]) -> list[str]:
+    """The streams shown in full, at most ``FULL_STREAMS``: those with an alarm first, then
+    those with the most decisions (``decisions`` counts them by stream), then by name."""
+    alarmed = {t.stream for t in a.tests if t.alarm}
+    streams = {t.stream for t in a.tests}
+    ranked = sorted(streams, key=lambda s: (s not in alarmed, -decisions.get(s, 0), s))
+    return ranked[:FULL_STREAMS]
+
+
+def audit_section(a: AuditReport, decisions: Mapping[str, int] | None = None) -> AuditSection:
+    """The audit's rows and figures for the streams shown in full, a compact table for the
+    rest; ``decisions`` counts decisions by stream (verify's ``by_stream``) to rank them."""
+    counts = dict(decisions or {})
+    full = set(full_streams(a, counts))
     rows = []
     for t in a.tests:
+        if t.stream not in full:
+            continue
         draw = "" if t.kind is None else t.kind + (f" '{t.draw}'" if t.draw else "")
         label = TEST_LABELS.get(t.test, t.test) + (f" {t.field}" if t.field else "")
-        verdict_class = "bad" if t.alarm else ("dim" if t.verdict == "not enough data" else "ok")
+        verdict_class = "bad" if t.alarm else VERDICT_CLASSES.get(t.verdict, "ok")
         rows.append(
             AuditRow(
                 t.stream,
@@ -210,18 +252,55 @@ def audit_section(a: AuditReport) -> AuditSection:
                 verdict_class,
             )
         )
-    panels = [
-        AuditPanel(
-            f.stream,
-            f.kind,
-            f" '{f.draw}'" if f.draw else "",
-            num(f.n),
-            bool(f.options),
-            audit_figure(f, a.bin_edges),
-        )
-        for f in a.figures
-    ]
-    return AuditSection(a.ok, len(a.alarms), f"{a.alpha:g}", num(a.decisions), rows, panels)
+    per_stream: Counter[str] = Counter()
+    panels = []
+    undrawn = 0
+    for f in a.figures:
+        if f.stream not in full:
+            continue
+        if per_stream[f.stream] >= PANELS_PER_STREAM:
+            undrawn += 1
+            continue
+        per_stream[f.stream] += 1
+        draw = f" '{f.draw}'" if f.draw else ""
+        image = audit_figure(f, a.bin_edges)
+        panels.append(AuditPanel(f.stream, f.kind, draw, num(f.n), bool(f.options), image))
+    others = _other_streams(a, full, counts)
+    streams = len(full) + (len(others.rows) if others else 0)
+    notes = []
+    if others is not None:
+        notes.append(f"{num(streams)} streams: the {num(len(full))} with alarms or the most "
+                     f"decisions are shown in full (tests and figures); the other "
+                     f"{num(len(others.rows))} have one row each in a compact table.")  # fmt: skip
+    if undrawn:
+        notes.append(f"Figures are drawn for at most {PANELS_PER_STREAM} draws per stream; "
+                     f"{num(undrawn)} more draws are in the table only.")  # fmt: skip
+    note = " ".join(notes)
+    return AuditSection(
+        a.ok, len(a.alarms), f"{a.alpha:g}", num(a.decisions), rows, panels, others, note
+    )
+
+
+def _other_streams(a: AuditReport, full: set[str], decisions: Mapping[str, int]) -> Table | None:
+    """One row per stream not shown in full: decisions, tests, alarms, smallest p, verdict."""
+    tests: dict[str, list[AuditTest]] = {}
+    for t in a.tests:
+        if t.stream not in full:
+            tests.setdefault(t.stream, []).append(t)
+    if not tests:
+        return None
+    rows = []
+    for stream in sorted(tests, key=lambda s: (-decisions.get(s, 0), s)):
+        ts = tests[stream]
+        alarms = sum(t.alarm for t in ts)
+        ps = [t.p_adjusted for t in ts if t.p_adjusted is not None]
+        verdicts = {t.verdict for t in ts}
+        verdict = NOT_AS_DECLARED if alarms else (
+            AS_DECLARED if AS_DECLARED in verdicts else NOT_ENOUGH_DATA)  # fmt: skip
+        rows.append((stream, num(decisions.get(stream, 0)), num(len(ts)), num(alarms),
+                     p_value(min(ps)) if ps else num(None), verdict))  # fmt: skip
+    head = ("stream", "decisions", "tests", "alarms", "smallest p (Holm)", "verdict")
+    return Table(head, rows, cls="others")
 
 
 def whatif_block(

@@ -8,7 +8,10 @@ curves with interval bands). Figures are drawn with matplotlib and embedded as S
 the file makes no external request, opens offline, and prints (a print stylesheet is included).
 
 The page is rendered from the Jinja2 templates in ``templates/`` with autoescaping: every text
-from a ledger (stream names, decision ids, reasons, options, policy parameters) is escaped.
+from a ledger (stream names, decision ids, reasons, options, policy parameters) is escaped, its
+control and bidirectional characters shown as escapes, and names cut for display (their whole
+text in a title). At most ``FULL_STREAMS`` streams are shown in full; the others get one row
+each, so the page's size and the time to draw it stay bounded (docs/operations.md).
 """
 
 from __future__ import annotations
@@ -24,10 +27,11 @@ from typing import Any
 from jinja2 import Environment, PackageLoader, StrictUndefined
 
 from drawledger import __version__
+from drawledger._files import check_output, replacing
 from drawledger.exceptions import EstimateRefusedError, ReplayError
 from drawledger.replay.audit import AuditReport, audit
 from drawledger.replay.estimate import EstimateReport, SweepReport, estimate
-from drawledger.replay.report._format import num, policy
+from drawledger.replay.report._format import name, num, plain, policy
 from drawledger.replay.report._sections import audit_section, verify_section, whatif_block
 from drawledger.replay.verify import VerifyReport, verify
 
@@ -40,7 +44,9 @@ TEMPLATES = Environment(
     trim_blocks=True,
     lstrip_blocks=True,
     keep_trailing_newline=True,
+    finalize=plain,
 )
+TEMPLATES.filters["name"] = name
 
 
 @dataclass(frozen=True)
@@ -134,8 +140,7 @@ def write_report(
     target = Path(os.fspath(html))
     if target.suffix.lower() not in (".html", ".htm"):
         raise ReplayError(f"the report is an HTML file: give a name ending in .html, not {target}")
-    if not target.parent.is_dir():
-        raise ReplayError(f"cannot write {target}: no directory {target.parent}")
+    check_output(target, "the report")
     if overrides and reward is None:
         raise ReplayError("a target policy (--set) needs the reward to estimate (--reward)")
     progress = progress and sys.stderr.isatty()
@@ -173,9 +178,8 @@ def write_report(
                          refused)  # fmt: skip
     else:
         page = _page(os.fspath(ledger), verification, audit_report, questions, title, refused)
-    tmp = target.with_name(f".{target.name}.tmp")
-    tmp.write_text(page, encoding="utf-8")
-    tmp.replace(target)
+    with replacing(target) as out:
+        out.write(page.encode("utf-8"))
     return HtmlReport(target, verification, audit_report, questions, refused)
 
 
@@ -194,6 +198,6 @@ def _page(
         generated=_dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
         version=__version__,
         verify=verify_section(v),
-        audit=audit_section(a),
+        audit=audit_section(a, {s: c.get("decisions", 0) for s, c in v.by_stream.items()}),
         whatifs=[whatif_block(w.title, w.result, w.truth) for w in questions],
     )

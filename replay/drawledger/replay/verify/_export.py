@@ -11,16 +11,25 @@ decision; empty when none was recorded) and one ``input.<path>`` column per scal
 from __future__ import annotations
 
 import os
+import re
 from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any
 
 import pandas as pd
 
+from drawledger._files import check_output, replacing
 from drawledger.exceptions import ReplayError
 from drawledger.replay.sources import outcome_totals
 
-__all__ = ["BASE_COLUMNS", "flatten_inputs", "join_outcomes", "read_outcomes", "write_export"]
+__all__ = [
+    "BASE_COLUMNS",
+    "csv_ready",
+    "flatten_inputs",
+    "join_outcomes",
+    "read_outcomes",
+    "write_export",
+]
 
 BASE_COLUMNS = (
     "decision_id",
@@ -38,6 +47,7 @@ BASE_COLUMNS = (
     "detail",
 )
 SUFFIXES = (".csv", ".parquet")
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
 
 
 def _leaves(prefix: str, value: Any) -> Iterator[tuple[str, Any]]:
@@ -61,9 +71,7 @@ def check_export_path(path: str | os.PathLike[str]) -> Path:
     target = Path(path).expanduser()
     if target.suffix.lower() not in SUFFIXES:
         raise ReplayError(f"export file {os.fspath(path)!r} must end in .csv or .parquet")
-    if not target.parent.is_dir():
-        raise ReplayError(f"export folder {os.fspath(target.parent)!r} does not exist")
-    return target
+    return check_output(target, "export")
 
 
 def read_outcomes(target: str | os.PathLike[str], *, format: str | None = None) -> pd.DataFrame:
@@ -98,16 +106,35 @@ def _parquet_ready(rows: pd.DataFrame) -> pd.DataFrame:
     return out
 
 
+# A number as a spreadsheet reads it: text cells like this are left as they are.
+_NUMBER = re.compile(r"[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?")
+
+
+def _inert(value: Any) -> Any:
+    """A text cell a spreadsheet would read as a formula, with a single quote in front."""
+    if isinstance(value, str) and value[:1] in FORMULA_STARTS and not _NUMBER.fullmatch(value):
+        return "'" + value
+    return value
+
+
+def csv_ready(rows: pd.DataFrame) -> pd.DataFrame:
+    """The rows with every text cell and column name that starts with ``=``, ``+``, ``-``,
+    ``@``, a tab or a carriage return prefixed by a single quote, so that a spreadsheet shows
+    it as text instead of running it as a formula (the OWASP guidance on CSV injection).
+    Numbers, and text that is a plain number such as ``-0.5``, are left as they are."""
+    out = rows.rename(columns=_inert)
+    for col in out.columns:
+        if pd.api.types.is_object_dtype(out[col]) or pd.api.types.is_string_dtype(out[col]):
+            out[col] = out[col].map(_inert)
+    return out
+
+
 def write_export(rows: pd.DataFrame, path: str | os.PathLike[str]) -> Path:
     """Write the rows as CSV or Parquet (by extension), whole or not at all."""
     target = check_export_path(path)
-    partial = target.with_name(f".{target.name}.partial")
-    try:
+    with replacing(target) as out:
         if target.suffix.lower() == ".csv":
-            rows.to_csv(partial, index=False)
+            csv_ready(rows).to_csv(out, index=False, encoding="utf-8")
         else:
-            _parquet_ready(rows).to_parquet(partial, index=False)
-        os.replace(partial, target)
-    finally:
-        partial.unlink(missing_ok=True)
+            _parquet_ready(rows).to_parquet(out, index=False)
     return target

@@ -11,6 +11,7 @@ from typing import TYPE_CHECKING, Any
 import pandas as pd
 
 from drawledger.replay._html import html_table
+from drawledger.replay._terminal import shown
 from drawledger.replay.integrity import IntegrityReport
 from drawledger.replay.verify import _export
 from drawledger.replay.verify._types import COUNTS, NOT_FAILING, REASONS, UNREPLAYABLE, ChunkResult
@@ -50,8 +51,8 @@ class VerifyReport:
             "by_reason": dict(self.by_reason),
             "integrity": self.integrity.to_dict(),
             "examples": {
-                reason: [{"decision_id": d, "detail": text} for d, text in shown]
-                for reason, shown in self.examples.items()
+                reason: [{"decision_id": d, "detail": text} for d, text in pairs]
+                for reason, pairs in self.examples.items()
             },
             "by_stream": self.by_stream,
             "propensity_methods": dict(self.methods),
@@ -67,7 +68,7 @@ class VerifyReport:
             streams.add_column(name, justify="right" if name in COUNTS else "left")
         for stream, c in sorted(self.by_stream.items()):
             found = ", ".join(f"{r} {n}" for r, n in c["by_reason"].items())
-            streams.add_row(stream, *(str(c[k]) for k in COUNTS), found)
+            streams.add_row(shown(stream), *(str(c[k]) for k in COUNTS), found)
         streams.add_row("all", str(self.decisions), str(self.verified), str(self.mismatched),
                         str(self.unreplayable), style="bold")  # fmt: skip
         parts: list[Any] = [streams]
@@ -77,9 +78,9 @@ class VerifyReport:
             reasons.add_column("decisions", justify="right")
             reasons.add_column("first examples")
             for reason in sorted(self.by_reason, key=REASONS.index):
-                shown = self.examples.get(reason, [])
-                ids = ", ".join(d for d, _ in shown)
-                first = f"{ids}\n{shown[0][1]}" if shown else ""
+                examples = self.examples.get(reason, [])
+                ids = ", ".join(d for d, _ in examples)
+                first = Text("\n").join([shown(ids), shown(examples[0][1])]) if examples else ""
                 reasons.add_row(reason, str(self.by_reason[reason]), first)
             parts.append(reasons)
         parts.append(Text(self.integrity.render()))

@@ -1,0 +1,32 @@
+"""Ledger text for rich: never read as markup, emoji codes or escape sequences.
+
+Every text that comes from a ledger (stream names, decision ids, reasons, warnings, input
+values) reaches rich through ``shown``: a ``rich.text.Text`` (so ``[/]`` or ``[link=...]`` is
+text, not markup) of ``drawledger._text.visible`` (so control and bidirectional characters
+appear as escapes such as ``\\x1b`` and ``\\u202e``).
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+from drawledger._text import visible
+
+if TYPE_CHECKING:
+    from rich.text import Text
+
+__all__ = ["shown", "warning"]
+
+
+def shown(value: object, style: str = "") -> Text:
+    """``value`` as rich text, shown exactly as written (with control characters escaped)."""
+    from rich.text import Text
+
+    return Text(visible(value), style=style)
+
+
+def warning(text: object) -> Text:
+    """A warning line: "warning:" in yellow, then ``text`` shown as written."""
+    from rich.text import Text
+
+    return Text.assemble(("warning:", "yellow"), " ", visible(text))
