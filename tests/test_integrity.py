@@ -212,10 +212,74 @@ def test_missing_table_and_non_ledger_file_are_clear_errors(tmp_path: Path) -> N
         check_integrity(path)
     junk = tmp_path / "junk.db"
     junk.write_bytes(b"this is not a database" * 100)
-    with pytest.raises(dl.LedgerError, match="cannot read ledger"):
+    with pytest.raises(dl.LedgerError, match="not a drawledger ledger or its database is corrupt"):
         check_integrity(junk)
     with pytest.raises(dl.LedgerError, match="no such file"):
         check_integrity(tmp_path / "absent.db")
+
+
+def _loosen(path: Path, table: str) -> None:
+    """The table without its NOT NULL constraints, as a hand-made or damaged copy may be."""
+    with sqlite3.connect(path) as conn:
+        conn.executescript(f"CREATE TABLE loose AS SELECT * FROM {table}; DROP TABLE {table}; "
+                           f"ALTER TABLE loose RENAME TO {table};")  # fmt: skip
+
+
+@pytest.mark.parametrize(
+    ("table", "statement", "reason"),
+    [
+        ("decisions", "UPDATE decisions SET propensity = NULL WHERE decision_id = 'req-5'",
+         "decisions.propensity is NULL"),
+        ("decisions", "UPDATE decisions SET ts = 'noon' WHERE decision_id = 'req-5'",
+         "decisions.ts is 'noon', not a number"),
+        ("draws", "UPDATE draws SET prob = NULL WHERE decision_id = 'req-5'",
+         "draws.prob is NULL"),
+        ("outcomes", "UPDATE outcomes SET value = 'x' WHERE decision_id = 'req-6'",
+         "outcomes.value is 'x', not a number"),
+    ],
+)  # fmt: skip
+def test_a_null_or_text_where_a_number_belongs_is_a_bad_record_with_its_reason(
+    ledger_path: Path, table: str, statement: str, reason: str
+) -> None:
+    _fill(ledger_path, 12)
+    _loosen(ledger_path, table)
+    _sql(ledger_path, statement)
+    report = check_integrity(ledger_path)
+    assert not report.ok
+    assert (1, 0) == (report.bad_records, report.bad_hashes)
+    assert [reason] == list(report.reasons.values())
+    assert reason in report.render()
+    json.dumps(report.to_dict())
+
+
+@pytest.mark.parametrize(
+    ("table", "statement"),
+    [
+        ("decisions", "UPDATE decisions SET seq = 'x' WHERE decision_id = 'req-5'"),
+        ("decisions", "UPDATE decisions SET seq = NULL WHERE decision_id = 'req-5'"),
+        ("decisions", "UPDATE decisions SET writer = NULL WHERE decision_id = 'req-5'"),
+        ("decisions", "UPDATE decisions SET decision_id = X'00ff' WHERE decision_id = 'req-5'"),
+        ("outcomes", "UPDATE outcomes SET seq = 'q' WHERE decision_id = 'req-6'"),
+    ],
+)
+def test_a_damaged_chain_column_is_a_bad_record_not_a_crash(
+    ledger_path: Path, table: str, statement: str
+) -> None:
+    _fill(ledger_path, 12)
+    _loosen(ledger_path, table)
+    _sql(ledger_path, statement)
+    report = check_integrity(ledger_path)
+    assert not report.ok
+    assert 1 == report.bad_records
+    json.dumps(report.to_dict())
+
+
+def test_a_parquet_part_without_a_column_is_refused(tmp_path: Path) -> None:
+    _fill(tmp_path / "pq", 10, format="parquet")
+    part = _parquet.parts(tmp_path / "pq", "decisions")[0].path
+    pq.write_table(pq.read_table(part).drop_columns(["seed"]), part)
+    with pytest.raises(dl.LedgerError, match="has no column seed"):
+        check_integrity(tmp_path / "pq")
 
 
 def test_stored_hash_follows_the_documented_encoding(ledger_path: Path) -> None:

@@ -286,3 +286,34 @@ def test_ingest_takes_null_exactly_in_the_nullable_columns(tmp_path: Path) -> No
     )
     assert len(refused) == len(report.malformed)
     assert all(reason.endswith(", got None") for _, reason in report.malformed)
+
+
+def _valid(column: _schema.Column) -> Any:
+    return {"text": "x", "float": 0.5, "integer": 3}[column.kind]
+
+
+@pytest.mark.parametrize("spec", SPECS, ids=lambda s: s.name)
+def test_a_row_of_the_declared_types_has_no_problem(spec: TableSpec) -> None:
+    assert None is _schema.row_problem(spec, tuple(_valid(c) for c in spec.columns))
+    nullable = tuple(None if c.nullable else _valid(c) for c in spec.columns)
+    assert None is _schema.row_problem(spec, nullable)
+
+
+@pytest.mark.parametrize("spec", SPECS, ids=lambda s: s.name)
+def test_a_null_or_another_type_is_named_with_its_column(spec: TableSpec) -> None:
+    for at, column in enumerate(spec.columns):
+        row = [_valid(c) for c in spec.columns]
+        row[at] = b"\x00" if column.kind == "text" else "text"
+        wanted = "text" if column.kind == "text" else "a number" if column.kind == "float" \
+            else "an integer"  # fmt: skip
+        assert f"{spec.name}.{column.name} is {row[at]!r}, not {wanted}" == \
+            _schema.row_problem(spec, tuple(row))  # fmt: skip
+        if not column.nullable:
+            row[at] = None
+            assert f"{spec.name}.{column.name} is NULL" == _schema.row_problem(spec, tuple(row))
+
+
+def test_a_bool_is_not_an_integer_of_the_ledger() -> None:
+    row = [_valid(c) for c in DRAWS.columns]
+    row[DRAW.is_density] = True
+    assert "draws.is_density is True, not an integer" == _schema.row_problem(DRAWS, tuple(row))

@@ -28,7 +28,7 @@ from urllib.parse import quote
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from drawledger._schema import DEC, OUT, SPECS, TableSpec
+from drawledger._schema import DEC, OUT, SPECS, TableSpec, damaged
 from drawledger.exceptions import LedgerError
 
 if TYPE_CHECKING:
@@ -47,6 +47,7 @@ def _arrow_schema(table: TableSpec) -> pa.Schema:
 
 
 SCHEMAS = {table.name: _arrow_schema(table) for table in SPECS}
+_REQUIRED = {table.name: [c.name for c in table.columns if not c.nullable] for table in SPECS}
 TABLES = tuple(SCHEMAS)
 
 # Dictionary encoding only where values repeat, statistics only on numbers (what readers filter
@@ -158,12 +159,53 @@ def check_ledger_dir(root: str | os.PathLike[str]) -> None:
         )
 
 
-def read_part(path: Path, table: str) -> pa.Table:
-    """One part file as an Arrow table with the table's schema."""
+def _same_type(found: pa.DataType, wanted: pa.DataType) -> bool:
+    if pa.types.is_dictionary(found):
+        found = found.value_type
+    if pa.types.is_large_string(found):
+        found = pa.string()
+    return bool(found.equals(wanted))
+
+
+def schema_problem(found: pa.Schema, table: str) -> str | None:
+    """Why a part file's schema is not its table's (a missing column, another type), or None."""
+    for wanted in SCHEMAS[table]:
+        at = found.get_field_index(wanted.name)
+        if at < 0:
+            return f"it has no column {wanted.name}"
+        if not _same_type(found.field(at).type, wanted.type):
+            return f"its column {wanted.name} is {found.field(at).type}, not {wanted.type}"
+    return None
+
+
+def open_part(path: Path, table: str) -> pq.ParquetFile:
+    """A part file of ``table`` with its schema checked (``LedgerError`` when it is not one)."""
     try:
-        return pq.read_table(path, schema=SCHEMAS[table])
+        part = pq.ParquetFile(path)
     except (OSError, pa.ArrowException) as exc:
         raise LedgerError(f"cannot read ledger part {os.fspath(path)!r}: {exc}") from None
+    problem = schema_problem(part.schema_arrow, table)
+    if problem is not None:
+        raise LedgerError(
+            f"ledger part {os.fspath(path)!r} is not a part of the {table} table: {problem}"
+        )
+    return part
+
+
+def read_columns(path: Path, table: str, columns: list[str]) -> pa.Table:
+    """Some columns of a part file of ``table``, its schema checked."""
+    part = open_part(path, table)
+    try:
+        return part.read(columns=columns)
+    except (OSError, pa.ArrowException) as exc:
+        raise LedgerError(f"cannot read ledger part {os.fspath(path)!r}: {exc}") from None
+
+
+def read_part(path: Path, table: str) -> pa.Table:
+    """One part file as an Arrow table with the table's schema."""
+    schema = SCHEMAS[table]
+    data = read_columns(path, table, schema.names)
+    return data if data.schema.equals(schema) else data.cast(schema)
 
 
 def part_rows(path: Path, table: str) -> list[Row]:
@@ -207,6 +249,12 @@ def read_tables(root: str | os.PathLike[str]) -> tuple[pd.DataFrame, pd.DataFram
 def to_frame(tables: list[pa.Table], table: str) -> pd.DataFrame:
     """Arrow tables of one ledger table as one DataFrame, in the readers' row order."""
     data = pa.concat_tables(tables) if tables else SCHEMAS[table].empty_table()
+    for name in _REQUIRED[table]:  # null_count is kept by Arrow: this costs nothing
+        column = data.column(name)
+        if column.null_count:
+            at = column.is_null().to_numpy(zero_copy_only=False).argmax()
+            did = data.column("decision_id")[int(at)].as_py()
+            raise damaged(table, did, f"{table}.{name} is NULL")
     keys = ["decision_id", "idx"] if table == "draws" else ["writer", "seq"]
     frame: pd.DataFrame = data.sort_by([(k, "ascending") for k in keys]).to_pandas()
     return frame

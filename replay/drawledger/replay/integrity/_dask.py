@@ -57,6 +57,9 @@ def combine_reports(
                 if len(mine) < MAX_EXAMPLES and did not in mine:
                     mine.append(did)
         total.decision_ids |= part.decision_ids
+        for did, reason in part.reasons.items():
+            if len(total.reasons) < MAX_EXAMPLES:
+                total.reasons.setdefault(did, reason)
     return total.finish()
 
 

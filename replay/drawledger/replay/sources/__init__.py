@@ -25,6 +25,7 @@ from drawledger.replay.sources._tables import (
     is_parquet,
     open_engine,
     read_tables,
+    rows_frame,
 )
 
 __all__ = [
@@ -46,6 +47,7 @@ __all__ = [
     "read_piece",
     "read_piece_frames",
     "read_tables",
+    "rows_frame",
     "sql_streams",
     "stream_partitions",
     "writer_pages",
