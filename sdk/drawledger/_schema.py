@@ -128,6 +128,23 @@ OUTCOMES = TableSpec(
 
 SPECS = (DECISIONS, DRAWS, OUTCOMES)
 
+# The registry (docs/ledger.md, "Ledger identity and writer registry"): the ledger's signed
+# identity, created with the ledger, and one signed row per writer, written when it starts.
+# Ledgers from before the registry have neither table and are checked as before.
+LEDGER_META = TableSpec(
+    "ledger_meta",
+    (_text("name"), _text("value")),
+    (Index("ledger_meta_name", ("name",), unique=True),),
+)
+
+WRITERS = TableSpec(
+    "writers",
+    (_text("writer"), _float("started"), _text("genesis", nullable=True), _text("tag")),
+    (Index("writers_writer", ("writer",), unique=True),),
+)
+
+REGISTRY = (LEDGER_META, WRITERS)
+
 
 class Positions:
     """The position of each column in a table's row tuples, by name: ``DEC.hash == 15``.
@@ -173,6 +190,8 @@ draws = _sql_table(DRAWS)
 outcomes = _sql_table(OUTCOMES)
 
 TABLES = (decisions, draws, outcomes)
+ledger_meta = _sql_table(LEDGER_META)
+writers = _sql_table(WRITERS)
 
 # -- stored rows that do not fit their table ---------------------------------------------------
 _WANTED = {"text": "text", "float": "a number", "integer": "an integer"}

@@ -6,9 +6,10 @@ import os
 from pathlib import Path
 
 from drawledger.replay.integrity._parquet import check_parquet
+from drawledger.replay.integrity._registry import check_registry
 from drawledger.replay.integrity._report import IntegrityReport
 from drawledger.replay.integrity._sql import check_sql
-from drawledger.replay.sources import is_parquet, open_engine
+from drawledger.replay.sources import is_parquet, open_engine, read_registry
 
 
 def check_integrity(
@@ -33,4 +34,5 @@ def check_integrity(
             check_sql(engine, key, report, chunk_size)
         finally:
             engine.dispose()
+    check_registry(report, read_registry(target, format=format), key)
     return report.finish()

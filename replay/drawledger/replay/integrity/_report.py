@@ -22,6 +22,10 @@ PROBLEMS = (
     "orphan_draws",
     "orphan_outcomes",
     "bad_records",
+    "missing_writers",
+    "unregistered_writers",
+    "foreign_chains",
+    "bad_registry",
 )
 
 
@@ -43,6 +47,10 @@ class IntegrityReport:
     orphan_draws: int = 0
     orphan_outcomes: int = 0
     bad_records: int = 0
+    missing_writers: int = 0
+    unregistered_writers: int = 0
+    foreign_chains: int = 0
+    bad_registry: int = 0
     decisions: int = 0
     outcomes: int = 0
     writers: int = 0
@@ -51,6 +59,11 @@ class IntegrityReport:
     examples: dict[str, list[str]] = field(default_factory=dict)
     decision_ids: set[str] = field(default_factory=set)
     reasons: dict[str, str] = field(default_factory=dict)
+    registry: bool = False  # the ledger has an identity and a writer registry
+    legacy_writers: int = 0  # unregistered writers of a ledger from before its registry
+    # Each walked writer's first prev_hash (None: null; absent: its seq 0 is missing).
+    starts: dict[str, str | None] = field(default_factory=dict)
+    chained: set[str] = field(default_factory=set)  # writers with records
 
     def note(self, problem: str, decision_id: object, count: int = 1) -> None:
         """Count ``count`` occurrences of a problem involving ``decision_id``."""
@@ -63,6 +76,13 @@ class IntegrityReport:
         shown = self.examples.setdefault(problem, [])
         if len(shown) < MAX_EXAMPLES and decision_id not in shown:
             shown.append(decision_id)
+
+    def note_writer(self, problem: str, writer: object) -> None:
+        """A problem of a whole writer (examples: writer ids, not decision ids)."""
+        setattr(self, problem, getattr(self, problem) + 1)
+        shown = self.examples.setdefault(problem, [])
+        if len(shown) < MAX_EXAMPLES:
+            shown.append(writer if isinstance(writer, str) else repr(writer))
 
     def note_bad(self, decision_id: object, reason: str) -> None:
         """A record whose fields do not fit their columns, with the reason (the first few)."""
@@ -80,7 +100,8 @@ class IntegrityReport:
         out: dict[str, Any] = {"ok": self.ok}
         out.update({p: getattr(self, p) for p in PROBLEMS})
         out.update(decisions=self.decisions, outcomes=self.outcomes, writers=self.writers,
-                   keyed=self.keyed, uncommitted_parts=self.uncommitted_parts)  # fmt: skip
+                   keyed=self.keyed, uncommitted_parts=self.uncommitted_parts,
+                   registry=self.registry, legacy_writers=self.legacy_writers)  # fmt: skip
         out["examples"] = {k: list(v) for k, v in self.examples.items()}
         if self.reasons:
             out["bad_record_reasons"] = dict(self.reasons)
@@ -101,6 +122,13 @@ class IntegrityReport:
                 lines.append(f"  {p.replace('_', ' ')}: {n}{note}; e.g. {shown}")
         for did, reason in self.reasons.items():
             lines.append(f"    {did}: {reason}")
+        if not self.registry:
+            lines.append("  note: no ledger identity or writer registry (a ledger from before "
+                         "them): a writer whose records were all deleted, or a chain grafted "
+                         "from another ledger, is not detected")  # fmt: skip
+        elif self.legacy_writers:
+            lines.append(f"  note: {self.legacy_writers} writers from before the registry "
+                         "are not protected against deletion or grafting")  # fmt: skip
         if self.uncommitted_parts:
             lines.append(f"  {self.uncommitted_parts} draws parts of batches interrupted "
                          "between their renames (ignored by readers; safe to delete)")  # fmt: skip
@@ -161,8 +189,11 @@ def walk(report: IntegrityReport, records: Iterable[Rec], dup_ids: set[str]) -> 
             if not (rec.order == 0 and rec.decision_id in dup_ids):  # not counted twice
                 report.note("duplicates", rec.decision_id)
             continue
+        report.chained.add(rec.writer)
         if rec.seq > expected:
             report.note("gaps", rec.decision_id, rec.seq - expected)
+        elif rec.seq == 0:  # the chain's start: null, or a genesis (check_registry)
+            report.starts[rec.writer] = rec.prev_hash
         elif rec.prev_hash != last_hash:
             report.note("broken_links", rec.decision_id)
         state[rec.writer] = (rec.seq + 1, rec.hash)

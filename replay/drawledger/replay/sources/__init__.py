@@ -19,6 +19,7 @@ from drawledger.replay.sources._plan import (
     iter_decision_chunks,
     plan,
 )
+from drawledger.replay.sources._registry import Registry, read_registry
 from drawledger.replay.sources._sql import writer_pages
 from drawledger.replay.sources._tables import (
     LedgerTables,
@@ -33,6 +34,7 @@ __all__ = [
     "PARALLEL_CHUNK_SIZE",
     "LedgerTables",
     "Piece",
+    "Registry",
     "Task",
     "is_parquet",
     "iter_chunks",
@@ -46,6 +48,7 @@ __all__ = [
     "plan",
     "read_piece",
     "read_piece_frames",
+    "read_registry",
     "read_tables",
     "rows_frame",
     "sql_streams",
