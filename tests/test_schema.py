@@ -317,3 +317,14 @@ def test_a_bool_is_not_an_integer_of_the_ledger() -> None:
     row = [_valid(c) for c in DRAWS.columns]
     row[DRAW.is_density] = True
     assert "draws.is_density is True, not an integer" == _schema.row_problem(DRAWS, tuple(row))
+
+
+def test_registry_tables_are_those_published_in_docs_ledger_md() -> None:
+    """Source: docs/ledger.md, "Ledger identity and writer registry"."""
+    text = " ".join(LEDGER_DOC.read_text(encoding="utf-8").split())
+    assert "`ledger_meta` — name, value:" in text
+    assert "`writers` — writer, started (float), genesis (text, null), tag:" in text
+    assert ("name", "value") == _schema.LEDGER_META.names
+    assert ("writer", "started", "genesis", "tag") == _schema.WRITERS.names
+    assert ["genesis"] == [c.name for c in _schema.WRITERS.columns if c.nullable]
+    assert {"ledger_meta", "writers"} <= set(_schema.metadata.tables)
