@@ -189,3 +189,10 @@ def bucket_shares(draw: st.DrawFn) -> dict[str, float]:
     """Shares of a bucket draw: distinct arms with shares summing to 1 (within rounding)."""
     arms = draw(option_lists())
     return dict(zip(arms, draw(prob_vectors(len(arms), len(arms))), strict=True))
+
+
+# What a damaged ledger can hand a reader in any column (SQLite's flexible typing, hand edits).
+stored_values = st.one_of(
+    st.none(), st.booleans(), st.integers(-(2**63), 2**63 - 1), finite, st.text(max_size=8),
+    st.binary(max_size=8),
+)  # fmt: skip

@@ -13,7 +13,10 @@ from typing import Any
 import orjson
 import pyarrow as pa
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 from sqlalchemy.dialects import sqlite
+from strategies import stored_values
 
 import drawledger as dl
 from drawledger import _parquet, _records, _schema, _sinks
@@ -328,3 +331,24 @@ def test_registry_tables_are_those_published_in_docs_ledger_md() -> None:
     assert ("writer", "started", "genesis", "tag") == _schema.WRITERS.names
     assert ["genesis"] == [c.name for c in _schema.WRITERS.columns if c.nullable]
     assert {"ledger_meta", "writers"} <= set(_schema.metadata.tables)
+
+
+@given(data=st.data())
+def test_row_problem_accepts_exactly_the_declared_types(data: st.DataObject) -> None:
+    """Any value in any column: no problem iff it is of the column's kind (or a NULL where the
+    column allows one); otherwise the reason names the table and the column."""
+    spec = data.draw(st.sampled_from(SPECS))
+    row = [data.draw(stored_values) for _ in spec.columns]
+    problem = _schema.row_problem(spec, tuple(row))
+    fits = [
+        (v is None and c.nullable)
+        or (c.kind == "text" and type(v) is str)
+        or (c.kind == "float" and type(v) in (float, int))
+        or (c.kind == "integer" and type(v) is int)
+        for c, v in zip(spec.columns, row, strict=True)
+    ]
+    if all(fits):
+        assert None is problem
+    else:
+        first = spec.columns[fits.index(False)]
+        assert problem is not None and problem.startswith(f"{spec.name}.{first.name} is ")

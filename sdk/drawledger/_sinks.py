@@ -210,8 +210,11 @@ class SqlSink:
         row = _registry.writer_row(ledger_id, writer, started, key, genesis)
         try:
             with self.engine.begin() as conn:
-                conn.execute(sa.insert(_schema.writers).values(dict(zip(_schema.WRITERS.names,
-                                                                        row, strict=True))))
+                conn.execute(
+                    sa.insert(_schema.writers).values(
+                        dict(zip(_schema.WRITERS.names, row, strict=True))
+                    )
+                )
         except sa.exc.IntegrityError:
             pass  # registered before (an ingest after a spill, a second call)
         return genesis

@@ -26,6 +26,7 @@ from drawledger.replay.sources._tables import (
     is_parquet,
     open_engine,
     read_tables,
+    reading,
     rows_frame,
 )
 
@@ -50,6 +51,7 @@ __all__ = [
     "read_piece_frames",
     "read_registry",
     "read_tables",
+    "reading",
     "rows_frame",
     "sql_streams",
     "stream_partitions",
