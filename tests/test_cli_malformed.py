@@ -68,9 +68,10 @@ def _sql(statement: str) -> Damage:
 
 
 def _corrupt(path: Path) -> None:
+    """Garbage over the second page of the file, the first page of the decisions table (the
+    tables are created in order; SQLite pages are 4096 bytes by default)."""
     data = bytearray(path.read_bytes())
-    mid = len(data) // 2
-    data[mid : mid + 3000] = bytes((i * 37 + 11) % 256 for i in range(3000))
+    data[4096 : 4096 + 3000] = b"\xa5" * 3000
     path.write_bytes(bytes(data))
 
 
