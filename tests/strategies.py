@@ -205,3 +205,8 @@ hostile_text = st.lists(
     min_size=1,
     max_size=4,
 ).map("".join)
+# What a damaged ledger can hand a reader in any column (SQLite's flexible typing, hand edits).
+stored_values = st.one_of(
+    st.none(), st.booleans(), st.integers(-(2**63), 2**63 - 1), finite, st.text(max_size=8),
+    st.binary(max_size=8),
+)  # fmt: skip

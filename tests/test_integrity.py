@@ -21,7 +21,7 @@ KEY = b"grocery-ledger-key"
 
 
 def _fill(target: Path, n: int = 60, *, format: str | None = None, key: bytes | None = None,
-          outcomes_every: int = 3) -> dl.Ledger:  # fmt: skip
+          outcomes_every: int = 3, prefix: str = "req") -> dl.Ledger:  # fmt: skip
     """A ledger of ``n`` recipe-card decisions and an outcome for every third one."""
     led = dl.Ledger(target, format=format, integrity_key=key)
 
@@ -31,9 +31,9 @@ def _fill(target: Path, n: int = 60, *, format: str | None = None, key: bytes | 
         return draw.softmax(cards, scores, temperature=temperature, name="card")
 
     for i in range(n):
-        feature_card([1.0, 2.0, 0.5], unit=f"shopper-{i % 7}", decision_id=f"req-{i}")
+        feature_card([1.0, 2.0, 0.5], unit=f"shopper-{i % 7}", decision_id=f"{prefix}-{i}")
         if i % outcomes_every == 0:
-            led.outcome(f"req-{i}", "checkout", 1.0)
+            led.outcome(f"{prefix}-{i}", "checkout", 1.0)
     led.close()
     return led
 
@@ -212,10 +212,74 @@ def test_missing_table_and_non_ledger_file_are_clear_errors(tmp_path: Path) -> N
         check_integrity(path)
     junk = tmp_path / "junk.db"
     junk.write_bytes(b"this is not a database" * 100)
-    with pytest.raises(dl.LedgerError, match="cannot read ledger"):
+    with pytest.raises(dl.LedgerError, match="not a drawledger ledger or its database is corrupt"):
         check_integrity(junk)
     with pytest.raises(dl.LedgerError, match="no such file"):
         check_integrity(tmp_path / "absent.db")
+
+
+def _loosen(path: Path, table: str) -> None:
+    """The table without its NOT NULL constraints, as a hand-made or damaged copy may be."""
+    with sqlite3.connect(path) as conn:
+        conn.executescript(f"CREATE TABLE loose AS SELECT * FROM {table}; DROP TABLE {table}; "
+                           f"ALTER TABLE loose RENAME TO {table};")  # fmt: skip
+
+
+@pytest.mark.parametrize(
+    ("table", "statement", "reason"),
+    [
+        ("decisions", "UPDATE decisions SET propensity = NULL WHERE decision_id = 'req-5'",
+         "decisions.propensity is NULL"),
+        ("decisions", "UPDATE decisions SET ts = 'noon' WHERE decision_id = 'req-5'",
+         "decisions.ts is 'noon', not a number"),
+        ("draws", "UPDATE draws SET prob = NULL WHERE decision_id = 'req-5'",
+         "draws.prob is NULL"),
+        ("outcomes", "UPDATE outcomes SET value = 'x' WHERE decision_id = 'req-6'",
+         "outcomes.value is 'x', not a number"),
+    ],
+)  # fmt: skip
+def test_a_null_or_text_where_a_number_belongs_is_a_bad_record_with_its_reason(
+    ledger_path: Path, table: str, statement: str, reason: str
+) -> None:
+    _fill(ledger_path, 12)
+    _loosen(ledger_path, table)
+    _sql(ledger_path, statement)
+    report = check_integrity(ledger_path)
+    assert not report.ok
+    assert (1, 0) == (report.bad_records, report.bad_hashes)
+    assert [reason] == list(report.reasons.values())
+    assert reason in report.render()
+    json.dumps(report.to_dict())
+
+
+@pytest.mark.parametrize(
+    ("table", "statement"),
+    [
+        ("decisions", "UPDATE decisions SET seq = 'x' WHERE decision_id = 'req-5'"),
+        ("decisions", "UPDATE decisions SET seq = NULL WHERE decision_id = 'req-5'"),
+        ("decisions", "UPDATE decisions SET writer = NULL WHERE decision_id = 'req-5'"),
+        ("decisions", "UPDATE decisions SET decision_id = X'00ff' WHERE decision_id = 'req-5'"),
+        ("outcomes", "UPDATE outcomes SET seq = 'q' WHERE decision_id = 'req-6'"),
+    ],
+)
+def test_a_damaged_chain_column_is_a_bad_record_not_a_crash(
+    ledger_path: Path, table: str, statement: str
+) -> None:
+    _fill(ledger_path, 12)
+    _loosen(ledger_path, table)
+    _sql(ledger_path, statement)
+    report = check_integrity(ledger_path)
+    assert not report.ok
+    assert 1 == report.bad_records
+    json.dumps(report.to_dict())
+
+
+def test_a_parquet_part_without_a_column_is_refused(tmp_path: Path) -> None:
+    _fill(tmp_path / "pq", 10, format="parquet")
+    part = _parquet.parts(tmp_path / "pq", "decisions")[0].path
+    pq.write_table(pq.read_table(part).drop_columns(["seed"]), part)
+    with pytest.raises(dl.LedgerError, match="has no column seed"):
+        check_integrity(tmp_path / "pq")
 
 
 def test_stored_hash_follows_the_documented_encoding(ledger_path: Path) -> None:
@@ -327,3 +391,159 @@ def test_ledger_doc_python_blocks_run(run_markdown: Callable[..., Any]) -> None:
     done = run_markdown("docs/ledger.md")
     assert 0 == done.returncode, done.stderr
     assert "integrity ok" in done.stdout
+
+
+# -- ledger identity and writer registry (docs/ledger.md) ---------------------------------------
+def _target(kind: str, tmp_path: Path, request: pytest.FixtureRequest, name: str = "a") -> str:
+    if kind == "postgres":
+        return str(request.getfixturevalue("postgres_url"))  # one schema per test
+    return str(tmp_path / (f"{name}.db" if kind == "sqlite" else name))
+
+
+def _fmt(kind: str) -> str | None:
+    return "parquet" if kind == "parquet" else None
+
+
+def _two_writers(target: str, kind: str) -> tuple[str, str]:
+    """Two writers (two ledgers on one target), keyed; their writer ids."""
+    first = _fill(Path(target) if kind != "postgres" else target, 6, format=_fmt(kind), key=KEY)  # type: ignore[arg-type]
+    second = _fill(Path(target) if kind != "postgres" else target, 4, format=_fmt(kind), key=KEY,  # type: ignore[arg-type]
+                   outcomes_every=2, prefix="late")  # fmt: skip
+    return first.writer, second.writer
+
+
+def _delete_writer(target: str, kind: str, writer: str) -> None:
+    """Every record of ``writer`` deleted, as someone with write access could."""
+    if kind == "parquet":
+        for table in ("decisions", "draws", "outcomes"):
+            for part in _parquet.parts(target, table):
+                if part.tag == _parquet.writer_tag(writer):
+                    part.path.unlink()
+        return
+    import sqlalchemy as sa
+
+    from drawledger._sinks import sqlalchemy_url
+
+    engine = sa.create_engine(sqlalchemy_url(target))
+    with engine.begin() as conn:
+        bind = {"w": writer}
+        conn.execute(sa.text("DELETE FROM draws WHERE decision_id IN "
+                             "(SELECT decision_id FROM decisions WHERE writer = :w)"),
+                     bind)  # fmt: skip
+        conn.execute(sa.text("DELETE FROM decisions WHERE writer = :w"), bind)
+        conn.execute(sa.text("DELETE FROM outcomes WHERE writer = :w"), bind)
+    engine.dispose()
+
+
+KINDS = ["sqlite", "parquet", "postgres"]
+
+
+@pytest.mark.parametrize("kind", KINDS)
+def test_a_keyed_writer_whose_records_were_all_deleted_is_missing(
+    kind: str, tmp_path: Path, request: pytest.FixtureRequest
+) -> None:
+    target = _target(kind, tmp_path, request)
+    _, second = _two_writers(target, kind)
+    assert check_integrity(target, format=_fmt(kind), integrity_key=KEY).ok
+    _delete_writer(target, kind, second)
+    report = check_integrity(target, format=_fmt(kind), integrity_key=KEY)
+    assert not report.ok
+    assert (1, [second]) == (report.missing_writers, report.examples["missing_writers"])
+    assert (0, 0, 0) == (report.gaps, report.bad_hashes, report.broken_links)
+
+
+@pytest.mark.parametrize("kind", ["sqlite", "parquet"])
+def test_a_chain_grafted_from_another_ledger_with_the_same_key_is_foreign(
+    kind: str, tmp_path: Path, request: pytest.FixtureRequest
+) -> None:
+    mine = _target(kind, tmp_path, request, "mine")
+    other = _target(kind, tmp_path, request, "other")
+    _fill(Path(mine), 5, format=_fmt(kind), key=KEY)
+    graft = _fill(Path(other), 3, format=_fmt(kind), key=KEY, prefix="graft").writer
+    if kind == "parquet":
+        for table in ("decisions", "draws", "outcomes"):
+            for part in _parquet.parts(other, table):
+                rel = part.path.relative_to(Path(other))
+                (Path(mine) / rel).parent.mkdir(parents=True, exist_ok=True)
+                (Path(mine) / rel).write_bytes(part.path.read_bytes())
+    else:
+        with sqlite3.connect(mine) as conn:
+            conn.execute("ATTACH DATABASE ? AS other", (other,))
+            for table in ("decisions", "draws", "outcomes"):
+                conn.execute(f"INSERT INTO {table} SELECT * FROM other.{table}")
+    report = check_integrity(mine, format=_fmt(kind), integrity_key=KEY)
+    assert not report.ok
+    assert (1, [graft]) == (report.foreign_chains, report.examples["foreign_chains"])
+    assert 0 == report.bad_hashes  # each record is a valid MAC under the shared key
+
+
+def test_a_deleted_registry_row_makes_its_writer_unregistered(ledger_path: Path) -> None:
+    writer = _fill(ledger_path, 5, key=KEY).writer
+    _sql(ledger_path, "DELETE FROM writers")
+    report = check_integrity(ledger_path, integrity_key=KEY)
+    assert (False, 1, [writer]) == (
+        report.ok,
+        report.unregistered_writers,
+        report.examples["unregistered_writers"],
+    )
+
+
+def test_a_registry_row_or_identity_without_the_key_is_a_bad_registry(ledger_path: Path) -> None:
+    _fill(ledger_path, 5, key=KEY)
+    _sql(ledger_path, "UPDATE writers SET started = started + 1")
+    assert 1 == check_integrity(ledger_path, integrity_key=KEY).bad_registry
+    _sql(ledger_path, "UPDATE ledger_meta SET value = '00' WHERE name = 'ledger_id'")
+    report = check_integrity(ledger_path, integrity_key=KEY)
+    assert (False, 1, ["(ledger identity)"]) == (
+        report.ok,
+        report.bad_registry,
+        report.examples["bad_registry"],
+    )
+
+
+def _old_ledger(path: Path, monkeypatch: pytest.MonkeyPatch, n: int = 5) -> str:
+    """A ledger as written before the registry: chains start from null, no registry tables."""
+    with monkeypatch.context() as m:
+        m.setattr(dl.Ledger, "_bind_chain", lambda self: None)
+        m.setattr("drawledger._writer.Writer._register_late", lambda self: True)
+        writer = _fill(path, n, key=KEY).writer
+    _sql(path, "DROP TABLE writers", "DROP TABLE ledger_meta")
+    return writer
+
+
+def test_a_ledger_from_before_the_registry_checks_as_before_with_a_note(
+    ledger_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    _old_ledger(ledger_path, monkeypatch)
+    report = check_integrity(ledger_path, integrity_key=KEY)
+    assert (True, False) == (report.ok, report.registry)
+    assert "no ledger identity or writer registry" in report.render()
+
+
+def test_writers_of_an_upgraded_ledger_are_legacy_not_a_failure(
+    ledger_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    _old_ledger(ledger_path, monkeypatch)
+    _fill(ledger_path, 3, key=KEY, prefix="new")  # a writer of this version: makes the registry
+    report = check_integrity(ledger_path, integrity_key=KEY)
+    assert (True, True, 1, 2) == (report.ok, report.registry, report.legacy_writers,
+                                  report.writers)  # fmt: skip
+    assert "1 writers from before the registry" in report.render()
+
+
+def test_a_writer_that_started_while_its_ledger_was_out_of_reach_registers_later(
+    ledger_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setattr(dl.Ledger, "_bind_chain", lambda self: None)
+    _fill(ledger_path, 4, key=KEY)
+    report = check_integrity(ledger_path, integrity_key=KEY)
+    assert (True, 0) == (report.ok, report.unregistered_writers)
+
+
+def test_a_corrupt_sqlite_file_is_one_ledger_error(ledger_path: Path) -> None:
+    _fill(ledger_path, 400)
+    data = bytearray(ledger_path.read_bytes())
+    data[len(data) // 4 :] = b"\xa5" * (len(data) - len(data) // 4)  # every page after a quarter
+    ledger_path.write_bytes(bytes(data))
+    with pytest.raises(dl.LedgerError, match="database is corrupt: database disk image"):
+        check_integrity(ledger_path)

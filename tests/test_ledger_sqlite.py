@@ -209,7 +209,8 @@ def test_threads_share_one_chain(ledger: dl.Ledger, ledger_path: Path) -> None:
     ledger.flush()
     chain = query(ledger_path, "SELECT seq, prev_hash, hash FROM decisions ORDER BY seq")
     assert list(range(1000)) == [seq for seq, _, _ in chain]
-    assert [None] + [h for _, _, h in chain[:-1]] == [prev for _, prev, _ in chain]
+    ((genesis,),) = query(ledger_path, "SELECT genesis FROM writers")
+    assert [genesis] + [h for _, _, h in chain[:-1]] == [prev for _, prev, _ in chain]
 
 
 RECORD_AND_EXIT = """

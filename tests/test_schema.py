@@ -13,7 +13,10 @@ from typing import Any
 import orjson
 import pyarrow as pa
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 from sqlalchemy.dialects import sqlite
+from strategies import stored_values
 
 import drawledger as dl
 from drawledger import _parquet, _records, _schema, _sinks
@@ -286,3 +289,66 @@ def test_ingest_takes_null_exactly_in_the_nullable_columns(tmp_path: Path) -> No
     )
     assert len(refused) == len(report.malformed)
     assert all(reason.endswith(", got None") for _, reason in report.malformed)
+
+
+def _valid(column: _schema.Column) -> Any:
+    return {"text": "x", "float": 0.5, "integer": 3}[column.kind]
+
+
+@pytest.mark.parametrize("spec", SPECS, ids=lambda s: s.name)
+def test_a_row_of_the_declared_types_has_no_problem(spec: TableSpec) -> None:
+    assert None is _schema.row_problem(spec, tuple(_valid(c) for c in spec.columns))
+    nullable = tuple(None if c.nullable else _valid(c) for c in spec.columns)
+    assert None is _schema.row_problem(spec, nullable)
+
+
+@pytest.mark.parametrize("spec", SPECS, ids=lambda s: s.name)
+def test_a_null_or_another_type_is_named_with_its_column(spec: TableSpec) -> None:
+    for at, column in enumerate(spec.columns):
+        row = [_valid(c) for c in spec.columns]
+        row[at] = b"\x00" if column.kind == "text" else "text"
+        wanted = "text" if column.kind == "text" else "a number" if column.kind == "float" \
+            else "an integer"  # fmt: skip
+        assert f"{spec.name}.{column.name} is {row[at]!r}, not {wanted}" == \
+            _schema.row_problem(spec, tuple(row))  # fmt: skip
+        if not column.nullable:
+            row[at] = None
+            assert f"{spec.name}.{column.name} is NULL" == _schema.row_problem(spec, tuple(row))
+
+
+def test_a_bool_is_not_an_integer_of_the_ledger() -> None:
+    row = [_valid(c) for c in DRAWS.columns]
+    row[DRAW.is_density] = True
+    assert "draws.is_density is True, not an integer" == _schema.row_problem(DRAWS, tuple(row))
+
+
+def test_registry_tables_are_those_published_in_docs_ledger_md() -> None:
+    """Source: docs/ledger.md, "Ledger identity and writer registry"."""
+    text = " ".join(LEDGER_DOC.read_text(encoding="utf-8").split())
+    assert "`ledger_meta` — name, value:" in text
+    assert "`writers` — writer, started (float), genesis (text, null), tag:" in text
+    assert ("name", "value") == _schema.LEDGER_META.names
+    assert ("writer", "started", "genesis", "tag") == _schema.WRITERS.names
+    assert ["genesis"] == [c.name for c in _schema.WRITERS.columns if c.nullable]
+    assert {"ledger_meta", "writers"} <= set(_schema.metadata.tables)
+
+
+@given(data=st.data())
+def test_row_problem_accepts_exactly_the_declared_types(data: st.DataObject) -> None:
+    """Any value in any column: no problem iff it is of the column's kind (or a NULL where the
+    column allows one); otherwise the reason names the table and the column."""
+    spec = data.draw(st.sampled_from(SPECS))
+    row = [data.draw(stored_values) for _ in spec.columns]
+    problem = _schema.row_problem(spec, tuple(row))
+    fits = [
+        (v is None and c.nullable)
+        or (c.kind == "text" and type(v) is str)
+        or (c.kind == "float" and type(v) in (float, int))
+        or (c.kind == "integer" and type(v) is int)
+        for c, v in zip(spec.columns, row, strict=True)
+    ]
+    if all(fits):
+        assert None is problem
+    else:
+        first = spec.columns[fits.index(False)]
+        assert problem is not None and problem.startswith(f"{spec.name}.{first.name} is ")

@@ -38,8 +38,10 @@ def test_tables_are_subdirectories_partitioned_by_stream_and_date(tmp_path: Path
         "decisions/recipe%2Fcard/2026-01-02",
         "draws/free-delivery/2026-01-01",
         "draws/recipe%2Fcard/2026-01-02",
+        "ledger_meta",  # the registry: the ledger's identity and its one writer
         "outcomes/2026-01-01",
         "outcomes/2026-01-02",
+        "writers",
     ] == names
     assert [] == [p for p in root.rglob("*") if p.name.startswith(".")]  # no temporary files
 

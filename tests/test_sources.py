@@ -4,8 +4,12 @@ from __future__ import annotations
 
 import dataclasses
 import shutil
+import sqlite3
 from pathlib import Path
+from typing import Any
 
+import pyarrow as pa
+import pyarrow.parquet as pq
 import pytest
 
 import drawledger as dl
@@ -71,3 +75,70 @@ def test_chunk_size_must_be_positive(tmp_path: Path) -> None:
     _write(tmp_path / "ledger.db", 1)
     with pytest.raises(ValueError, match="chunk_size must be at least 1"):
         next(sources.iter_decision_chunks(tmp_path / "ledger.db", 0))
+
+
+def _loosen(path: Path, statement: str) -> None:
+    """Run ``statement`` on a copy of the decisions table without its NOT NULL constraints."""
+    with sqlite3.connect(path) as conn:
+        conn.executescript("CREATE TABLE loose AS SELECT * FROM decisions; DROP TABLE decisions; "
+                           f"ALTER TABLE loose RENAME TO decisions; {statement}")  # fmt: skip
+
+
+@pytest.mark.parametrize("value", ["NULL", "'x'"])
+def test_a_decision_without_an_integer_seq_is_refused_rather_than_its_slice_lost(
+    tmp_path: Path, value: str
+) -> None:
+    target = tmp_path / "led.db"
+    _write(target, 30)
+    _loosen(target, f"UPDATE decisions SET seq = {value} WHERE decision_id = 'd-0000'")
+    with pytest.raises(LedgerError, match=r"record of decision 'd-0000': decisions\.seq is"):
+        list(sources.iter_chunks(target, size=10))
+
+
+def test_a_table_without_one_of_its_columns_is_refused_on_open(tmp_path: Path) -> None:
+    target = tmp_path / "led.db"
+    _write(target, 3)
+    with sqlite3.connect(target) as conn:
+        conn.execute("ALTER TABLE draws DROP COLUMN u")
+    with pytest.raises(LedgerError, match="its table draws has no column u"):
+        sources.plan(target)
+
+
+def test_a_corrupt_sqlite_file_is_a_ledger_error_that_says_so(tmp_path: Path) -> None:
+    target = tmp_path / "led.db"
+    _write(target, 400)
+    data = bytearray(target.read_bytes())
+    data[len(data) // 2 : len(data) // 2 + 3000] = b"\xa5" * 3000
+    target.write_bytes(bytes(data))
+    with pytest.raises(LedgerError, match="database is corrupt: database disk image is malformed"):
+        list(sources.iter_chunks(target))
+
+
+@pytest.mark.parametrize(
+    ("change", "message"),
+    [
+        (lambda t: t.drop_columns(["ts"]), "has no column ts"),
+        (lambda t: t.set_column(t.schema.get_field_index("propensity"), "propensity",
+                                pa.array(["0.5"] * t.num_rows)),
+         "its column propensity is string, not double"),
+    ],
+)  # fmt: skip
+def test_a_parquet_part_of_another_schema_is_refused_not_cast(
+    tmp_path: Path, change: Any, message: str
+) -> None:
+    target = tmp_path / "led"
+    _write(target, 5, format="parquet")
+    part = next((target / "decisions").rglob("*.parquet"))
+    pq.write_table(change(pq.read_table(part)), part)
+    with pytest.raises(LedgerError, match=message):
+        list(sources.iter_chunks(target))
+
+
+def test_a_null_where_the_schema_allows_none_is_refused_when_read_as_frames(
+    tmp_path: Path,
+) -> None:
+    target = tmp_path / "led.db"
+    _write(target, 5)
+    _loosen(target, "UPDATE decisions SET ts = NULL WHERE decision_id = 'd-0003'")
+    with pytest.raises(LedgerError, match=r"decision 'd-0003': decisions\.ts is NULL"):
+        list(sources.iter_decision_chunks(target))

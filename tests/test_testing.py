@@ -66,7 +66,8 @@ def test_capture_writes_nothing_by_default(ledger: dl.Ledger, ledger_path: Path)
     feature_card(CARDS, SCORES)
     ledger.flush()
     ((seq, prev),) = [(r[13], r[14]) for r in rows(ledger_path, "decisions")]
-    assert (0, None) == (seq, prev)  # as if the captured records had never been made
+    ((genesis,),) = [(r[2],) for r in rows(ledger_path, "writers")]
+    assert (0, genesis) == (seq, prev)  # as if the captured records had never been made
     assert 5 == len(cap.decisions)
 
 

@@ -226,6 +226,10 @@ class _Loader:
         draws = [d for k, _, d in fresh if k == "d"]
         outcomes = [row for k, row, _ in fresh if k == "o"]
         self.sink.write(decisions, draws, outcomes)
+        for kind, row, _ in fresh:  # a chain that starts here: its writer never registered
+            at = _POSITIONS[kind]
+            if row[at.seq] == 0:
+                self.sink.register_writer(row[at.writer], row[at.ts], self.key, row[at.prev_hash])
         self.report.decisions += len(decisions)
         self.report.outcomes += len(outcomes)
 

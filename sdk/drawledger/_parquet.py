@@ -16,6 +16,7 @@ part: a decisions part in place means its draws are in place too.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import os
 import time
@@ -28,7 +29,8 @@ from urllib.parse import quote
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from drawledger._schema import DEC, OUT, SPECS, TableSpec
+from drawledger import _registry
+from drawledger._schema import DEC, OUT, REGISTRY, SPECS, TableSpec, damaged
 from drawledger.exceptions import LedgerError
 
 if TYPE_CHECKING:
@@ -47,6 +49,9 @@ def _arrow_schema(table: TableSpec) -> pa.Schema:
 
 
 SCHEMAS = {table.name: _arrow_schema(table) for table in SPECS}
+REGISTRY_SCHEMAS = {table.name: _arrow_schema(table) for table in REGISTRY}
+IDENTITY = "ledger_meta/ledger.parquet"  # the one part file of the ledger's identity
+_REQUIRED = {table.name: [c.name for c in table.columns if not c.nullable] for table in SPECS}
 TABLES = tuple(SCHEMAS)
 
 # Dictionary encoding only where values repeat, statistics only on numbers (what readers filter
@@ -158,12 +163,53 @@ def check_ledger_dir(root: str | os.PathLike[str]) -> None:
         )
 
 
-def read_part(path: Path, table: str) -> pa.Table:
-    """One part file as an Arrow table with the table's schema."""
+def _same_type(found: pa.DataType, wanted: pa.DataType) -> bool:
+    if pa.types.is_dictionary(found):
+        found = found.value_type
+    if pa.types.is_large_string(found):
+        found = pa.string()
+    return bool(found.equals(wanted))
+
+
+def schema_problem(found: pa.Schema, table: str) -> str | None:
+    """Why a part file's schema is not its table's (a missing column, another type), or None."""
+    for wanted in SCHEMAS[table]:
+        at = found.get_field_index(wanted.name)
+        if at < 0:
+            return f"it has no column {wanted.name}"
+        if not _same_type(found.field(at).type, wanted.type):
+            return f"its column {wanted.name} is {found.field(at).type}, not {wanted.type}"
+    return None
+
+
+def open_part(path: Path, table: str) -> pq.ParquetFile:
+    """A part file of ``table`` with its schema checked (``LedgerError`` when it is not one)."""
     try:
-        return pq.read_table(path, schema=SCHEMAS[table])
+        part = pq.ParquetFile(path)
     except (OSError, pa.ArrowException) as exc:
         raise LedgerError(f"cannot read ledger part {os.fspath(path)!r}: {exc}") from None
+    problem = schema_problem(part.schema_arrow, table)
+    if problem is not None:
+        raise LedgerError(
+            f"ledger part {os.fspath(path)!r} is not a part of the {table} table: {problem}"
+        )
+    return part
+
+
+def read_columns(path: Path, table: str, columns: list[str]) -> pa.Table:
+    """Some columns of a part file of ``table``, its schema checked."""
+    part = open_part(path, table)
+    try:
+        return part.read(columns=columns)
+    except (OSError, pa.ArrowException) as exc:
+        raise LedgerError(f"cannot read ledger part {os.fspath(path)!r}: {exc}") from None
+
+
+def read_part(path: Path, table: str) -> pa.Table:
+    """One part file as an Arrow table with the table's schema."""
+    schema = SCHEMAS[table]
+    data = read_columns(path, table, schema.names)
+    return data if data.schema.equals(schema) else data.cast(schema)
 
 
 def part_rows(path: Path, table: str) -> list[Row]:
@@ -207,6 +253,12 @@ def read_tables(root: str | os.PathLike[str]) -> tuple[pd.DataFrame, pd.DataFram
 def to_frame(tables: list[pa.Table], table: str) -> pd.DataFrame:
     """Arrow tables of one ledger table as one DataFrame, in the readers' row order."""
     data = pa.concat_tables(tables) if tables else SCHEMAS[table].empty_table()
+    for name in _REQUIRED[table]:  # null_count is kept by Arrow: this costs nothing
+        column = data.column(name)
+        if column.null_count:
+            at = column.is_null().to_numpy(zero_copy_only=False).argmax()
+            did = data.column("decision_id")[int(at)].as_py()
+            raise damaged(table, did, f"{table}.{name} is NULL")
     keys = ["decision_id", "idx"] if table == "draws" else ["writer", "seq"]
     frame: pd.DataFrame = data.sort_by([(k, "ascending") for k in keys]).to_pandas()
     return frame
@@ -311,8 +363,70 @@ class ParquetSink:
             found |= self._ids[stream_dir(s)].intersection(ids)
         return found
 
+    def register_writer(
+        self, writer: str, started: float, key: bytes, genesis: str | None = _registry.BIND
+    ) -> str | None:
+        """Register ``writer`` (once: ``writers/<writer tag>.parquet``); its chain's genesis."""
+        ledger_id = self._identity(key)
+        genesis = _registry.genesis_for(ledger_id, writer, key, genesis)
+        path = self.root / "writers" / f"{writer_tag(writer)}{SUFFIX}"
+        if not path.exists():
+            row = _registry.writer_row(ledger_id, writer, started, key, genesis)
+            self._place(path, [row], "writers", replace=True)
+        return genesis
+
+    def _identity(self, key: bytes) -> str:
+        path = self.root / IDENTITY
+        if not path.exists():
+            legacy = any(parts(self.root, t) for t in ("decisions", "outcomes"))
+            self._place(path, _registry.new_identity(key, legacy), "ledger_meta", replace=False)
+        identity = read_registry(self.root)[0]
+        if identity is None or "ledger_id" not in identity:
+            raise LedgerError(f"the identity of ledger {os.fspath(self.root)!r} is damaged")
+        return identity["ledger_id"]
+
+    def _place(self, path: Path, rows: list[Row], table: str, *, replace: bool) -> None:
+        """Write a registry part under a temporary name, then move it into place; without
+        ``replace``, a part another writer placed first is kept."""
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = path.parent / f".{path.name}.{os.getpid()}.{os.urandom(4).hex()}.tmp"
+        try:
+            data = pa.Table.from_struct_array(
+                pa.array(rows, type=pa.struct(list(REGISTRY_SCHEMAS[table])))
+            )
+            pq.write_table(data, tmp)
+            if self.full:
+                _fsync_path(tmp)
+            if replace:
+                os.replace(tmp, path)
+            else:
+                with contextlib.suppress(FileExistsError):  # another writer placed it first
+                    os.link(tmp, path)
+        finally:
+            tmp.unlink(missing_ok=True)
+        if self.full:
+            _fsync_path(path.parent, directory=True)
+
     def close(self) -> None:
         """Nothing to release: every part is complete once ``write`` returns."""
+
+
+def read_registry(root: str | os.PathLike[str]) -> tuple[dict[str, str] | None, list[Row]]:
+    """The identity (None in a ledger from before the registry) and the writer rows."""
+    base = Path(root)
+    identity: dict[str, str] | None = None
+    try:
+        if (base / IDENTITY).exists():
+            data = pq.read_table(base / IDENTITY, schema=REGISTRY_SCHEMAS["ledger_meta"])
+            identity = dict(zip(*(c.to_pylist() for c in data.columns), strict=True))
+        rows: list[Row] = []
+        for path in sorted((base / "writers").glob(f"*{SUFFIX}")):
+            data = pq.read_table(path, schema=REGISTRY_SCHEMAS["writers"])
+            rows.extend(zip(*(c.to_pylist() for c in data.columns), strict=True))
+    except (OSError, pa.ArrowException) as exc:
+        where = os.fspath(root)
+        raise LedgerError(f"cannot read the registry of ledger {where!r}: {exc}") from None
+    return identity, rows
 
 
 def _part_name(writer: str, rows: list[Row], seq: int) -> str:

@@ -116,3 +116,22 @@ def decision_hash(row: tuple[Any, ...], draws: list[tuple[Any, ...]], key: bytes
 
 def outcome_hash(row: tuple[Any, ...], key: bytes = b"") -> str:
     return _digest(outcome_canonical(row), key)
+
+
+# -- the registry (docs/ledger.md, "Ledger identity and writer registry") ----------------------
+def ledger_tag(ledger_id: str, legacy: str, key: bytes = b"") -> str:
+    """The signature of a ledger's identity (its id, and whether it held records before)."""
+    return _digest(orjson.dumps(["drawledger.ledger.v1", ledger_id, legacy]), key)
+
+
+def genesis_hash(ledger_id: str, writer: str, key: bytes = b"") -> str:
+    """The ``prev_hash`` of a writer's first record: binds its chain to one ledger."""
+    return _digest(orjson.dumps(["drawledger.genesis.v1", ledger_id, writer]), key)
+
+
+def writer_tag(
+    ledger_id: str, writer: str, started: float, genesis: str | None, key: bytes = b""
+) -> str:
+    """The signature of a writer's registry row."""
+    body = ["drawledger.writer.v1", ledger_id, writer, float_hex(started), genesis]
+    return _digest(orjson.dumps(body), key)

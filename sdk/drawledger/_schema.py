@@ -15,6 +15,8 @@ from typing import TYPE_CHECKING, Literal
 
 import sqlalchemy as sa
 
+from drawledger.exceptions import LedgerError
+
 Kind = Literal["text", "float", "integer"]
 
 
@@ -126,6 +128,23 @@ OUTCOMES = TableSpec(
 
 SPECS = (DECISIONS, DRAWS, OUTCOMES)
 
+# The registry (docs/ledger.md, "Ledger identity and writer registry"): the ledger's signed
+# identity, created with the ledger, and one signed row per writer, written when it starts.
+# Ledgers from before the registry have neither table and are checked as before.
+LEDGER_META = TableSpec(
+    "ledger_meta",
+    (_text("name"), _text("value")),
+    (Index("ledger_meta_name", ("name",), unique=True),),
+)
+
+WRITERS = TableSpec(
+    "writers",
+    (_text("writer"), _float("started"), _text("genesis", nullable=True), _text("tag")),
+    (Index("writers_writer", ("writer",), unique=True),),
+)
+
+REGISTRY = (LEDGER_META, WRITERS)
+
 
 class Positions:
     """The position of each column in a table's row tuples, by name: ``DEC.hash == 15``.
@@ -171,3 +190,53 @@ draws = _sql_table(DRAWS)
 outcomes = _sql_table(OUTCOMES)
 
 TABLES = (decisions, draws, outcomes)
+ledger_meta = _sql_table(LEDGER_META)
+writers = _sql_table(WRITERS)
+
+# -- stored rows that do not fit their table ---------------------------------------------------
+_WANTED = {"text": "text", "float": "a number", "integer": "an integer"}
+
+
+def _fits(kind: Kind, value: object) -> bool:
+    cls = value.__class__
+    if kind == "text":
+        return cls is str
+    if kind == "float":
+        return cls is float or cls is int
+    return cls is int
+
+
+def value_problem(column: Column, value: object) -> str | None:
+    """Why a value read from a ledger does not fit ``column``, or None when it does."""
+    if value is None:
+        return None if column.nullable else f"{column.name} is NULL"
+    if _fits(column.kind, value):
+        return None
+    shown = repr(value)
+    shown = shown if len(shown) <= 40 else shown[:37] + "..."
+    return f"{column.name} is {shown}, not {_WANTED[column.kind]}"
+
+
+def row_problem(table: TableSpec, row: tuple[object, ...]) -> str | None:
+    """Why a row read from a ledger does not fit ``table``'s columns, or None when it does.
+
+    A damaged ledger (edited by hand, written by another tool) can hold a NULL where the table
+    allows none, or text or a blob where a number belongs; readers report such a record with
+    this reason instead of computing with it.
+    """
+    if len(row) != len(table.columns):
+        return f"{table.name} row has {len(row)} fields, not {len(table.columns)}"
+    for column, value in zip(table.columns, row, strict=True):
+        problem = value_problem(column, value)
+        if problem is not None:
+            return f"{table.name}.{problem}"
+    return None
+
+
+def damaged(table: str, decision_id: object, problem: str) -> LedgerError:
+    """The error of a reader that cannot go on past a damaged record (a NULL or a value of
+    another type where its computation needs one): one line naming the record and the field."""
+    return LedgerError(
+        f"{table} record of decision {decision_id!r}: {problem}; the ledger is damaged "
+        "(check_integrity lists such records)"
+    )

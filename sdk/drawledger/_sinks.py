@@ -13,7 +13,7 @@ from typing import Any, Protocol
 
 import sqlalchemy as sa
 
-from drawledger import _schema
+from drawledger import _registry, _schema
 from drawledger.exceptions import LedgerError
 
 Row = tuple[Any, ...]
@@ -35,6 +35,11 @@ class Sink(Protocol):
 
     def present_ids(self, ids: list[str], streams: set[str]) -> set[str]:
         """Which of these decision ids are already among the decisions of ``streams``."""
+
+    def register_writer(
+        self, writer: str, started: float, key: bytes, genesis: str | None = _registry.BIND
+    ) -> str | None:
+        """Register ``writer`` in the ledger's registry (once); the genesis of its chain."""
 
     def close(self) -> None: ...
 
@@ -195,6 +200,45 @@ class SqlSink:
                 params = {"ids": ids[start : start + 500], "streams": sorted(streams)}
                 found.update(d for (d,) in conn.execute(sql, params))
         return found
+
+    def register_writer(
+        self, writer: str, started: float, key: bytes, genesis: str | None = _registry.BIND
+    ) -> str | None:
+        """Register ``writer`` (once) and return the genesis its chain starts from."""
+        ledger_id = self._identity(key)
+        genesis = _registry.genesis_for(ledger_id, writer, key, genesis)
+        row = _registry.writer_row(ledger_id, writer, started, key, genesis)
+        try:
+            with self.engine.begin() as conn:
+                conn.execute(
+                    sa.insert(_schema.writers).values(
+                        dict(zip(_schema.WRITERS.names, row, strict=True))
+                    )
+                )
+        except sa.exc.IntegrityError:
+            pass  # registered before (an ingest after a spill, a second call)
+        return genesis
+
+    def _identity(self, key: bytes) -> str:
+        """The ledger's id, created with its signed identity if the ledger has none yet."""
+        read = sa.text("SELECT value FROM ledger_meta WHERE name = 'ledger_id'")
+        with self.engine.connect() as conn:
+            found = conn.execute(read).scalar()
+            legacy = found is None and any(
+                conn.execute(sa.text(f"SELECT 1 FROM {t} LIMIT 1")).first() is not None
+                for t in ("decisions", "outcomes")
+            )
+        if found is not None:
+            return str(found)
+        rows = _registry.new_identity(key, legacy)
+        try:
+            with self.engine.begin() as conn:
+                conn.execute(sa.insert(_schema.ledger_meta),
+                             [{"name": n, "value": v} for n, v in rows])  # fmt: skip
+            return rows[0][1]
+        except sa.exc.IntegrityError:  # another writer created it first
+            with self.engine.connect() as conn:
+                return str(conn.execute(read).scalar_one())
 
     def after_fork(self) -> None:
         """Forget connections inherited from the parent process (they belong to it)."""

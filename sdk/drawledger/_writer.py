@@ -77,18 +77,34 @@ class Chain:
     order, and the serving thread seals only a record that bypasses the queue (a tap, a spill).
     """
 
-    __slots__ = ("key", "lock", "prev", "seq")
+    __slots__ = ("binder", "genesis", "key", "late", "lock", "prev", "seq", "writer")
 
-    def __init__(self, key: bytes) -> None:
+    def __init__(
+        self, key: bytes, writer: str = "", binder: Callable[[], str | None] | None = None
+    ) -> None:
         self.key = key
+        self.writer = writer
         self.lock = threading.Lock()
         self.seq = 0
         self.prev: str | None = None
+        # The prev_hash of seq 0: null, or the genesis hash that binds the chain to its ledger
+        # (docs/ledger.md, "Ledger identity and writer registry"), which ``binder`` registers
+        # and returns when the first record is sealed. ``late``: the ledger could not be
+        # reached then, and the writer registers with its first batch that is written.
+        self.binder = binder
+        self.genesis: str | None = None
+        self.late = False
 
     def seal(self, item: Item) -> Item:
         """The record with its seq, prev_hash and hash; a sealed record as it is."""
         tag = item[0]
         sealed: Item
+        if self.seq == 0 and tag in ("d-", "o-"):
+            if self.binder is not None:
+                binder, self.binder = self.binder, None
+                self.genesis = binder()
+                self.late = self.genesis is None
+            self.prev = self.genesis
         if tag == "d-":
             row = (*item[1], self.seq, self.prev)
             digest = _records.decision_hash(row, item[2], self.key)
@@ -349,6 +365,8 @@ class Writer:
                 if self._sink is None:
                     self._sink = self._open_sink()
                 self._sink.write(decisions, draws, outcomes)
+                if self.chain.late:  # unregistered: the ledger was out of reach at the start
+                    self.chain.late = not self._register_late()
                 self.stats.written += len(items)
                 self._down_for = self.cooldown
                 return None
@@ -369,6 +387,16 @@ class Writer:
             log.error("drawledger: spill to %s failed: %s", self.spill.path, exc)
             return exc
         return None
+
+    def _register_late(self) -> bool:
+        """Register a writer whose chain started unbound; whether that worked."""
+        assert self._sink is not None
+        try:
+            self._sink.register_writer(self.chain.writer, time.time(), self.chain.key, None)
+        except Exception as exc:  # tried again after the next batch
+            log.warning("drawledger: writer registration failed: %s", exc)
+            return False
+        return True
 
     def spill_items(self, items: list[Item]) -> None:
         self.spill.write(items)

@@ -8,6 +8,7 @@ import functools
 import hashlib
 import inspect
 import itertools
+import logging
 import math
 import operator
 import os
@@ -40,6 +41,7 @@ R = TypeVar("R")
 
 RESERVED = frozenset({"unit", "decision_id"})
 _PROB = operator.itemgetter(6)  # DrawRecord.prob
+log = logging.getLogger("drawledger")
 DRAW_KINDS = frozenset(
     {"categorical", "bernoulli", "uniform", "integers", "normal", "lognormal", "softmax",
      "epsilon_greedy", "slate", "bucket"}
@@ -305,7 +307,7 @@ class Ledger:
             self._open_sink,
             spill,
             self._stats,
-            Chain(self._key),
+            Chain(self._key, self.writer, self._bind_chain),
             batch_size=self._batch_size,
             queue_size=self.queue_size,
             block_timeout=self.block_timeout,
@@ -313,6 +315,22 @@ class Ledger:
 
     def _open_sink(self) -> _sinks.Sink:
         return _sinks.open_sink(self.target, self.format, durability=self.durability)
+
+    def _bind_chain(self) -> str | None:
+        """Register this writer in the ledger's registry; the genesis its chain starts from.
+
+        None when the ledger cannot be reached now: the chain starts unbound (prev_hash null)
+        and the writer registers with its first batch that is written (docs/ledger.md).
+        """
+        try:
+            sink = self._open_sink()
+            try:
+                return sink.register_writer(self.writer, time.time(), self._key)
+            finally:
+                sink.close()
+        except Exception as exc:  # the ledger is out of reach: the writer spills meanwhile
+            log.warning("drawledger: writer %s not registered yet: %s", self.writer, exc)
+            return None
 
     def _after_fork(self) -> None:
         old = self._writer

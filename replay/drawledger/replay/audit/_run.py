@@ -7,13 +7,18 @@ from typing import TYPE_CHECKING
 
 import pandas as pd
 
-from drawledger import _parquet
 from drawledger.exceptions import LedgerError, ReplayError
 from drawledger.replay.audit._collect import AuditState, check_alpha, chunk_state
 from drawledger.replay.audit._limits import ALPHA, SAMPLE_SIZE
 from drawledger.replay.audit._report import AuditReport
 from drawledger.replay.engines import Engine, open_engine
-from drawledger.replay.sources import Task, parquet_root, plan, read_piece_frames
+from drawledger.replay.sources import (
+    Task,
+    parquet_root,
+    plan,
+    read_piece_frames,
+    rows_frame,
+)
 
 if TYPE_CHECKING:
     from drawledger.ledger import Ledger
@@ -92,19 +97,13 @@ def audit(
     return state.finish(alpha)
 
 
-def _frames(rows: list[tuple[object, ...]], table: str) -> pd.DataFrame:
-    """Rows as the DataFrame a Parquet part gives (the same column types)."""
-    return _parquet.to_frame([_parquet.rows_to_table(rows, table)] if rows else [], table)
-
-
 def _audit_task(task: Task, sample_size: int) -> AuditState:
     """The sufficient statistics of one chunk."""
     if task.piece is not None:
         decisions, draws = read_piece_frames(task.piece)
     else:
         rows, draw_rows = task.read()
-        draw_rows.sort(key=lambda d: (d[0], d[1]))  # by decision, then draw index
-        decisions, draws = _frames(rows, "decisions"), _frames(draw_rows, "draws")
+        decisions, draws = rows_frame(rows, "decisions"), rows_frame(draw_rows, "draws")
     return chunk_state(decisions, draws, sample_size=sample_size)
 
 

@@ -6,9 +6,10 @@ import os
 from pathlib import Path
 
 from drawledger.replay.integrity._parquet import check_parquet
+from drawledger.replay.integrity._registry import check_registry
 from drawledger.replay.integrity._report import IntegrityReport
 from drawledger.replay.integrity._sql import check_sql
-from drawledger.replay.sources import is_parquet, open_engine
+from drawledger.replay.sources import is_parquet, open_engine, read_registry, reading
 
 
 def check_integrity(
@@ -30,7 +31,9 @@ def check_integrity(
     else:
         engine = open_engine(target)
         try:
-            check_sql(engine, key, report, chunk_size)
+            with reading(target):  # a corrupt page met on the way: one line, not a traceback
+                check_sql(engine, key, report, chunk_size)
         finally:
             engine.dispose()
+    check_registry(report, read_registry(target, format=format), key)
     return report.finish()

@@ -9,7 +9,9 @@ from pathlib import Path
 from drawledger import _parquet
 from drawledger.replay.engines import DaskEngine, Handle
 from drawledger.replay.integrity._parquet import parquet_chain, parquet_cross_checks
+from drawledger.replay.integrity._registry import check_registry
 from drawledger.replay.integrity._report import MAX_EXAMPLES, PROBLEMS, IntegrityReport, walk
+from drawledger.replay.sources import read_registry
 
 
 def _integrity_ids(root: str, key: bytes) -> tuple[IntegrityReport, set[str]]:
@@ -57,6 +59,11 @@ def combine_reports(
                 if len(mine) < MAX_EXAMPLES and did not in mine:
                     mine.append(did)
         total.decision_ids |= part.decision_ids
+        total.starts.update(part.starts)
+        total.chained |= part.chained
+        for did, reason in part.reasons.items():
+            if len(total.reasons) < MAX_EXAMPLES:
+                total.reasons.setdefault(did, reason)
     return total.finish()
 
 
@@ -99,4 +106,6 @@ class IntegrityTasks:
         found = self.found.result()
         if found[1]:
             self.chains = self._walks(frozenset(found[1]))
-        return combine_reports(found, *(f.result() for f in self.chains))
+        total = combine_reports(found, *(f.result() for f in self.chains))
+        check_registry(total, read_registry(self.root, format="parquet"), self.key)
+        return total.finish()

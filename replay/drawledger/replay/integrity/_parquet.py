@@ -15,6 +15,7 @@ from drawledger.replay.integrity._report import (
     IntegrityReport,
     Rec,
     Row,
+    chain_key,
     decision_rec,
     outcome_rec,
     walk,
@@ -30,7 +31,7 @@ def _fingerprints(ids: Iterable[str | None]) -> np.ndarray:
 
 
 def _id_column(path: Path, table: str) -> list[str]:
-    data = _parquet.pq.read_table(path, columns=["decision_id"])
+    data = _parquet.read_columns(path, table, ["decision_id"])
     ids: list[str] = data.column(0).to_pylist()
     return ids
 
@@ -125,15 +126,15 @@ def parquet_chain(
     report: IntegrityReport,
 ) -> Iterator[Rec]:  # fmt: skip
     """Records of one writer tag in (seq, order) order, loading parts only when needed."""
-    heap: list[tuple[int, int, int, Rec]] = []
+    heap: list[tuple[tuple[int, int], int, Rec]] = []
     n = 0
     i = 0
     while i < len(plist) or heap:
         # Load every part that may hold a record at or before the smallest one loaded.
-        while i < len(plist) and (not heap or plist[i][0] <= heap[0][0]):
+        while i < len(plist) and (not heap or plist[i][0] <= heap[0][0][0]):
             _first, order, part = plist[i]
             for rec in _load_part(root, order, part, key, dup_ids, report):
-                heapq.heappush(heap, (rec.seq, rec.order, n, rec))
+                heapq.heappush(heap, (chain_key(rec), n, rec))
                 n += 1
             i += 1
-        yield heapq.heappop(heap)[3]
+        yield heapq.heappop(heap)[2]

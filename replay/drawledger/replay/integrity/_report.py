@@ -2,12 +2,13 @@
 
 from __future__ import annotations
 
+import struct
 from collections.abc import Iterable
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any, NamedTuple
 
 from drawledger import _records
-from drawledger._schema import DEC, DRAW, OUT
+from drawledger._schema import DEC, DECISIONS, DRAW, DRAWS, OUT, OUTCOMES, row_problem
 from drawledger._text import visible
 from drawledger.replay._html import html_table
 
@@ -21,6 +22,11 @@ PROBLEMS = (
     "bad_hashes",
     "orphan_draws",
     "orphan_outcomes",
+    "bad_records",
+    "missing_writers",
+    "unregistered_writers",
+    "foreign_chains",
+    "bad_registry",
 )
 
 
@@ -41,6 +47,11 @@ class IntegrityReport:
     bad_hashes: int = 0
     orphan_draws: int = 0
     orphan_outcomes: int = 0
+    bad_records: int = 0
+    missing_writers: int = 0
+    unregistered_writers: int = 0
+    foreign_chains: int = 0
+    bad_registry: int = 0
     decisions: int = 0
     outcomes: int = 0
     writers: int = 0
@@ -48,16 +59,38 @@ class IntegrityReport:
     uncommitted_parts: int = 0
     examples: dict[str, list[str]] = field(default_factory=dict)
     decision_ids: set[str] = field(default_factory=set)
+    reasons: dict[str, str] = field(default_factory=dict)
+    registry: bool = False  # the ledger has an identity and a writer registry
+    legacy_writers: int = 0  # unregistered writers of a ledger from before its registry
+    # Each walked writer's first prev_hash (None: null; absent: its seq 0 is missing).
+    starts: dict[str, str | None] = field(default_factory=dict)
+    chained: set[str] = field(default_factory=set)  # writers with records
 
-    def note(self, problem: str, decision_id: str | None, count: int = 1) -> None:
+    def note(self, problem: str, decision_id: object, count: int = 1) -> None:
         """Count ``count`` occurrences of a problem involving ``decision_id``."""
         setattr(self, problem, getattr(self, problem) + count)
         if decision_id is None:
             return
+        if not isinstance(decision_id, str):  # a damaged id (a blob, a number): shown as such
+            decision_id = repr(decision_id)
         self.decision_ids.add(decision_id)
         shown = self.examples.setdefault(problem, [])
         if len(shown) < MAX_EXAMPLES and decision_id not in shown:
             shown.append(decision_id)
+
+    def note_writer(self, problem: str, writer: object) -> None:
+        """A problem of a whole writer (examples: writer ids, not decision ids)."""
+        setattr(self, problem, getattr(self, problem) + 1)
+        shown = self.examples.setdefault(problem, [])
+        if len(shown) < MAX_EXAMPLES:
+            shown.append(writer if isinstance(writer, str) else repr(writer))
+
+    def note_bad(self, decision_id: object, reason: str) -> None:
+        """A record whose fields do not fit their columns, with the reason (the first few)."""
+        self.note("bad_records", decision_id)
+        if len(self.reasons) < MAX_EXAMPLES:
+            shown = decision_id if isinstance(decision_id, str) else repr(decision_id)
+            self.reasons.setdefault(shown, reason)
 
     def finish(self) -> IntegrityReport:
         # Orphan outcomes are reported but do not fail the check (module docstring).
@@ -68,8 +101,11 @@ class IntegrityReport:
         out: dict[str, Any] = {"ok": self.ok}
         out.update({p: getattr(self, p) for p in PROBLEMS})
         out.update(decisions=self.decisions, outcomes=self.outcomes, writers=self.writers,
-                   keyed=self.keyed, uncommitted_parts=self.uncommitted_parts)  # fmt: skip
+                   keyed=self.keyed, uncommitted_parts=self.uncommitted_parts,
+                   registry=self.registry, legacy_writers=self.legacy_writers)  # fmt: skip
         out["examples"] = {k: list(v) for k, v in self.examples.items()}
+        if self.reasons:
+            out["bad_record_reasons"] = dict(self.reasons)
         return out
 
     def render(self) -> str:
@@ -85,6 +121,15 @@ class IntegrityReport:
                 shown = ", ".join(visible(d) for d in self.examples.get(p, []))
                 note = " (not a failure: see docs/ledger.md)" if p == "orphan_outcomes" else ""
                 lines.append(f"  {p.replace('_', ' ')}: {n}{note}; e.g. {shown}")
+        for did, reason in self.reasons.items():
+            lines.append(f"    {visible(did)}: {visible(reason)}")
+        if not self.registry:
+            lines.append("  note: no ledger identity or writer registry (a ledger from before "
+                         "them): a writer whose records were all deleted, or a chain grafted "
+                         "from another ledger, is not detected")  # fmt: skip
+        elif self.legacy_writers:
+            lines.append(f"  note: {self.legacy_writers} writers from before the registry "
+                         "are not protected against deletion or grafting")  # fmt: skip
         if self.uncommitted_parts:
             lines.append(f"  {self.uncommitted_parts} draws parts of batches interrupted "
                          "between their renames (ignored by readers; safe to delete)")  # fmt: skip
@@ -118,6 +163,12 @@ class Rec(NamedTuple):
     prev_hash: str | None
     hash: str
     hash_ok: bool
+    problem: str | None = None  # why its fields do not fit their columns (a damaged record)
+
+
+def chain_key(rec: Rec) -> tuple[int, int]:
+    """The order of a writer's records; a damaged seq (NULL, text) sorts last (walk skips it)."""
+    return (rec.seq if rec.seq.__class__ is int else 1 << 63, rec.order)
 
 
 def walk(report: IntegrityReport, records: Iterable[Rec], dup_ids: set[str]) -> None:
@@ -128,19 +179,30 @@ def walk(report: IntegrityReport, records: Iterable[Rec], dup_ids: set[str]) -> 
             report.decisions += 1
         else:
             report.outcomes += 1
-        if not rec.hash_ok:
+        if rec.problem is not None:
+            report.note_bad(rec.decision_id, rec.problem)
+            if rec.seq.__class__ is not int or rec.writer.__class__ is not str:
+                continue  # no place in a chain: the seq it held shows as a gap
+        elif not rec.hash_ok:
             report.note("bad_hashes", rec.decision_id)
         expected, last_hash = state.get(rec.writer, (0, None))
         if rec.seq < expected:
             if not (rec.order == 0 and rec.decision_id in dup_ids):  # not counted twice
                 report.note("duplicates", rec.decision_id)
             continue
+        report.chained.add(rec.writer)
         if rec.seq > expected:
             report.note("gaps", rec.decision_id, rec.seq - expected)
+        elif rec.seq == 0:  # the chain's start: null, or a genesis (check_registry)
+            report.starts[rec.writer] = rec.prev_hash
         elif rec.prev_hash != last_hash:
             report.note("broken_links", rec.decision_id)
         state[rec.writer] = (rec.seq + 1, rec.hash)
     report.writers += len(state)
+
+
+# What hashing a record whose fields have the wrong types raises (a NULL or text float, ...).
+_UNHASHABLE = (TypeError, ValueError, OverflowError, struct.error)
 
 
 def decision_rec(row: Row, draws: list[Row], key: bytes, dup_ids: set[str]) -> Rec:
@@ -148,14 +210,32 @@ def decision_rec(row: Row, draws: list[Row], key: bytes, dup_ids: set[str]) -> R
     if did in dup_ids:
         ok = True  # counted as a duplicate; its draws cannot be attributed
     else:
-        draws.sort(key=lambda d: d[DRAW.idx])
-        ok = _records.decision_hash(row, draws, key) == digest
-    return Rec(row[DEC.seq], 0, row[DEC.writer], did, row[DEC.prev_hash], digest, ok)
+        try:
+            draws.sort(key=lambda d: d[DRAW.idx])
+            ok = _records.decision_hash(row, draws, key) == digest
+        except _UNHASHABLE:
+            ok = False
+    problem = None
+    if not ok:  # only then: a record that hashes as stored has fields of the right types
+        problem = row_problem(DECISIONS, row)
+        for d in draws:
+            problem = problem or row_problem(DRAWS, d)
+    return Rec(row[DEC.seq], 0, row[DEC.writer], did, row[DEC.prev_hash], digest, ok, problem)
 
 
 def outcome_rec(row: Row, key: bytes) -> Rec:
     digest = row[OUT.hash]
-    ok = _records.outcome_hash(row, key) == digest
+    try:
+        ok = _records.outcome_hash(row, key) == digest
+    except _UNHASHABLE:
+        ok = False
     return Rec(
-        row[OUT.seq], 1, row[OUT.writer], row[OUT.decision_id], row[OUT.prev_hash], digest, ok
+        row[OUT.seq],
+        1,
+        row[OUT.writer],
+        row[OUT.decision_id],
+        row[OUT.prev_hash],
+        digest,
+        ok,
+        None if ok else row_problem(OUTCOMES, row),
     )

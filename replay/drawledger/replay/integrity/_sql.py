@@ -13,6 +13,7 @@ from drawledger.replay.integrity._report import (
     IntegrityReport,
     Rec,
     Row,
+    chain_key,
     decision_rec,
     outcome_rec,
     walk,
@@ -42,15 +43,25 @@ def check_sql(engine: sa.Engine, key: bytes, report: IntegrityReport, chunk: int
             "GROUP BY o.decision_id"
         )):  # fmt: skip
             report.note("orphan_outcomes", did, n)
-        writers = sorted(
-            {w for (w,) in conn.execute(sa.text("SELECT DISTINCT writer FROM decisions"))}
-            | {w for (w,) in conn.execute(sa.text("SELECT DISTINCT writer FROM outcomes"))}
-        )
+        found = {w for (w,) in conn.execute(sa.text("SELECT DISTINCT writer FROM decisions"))}
+        found |= {w for (w,) in conn.execute(sa.text("SELECT DISTINCT writer FROM outcomes"))}
+        for table in ("decisions", "outcomes"):  # a damaged writer column: no chain to walk
+            for (did,) in conn.execute(sa.text(
+                f"SELECT decision_id FROM {table} WHERE writer IS NULL"
+            )):  # fmt: skip
+                report.note_bad(did, f"{table}.writer is NULL")
+            bad = [w for w in found if w is not None and not isinstance(w, str)]
+            for w in bad:
+                for (did,) in conn.execute(sa.text(
+                    f"SELECT decision_id FROM {table} WHERE writer = :w"), {"w": w}
+                ):  # fmt: skip
+                    report.note_bad(did, f"{table}.writer is {w!r}, not text")
+        writers = sorted(w for w in found if isinstance(w, str))
     for writer in writers:
         merged = heapq.merge(
             _sql_decisions(engine, writer, key, dup_ids, chunk),
             _sql_outcomes(engine, writer, key, chunk),
-            key=lambda r: (r.seq, r.order),
+            key=chain_key,
         )
         walk(report, merged, dup_ids)
 
@@ -59,6 +70,7 @@ def _sql_decisions(
     engine: sa.Engine, writer: str, key: bytes, dup_ids: set[str], chunk: int
 ) -> Iterator[Rec]:
     for rows in writer_pages(engine, "decisions", writer, chunk):
+        seqs = [r[DEC.seq] for r in rows if r[DEC.seq].__class__ is int]  # not a damaged seq
         with engine.connect() as conn:
             found = conn.execute(
                 sa.text(
@@ -66,7 +78,7 @@ def _sql_decisions(
                     "ON dr.decision_id = d.decision_id "
                     "WHERE d.writer = :w AND d.seq >= :lo AND d.seq <= :hi"
                 ),
-                {"w": writer, "lo": rows[0][DEC.seq], "hi": rows[-1][DEC.seq]},
+                {"w": writer, "lo": min(seqs, default=0), "hi": max(seqs, default=-1)},
             )
             by_id: dict[str, list[Row]] = {}
             for d in found:

@@ -24,12 +24,15 @@ from drawledger.replay.sources._plan import (
     iter_decision_chunks,
     plan,
 )
+from drawledger.replay.sources._registry import Registry, read_registry
 from drawledger.replay.sources._sql import writer_pages
 from drawledger.replay.sources._tables import (
     LedgerTables,
     is_parquet,
     open_engine,
     read_tables,
+    reading,
+    rows_frame,
 )
 
 __all__ = [
@@ -37,6 +40,7 @@ __all__ = [
     "PARALLEL_CHUNK_SIZE",
     "LedgerTables",
     "Piece",
+    "Registry",
     "Task",
     "is_parquet",
     "iter_chunks",
@@ -50,7 +54,10 @@ __all__ = [
     "plan",
     "read_piece",
     "read_piece_frames",
+    "read_registry",
     "read_tables",
+    "reading",
+    "rows_frame",
     "sql_streams",
     "stream_outcome_names",
     "stream_partitions",

@@ -8,8 +8,6 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-import pyarrow.parquet as pq
-
 from drawledger import _parquet
 from drawledger.exceptions import ReplayError
 from drawledger.replay.sources._tables import is_parquet
@@ -81,10 +79,8 @@ def partitions(root: str | os.PathLike[str]) -> list[Partition]:
 
 
 def _footer_rows(path: Path) -> int:
-    try:
-        return int(pq.read_metadata(path).num_rows)
-    except OSError as exc:
-        raise ReplayError(f"cannot read ledger part {os.fspath(path)!r}: {exc}") from None
+    """The decisions of a part file, from its footer (its schema checked on the way)."""
+    return int(_parquet.open_part(path, "decisions").metadata.num_rows)
 
 
 def pieces(parts: Sequence[Partition], chunk_size: int) -> list[Piece]:
@@ -135,7 +131,8 @@ def piece_ids(piece: Piece) -> set[str]:
     """The decision ids of a piece, read alone (one column of each part file)."""
     ids: set[str] = set()
     for path in piece.parts:
-        ids.update(pq.read_table(path, columns=["decision_id"]).column(0).to_pylist())
+        ids.update(_parquet.read_columns(Path(path), "decisions", ["decision_id"]).column(0)
+                   .to_pylist())  # fmt: skip
     return ids
 
 
@@ -150,7 +147,7 @@ def stream_partitions(root: str | os.PathLike[str]) -> dict[str, list[Partition]
     """The partitions of each decision stream (read from the first row of each partition)."""
     out: dict[str, list[Partition]] = {}
     for partition in partitions(root):
-        column = pq.read_table(partition.parts[0], columns=["stream"]).column(0)
+        column = _parquet.read_columns(Path(partition.parts[0]), "decisions", ["stream"]).column(0)
         stream = str(column[0].as_py()) if len(column) else ""
         out.setdefault(stream, []).append(partition)
     return out

@@ -12,7 +12,7 @@ from drawledger._records import (
     DECISION_COLUMNS,
     DRAW_COLUMNS,
 )
-from drawledger.replay.sources._tables import TABLE_COLUMNS
+from drawledger.replay.sources._tables import TABLE_COLUMNS, check_columns, reading
 
 Row = tuple[Any, ...]
 
@@ -42,8 +42,10 @@ _STARTS = sa.text(
 
 def sql_slices(engine: sa.Engine, size: int) -> list[SqlSlice]:
     """Each writer's decisions in seq order, cut every ``size`` records (by seq ranges, so a
-    duplicated (writer, seq) never falls between two slices)."""
-    with engine.connect() as conn:
+    duplicated (writer, seq) never falls between two slices). A decision without a writer or
+    an integer seq has no place in a slice: the ledger is refused (``LedgerError``)."""
+    check_columns(engine, "decisions", ("writer", "seq"))
+    with reading(engine.url), engine.connect() as conn:
         totals: dict[str, int] = dict(
             conn.execute(sa.text("SELECT writer, COUNT(*) FROM decisions GROUP BY writer")).all()
         )
@@ -63,7 +65,7 @@ def read_sql_slice(engine: sa.Engine, sl: SqlSlice) -> tuple[list[Row], list[Row
     cond = "writer = :w AND seq >= :lo" + ("" if sl.hi is None else " AND seq < :hi")
     of_d = cond.replace("writer", "d.writer").replace("seq", "d.seq")
     bind = {"w": sl.writer, "lo": sl.lo, "hi": sl.hi}
-    with engine.connect() as conn:
+    with reading(engine.url), engine.connect() as conn:
         rows = [tuple(r) for r in conn.execute(
             sa.text(f"SELECT {_DEC} FROM decisions WHERE {cond} ORDER BY seq"), bind)]  # fmt: skip
         draws = [tuple(d) for d in conn.execute(
@@ -91,10 +93,11 @@ def writer_pages(engine: sa.Engine, table: str, writer: str, size: int) -> Itera
     (``WHERE seq > last``), so that the cost of a page does not grow with its position."""
     columns = ", ".join(TABLE_COLUMNS[table])
     seq = TABLE_COLUMNS[table].index("seq")
-    last: int | None = None
+    last: object = None
+    first = True
     while True:
-        cond = "" if last is None else "AND seq > :last"
-        with engine.connect() as conn:
+        cond = "" if first else "AND seq > :last"
+        with reading(engine.url), engine.connect() as conn:
             rows = [tuple(r) for r in conn.execute(
                 sa.text(f"SELECT {columns} FROM {table} WHERE writer = :w {cond} "
                         "ORDER BY seq LIMIT :n"),
@@ -103,6 +106,6 @@ def writer_pages(engine: sa.Engine, table: str, writer: str, size: int) -> Itera
         if not rows:
             return
         yield rows
-        if len(rows) < size:
+        if len(rows) < size or rows[-1][seq] is None:  # past a damaged (NULL) seq: stop
             return
-        last = rows[-1][seq]
+        first, last = False, rows[-1][seq]

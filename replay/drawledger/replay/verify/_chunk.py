@@ -55,6 +55,8 @@ def verify_chunk(
     for row in decisions:
         did = row[DEC.decision_id]
         checked = check_decision(row, list(by_id.get(did, ())), ctx, did in flagged)
+        if not isinstance(did, str):  # a damaged id (bad-record): shown as it was read
+            did = repr(did)
         reasons = checked.reasons
         category = _category(reasons)
         stream = row[DEC.stream] if isinstance(row[DEC.stream], str) else str(row[DEC.stream])

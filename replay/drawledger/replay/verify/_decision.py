@@ -17,7 +17,7 @@ from drawledger._records import (  # the SDK's own JSON encoding, bit for bit
     json_default,
     to_json,
 )
-from drawledger._schema import DEC, DRAW
+from drawledger._schema import DEC, DECISIONS, DRAW, DRAWS, row_problem
 from drawledger.draw import Draw, DrawRecord, bucket_assign
 from drawledger.exceptions import (
     BadRecordError,
@@ -381,6 +381,12 @@ def check_decision(row: Row, draws: list[Row], ctx: Context, flagged: bool) -> _
     out = _Checked()
     if flagged:
         out.add("integrity", "part of an integrity problem (see integrity)")
+    damaged = row_problem(DECISIONS, row) or next(
+        (p for p in (row_problem(DRAWS, d) for d in draws) if p), None
+    )
+    if damaged is not None:  # nothing is computed from a field of the wrong type
+        out.add("bad-record", damaged)
+        return out
     try:
         if as_text(row[DEC.fn]) is None:
             _check_other(out, row, draws)
