@@ -21,9 +21,9 @@ from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any, Generic, ParamSpec, TypeVar
 
-from drawledger import _records, _sinks, _stream
+from drawledger import _lifecycle, _records, _sinks, _stream
 from drawledger._probability import decision_propensity
-from drawledger._writer import Chain, SpillFile, Stats, Writer
+from drawledger._writer import FORK_WAIT, Chain, SpillFile, Stats, Writer
 from drawledger.draw import Draw, DrawRecord, bucket_assign
 from drawledger.exceptions import (
     DecisionDefinitionError,
@@ -309,6 +309,7 @@ class Ledger:
             batch_size=self._batch_size,
             queue_size=self.queue_size,
             block_timeout=self.block_timeout,
+            on_start=_guard_exit,
         )
 
     def _open_sink(self) -> _sinks.Sink:
@@ -317,7 +318,12 @@ class Ledger:
     def _after_fork(self) -> None:
         old = self._writer
         self._init_process()
-        old.forget_after_fork()
+        if not old.forget_after_fork():
+            self._writer.refusal = (
+                f"ledger {self.target!r}: this process was forked while the parent's writer was "
+                f"in a write for over {FORK_WAIT:g} s, so its database state cannot be used "
+                "here; fork while the ledger is idle (flush() first)"
+            )
 
     def __repr__(self) -> str:
         return f"Ledger({self.target!r}, writer={self.writer!r})"
@@ -524,15 +530,19 @@ class Ledger:
         if not self._writer.flush(timeout):
             raise LedgerError(f"flush of {self.target!r} timed out after {timeout} s")
 
-    def close(self) -> None:
-        """Flush and stop the writer. Also runs at interpreter exit. Safe to call twice."""
+    def close(self, timeout: float | None = None) -> None:
+        """Flush and stop the writer. Also runs at interpreter exit. Safe to call twice.
+
+        ``timeout`` bounds the flush (and the wait for the thread as much again); what is still
+        queued then is spilled. ``LedgerError`` when the flush failed or timed out.
+        """
         if self._closed:
             return
         try:
-            self.flush()
+            self.flush(timeout)
         finally:
             self._closed = True
-            self._writer.stop(timeout=30.0)
+            self._writer.stop(timeout=30.0 if timeout is None else timeout)
 
     def stats(self) -> dict[str, int]:
         """Counters of this process: recorded, written, spilled, retried, dropped, queued."""
@@ -546,10 +556,24 @@ class Ledger:
         return self._writer.spill.path
 
 
-def _close_all() -> None:
+def _close_all(timeout: float | None = _lifecycle.EXIT_TIMEOUT) -> None:
     for ledger in list(_LEDGERS):
-        with contextlib.suppress(Exception):  # interpreter exit: never raise from here
-            ledger.close()
+        with contextlib.suppress(Exception):  # process exit: never raise from here
+            ledger.close(timeout)
+
+
+def _guard_exit() -> None:
+    _lifecycle.guard_exit(_close_all)
+
+
+def _before_fork() -> None:
+    for ledger in list(_LEDGERS):
+        ledger._writer.before_fork()
+
+
+def _after_fork_in_parent() -> None:
+    for ledger in list(_LEDGERS):
+        ledger._writer.after_fork_in_parent()
 
 
 def _after_fork_in_child() -> None:
@@ -557,6 +581,7 @@ def _after_fork_in_child() -> None:
         ledger._after_fork()
 
 
-atexit.register(_close_all)
+atexit.register(_lifecycle.at_exit, _close_all)
 if hasattr(os, "register_at_fork"):
-    os.register_at_fork(after_in_child=_after_fork_in_child)
+    os.register_at_fork(before=_before_fork, after_in_parent=_after_fork_in_parent,
+                        after_in_child=_after_fork_in_child)  # fmt: skip
