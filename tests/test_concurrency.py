@@ -141,7 +141,7 @@ def test_forked_child_gets_a_chain_of_its_own(tmp_path: Path) -> None:
 
 
 # -- fork while the writer works --------------------------------------------------------------
-def _fork_children_while_busy(target: Path, children: int, per_child: int) -> None:
+def _fork_children_while_busy(target: str, children: int, per_child: int) -> None:
     """Fork while a thread of the parent keeps the writer busy; every child must finish."""
     import os
     import signal
@@ -195,7 +195,7 @@ def _fork_children_while_busy(target: Path, children: int, per_child: int) -> No
     for pid in hung:
         os.kill(pid, signal.SIGKILL)
         os.waitpid(pid, 0)
-    assert ([], [0] * children) == (hung, [codes[pid] for pid in pids])
+    assert ([], [0] * children) == (hung, [codes.get(pid) for pid in pids])
     report = check_integrity(target)
     assert (True, children + 1) == (report.ok, report.writers)
     ids = set(read_tables(target).decisions["decision_id"])
@@ -205,12 +205,16 @@ def _fork_children_while_busy(target: Path, children: int, per_child: int) -> No
 def test_children_forked_while_the_writer_is_busy_finish_and_keep_their_records(
     tmp_path: Path,
 ) -> None:
-    _fork_children_while_busy(tmp_path / "fork.db", children=12, per_child=50)
+    _fork_children_while_busy(str(tmp_path / "fork.db"), children=12, per_child=50)
+
+
+def test_children_forked_while_the_writer_is_busy_postgresql(postgres_url: str) -> None:
+    _fork_children_while_busy(postgres_url, children=4, per_child=30)
 
 
 @pytest.mark.slow
 def test_many_children_forked_while_the_writer_is_busy(tmp_path: Path) -> None:
-    _fork_children_while_busy(tmp_path / "fork.db", children=60, per_child=200)
+    _fork_children_while_busy(str(tmp_path / "fork.db"), children=60, per_child=200)
 
 
 def test_child_forked_during_a_write_that_outlasts_the_wait_is_refused_clearly(

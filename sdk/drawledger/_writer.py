@@ -369,12 +369,12 @@ class Writer:
         fork). The parent's next batch opens a new connection.
         """
         self._held_for_fork = self.io_lock.acquire(timeout=FORK_WAIT)
-        if self._held_for_fork and self._sink is not None:
+        release = getattr(self._sink, "release", None)  # a Parquet sink holds no connection
+        if self._held_for_fork and release is not None:
             try:
-                self._sink.close()
-            except Exception as exc:  # the parent reopens it at its next batch anyway
+                release()
+            except Exception as exc:  # the next batch opens a connection anyway
                 self.last_error = exc
-            self._sink = None
 
     def after_fork_in_parent(self) -> None:
         if self._held_for_fork:

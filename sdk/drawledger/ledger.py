@@ -545,7 +545,8 @@ class Ledger:
             self._writer.stop(timeout=30.0 if timeout is None else timeout)
 
     def stats(self) -> dict[str, int]:
-        """Counters of this process: recorded, written, spilled, retried, dropped, queued."""
+        """Counters of this process: recorded, written, spilled, retried, dropped, spill_errors,
+        queued (docs/operations.md)."""
         out = self._stats.as_dict()
         out["queued"] = sum(1 for item in list(self._writer.queue) if isinstance(item, tuple))
         return out
