@@ -233,7 +233,7 @@ class Writer:
         self._down_for = cooldown
         self._retry_now = False  # a flush or wake() ends the pause after a failure
         self.io_lock = threading.Lock()  # held while the sink is opened or written
-        self._held_for_fork = False
+        self._fork_holders: set[int] = set()  # threads forking that hold io_lock
         self.throttle = Throttle()
         self.last_error: BaseException | None = None
 
@@ -368,17 +368,20 @@ class Writer:
         a call (SQLite's locks and file state are per process; a connection must not cross a
         fork). The parent's next batch opens a new connection.
         """
-        self._held_for_fork = self.io_lock.acquire(timeout=FORK_WAIT)
+        if not self.io_lock.acquire(timeout=FORK_WAIT):
+            return
+        self._fork_holders.add(threading.get_ident())
         release = getattr(self._sink, "release", None)  # a Parquet sink holds no connection
-        if self._held_for_fork and release is not None:
+        if release is not None:
             try:
                 release()
             except Exception as exc:  # the next batch opens a connection anyway
                 self.last_error = exc
 
     def after_fork_in_parent(self) -> None:
-        if self._held_for_fork:
-            self._held_for_fork = False
+        me = threading.get_ident()
+        if me in self._fork_holders:
+            self._fork_holders.discard(me)
             self.io_lock.release()
 
     def forget_after_fork(self) -> bool:
@@ -394,7 +397,7 @@ class Writer:
         self._live = False
         if self._sink is not None:
             ABANDONED.append(self._sink)
-        return self._held_for_fork
+        return threading.get_ident() in self._fork_holders
 
     # -- the thread -----------------------------------------------------------------------
     def _main(self) -> None:
@@ -415,6 +418,7 @@ class Writer:
                 continue
             items: list[Item] = []
             markers: list[_Flush] = []
+            self._retry_now = False  # a flush or wake() from now on retries after a failure
             with chain.lock:  # taking records and sealing them is one step (see _seal_queued)
                 while q and len(items) < self.batch_size:
                     item = q.popleft()
@@ -446,7 +450,6 @@ class Writer:
 
     def _pause(self, seconds: float) -> None:
         """Wait after a failure: until the time is up, a flush or wake() asks, or close."""
-        self._retry_now = False
         deadline = time.monotonic() + seconds
         while not (self._stop or self._retry_now):
             left = deadline - time.monotonic()
