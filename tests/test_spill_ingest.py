@@ -598,3 +598,36 @@ def test_interpreter_exit_returns_when_neither_sink_nor_spill_takes_the_records(
     )  # fmt: skip
     assert (0, "recorded\n") == (proc.returncode, proc.stdout)
     assert "dropped" in proc.stderr
+
+
+class _StuckSink:
+    """A sink whose write hangs until ``go`` is set (a database that stopped answering)."""
+
+    def __init__(self, inner: Any, go: threading.Event) -> None:
+        self.inner, self.go = inner, go
+
+    def write(self, *batch: Any) -> None:
+        self.go.wait()
+        self.inner.write(*batch)
+
+    def close(self) -> None:
+        self.inner.close()
+
+
+def test_close_with_a_timeout_returns_and_spills_what_a_stuck_sink_left_queued(
+    tmp_path: Path,
+) -> None:
+    target = tmp_path / "x.db"
+    led = dl.Ledger(target, batch_size=1, spill_dir=tmp_path / "spill")
+    go = threading.Event()
+    opener = led._writer._open_sink
+    led._writer._open_sink = lambda: _StuckSink(opener(), go)
+    _decide(led, 5, outcomes=False)
+    with pytest.raises(dl.LedgerError, match="timed out"):
+        led.close(timeout=0.5)
+    assert 4 == led.stats()["spilled"]  # the fifth is the batch the stuck write holds
+    go.set()
+    led._writer.stop(timeout=10)
+    assert (1, 0, 0) == (led.stats()["written"], led.stats()["queued"], led.stats()["dropped"])
+    dl.ingest(led.spill_path, target)
+    assert check_integrity(target).ok
