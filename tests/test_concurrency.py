@@ -283,17 +283,19 @@ if __name__ == "__main__":
             p.join()
         assert [0] * 5 == [p.exitcode for p in procs]
     else:  # leaving the block terminates the workers with SIGTERM
-        with mp.get_context(method).Pool(2) as pool:
+        with mp.get_context(method.removesuffix("-pool")).Pool(2) as pool:
             assert list(range(6)) == pool.map(record, range(6))
     led.close()
 """
 
 
-@pytest.mark.parametrize(("method", "expected"), [("fork", 1_500), ("spawn", 600)])
+@pytest.mark.parametrize(
+    ("method", "expected"), [("fork", 1_500), ("spawn-pool", 600), ("fork-pool", 600)]
+)
 def test_multiprocessing_children_keep_their_records_without_close(
     tmp_path: Path, method: str, expected: int
 ) -> None:
-    """A fork-started Process, and a spawn Pool ended by its with-block, lose no record."""
+    """A fork-started Process, and spawn and fork Pools ended by their with-block, lose none."""
     script = tmp_path / "children.py"
     script.write_text(CHILDREN)
     target = tmp_path / "children.db"
