@@ -10,12 +10,15 @@ import subprocess
 import sys
 import threading
 import time
+import uuid
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
 import orjson
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 import drawledger as dl
 from drawledger import _parquet
@@ -558,6 +561,41 @@ def test_ingest_skips_a_torn_last_line_and_says_so(tmp_path: Path) -> None:
     report = dl.ingest(spill, tmp_path / "x.db")
     assert (5, [6], [], True) == (report.decisions, report.torn, report.malformed, report.ok)
     assert "torn" in report.render().splitlines()[0]
+
+
+_SPILLED: dict[str, bytes] = {}
+
+
+def _non_ascii_spill(tmp_path: Path) -> bytes:
+    """Spill lines (made once) whose units hold two-byte characters, so a cut can split one."""
+    if "lines" not in _SPILLED:
+        led = dl.Ledger(CLOSED_PORT_URL, spill_dir=tmp_path / "made")
+        led.outcome("b-0", "checkout", 1.0)
+        unit = "shopper-" + "\u00fc\u00e9" * 60
+        for i in range(3):
+            led.record_draw("free-delivery", "bernoulli", {"p": 0.5}, True, 0.5,
+                            unit=unit, decision_id=f"b-{i}")  # fmt: skip
+        led.close()
+        _SPILLED["lines"] = led.spill_path.read_bytes()
+    return _SPILLED["lines"]
+
+
+@settings(max_examples=25, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])  # fmt: skip
+@given(cut=st.floats(min_value=0.0, max_value=0.999))
+def test_any_cut_of_the_last_line_is_skipped_as_torn_and_the_rest_loaded(
+    tmp_path: Path, cut: float
+) -> None:
+    data = _non_ascii_spill(tmp_path)
+    body, last = data[:-1].rsplit(b"\n", 1)
+    keep = 12 + int(cut * (len(last) - 12))  # at least the record's opening, never all of it
+    case = tmp_path / uuid.uuid4().hex
+    case.mkdir()
+    spill = case / "spill.jsonl"
+    spill.write_bytes(body + b"\n" + last[:keep])
+    report = dl.ingest(spill, case / "x.db")
+    assert ([4], [], True) == (report.torn, report.malformed, report.ok)
+    assert 3 == report.decisions + report.outcomes
 
 
 # -- flush and close return ------------------------------------------------------------------

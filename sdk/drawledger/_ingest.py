@@ -20,6 +20,7 @@ malformed, and a complete record glued after it on the same line is still loaded
 
 from __future__ import annotations
 
+import codecs
 import math
 import os
 from collections.abc import Iterator
@@ -279,10 +280,14 @@ def _is_torn(line: bytes) -> bool:
     text = line.rstrip(b"\r\n")
     if not text.startswith(_STARTS):
         return False
+    try:  # a cut inside a character leaves the first bytes of it: drop them
+        chars = codecs.getincrementaldecoder("utf-8")().decode(text)
+    except UnicodeDecodeError:
+        return False
     try:
-        orjson.loads(text)
+        orjson.loads(chars)
     except orjson.JSONDecodeError as exc:
-        return exc.pos >= len(text)  # it failed only for want of what was never written
+        return exc.pos >= len(chars)  # it failed only for want of what was never written
     return False
 
 
