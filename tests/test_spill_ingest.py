@@ -3,17 +3,22 @@
 from __future__ import annotations
 
 import contextlib
+import errno
 import os
 import sqlite3
 import subprocess
+import sys
 import threading
 import time
+import uuid
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
 import orjson
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 import drawledger as dl
 from drawledger import _parquet
@@ -432,4 +437,235 @@ def test_lone_surrogates_are_refused_at_the_call_and_the_rest_is_written(tmp_pat
     led.outcome("ok-1", "checkout", 1.0)
     led.close()
     assert (2, 0, 0) == (led.stats()["written"], led.stats()["spilled"], led.stats()["dropped"])
+    assert check_integrity(target).ok
+
+
+# -- a full disk under the spill file --------------------------------------------------------
+class _FullDisk:
+    """``os.write`` on a disk with ``room`` bytes left for files under ``folder``.
+
+    A write that does not fit writes what fits (a short write) and the next one fails with
+    ENOSPC, as write(2) does on a full disk.
+    """
+
+    def __init__(self, folder: Path, room: int) -> None:
+        self.folder = str(folder)
+        self.room = room
+        self.real = os.write
+
+    def __call__(self, fd: int, data: Any) -> int:
+        try:
+            name = os.readlink(f"/proc/self/fd/{fd}")
+        except OSError:
+            name = ""
+        if not name.startswith(self.folder):
+            return self.real(fd, data)
+        if self.room <= 0:
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        n = self.real(fd, bytes(data[: self.room]))
+        self.room -= n
+        return n
+
+
+def _spilling_ledger(tmp_path: Path, **kwargs: Any) -> dl.Ledger:
+    led = dl.Ledger(tmp_path / "x.db", spill_dir=tmp_path / "spill", **kwargs)
+    led._writer._open_sink = _failing_sink
+    return led
+
+
+def test_full_disk_spill_counts_only_whole_lines_and_leaves_no_torn_line(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A short write then ENOSPC: the batch is cut back off the file and stays queued."""
+    disk = _FullDisk(tmp_path / "spill", room=2_500)  # a few records, then mid-line
+    monkeypatch.setattr(os, "write", disk)
+    led = _spilling_ledger(tmp_path, batch_size=3)
+    _decide(led, 40, outcomes=False)
+    with pytest.raises(dl.LedgerError, match="could neither be written nor spilled"):
+        led.flush(timeout=30)
+    data = led.spill_path.read_bytes()
+    assert data.endswith(b"\n")
+    lines = data.splitlines()
+    assert all(isinstance(orjson.loads(line), dict) for line in lines)
+    stats = led.stats()
+    assert len(lines) == stats["spilled"]
+    assert stats["spill_errors"] >= 1
+    assert 40 == stats["spilled"] + stats["queued"]
+    disk.room = 10**9  # space freed
+    led.flush(timeout=30)
+    led.close()
+    assert (40, 0, 0) == (led.stats()["spilled"], led.stats()["queued"], led.stats()["dropped"])
+    report = dl.ingest(led.spill_path, tmp_path / "restored.db")
+    assert (40, True) == (report.decisions, report.ok)
+    assert check_integrity(tmp_path / "restored.db").ok
+
+
+def test_spill_write_cut_short_that_cannot_be_truncated_starts_the_next_on_a_new_line(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """When the fragment cannot be cut back, the next batch still starts a line of its own."""
+    disk = _FullDisk(tmp_path / "spill", room=700)
+    monkeypatch.setattr(os, "write", disk)
+
+    def no_truncate(fd: int, length: int) -> None:
+        raise OSError(errno.EIO, os.strerror(errno.EIO))
+
+    monkeypatch.setattr(os, "ftruncate", no_truncate)
+    led = _spilling_ledger(tmp_path, batch_size=4)
+    _decide(led, 8, outcomes=False)
+    with pytest.raises(dl.LedgerError):
+        led.flush(timeout=30)
+    disk.room = 10**9
+    led.close()
+    assert (8, 0) == (led.stats()["spilled"], led.stats()["dropped"])
+    report = dl.ingest(led.spill_path, tmp_path / "restored.db")
+    assert 8 == report.decisions
+    assert 1 == len(report.malformed)
+    assert "torn line" in report.malformed[0][1]
+
+
+def test_full_disk_errors_are_logged_at_most_once_a_minute(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture
+) -> None:
+    """Hundreds of dropped records make a handful of log lines, and the counters say the rest."""
+    disk = _FullDisk(tmp_path / "spill", room=0)
+    monkeypatch.setattr(os, "write", disk)
+    led = _spilling_ledger(tmp_path, queue_size=2, block_timeout=0.001)
+    with caplog.at_level("WARNING", logger="drawledger"):
+        _decide(led, 300, outcomes=False)
+        with contextlib.suppress(dl.LedgerError):
+            led.close()
+    stats = led.stats()
+    assert stats["dropped"] >= 250
+    assert stats["spill_errors"] >= stats["dropped"] - 2
+    assert len(caplog.records) <= 6, [r.getMessage() for r in caplog.records]
+
+
+# -- ingest: torn lines ------------------------------------------------------------------------
+def test_ingest_recovers_a_record_glued_to_a_torn_line(tmp_path: Path) -> None:
+    spill = _spill_of(tmp_path)
+    lines = _lines(spill)
+    glued = lines[1][:50] + lines[2]  # a cut write, then the next record on the same line
+    spill.write_bytes(b"\n".join([lines[0], glued, *lines[3:]]) + b"\n")
+    report = dl.ingest(spill, tmp_path / "x.db")
+    assert 5 == report.decisions
+    assert [2] == [n for n, _ in report.malformed]
+    assert "torn line" in report.malformed[0][1]
+
+
+def test_ingest_skips_a_torn_last_line_and_says_so(tmp_path: Path) -> None:
+    """A cut last line is a write that never finished: never counted as spilled, so ok."""
+    spill = _spill_of(tmp_path)
+    lines = _lines(spill)
+    spill.write_bytes(b"\n".join([*lines[:5], lines[5][:60]]))
+    report = dl.ingest(spill, tmp_path / "x.db")
+    assert (5, [6], [], True) == (report.decisions, report.torn, report.malformed, report.ok)
+    assert "torn" in report.render().splitlines()[0]
+
+
+_SPILLED: dict[str, bytes] = {}
+
+
+def _non_ascii_spill(tmp_path: Path) -> bytes:
+    """Spill lines (made once) whose units hold two-byte characters, so a cut can split one."""
+    if "lines" not in _SPILLED:
+        led = dl.Ledger(CLOSED_PORT_URL, spill_dir=tmp_path / "made")
+        led.outcome("b-0", "checkout", 1.0)
+        unit = "shopper-" + "\u00fc\u00e9" * 60
+        for i in range(3):
+            led.record_draw("free-delivery", "bernoulli", {"p": 0.5}, True, 0.5,
+                            unit=unit, decision_id=f"b-{i}")  # fmt: skip
+        led.close()
+        _SPILLED["lines"] = led.spill_path.read_bytes()
+    return _SPILLED["lines"]
+
+
+@settings(max_examples=25, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])  # fmt: skip
+@given(cut=st.floats(min_value=0.0, max_value=0.999))
+def test_any_cut_of_the_last_line_is_skipped_as_torn_and_the_rest_loaded(
+    tmp_path: Path, cut: float
+) -> None:
+    data = _non_ascii_spill(tmp_path)
+    body, last = data[:-1].rsplit(b"\n", 1)
+    keep = 12 + int(cut * (len(last) - 12))  # at least the record's opening, never all of it
+    case = tmp_path / uuid.uuid4().hex
+    case.mkdir()
+    spill = case / "spill.jsonl"
+    spill.write_bytes(body + b"\n" + last[:keep])
+    report = dl.ingest(spill, case / "x.db")
+    assert ([4], [], True) == (report.torn, report.malformed, report.ok)
+    assert 3 == report.decisions + report.outcomes
+
+
+# -- flush and close return ------------------------------------------------------------------
+def test_flush_raises_when_spilling_fails_with_several_batches_queued(tmp_path: Path) -> None:
+    blocker = tmp_path / "not-a-dir"
+    blocker.write_text("x")
+    led = dl.Ledger(tmp_path / "x.db", spill_dir=blocker / "spill", batch_size=2)
+    led._writer._open_sink = _failing_sink
+    _decide(led, 7, outcomes=False)
+    for _ in range(2):  # a second flush during the cool-down raises as well
+        with pytest.raises(dl.LedgerError, match="could neither be written nor spilled"):
+            led.flush(timeout=20)
+    assert 7 == led.stats()["queued"]
+    with pytest.raises(dl.LedgerError):
+        led.close()
+    assert (7, 0) == (led.stats()["dropped"], led.stats()["queued"])
+
+
+EXIT_WITH_FAILING_SPILL = """
+import sys
+import drawledger as dl
+
+led = dl.Ledger(sys.argv[1], spill_dir=sys.argv[2], batch_size=2)
+for i in range(9):
+    led.record_draw("free-delivery", "bernoulli", {"p": 0.5}, True, 0.5, decision_id=f"b-{i}")
+print("recorded", flush=True)
+"""
+
+
+def test_interpreter_exit_returns_when_neither_sink_nor_spill_takes_the_records(
+    tmp_path: Path,
+) -> None:
+    blocker = tmp_path / "not-a-dir"
+    blocker.write_text("x")
+    proc = subprocess.run(
+        [sys.executable, "-c", EXIT_WITH_FAILING_SPILL, CLOSED_PORT_URL, str(blocker / "spill")],
+        capture_output=True, text=True, timeout=120,
+    )  # fmt: skip
+    assert (0, "recorded\n") == (proc.returncode, proc.stdout)
+    assert "dropped" in proc.stderr
+
+
+class _StuckSink:
+    """A sink whose write hangs until ``go`` is set (a database that stopped answering)."""
+
+    def __init__(self, inner: Any, go: threading.Event) -> None:
+        self.inner, self.go = inner, go
+
+    def write(self, *batch: Any) -> None:
+        self.go.wait()
+        self.inner.write(*batch)
+
+    def close(self) -> None:
+        self.inner.close()
+
+
+def test_close_with_a_timeout_returns_and_spills_what_a_stuck_sink_left_queued(
+    tmp_path: Path,
+) -> None:
+    target = tmp_path / "x.db"
+    led = dl.Ledger(target, batch_size=1, spill_dir=tmp_path / "spill")
+    go = threading.Event()
+    opener = led._writer._open_sink
+    led._writer._open_sink = lambda: _StuckSink(opener(), go)
+    _decide(led, 5, outcomes=False)
+    with pytest.raises(dl.LedgerError, match="timed out"):
+        led.close(timeout=0.5)
+    assert 4 == led.stats()["spilled"]  # the fifth is the batch the stuck write holds
+    go.set()
+    led._writer.stop(timeout=10)
+    assert (1, 0, 0) == (led.stats()["written"], led.stats()["queued"], led.stats()["dropped"])
+    dl.ingest(led.spill_path, target)
     assert check_integrity(target).ok

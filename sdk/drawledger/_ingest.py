@@ -11,11 +11,16 @@ A line is one of (docs/ledger.md):
   with optional ``"u"``, recorded as by ``Ledger.record_draw``; a declared draw whose
   decision id is already among the decisions of its stream is skipped.
 
-A malformed line is reported with its line number and skipped; every other line is loaded.
+A malformed line is reported with its line number and skipped; every other line is loaded. A
+spill record cut short (a write that failed on a full disk, or a crash in the middle of one) is a
+torn line: the last line of a file, without its line break, is counted under ``torn`` (the writer
+counts a record as spilled only once its whole line is on disk); a torn line inside the file is
+malformed, and a complete record glued after it on the same line is still loaded.
 """
 
 from __future__ import annotations
 
+import codecs
 import math
 import os
 from collections.abc import Iterator
@@ -64,6 +69,7 @@ class IngestReport:
     already_present: int = 0
     spilled: int = 0
     malformed: list[tuple[int, str]] = field(default_factory=list)
+    torn: list[int] = field(default_factory=list)
 
     @property
     def ok(self) -> bool:
@@ -81,6 +87,7 @@ class IngestReport:
             "already_present": self.already_present,
             "spilled": self.spilled,
             "malformed": [{"line": n, "reason": r} for n, r in self.malformed],
+            "torn": list(self.torn),
         }
 
     def render(self) -> str:
@@ -89,6 +96,7 @@ class IngestReport:
             f"{self.file}: {self.lines} lines; loaded {self.decisions} spilled decisions, "
             f"{self.outcomes} spilled outcomes, {self.declared} declared draws; "
             f"{self.already_present} already in the ledger; {len(self.malformed)} malformed"
+            + (f"; torn last line {self.torn[0]} skipped (a write cut short)" if self.torn else "")
         ]
         out += [f"  line {n}: {visible(reason)}" for n, reason in self.malformed[:MAX_SHOWN]]
         if len(self.malformed) > MAX_SHOWN:
@@ -190,7 +198,17 @@ class _Loader:
                     try:
                         obj = orjson.loads(line)
                     except orjson.JSONDecodeError as exc:
-                        self.report.malformed.append((number, f"not valid JSON ({exc})"))
+                        glued = _after_torn(line)
+                        if glued is not None:
+                            why = f"not valid JSON: {_TORN} before a complete one, loaded"
+                            self.report.malformed.append((number, why))
+                            yield number, glued
+                        elif _is_torn(line) and not line.endswith(b"\n"):
+                            self.report.torn.append(number)
+                        elif _is_torn(line):
+                            self.report.malformed.append((number, f"not valid JSON: {_TORN}"))
+                        else:
+                            self.report.malformed.append((number, f"not valid JSON ({exc})"))
                         continue
                     if not isinstance(obj, dict):
                         self.report.malformed.append((number, "not a JSON object"))
@@ -256,6 +274,38 @@ class _Loader:
             self.seen_declared.add(did)
             self.report.declared += 1
         self.ledger.flush()
+
+
+_STARTS = (b'{"decision":', b'{"outcome":')
+_TORN = "a torn line (the start of a spill record whose write was cut short)"
+
+
+def _is_torn(line: bytes) -> bool:
+    """A spill record cut short: it starts like one and is valid JSON up to where it ends."""
+    text = line.rstrip(b"\r\n")
+    if not text.startswith(_STARTS):
+        return False
+    try:  # a cut inside a character leaves the first bytes of it: drop them
+        chars = codecs.getincrementaldecoder("utf-8")().decode(text)
+    except UnicodeDecodeError:
+        return False
+    try:
+        orjson.loads(chars)
+    except orjson.JSONDecodeError as exc:
+        return exc.pos >= len(chars)  # it failed only for want of what was never written
+    return False
+
+
+def _after_torn(line: bytes) -> dict[str, Any] | None:
+    """The complete spill record glued after a torn one on the same line, if there is one."""
+    starts = [i for i in (line.find(s, 1) for s in _STARTS) if i > 0]
+    if not starts or not _is_torn(line[: min(starts)]):
+        return None
+    try:
+        obj = orjson.loads(line[min(starts) :])
+    except orjson.JSONDecodeError:
+        return None
+    return obj if isinstance(obj, dict) else None
 
 
 def _number(x: Any, what: str) -> float:

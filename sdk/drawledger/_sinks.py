@@ -240,9 +240,9 @@ class SqlSink:
             with self.engine.connect() as conn:
                 return str(conn.execute(read).scalar_one())
 
-    def after_fork(self) -> None:
-        """Forget connections inherited from the parent process (they belong to it)."""
-        self.engine.dispose(close=False)
+    def release(self) -> None:
+        """Close the idle connections (before a fork); the next write opens a new one."""
+        self.engine.dispose()
 
     def close(self) -> None:
         self.engine.dispose()

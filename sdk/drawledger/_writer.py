@@ -12,14 +12,20 @@ JSON Lines file (fsynced) so that no acknowledged record is lost. The policies
 - sink failure: ``retries`` more attempts with growing delays, then the batch is spilled; for
   the next ``cooldown`` seconds (doubling up to a minute while failures go on) batches go
   straight to the spill file without trying the sink;
-- spill failure too (disk full, directory not writable): the batch goes back to the front of
-  the queue and is tried again later; ``flush()`` raises ``LedgerError`` naming the error; the
-  thread never dies of it. Only a record that finds both the queue full and the spill file
-  failing is dropped, and counted (``dropped``), and logged.
+- spill failure too (disk full, directory not writable): what a failed write put in the file is
+  cut off again, so the file holds whole lines only and ``spilled`` counts exactly those; the
+  batch goes back to the front of the queue and is tried again after the cool-down; every
+  waiting ``flush()`` raises ``LedgerError`` naming the error; the thread never dies of it.
+  Only a record that finds both the queue full and the spill file failing is dropped, and
+  counted (``dropped``). Failures are counted (``spill_errors``) and logged at most once a
+  minute per kind.
+- fork: ``before_fork`` waits for the write in progress and closes the sink's connections, so
+  that a child inherits no database connection or library state in the middle of a call.
 """
 
 from __future__ import annotations
 
+import errno
 import logging
 import os
 import threading
@@ -45,12 +51,37 @@ Item = Any
 SEALED = frozenset({"d", "o"})
 
 MAX_COOLDOWN = 60.0
+LOG_EVERY = 60.0  # seconds between two log lines of one kind (common practice for alerts)
+FORK_WAIT = 10.0  # how long a fork waits for the write in progress
+
+
+class Throttle:
+    """Log each kind of message at most once per ``every`` seconds, saying how many were held."""
+
+    def __init__(self, every: float = LOG_EVERY) -> None:
+        self.every = every
+        self._last: dict[str, float] = {}
+        self._held: dict[str, int] = {}
+        self._lock = threading.Lock()
+
+    def log(self, level: int, kind: str, message: str) -> None:
+        now = time.monotonic()
+        with self._lock:
+            last = self._last.get(kind)
+            if last is not None and now - last < self.every:
+                self._held[kind] = self._held.get(kind, 0) + 1
+                return
+            self._last[kind] = now
+            held = self._held.pop(kind, 0)
+        if held:
+            message += f" ({held} more like this since the last such message)"
+        log.log(level, "drawledger: %s", message)
 
 
 class Stats:
     """Counters of one ledger in one process (see ``Ledger.stats``)."""
 
-    __slots__ = ("dropped", "recorded", "retried", "spilled", "written")
+    __slots__ = ("dropped", "recorded", "retried", "spill_errors", "spilled", "written")
 
     def __init__(self) -> None:
         self.recorded = 0
@@ -58,6 +89,7 @@ class Stats:
         self.spilled = 0
         self.retried = 0
         self.dropped = 0
+        self.spill_errors = 0
 
     def as_dict(self) -> dict[str, int]:
         return {name: getattr(self, name) for name in self.__slots__}
@@ -121,22 +153,48 @@ class Chain:
 
 
 class SpillFile:
-    """Append-only JSON Lines file of records the sink could not take; each write is fsynced."""
+    """Append-only JSON Lines file of records the sink could not take; each write is fsynced.
+
+    A write is whole or nothing: a short write is continued, and a write that fails (disk full)
+    is cut off the file again, so the file never ends in part of a line. Should even that cut
+    fail, the next write starts with a line break: the fragment stays a line of its own, which
+    ingest reports, and never spoils the record written after it.
+    """
 
     def __init__(self, path: Path) -> None:
         self.path = path
         self._lock = threading.Lock()
+        self._torn = False  # the file may end in a fragment that could not be cut off
 
     def write(self, items: list[Item]) -> None:
+        """Append the records, one line each, and fsync; raise ``OSError`` if not all landed."""
         data = b"".join(spill_line(item) + b"\n" for item in items)
         with self._lock:
             self.path.parent.mkdir(parents=True, exist_ok=True)
             fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o600)
             try:
-                os.write(fd, data)
-                os.fsync(fd)
+                self._append(fd, b"\n" + data if self._torn else data)
             finally:
                 os.close(fd)
+
+    def _append(self, fd: int, data: bytes) -> None:
+        start = os.lseek(fd, 0, os.SEEK_END)
+        try:
+            view = memoryview(data)
+            while view:
+                n = os.write(fd, view)
+                if n <= 0:  # write(2) wrote nothing without an error: treat as a full disk
+                    raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+                view = view[n:]
+            os.fsync(fd)
+        except OSError:
+            try:
+                os.ftruncate(fd, start)  # none of this batch counts: take it off the file
+                os.fsync(fd)
+            except OSError:
+                self._torn = True
+            raise
+        self._torn = False
 
 
 class _Flush:
@@ -165,8 +223,11 @@ class Writer:
         retries: int = 2,
         retry_delay: float = 0.05,
         cooldown: float = 1.0,
+        on_start: Callable[[], None] | None = None,
     ) -> None:
         self._open_sink = open_sink
+        self._on_start = on_start
+        self.refusal: str | None = None  # why this process must not write (see forget_after_fork)
         self._sink: Sink | None = None
         self.spill = spill
         self.stats = stats
@@ -186,6 +247,10 @@ class Writer:
         self._overflowing = False
         self._down_until = 0.0
         self._down_for = cooldown
+        self._retry_now = False  # a flush or wake() ends the pause after a failure
+        self.io_lock = threading.Lock()  # held while the sink is opened or written
+        self._fork_holders: set[int] = set()  # threads forking that hold io_lock
+        self.throttle = Throttle()
         self.last_error: BaseException | None = None
 
     def start(self) -> None:
@@ -193,6 +258,10 @@ class Writer:
         with self._start_lock:
             if self.running:
                 return
+            if self.refusal is not None:
+                raise LedgerError(self.refusal)
+            if self._on_start is not None:
+                self._on_start()
             self._thread = threading.Thread(target=self._main, name="drawledger-writer",
                                             daemon=True)  # fmt: skip
             self._live = True
@@ -203,6 +272,8 @@ class Writer:
         return self._thread is not None and self._thread.is_alive()
 
     def wake(self) -> None:
+        """Try the queued records again now, even during a cool-down."""
+        self._retry_now = True
         self._wake.set()
 
     def put(self, item: Item) -> None:
@@ -225,7 +296,8 @@ class Writer:
                 except Exception as exc:  # the decision call must still return
                     self.last_error = exc
                     self.stats.dropped += 1
-                    log.error("drawledger: record dropped: queue full and spill failed: %s", exc)
+                    why = f"record dropped: queue full and spill failed: {exc}"
+                    self.throttle.log(logging.ERROR, "dropped", why)
                 return
         q.append(item)
 
@@ -258,7 +330,7 @@ class Writer:
         """Wait until everything queued before now is written or spilled; False on timeout."""
         marker = _Flush()
         self.queue.append(marker)
-        self._wake.set()
+        self.wake()
         if not marker.done.wait(timeout):
             return False
         if marker.error is not None:
@@ -269,24 +341,79 @@ class Writer:
         return True
 
     def stop(self, timeout: float | None) -> None:
+        """Stop the thread (it drains the queue first); spill what a stuck thread left queued."""
         self._stop = True
         self._wake.set()
         if self._thread is not None:
             self._thread.join(timeout)
-        if self._sink is not None and not self.running:
+        if self.running:
+            self.rescue()
+        elif self._sink is not None:
             self._sink.close()
             self._sink = None
 
-    def forget_after_fork(self) -> None:
-        """In a forked child: drop the parent's queue, thread and connections."""
+    def rescue(self) -> None:
+        """Spill every record still queued, from the calling thread (the writer is stuck)."""
+        with self.chain.lock:
+            self._seal_queued()
+            taken = list(self.queue)
+            self.queue.clear()
+        items = [x for x in taken if not isinstance(x, _Flush)]
+        error: BaseException | None = None
+        if items:
+            try:
+                self.spill_items(items)
+            except Exception as exc:
+                error = exc
+                self.stats.dropped += len(items)
+                log.error("drawledger: %d records dropped: the writer is stuck and the spill "
+                          "failed: %s", len(items), exc)  # fmt: skip
+            else:
+                log.error("drawledger: the writer is stuck in the sink; %d queued records "
+                          "spilled to %s", len(items), self.spill.path)  # fmt: skip
+        for marker in taken:
+            if isinstance(marker, _Flush):
+                marker.error = error
+                marker.done.set()
+
+    # -- fork ---------------------------------------------------------------------------------
+    def before_fork(self) -> None:
+        """In the parent, just before a fork: let the write in progress end, close connections.
+
+        The child then inherits no database connection and no library state in the middle of
+        a call (SQLite's locks and file state are per process; a connection must not cross a
+        fork). The parent's next batch opens a new connection.
+        """
+        if not self.io_lock.acquire(timeout=FORK_WAIT):
+            return
+        self._fork_holders.add(threading.get_ident())
+        release = getattr(self._sink, "release", None)  # a Parquet sink holds no connection
+        if release is not None:
+            try:
+                release()
+            except Exception as exc:  # the next batch opens a connection anyway
+                self.last_error = exc
+
+    def after_fork_in_parent(self) -> None:
+        me = threading.get_ident()
+        if me in self._fork_holders:
+            self._fork_holders.discard(me)
+            self.io_lock.release()
+
+    def forget_after_fork(self) -> bool:
+        """In a forked child: drop the parent's queue and thread; False if its sink was busy.
+
+        Nothing inherited is closed or used here: a sink still open (the parent's write went on
+        past ``FORK_WAIT``) stays referenced for the life of the child, never touched.
+        """
         self.queue = deque()
         self._wake = threading.Event()
         self._start_lock = threading.Lock()
         self._thread = None
         self._live = False
-        if self._sink is not None and hasattr(self._sink, "after_fork"):
-            self._sink.after_fork()
-        self._sink = None
+        if self._sink is not None:
+            ABANDONED.append(self._sink)
+        return threading.get_ident() in self._fork_holders
 
     # -- the thread -----------------------------------------------------------------------
     def _main(self) -> None:
@@ -307,6 +434,7 @@ class Writer:
                 continue
             items: list[Item] = []
             markers: list[_Flush] = []
+            self._retry_now = False  # a flush or wake() from now on retries after a failure
             with chain.lock:  # taking records and sealing them is one step (see _seal_queued)
                 while q and len(items) < self.batch_size:
                     item = q.popleft()
@@ -325,12 +453,26 @@ class Writer:
                 else:
                     with chain.lock:
                         q.extendleft(reversed(items))
+                        # A flush waits for records behind these: it cannot succeed now.
+                        waiting = [m for m in q if isinstance(m, _Flush)]
+                        for m in waiting:
+                            q.remove(m)
+                    markers += waiting
             for m in markers:
                 m.error = error
                 m.done.set()
             if error is not None and not self._stop:
-                self._wake.wait(min(self._down_for, MAX_COOLDOWN))
-                self._wake.clear()
+                self._pause(min(self._down_for, MAX_COOLDOWN))
+
+    def _pause(self, seconds: float) -> None:
+        """Wait after a failure: until the time is up, a flush or wake() asks, or close."""
+        deadline = time.monotonic() + seconds
+        while not (self._stop or self._retry_now):
+            left = deadline - time.monotonic()
+            if left <= 0:
+                return
+            self._wake.wait(left)
+            self._wake.clear()
 
     def _seal_batch(self, items: list[Item]) -> list[Item]:
         """The batch sealed in order (the caller holds the chain lock).
@@ -362,11 +504,12 @@ class Writer:
         attempts = 0 if down else self.retries + 1
         for attempt in range(attempts):
             try:
-                if self._sink is None:
-                    self._sink = self._open_sink()
-                self._sink.write(decisions, draws, outcomes)
-                if self.chain.late:  # unregistered: the ledger was out of reach at the start
-                    self.chain.late = not self._register_late()
+                with self.io_lock:
+                    if self._sink is None:
+                        self._sink = self._open_sink()
+                    self._sink.write(decisions, draws, outcomes)
+                    if self.chain.late:  # unregistered: the ledger was out of reach at the start
+                        self.chain.late = not self._register_late()
                 self.stats.written += len(items)
                 self._down_for = self.cooldown
                 return None
@@ -378,13 +521,14 @@ class Writer:
         if not down:
             self._down_until = time.monotonic() + self._down_for
             self._down_for = min(2 * self._down_for, MAX_COOLDOWN)
-            log.warning("drawledger: sink failed (%s); spilling to %s", self.last_error,
-                        self.spill.path)  # fmt: skip
+            why = f"sink failed ({self.last_error}); spilling to {self.spill.path}"
+            self.throttle.log(logging.WARNING, "sink", why)
         try:
             self.spill_items(items)
         except Exception as exc:  # disk full, directory gone: keep the thread alive
             self.last_error = exc
-            log.error("drawledger: spill to %s failed: %s", self.spill.path, exc)
+            self.throttle.log(logging.ERROR, "spill", f"spill to {self.spill.path} failed: {exc} "
+                              "(the records stay queued and are tried again)")  # fmt: skip
             return exc
         return None
 
@@ -399,5 +543,14 @@ class Writer:
         return True
 
     def spill_items(self, items: list[Item]) -> None:
-        self.spill.write(items)
+        """Append records to the spill file and count them; count a failure and raise it."""
+        try:
+            self.spill.write(items)
+        except Exception:
+            self.stats.spill_errors += 1
+            raise
         self.stats.spilled += len(items)
+
+
+# Sinks a forked child inherited in the middle of a write: kept, never closed (see above).
+ABANDONED: list[Sink] = []

@@ -22,9 +22,9 @@ from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any, Generic, ParamSpec, TypeVar
 
-from drawledger import _records, _sinks, _stream
+from drawledger import _lifecycle, _records, _sinks, _stream
 from drawledger._probability import decision_propensity
-from drawledger._writer import Chain, SpillFile, Stats, Writer
+from drawledger._writer import FORK_WAIT, Chain, SpillFile, Stats, Writer
 from drawledger.draw import Draw, DrawRecord, bucket_assign
 from drawledger.exceptions import (
     DecisionDefinitionError,
@@ -311,6 +311,7 @@ class Ledger:
             batch_size=self._batch_size,
             queue_size=self.queue_size,
             block_timeout=self.block_timeout,
+            on_start=_guard_exit,
         )
 
     def _open_sink(self) -> _sinks.Sink:
@@ -322,12 +323,13 @@ class Ledger:
         None when the ledger cannot be reached now: the chain starts unbound (prev_hash null)
         and the writer registers with its first batch that is written (docs/ledger.md).
         """
-        try:
-            sink = self._open_sink()
-            try:
-                return sink.register_writer(self.writer, time.time(), self._key)
-            finally:
-                sink.close()
+        try:  # under the writer's io_lock, which a fork waits for: SQLite must not fork mid-call
+            with self._writer.io_lock:
+                sink = self._open_sink()
+                try:
+                    return sink.register_writer(self.writer, time.time(), self._key)
+                finally:
+                    sink.close()
         except Exception as exc:  # the ledger is out of reach: the writer spills meanwhile
             log.warning("drawledger: writer %s not registered yet: %s", self.writer, exc)
             return None
@@ -335,7 +337,12 @@ class Ledger:
     def _after_fork(self) -> None:
         old = self._writer
         self._init_process()
-        old.forget_after_fork()
+        if not old.forget_after_fork():
+            self._writer.refusal = (
+                f"ledger {self.target!r}: this process was forked while the parent's writer was "
+                f"in a write for over {FORK_WAIT:g} s, so its database state cannot be used "
+                "here; fork while the ledger is idle (flush() first)"
+            )
 
     def __repr__(self) -> str:
         return f"Ledger({self.target!r}, writer={self.writer!r})"
@@ -542,18 +549,23 @@ class Ledger:
         if not self._writer.flush(timeout):
             raise LedgerError(f"flush of {self.target!r} timed out after {timeout} s")
 
-    def close(self) -> None:
-        """Flush and stop the writer. Also runs at interpreter exit. Safe to call twice."""
+    def close(self, timeout: float | None = None) -> None:
+        """Flush and stop the writer. Also runs at interpreter exit. Safe to call twice.
+
+        ``timeout`` bounds the flush (and the wait for the thread as much again); what is still
+        queued then is spilled. ``LedgerError`` when the flush failed or timed out.
+        """
         if self._closed:
             return
         try:
-            self.flush()
+            self.flush(timeout)
         finally:
             self._closed = True
-            self._writer.stop(timeout=30.0)
+            self._writer.stop(timeout=30.0 if timeout is None else timeout)
 
     def stats(self) -> dict[str, int]:
-        """Counters of this process: recorded, written, spilled, retried, dropped, queued."""
+        """Counters of this process: recorded, written, spilled, retried, dropped, spill_errors,
+        queued (docs/operations.md)."""
         out = self._stats.as_dict()
         out["queued"] = sum(1 for item in list(self._writer.queue) if isinstance(item, tuple))
         return out
@@ -564,17 +576,30 @@ class Ledger:
         return self._writer.spill.path
 
 
-def _close_all() -> None:
+def _close_all(timeout: float | None = _lifecycle.EXIT_TIMEOUT) -> None:
     for ledger in list(_LEDGERS):
-        with contextlib.suppress(Exception):  # interpreter exit: never raise from here
-            ledger.close()
+        with contextlib.suppress(Exception):  # process exit: never raise from here
+            ledger.close(timeout)
 
 
-def _after_fork_in_child() -> None:
-    for ledger in list(_LEDGERS):
-        ledger._after_fork()
+def _guard_exit() -> None:
+    _lifecycle.guard_exit(_close_all)
 
 
-atexit.register(_close_all)
+def _each_ledger(step: Callable[[Ledger], object]) -> Callable[[], None]:
+    """A fork hook that runs ``step`` on every ledger of this process."""
+
+    def hook() -> None:
+        for ledger in list(_LEDGERS):
+            step(ledger)
+
+    return hook
+
+
+atexit.register(_lifecycle.at_exit, _close_all)
 if hasattr(os, "register_at_fork"):
-    os.register_at_fork(after_in_child=_after_fork_in_child)
+    os.register_at_fork(
+        before=_each_ledger(lambda ledger: ledger._writer.before_fork()),
+        after_in_parent=_each_ledger(lambda ledger: ledger._writer.after_fork_in_parent()),
+        after_in_child=_each_ledger(Ledger._after_fork),
+    )
