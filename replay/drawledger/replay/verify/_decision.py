@@ -34,7 +34,6 @@ from drawledger.replay.propensity import (
     Propensity,
     read,
     remembered,
-    single_draw_probability,
 )
 from drawledger.replay.verify._imports import (
     build_inputs,
@@ -293,9 +292,11 @@ def _propensity(
 ) -> Propensity:
     """The replayed propensity of the recorded action.
 
-    A function whose draws were fully enumerated for its first decisions in this chunk (the
-    probes) and always made one draw returning its value is trusted to do so: later decisions
-    read the probability of that one draw ("exact") or its density.
+    A discrete action's probability is always read from the enumeration of this decision's
+    branches (cached per inputs and parameters): a run that made one draw and returned its
+    value does not show that no other option returns the same action. A function whose first
+    decisions in this chunk (the probes) always made one continuous draw returning its value
+    is trusted to do so: later decisions read that draw's density.
     """
     if not records:  # no draw: nothing random happens before or after
         return Propensity(1.0 if returned == action_key else 0.0, EXACT)
@@ -307,9 +308,6 @@ def _propensity(
         rec = records[0]
         if rec.is_density and returned == action_key:
             return Propensity(rec.prob, DENSITY)
-        p = None if rec.is_density else single_draw_probability(rec, action_key, encoded[0][4])
-        if p is not None:
-            return Propensity(p, EXACT)
     settings = ctx.settings
     found = remembered(ctx.memo, decision, inputs, params, action_key, budget=settings.budget,
                        mc_samples=settings.mc_samples, texts=texts)  # fmt: skip
