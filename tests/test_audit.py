@@ -570,3 +570,59 @@ def test_docs_audit_python_blocks_run(run_markdown: Callable[..., Any]) -> None:
     assert 0 == done.returncode, done.stderr
     assert "not as declared (p = 2.9e-131)" in done.stdout  # the value docs/audit.md quotes
     assert "slot-discount: ratio is not as declared" in done.stdout
+
+
+# -- declared values against their uniforms ------------------------------------------------------
+def test_declared_values_contradicting_their_uniforms_are_counted_and_named() -> None:
+    """A faulty port records 5% of its values off by one option: each contradicts the uniform
+    it recorded (draw spec v1: the first j with u < c_j), so the consistency check counts them,
+    names some, and the audit fails."""
+    d, w = synth.categorical(rng(21), 2000, [0.6, 0.3, 0.1])
+    d["fn"] = None  # declared draws: no function to replay
+    faulty = w.index[rng(22).random(len(w)) < 0.05]
+    w.loc[faulty, "value"] = [{"0": "1", "1": "2", "2": "0"}[v] for v in w.loc[faulty, "value"]]
+    w.loc[faulty, "prob"] = [{"1": 0.3, "2": 0.1, "0": 0.6}[v] for v in w.loc[faulty, "value"]]
+    report = audit_tables(d, w)
+    consistency = find(report, "slot-discount", "consistency")
+    assert (float(len(faulty)), True) == (consistency.statistic, consistency.alarm)
+    assert f"{len(faulty)} values contradict their uniforms" in consistency.detail
+    assert repr(str(d.loc[faulty[0], "decision_id"])) in consistency.detail
+    assert not report.ok
+    honest = audit_tables(*synth.categorical(rng(21), 2000, [0.6, 0.3, 0.1]))
+    assert 0.0 == find(honest, "slot-discount", "consistency").statistic
+
+
+def test_uniform_counts_that_do_not_fit_the_draw_contradict() -> None:
+    """A categorical draw uses one uniform, a slate of k = 2 two: other counts contradict."""
+    ledger_rows = [
+        ("categorical", {"options": ["a", "b"], "probs": [0.5, 0.5]}, "a", 0.5, [0.1, 0.2], 1.0),
+        ("slate", {"options": ["a", "b", "c"], "weights": [1.0, 1.0, 1.0], "k": 2}, ["a", "b"],
+         1 / 6, [0.1], 1.0),
+        ("slate", {"options": ["a", "b", "c"], "weights": [1.0, 1.0, 1.0], "k": 2}, ["a", "b"],
+         1 / 6, [0.1, 0.2], 0.0),
+    ]  # fmt: skip
+    for kind, args, value, prob, u, expected in ledger_rows:
+        d, w = synth.tables("port", kind, orjson.dumps(args).decode(),
+                            [orjson.dumps(value).decode()], np.array([prob]), None, rng(),
+                            seeded=False)  # fmt: skip
+        w["u"] = [orjson.dumps(u).decode()]
+        got = find(audit_tables(d, w), "port", "consistency").statistic
+        assert expected == got, (kind, u)
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(spec=valid_draws(), seed=seeds)
+def test_declared_values_drawn_by_the_sdk_never_contradict_their_uniforms(
+    spec: tuple[str, dict[str, Any]], seed: bytes
+) -> None:
+    """Every valid draw the SDK makes, declared with its uniforms, passes the check."""
+    kind, args = spec
+    draw = dl.Draw(seed)
+    getattr(draw, kind)(**args)
+    rec = draw.records[0]
+    d, w = synth.tables("fuzz", kind, orjson.dumps(rec.args).decode(),
+                        [orjson.dumps(rec.value).decode()], np.array([rec.prob]), None, rng(),
+                        seeded=False)  # fmt: skip
+    w["u"] = [orjson.dumps(rec.u).decode()]
+    consistency = find(audit_tables(d, w), "fuzz", "consistency")
+    assert 0.0 == consistency.statistic, consistency.detail

@@ -87,9 +87,9 @@ def chunk_state(
         s.decisions += len(part)
         s.seeded += len(seeds)
         s.seeds.merge(Sketch(sample_size, seeds.astype(str)))
-    rows = draws[list(AUDIT_DRAW_COLUMNS)].merge(
-        decisions[["decision_id", "stream", "unit", "ts", "inputs"]], on="decision_id"
-    )
+    columns = ["decision_id", "stream", "unit", "ts", "inputs"]
+    columns += ["fn"] if "fn" in decisions.columns else []  # no function: a declared draw
+    rows = draws[list(AUDIT_DRAW_COLUMNS)].merge(decisions[columns], on="decision_id")
     for (g_stream, kind, name), part in rows.groupby(
         ["stream", "kind", "name"], dropna=False, sort=False
     ):

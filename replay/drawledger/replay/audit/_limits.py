@@ -40,6 +40,13 @@ MIN_KS = 20
 MIN_RANK = 30
 
 
+# The consistency check names at most this many decisions whose value contradicts its uniforms.
+MAX_EXAMPLES = 5
+
+
+CONTRADICTS = "values contradict their uniforms (draw spec v1)"
+
+
 # The assignment-ratio test keeps per-option sums for at most this many distinct options.
 MAX_OPTIONS = 100
 

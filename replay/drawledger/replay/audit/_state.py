@@ -18,7 +18,9 @@ from drawledger.replay.audit._declared import Parsed, load_texts
 from drawledger.replay.audit._limits import (
     CAL_EDGES,
     CAL_KEYS,
+    CONTRADICTS,
     HASH_KEY,
+    MAX_EXAMPLES,
     MAX_OPTIONS,
     SALT_K,
     SALT_V,
@@ -28,6 +30,7 @@ from drawledger.replay.audit._limits import (
 )
 from drawledger.replay.audit._parse import close_to, parse_draws, parse_uniforms
 from drawledger.replay.audit._stats import BINS, FloatArray
+from drawledger.replay.audit._values import contradicting
 
 if TYPE_CHECKING:
     pass
@@ -172,6 +175,7 @@ class GroupState:
     varying: bool = False
     sample: _Sample = field(init=False)
     units: pd.DataFrame | None = None  # bucket draws: one row per unit
+    examples: list[str] = field(default_factory=list)  # ids of draws contradicting uniforms
 
     def __post_init__(self) -> None:
         self.sample = _Sample(self.size)
@@ -184,6 +188,7 @@ class GroupState:
                 self.signature, self.varying = None, True
         self.draws += o.draws
         self.problems.update(o.problems)
+        self.examples.extend(o.examples[: MAX_EXAMPLES - len(self.examples)])
         self.steps += o.steps
         self.uniforms += o.uniforms
         self.u_hist = self.u_hist + o.u_hist
@@ -222,13 +227,21 @@ def group_state(kind: str, frame: pd.DataFrame, size: int) -> tuple[GroupState, 
     problems = parsed.problems
     differs = parsed.ok & ~close_to(recorded, parsed.declared)
     problems["recorded probability differs from the declaration"] += int(differs.sum())
-    flat_u, u_len, malformed = parse_uniforms(frame["u"].to_numpy(dtype=object))
+    u_texts = frame["u"].to_numpy(dtype=object)
+    flat_u, u_len, malformed = parse_uniforms(u_texts)
     problems["recorded uniforms are not numbers in [0, 1]"] += int(malformed.sum())
+    # declared draws (no function to replay) with uniforms: their value must follow from them
+    declared = frame["fn"].isna().to_numpy() if "fn" in frame.columns else np.ones(len(frame), bool)
+    check = parsed.ok & ~differs & ~malformed & declared & (u_len > 0)
+    contradicts = contradicting(kind, args, u_texts, values, check)
+    problems[CONTRADICTS] += int(contradicts.sum())
+    ids = frame["decision_id"].to_numpy(dtype=object)
+    st.examples = [str(x) for x in ids[np.flatnonzero(contradicts)[:MAX_EXAMPLES]]]
     st.problems = Counter({k: v for k, v in problems.items() if v})
-    keep = (parsed.ok & ~differs & ~malformed)[parsed.row]
+    keep = (parsed.ok & ~differs & ~malformed)[parsed.row]  # contradicting values stay in
     row, step = parsed.row[keep], parsed.step[keep]
     st.steps = len(row)
-    h_row = _hash_ids(frame["decision_id"].to_numpy(dtype=object), frame["idx"].to_numpy(np.int64))
+    h_row = _hash_ids(ids, frame["idx"].to_numpy(np.int64))
     h = _stats.mix64(h_row[row] ^ ((step.astype(np.uint64) + np.uint64(1)) * STEP))
     v = _stats.to_unit(_stats.mix64(h ^ SALT_V))
     pit = np.clip(parsed.lo[keep] + v * parsed.width[keep], 0.0, 1.0)

@@ -54,6 +54,9 @@ def group_tests(key: GroupKey, g: GroupState) -> list[Found]:
 
     bad = sum(g.problems.values())
     detail = "; ".join(f"{v} {k}" for k, v in sorted(g.problems.items()))
+    if g.examples:
+        shown = ", ".join(repr(x[:40]) for x in g.examples)
+        detail += f" (contradicting their uniforms: decisions {shown})"
     out = [found("consistency", g.draws, None, count=bad, detail=detail)]
     if kind == "bucket" and g.units is not None:
         units = g.units
