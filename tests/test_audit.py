@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 from collections.abc import Callable
@@ -626,3 +627,62 @@ def test_declared_values_drawn_by_the_sdk_never_contradict_their_uniforms(
     w["u"] = [orjson.dumps(rec.u).decode()]
     consistency = find(audit_tables(d, w), "fuzz", "consistency")
     assert 0.0 == consistency.statistic, consistency.detail
+
+
+# -- arms repeated within units -------------------------------------------------------------------
+def test_units_pinned_to_one_arm_alarm_without_repeated_uniforms() -> None:
+    """A fifth of the shoppers keep their first discount on every visit while each visit
+    records a fresh uniform: the uniforms never repeat, the within-unit repeats do."""
+    d, w = synth.repeat_visits(rng(31), 500, 6, sticky=0.2)
+    report = audit_tables(d, w)
+    repeats = find(report, "slot-discount", "unit_repeats")
+    assert (2500, True) == (repeats.n, repeats.alarm)
+    assert not find(report, "slot-discount", "repeated_uniforms").alarm
+    assert not report.ok
+
+
+def test_unit_repeats_match_by_hand_and_across_chunks() -> None:
+    """Expected repeats are the later draw's declared probability of the earlier pick, summed
+    over consecutive pairs (worked by hand for two shoppers); chunks that split a shopper's
+    visits give the same pairs, formed at the merge."""
+    d, w = synth.repeat_visits(rng(32), 2, 3)
+    probs = [orjson.loads(a)["probs"] for a in w["args"]]
+    picks = [orjson.loads(v) for v in w["value"]]
+    expected = matches = 0.0
+    for shopper in (0, 1):
+        visits = [shopper, shopper + 2, shopper + 4]  # decision v * units + k
+        for e, late in itertools.pairwise(visits):
+            expected += probs[late][[0, 5, 10].index(picks[e])]
+            matches += picks[late] == picks[e]
+    for chunk in (None, 1, 3):
+        state_report = audit_tables(d, w, chunk_size=chunk)
+        t = find(state_report, "slot-discount", "unit_repeats")
+        assert 4 == t.n
+        assert f"{int(matches)} of 4 consecutive draws" in t.detail
+        assert f"{expected:.1f} expected" in t.detail
+
+
+CALIBRATION_RUNS = 50
+
+
+def _unit_repeat_p_values(runs: int) -> list[float]:
+    out = []
+    for seed in range(runs):
+        d, w = synth.repeat_visits(rng(1000 + seed), 150, 4)
+        t = find(audit_tables(d, w), "slot-discount", "unit_repeats")
+        assert t.p_value is not None
+        out.append(t.p_value)
+    return out
+
+
+def test_unit_repeat_p_values_are_uniform_under_correct_randomization() -> None:
+    """Kolmogorov-Smirnov of 50 seeded runs' p-values against scipy.stats.uniform."""
+    p = _unit_repeat_p_values(CALIBRATION_RUNS)
+    assert stats.kstest(p, stats.uniform.cdf).pvalue > 0.01
+
+
+@pytest.mark.slow
+def test_unit_repeat_p_values_are_uniform_in_500_runs() -> None:
+    """Kolmogorov-Smirnov of 500 seeded runs' p-values against scipy.stats.uniform."""
+    p = _unit_repeat_p_values(500)
+    assert stats.kstest(p, stats.uniform.cdf).pvalue > 0.01

@@ -99,6 +99,7 @@ TEST_LABELS = {
     "pit_vs_input": "PIT vs input",
     "pit_vs_hour": "PIT by hour of day",
     "unit_in_two_arms": "units in two arms",
+    "unit_repeats": "arms repeat within units",
     "repeated_seeds": "repeated seeds",
     "repeated_uniforms": "repeated uniforms",
 }

@@ -30,6 +30,7 @@ from drawledger.replay.audit._limits import (
 )
 from drawledger.replay.audit._parse import close_to, parse_draws, parse_uniforms
 from drawledger.replay.audit._stats import BINS, FloatArray
+from drawledger.replay.audit._units import PAIRED_KINDS, UnitPairs, unit_pairs
 from drawledger.replay.audit._values import contradicting
 
 if TYPE_CHECKING:
@@ -176,6 +177,7 @@ class GroupState:
     sample: _Sample = field(init=False)
     units: pd.DataFrame | None = None  # bucket draws: one row per unit
     examples: list[str] = field(default_factory=list)  # ids of draws contradicting uniforms
+    pairs: UnitPairs | None = None  # consecutive draws of the same unit
 
     def __post_init__(self) -> None:
         self.sample = _Sample(self.size)
@@ -206,6 +208,11 @@ class GroupState:
                 o.calibration if self.calibration is None else self.calibration.merge(o.calibration)
             )
         self.sample.merge(o.sample)
+        if o.pairs is not None:
+            if self.pairs is None:
+                self.pairs = o.pairs
+            else:
+                self.pairs.merge(o.pairs)
         if o.units is not None:
             self.units = (
                 o.units if self.units is None else merge_units([self.units, o.units], self.size)
@@ -257,6 +264,11 @@ def group_state(kind: str, frame: pd.DataFrame, size: int) -> tuple[GroupState, 
     pit_bin = np.minimum((pit * BINS).astype(np.int64), BINS - 1)
     st.hour_hist = np.bincount(hour * BINS + pit_bin, minlength=24 * BINS).reshape(24, BINS)
     st.note = parsed.note
+    if kind in PAIRED_KINDS and "unit" in frame.columns:
+        codes, uniq = pd.factorize(frame["unit"].to_numpy(dtype=object), use_na_sentinel=False)
+        names = np.array(["" if x is None or x != x else str(x) for x in uniq], dtype=object)
+        unit_keys = _hash_ids(names, np.zeros(len(names), np.int64))[codes]
+        st.pairs = unit_pairs(kind, frame, parsed, keep, unit_keys)
     if parsed.keys is not None and st.steps:
         _discrete_stats(st, parsed, keep)
     st.sample.add(_sample_frame(frame, row, ts, u, pit, _stats.mix64(h ^ SALT_K), size))

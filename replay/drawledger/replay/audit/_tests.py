@@ -25,6 +25,7 @@ from drawledger.replay.audit._limits import (
 from drawledger.replay.audit._report import AuditFigure, AuditTest
 from drawledger.replay.audit._state import Cells, GroupState, Sketch, StreamState
 from drawledger.replay.audit._stats import FloatArray, TestResult
+from drawledger.replay.audit._units import sticky_test
 
 if TYPE_CHECKING:
     pass
@@ -70,6 +71,11 @@ def group_tests(key: GroupKey, g: GroupState) -> list[Found]:
                 detail="counts units; each unit's first draw enters the other tests",
             )
         )
+    if g.pairs is not None and g.pairs.pairs:
+        pairs = g.pairs
+        how = (f"{pairs.matches} of {pairs.pairs} consecutive draws of a unit repeat its "
+               f"previous pick, {pairs.expected:.1f} expected")  # fmt: skip
+        out.append(found("unit_repeats", pairs.pairs, sticky_test(pairs), detail=how))
     if not g.steps:
         return out
     if g.ratio is not None and int((g.ratio.expected > 0).sum()) >= 2:
