@@ -686,3 +686,31 @@ def test_unit_repeat_p_values_are_uniform_in_500_runs() -> None:
     """Kolmogorov-Smirnov of 500 seeded runs' p-values against scipy.stats.uniform."""
     p = _unit_repeat_p_values(500)
     assert stats.kstest(p, stats.uniform.cdf).pvalue > 0.01
+
+
+# -- decisions without draws ----------------------------------------------------------------------
+def test_actions_varying_without_draws_name_randomness_outside_draw(ledger: dl.Ledger) -> None:
+    """A decision that picks its card with the `random` module records no draw; the same
+    inputs then show different actions, and the audit says what likely happened."""
+    import random
+
+    rand = random.Random(3)
+
+    @ledger.decision("hidden-card")
+    def hidden(tier: str, draw: dl.Draw) -> str:
+        return rand.choice(synth.CARDS)
+
+    @ledger.decision("fixed-card")
+    def fixed(tier: str, draw: dl.Draw) -> str:
+        return synth.CARDS[len(tier)]
+
+    for i in range(40):
+        hidden("plus" if i % 2 else "basic")
+        fixed("plus" if i % 2 else "basic")
+    report = audit(ledger)
+    varied = find(report, "hidden-card", "actions_without_draws")
+    assert (2.0, True, 40) == (varied.statistic, varied.alarm, varied.n)
+    assert "likely randomness outside `draw` (the `random` module" in varied.detail
+    assert "random or clock outside draw" in report.render()
+    assert not find(report, "fixed-card", "actions_without_draws").alarm
+    assert not report.ok

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import importlib
+import json
 import math
 import os
 import sqlite3
@@ -518,3 +519,22 @@ def test_one_draw_returning_its_value_is_not_exact_when_two_cards_share_the_acti
     assert len(folded) > 0
     assert [0.2] * len(folded) == pytest.approx(list(folded["propensity"]), rel=1e-12)
     assert {"enumerated"} == set(folded["propensity_method"])
+
+
+def test_randomness_outside_draw_is_named_as_the_likely_cause(
+    service: Callable[..., Service],
+) -> None:
+    """A card picked with the `random` module makes no draw: the recorded actions cannot be
+    replayed, and the reasons say why in plain words."""
+    body = "    import random\n\n    return cards[random.randrange(3)]"
+    s = service(body, n=30)
+    import random
+
+    random.seed(5)
+    report = s.verify()
+    assert {"action", "nondeterministic"} <= set(report.by_reason)
+    action_detail = report.examples["action"][0][1]
+    assert "although no draw was made: likely randomness outside `draw`" in action_detail
+    assert "the `random` module, a global numpy generator), a clock" in action_detail
+    assert "likely randomness outside `draw`" in report.examples["nondeterministic"][0][1]
+    assert "likely randomness outside `draw`" in json.dumps(report.to_dict())

@@ -378,6 +378,56 @@ def unit_frame(rows: pd.DataFrame, size: int) -> pd.DataFrame:
     return merge_units([units], size)
 
 
+class Undrawn:
+    """Decisions without draws: the actions seen per (function, inputs, parameters).
+
+    Such a decision should be a function of what it recorded; two actions for the same record
+    show randomness the ledger did not capture. Keeps at most ``size`` records (those with the
+    smallest keyed hash), so the count is over a sample when ``truncated``.
+    """
+
+    def __init__(self, size: int) -> None:
+        self.size = size
+        self.decisions = 0
+        self.truncated = False
+        self.actions: dict[int, int] = {}  # record key -> action key, or VARIED
+
+    VARIED = -1
+
+    def add(self, records: npt.NDArray[Any], actions: npt.NDArray[Any]) -> None:
+        self.decisions += len(records)
+        keys = id_keys(records.astype(str), HASH_KEY).tolist()
+        acts = id_keys(actions.astype(str), HASH_KEY).astype(np.int64).tolist()
+        self._put(dict(zip(keys, acts, strict=True)) if len(set(keys)) == len(keys)
+                  else _fold(keys, acts))  # fmt: skip
+
+    def _put(self, other: dict[int, int]) -> None:
+        mine = self.actions
+        for k, a in other.items():
+            seen = mine.get(k)
+            mine[k] = a if seen is None or seen == a else self.VARIED
+        if len(mine) > self.size:
+            self.actions = dict(sorted(mine.items())[: self.size])
+            self.truncated = True
+
+    def merge(self, o: Undrawn) -> None:
+        self.decisions += o.decisions
+        self.truncated |= o.truncated
+        self._put(o.actions)
+
+    @property
+    def varied(self) -> int:
+        return sum(1 for a in self.actions.values() if a == self.VARIED)
+
+
+def _fold(keys: list[int], acts: list[int]) -> dict[int, int]:
+    out: dict[int, int] = {}
+    for k, a in zip(keys, acts, strict=True):
+        seen = out.get(k)
+        out[k] = a if seen is None or seen == a else Undrawn.VARIED
+    return out
+
+
 @dataclass
 class StreamState:
     seeds: Sketch
@@ -385,6 +435,7 @@ class StreamState:
     decisions: int = 0
     seeded: int = 0  # decisions with a seed
     uniform_count: int = 0  # uniforms recorded by draws other than bucket
+    undrawn: Undrawn | None = None
 
     def merge(self, o: StreamState) -> None:
         self.seeds.merge(o.seeds)
@@ -392,3 +443,8 @@ class StreamState:
         self.decisions += o.decisions
         self.seeded += o.seeded
         self.uniform_count += o.uniform_count
+        if o.undrawn is not None:
+            if self.undrawn is None:
+                self.undrawn = o.undrawn
+            else:
+                self.undrawn.merge(o.undrawn)

@@ -173,8 +173,26 @@ def _by_hour(hist: IntArray) -> tuple[TestResult | None, int]:
     return TestResult(stat, float(stats.chi2.sf(stat, df)), df), len(used)
 
 
+UNDRAWN_CAUSE = (
+    "the same function, inputs and parameters gave different actions without a recorded draw: "
+    "likely randomness outside `draw` (the `random` module, a global numpy generator) or a clock"
+)
+
+
 def stream_tests(stream: str, s: StreamState) -> list[Found]:
     out = []
+    if s.undrawn is not None:
+        u = s.undrawn
+        varied = u.varied
+        detail = (
+            f"{varied} record(s): {UNDRAWN_CAUSE}"
+            if varied
+            else ("decisions without draws give one action per function, inputs and parameters")
+        )
+        if u.truncated:
+            detail += f" (on a sample of {len(u.actions)} records)"
+        out.append(Found(stream, None, None, "actions_without_draws", u.decisions, None,
+                         count=varied, detail=detail))  # fmt: skip
     if s.seeded:
         kept = int(s.seeds.counts.sum())
         share = _seed_share(s.seeds) if s.seeds.truncated else 1.0

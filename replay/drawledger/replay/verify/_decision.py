@@ -44,6 +44,9 @@ from drawledger.replay.verify._imports import (
 )
 from drawledger.replay.verify._types import PROBES, REL_TOL, SHOW, Row, Settings
 
+OUTSIDE_DRAW = ("likely randomness outside `draw` (the `random` module, a global numpy "
+                "generator), a clock, or state kept between calls")  # fmt: skip
+
 
 def _close(a: float, b: float) -> bool:
     return a == b or abs(a - b) <= REL_TOL * max(abs(a), abs(b))
@@ -251,7 +254,10 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
         action_key = action
     else:
         action_key = to_json(from_json(row[DEC.action]), "action")
-        out.add("action", f"action {_short(action)} replayed, {_short(row[DEC.action])} recorded")
+        detail = f"action {_short(action)} replayed, {_short(row[DEC.action])} recorded"
+        if not records and not draws:
+            detail += f" although no draw was made: {OUTSIDE_DRAW}"
+        out.add("action", detail)
     prop, kind = _logged(first, action)
     if not _close(prop, logged) or kind != row[DEC.propensity_kind]:
         recorded = f"{logged!r} ({row[DEC.propensity_kind]})"
@@ -268,8 +274,8 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
         out.add("nondeterministic", f"a second run raised {type(exc).__name__}: {exc}")
     else:
         if not same:
-            out.add("nondeterministic", "a second run with the same seed and inputs differs "
-                    "(hidden state, a clock, or inputs changed by the function)")  # fmt: skip
+            out.add("nondeterministic", "a second run with the same seed and inputs differs: "
+                    f"{OUTSIDE_DRAW}, or inputs changed by the function")  # fmt: skip
     try:
         out.propensity = _propensity(ctx, decision, inputs, params, action_key, records, first,
                                      action, (row[DEC.inputs], row[DEC.params]))  # fmt: skip
