@@ -17,6 +17,7 @@ __all__ = [
     "NotADecisionError",
     "NotSerializableError",
     "ReplayError",
+    "UnreplayableDecisionWarning",
 ]
 
 
@@ -65,3 +66,7 @@ class NotADecisionError(ReplayError):
 
 class BadRecordError(ReplayError):
     """A ledger record cannot be decoded: corrupt JSON, NaN, wrong types, a malformed seed."""
+
+
+class UnreplayableDecisionWarning(UserWarning):
+    """A decision is defined where replay cannot import it again (a script run as __main__)."""
