@@ -34,15 +34,18 @@ import numpy.typing as npt
 import pandas as pd
 from scipy import sparse, stats
 
-from drawledger.replay.audit._declared import Parsed
+from drawledger._probability import integers_args, option_probabilities
+from drawledger.exceptions import DrawArgumentError
+from drawledger.replay.audit._declared import Parsed, canon, load_texts
+from drawledger.replay.audit._limits import MAX_OPTIONS
 from drawledger.replay.audit._stats import MIN_EXPECTED, TestResult
 
 if TYPE_CHECKING:
     pass
 
 
-# Boundary records kept per draw for pairs across chunks (about 200 bytes each plus the
-# declared distribution of the unit's first draw in the chunk).
+# Boundary records kept per draw for pairs across chunks (about 300 bytes each, with the
+# declaration's JSON text of the unit's first draw in the chunk).
 MAX_UNITS = 100_000
 
 
@@ -50,36 +53,63 @@ MAX_UNITS = 100_000
 PAIRED_KINDS = frozenset({"categorical", "bernoulli", "integers", "softmax", "epsilon_greedy"})
 
 
-Order = tuple[float, str, int]  # ts, decision id, draw index
+EDGE_COLUMNS = ("unit", "key", "f_ts", "f_id", "f_idx", "f_pick", "f_args",
+                "l_ts", "l_id", "l_idx", "l_pick")  # fmt: skip
 
 
-@dataclass
-class Edge:
-    """A unit's first draw (order, pick, declared distribution) and last (order, pick)."""
+def _before(ts: Any, ids: Any, idx: Any, ts2: Any, ids2: Any, idx2: Any) -> Any:
+    """(ts, id, idx) <= (ts2, id2, idx2), elementwise."""
+    return (ts < ts2) | ((ts == ts2) & ((ids < ids2) | ((ids == ids2) & (idx <= idx2))))
 
-    key: int  # hash of the unit: which units the bound keeps
-    first: Order
-    first_pick: str
-    first_dist: dict[str, float]
-    last: Order
-    last_pick: str
+
+def declared_probability(
+    kind: str, args_text: str, pick: str, seen: dict[str, dict[str, float]]
+) -> float:
+    """The probability a declaration gives to an option (canonical JSON), as the SDK has it;
+    ``seen`` caches the distributions of declarations by their text."""
+    dist = seen.get(args_text)
+    if dist is None:
+        dist = seen[args_text] = _distribution(kind, args_text)
+    return dist.get(pick, 0.0)
+
+
+def _distribution(kind: str, args_text: str) -> dict[str, float]:
+    a = load_texts([args_text])[0]
+    if not isinstance(a, dict):
+        return {}
+    dist: dict[str, float] = {}
+    try:
+        if kind == "integers":
+            low, high, each = integers_args(a.get("low"), a.get("high"))
+            return {str(v): each for v in range(low, high)} if high - low <= MAX_OPTIONS else {}
+        options, probs = option_probabilities(kind, a)
+    except (DrawArgumentError, TypeError):
+        return {}
+    for o, p in zip(options, probs, strict=True):
+        k = canon(o)
+        dist[k] = dist.get(k, 0.0) + p
+    return dist
 
 
 @dataclass
 class UnitPairs:
-    """Sums over pairs of consecutive draws of the same unit, and the units' boundary draws."""
+    """Sums over pairs of consecutive draws of the same unit, and the units' boundary draws
+    (``edges``: one row per unit, its first draw's order, pick and declaration, its last
+    draw's order and pick)."""
 
+    kind: str
     pairs: int = 0
     matches: int = 0
     expected: float = 0.0
     variance: float = 0.0
-    edges: dict[Any, Edge] = field(default_factory=dict)
+    edges: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=list(EDGE_COLUMNS)))
 
-    def add(self, matched: bool, p: float) -> None:
-        self.pairs += 1
-        self.matches += int(matched)
-        self.expected += p
-        self.variance += p * (1.0 - p)
+    def _add(self, matched: npt.NDArray[np.bool_], p: list[float]) -> None:
+        q = np.asarray(p, np.float64)
+        self.pairs += len(q)
+        self.matches += int(matched.sum())
+        self.expected += float(q.sum())
+        self.variance += float((q * (1.0 - q)).sum())
 
     def merge(self, o: UnitPairs) -> None:
         """Add ``o``, the statistics of later chunks (pairs across the two are formed here)."""
@@ -87,23 +117,40 @@ class UnitPairs:
         self.matches += o.matches
         self.expected += o.expected
         self.variance += o.variance
-        for unit, b in o.edges.items():
-            a = self.edges.get(unit)
-            if a is None:
-                self.edges[unit] = b
-                continue
-            if a.last <= b.first:  # b's first draw comes after a's last: one more pair
-                self.add(b.first_pick == a.last_pick, b.first_dist.get(a.last_pick, 0.0))
-            elif b.last <= a.first:
-                self.add(a.first_pick == b.last_pick, a.first_dist.get(b.last_pick, 0.0))
-            # else the chunks interleave in time: no pair across them for this unit
-            early = a if a.first <= b.first else b
-            last = a if a.last >= b.last else b
-            self.edges[unit] = Edge(a.key, early.first, early.first_pick, early.first_dist,
-                                    last.last, last.last_pick)  # fmt: skip
-        if len(self.edges) > MAX_UNITS:
-            kept = sorted(self.edges.items(), key=lambda kv: kv[1].key)[:MAX_UNITS]
-            self.edges = dict(kept)
+        a, b = self.edges, o.edges
+        both = a.merge(b, on="unit", suffixes=("_a", "_b"))
+        if len(both):
+            seen: dict[str, dict[str, float]] = {}
+            c = {k: both[k].to_numpy() for k in both.columns}
+            fwd = _before(c["l_ts_a"], c["l_id_a"], c["l_idx_a"],
+                          c["f_ts_b"], c["f_id_b"], c["f_idx_b"])  # fmt: skip
+            bwd = ~fwd & _before(c["l_ts_b"], c["l_id_b"], c["l_idx_b"],
+                                 c["f_ts_a"], c["f_id_a"], c["f_idx_a"])  # fmt: skip
+            for later, earlier, mask in (("b", "a", fwd), ("a", "b", bwd)):
+                if mask.any():
+                    picks, args = c[f"l_pick_{earlier}"][mask], c[f"f_args_{later}"][mask]
+                    p = [declared_probability(self.kind, t, k, seen)
+                         for t, k in zip(args.tolist(), picks.tolist(), strict=True)]  # fmt: skip
+                    self._add(c[f"f_pick_{later}"][mask] == picks, p)
+            # the union keeps each unit's earliest first draw and latest last draw
+            first_b = ~_before(c["f_ts_a"], c["f_id_a"], c["f_idx_a"],
+                               c["f_ts_b"], c["f_id_b"], c["f_idx_b"])  # fmt: skip
+            last_a = ~_before(c["l_ts_a"], c["l_id_a"], c["l_idx_a"],
+                              c["l_ts_b"], c["l_id_b"], c["l_idx_b"])  # fmt: skip
+            joined = {"unit": c["unit"], "key": c["key_a"]}
+            for col in ("f_ts", "f_id", "f_idx", "f_pick", "f_args"):
+                joined[col] = np.where(first_b, c[col + "_b"], c[col + "_a"])
+            for col in ("l_ts", "l_id", "l_idx", "l_pick"):
+                joined[col] = np.where(last_a, c[col + "_a"], c[col + "_b"])
+            parts = [a[~a["unit"].isin(b["unit"])], b[~b["unit"].isin(a["unit"])],
+                     pd.DataFrame(joined)]  # fmt: skip
+        else:
+            parts = [a, b]
+        parts = [x for x in parts if len(x)]
+        merged = pd.concat(parts, ignore_index=True) if parts else a
+        if len(merged) > MAX_UNITS:
+            merged = merged.iloc[np.argsort(merged["key"].to_numpy(np.uint64))[:MAX_UNITS]]
+        self.edges = merged.reset_index(drop=True)
 
 
 def unit_pairs(
@@ -123,7 +170,7 @@ def unit_pairs(
     pick = parsed.flat_key[parsed.chosen]
     units = frame["unit"].to_numpy(dtype=object)[parsed.row]
     steps = np.flatnonzero(keep & ~pd.isna(units))
-    out = UnitPairs()
+    out = UnitPairs(kind)
     if not len(steps):
         return out
     rows = parsed.row[steps]
@@ -133,7 +180,7 @@ def unit_pairs(
         "id": frame["decision_id"].to_numpy(dtype=object)[rows].astype(str),
         "idx": frame["idx"].to_numpy(np.int64)[rows],
         "step": steps,
-        "key": unit_keys[rows],
+        "row": rows,
     }).sort_values(["unit", "ts", "id", "idx"], kind="stable")  # fmt: skip
     unit = table["unit"].to_numpy(dtype=object)
     step = table["step"].to_numpy(np.int64)
@@ -147,21 +194,21 @@ def unit_pairs(
         out.variance = float((p * (1.0 - p)).sum())
     firsts = np.flatnonzero(np.r_[True, ~same])
     lasts = np.r_[firsts[1:] - 1, len(unit) - 1]
-    keys = table["key"].to_numpy(np.uint64)
+    row = table["row"].to_numpy(np.int64)
+    keys = unit_keys[row[firsts]]
     if len(firsts) > MAX_UNITS:
-        chosen = np.sort(np.argpartition(keys[firsts], MAX_UNITS - 1)[:MAX_UNITS])
-        firsts, lasts = firsts[chosen], lasts[chosen]
-    ts, ids, idx = table["ts"].to_list(), table["id"].to_list(), table["idx"].to_list()
-    names = parsed.keys
-    for f, last in zip(firsts.tolist(), lasts.tolist(), strict=True):
-        s = int(step[f])
-        lo, hi = dist.indptr[s], dist.indptr[s + 1]
-        options = dist.indices[lo:hi].tolist()
-        first_dist = {names[k]: v for k, v in zip(options, dist.data[lo:hi].tolist(), strict=True)}
-        out.edges[unit[f]] = Edge(
-            int(keys[f]), (ts[f], ids[f], idx[f]), names[pick[s]], first_dist,
-            (ts[last], ids[last], idx[last]), names[pick[int(step[last])]],
-        )  # fmt: skip
+        chosen = np.sort(np.argpartition(keys, MAX_UNITS - 1)[:MAX_UNITS])
+        firsts, lasts, keys = firsts[chosen], lasts[chosen], keys[chosen]
+    names = np.array(parsed.keys, dtype=object)
+    ts, ids, idx = (table[c].to_numpy() for c in ("ts", "id", "idx"))
+    out.edges = pd.DataFrame({
+        "unit": unit[firsts], "key": keys,
+        "f_ts": ts[firsts], "f_id": ids[firsts], "f_idx": idx[firsts],
+        "f_pick": names[pick[step[firsts]]],
+        "f_args": frame["args"].to_numpy(dtype=object)[row[firsts]],
+        "l_ts": ts[lasts], "l_id": ids[lasts], "l_idx": idx[lasts],
+        "l_pick": names[pick[step[lasts]]],
+    })  # fmt: skip
     return out
 
 

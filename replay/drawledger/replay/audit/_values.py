@@ -14,8 +14,10 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import numpy.typing as npt
+import pandas as pd
 
-from drawledger.draw import Draw
+from drawledger._probability import option_probabilities
+from drawledger.draw import Draw, categorical_index
 from drawledger.exceptions import DrawArgumentError
 from drawledger.replay.audit._declared import BAD_JSON, canon, load_texts
 from drawledger.replay.audit._limits import CONTINUOUS_KINDS
@@ -104,25 +106,60 @@ def contradicting(
     check: npt.NDArray[np.bool_],
 ) -> npt.NDArray[np.bool_]:
     """Which draws (among ``check``, with at least one recorded uniform) have a value other
-    than the one their arguments and uniforms give."""
+    than the one their arguments and uniforms give.
+
+    Kinds that pick one of their options with one uniform read the options and probabilities
+    once per distinct declaration (``option_probabilities``) and apply the SDK's picking rule
+    (``categorical_index``) per draw; the other kinds run the SDK's ``Draw`` per draw.
+    """
     out = np.zeros(len(args), bool)
     if kind not in CHECKED_KINDS:
         return out
     rows = np.flatnonzero(check)
     if not len(rows):
         return out
-    loaded_u = load_texts(u[rows])
-    loaded_args = load_texts(args[rows])
-    loaded_values = load_texts(values[rows])
-    for i, a, us, v in zip(rows, loaded_args, loaded_u, loaded_values, strict=True):
-        if not isinstance(us, list) or not us or not isinstance(a, dict) or v is BAD_JSON:
+    a_codes, a_uniq = pd.factorize(args[rows], use_na_sentinel=False)
+    v_codes, v_uniq = pd.factorize(values[rows], use_na_sentinel=False)
+    loaded_args = load_texts(a_uniq)
+    recorded = load_texts(v_uniq)
+    recorded_keys = [None if v is BAD_JSON else canon(v) for v in recorded]
+    picks = [_picks(kind, a) for a in loaded_args] if kind in PICK_KINDS else None
+    for i, a, us, v in zip(rows.tolist(), a_codes.tolist(), load_texts(u[rows]),
+                           v_codes.tolist(), strict=True):  # fmt: skip
+        if not isinstance(us, list) or not us or recorded[v] is BAD_JSON:
+            continue
+        if picks is not None:
+            found = picks[a]
+            if found is None:
+                continue  # not a declaration of the kind: the parse reports it
+            keys, probs = found
+            out[i] = (
+                len(us) != 1 or keys[categorical_index(probs, float(us[0]))] != recorded_keys[v]
+            )
+            continue
+        args_a = loaded_args[a]
+        if not isinstance(args_a, dict):
             continue
         try:
-            value = value_from_uniforms(kind, a, us)
+            value = value_from_uniforms(kind, args_a, us)
         except (DrawArgumentError, KeyError, TypeError):
-            continue  # not a declaration of the kind: the parse reports it
+            continue
         except ValueError:
             out[i] = True  # too few or too many uniforms for the draw
             continue
-        out[i] = not _agrees(kind, value, v)
+        out[i] = not _agrees(kind, value, recorded[v])
     return out
+
+
+PICK_KINDS = frozenset({"categorical", "softmax", "epsilon_greedy", "bernoulli"})
+
+
+def _picks(kind: str, a: Any) -> tuple[list[str], list[float]] | None:
+    """The options (canonical JSON) and probabilities of a declaration, as the SDK draws them."""
+    if not isinstance(a, dict):
+        return None
+    try:
+        options, probs = option_probabilities(kind, a)
+    except (DrawArgumentError, TypeError):
+        return None
+    return [canon(o) for o in options], probs
