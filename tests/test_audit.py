@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 from collections.abc import Callable
@@ -570,3 +571,147 @@ def test_docs_audit_python_blocks_run(run_markdown: Callable[..., Any]) -> None:
     assert 0 == done.returncode, done.stderr
     assert "not as declared (p = 2.9e-131)" in done.stdout  # the value docs/audit.md quotes
     assert "slot-discount: ratio is not as declared" in done.stdout
+
+
+# -- declared values against their uniforms ------------------------------------------------------
+def test_declared_values_contradicting_their_uniforms_are_counted_and_named() -> None:
+    """A faulty port records 5% of its values off by one option: each contradicts the uniform
+    it recorded (draw spec v1: the first j with u < c_j), so the consistency check counts them,
+    names some, and the audit fails."""
+    d, w = synth.categorical(rng(21), 2000, [0.6, 0.3, 0.1])
+    d["fn"] = None  # declared draws: no function to replay
+    faulty = w.index[rng(22).random(len(w)) < 0.05]
+    w.loc[faulty, "value"] = [{"0": "1", "1": "2", "2": "0"}[v] for v in w.loc[faulty, "value"]]
+    w.loc[faulty, "prob"] = [{"1": 0.3, "2": 0.1, "0": 0.6}[v] for v in w.loc[faulty, "value"]]
+    report = audit_tables(d, w)
+    consistency = find(report, "slot-discount", "consistency")
+    assert (float(len(faulty)), True) == (consistency.statistic, consistency.alarm)
+    assert f"{len(faulty)} values contradict their uniforms" in consistency.detail
+    assert repr(str(d.loc[faulty[0], "decision_id"])) in consistency.detail
+    assert not report.ok
+    honest = audit_tables(*synth.categorical(rng(21), 2000, [0.6, 0.3, 0.1]))
+    assert 0.0 == find(honest, "slot-discount", "consistency").statistic
+
+
+def test_uniform_counts_that_do_not_fit_the_draw_contradict() -> None:
+    """A categorical draw uses one uniform, a slate of k = 2 two: other counts contradict."""
+    ledger_rows = [
+        ("categorical", {"options": ["a", "b"], "probs": [0.5, 0.5]}, "a", 0.5, [0.1, 0.2], 1.0),
+        ("slate", {"options": ["a", "b", "c"], "weights": [1.0, 1.0, 1.0], "k": 2}, ["a", "b"],
+         1 / 6, [0.1], 1.0),
+        ("slate", {"options": ["a", "b", "c"], "weights": [1.0, 1.0, 1.0], "k": 2}, ["a", "b"],
+         1 / 6, [0.1, 0.2], 0.0),
+    ]  # fmt: skip
+    for kind, args, value, prob, u, expected in ledger_rows:
+        d, w = synth.tables("port", kind, orjson.dumps(args).decode(),
+                            [orjson.dumps(value).decode()], np.array([prob]), None, rng(),
+                            seeded=False)  # fmt: skip
+        w["u"] = [orjson.dumps(u).decode()]
+        got = find(audit_tables(d, w), "port", "consistency").statistic
+        assert expected == got, (kind, u)
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(spec=valid_draws(), seed=seeds)
+def test_declared_values_drawn_by_the_sdk_never_contradict_their_uniforms(
+    spec: tuple[str, dict[str, Any]], seed: bytes
+) -> None:
+    """Every valid draw the SDK makes, declared with its uniforms, passes the check."""
+    kind, args = spec
+    draw = dl.Draw(seed)
+    getattr(draw, kind)(**args)
+    rec = draw.records[0]
+    d, w = synth.tables("fuzz", kind, orjson.dumps(rec.args).decode(),
+                        [orjson.dumps(rec.value).decode()], np.array([rec.prob]), None, rng(),
+                        seeded=False)  # fmt: skip
+    w["u"] = [orjson.dumps(rec.u).decode()]
+    consistency = find(audit_tables(d, w), "fuzz", "consistency")
+    assert 0.0 == consistency.statistic, consistency.detail
+
+
+# -- arms repeated within units -------------------------------------------------------------------
+def test_units_pinned_to_one_arm_alarm_without_repeated_uniforms() -> None:
+    """A fifth of the shoppers keep their first discount on every visit while each visit
+    records a fresh uniform: the uniforms never repeat, the within-unit repeats do."""
+    d, w = synth.repeat_visits(rng(31), 500, 6, sticky=0.2)
+    report = audit_tables(d, w)
+    repeats = find(report, "slot-discount", "unit_repeats")
+    assert (2500, True) == (repeats.n, repeats.alarm)
+    assert not find(report, "slot-discount", "repeated_uniforms").alarm
+    assert not report.ok
+
+
+def test_unit_repeats_match_by_hand_and_across_chunks() -> None:
+    """Expected repeats are the later draw's declared probability of the earlier pick, summed
+    over consecutive pairs (worked by hand for two shoppers); chunks that split a shopper's
+    visits give the same pairs, formed at the merge."""
+    d, w = synth.repeat_visits(rng(32), 2, 3)
+    probs = [orjson.loads(a)["probs"] for a in w["args"]]
+    picks = [orjson.loads(v) for v in w["value"]]
+    expected = matches = 0.0
+    for shopper in (0, 1):
+        visits = [shopper, shopper + 2, shopper + 4]  # decision v * units + k
+        for e, late in itertools.pairwise(visits):
+            expected += probs[late][[0, 5, 10].index(picks[e])]
+            matches += picks[late] == picks[e]
+    for chunk in (None, 1, 3):
+        state_report = audit_tables(d, w, chunk_size=chunk)
+        t = find(state_report, "slot-discount", "unit_repeats")
+        assert 4 == t.n
+        assert f"{int(matches)} of 4 consecutive draws" in t.detail
+        assert f"{expected:.1f} expected" in t.detail
+
+
+CALIBRATION_RUNS = 50
+
+
+def _unit_repeat_p_values(runs: int) -> list[float]:
+    out = []
+    for seed in range(runs):
+        d, w = synth.repeat_visits(rng(1000 + seed), 150, 4)
+        t = find(audit_tables(d, w), "slot-discount", "unit_repeats")
+        assert t.p_value is not None
+        out.append(t.p_value)
+    return out
+
+
+def test_unit_repeat_p_values_are_uniform_under_correct_randomization() -> None:
+    """Kolmogorov-Smirnov of 50 seeded runs' p-values against scipy.stats.uniform."""
+    p = _unit_repeat_p_values(CALIBRATION_RUNS)
+    assert stats.kstest(p, stats.uniform.cdf).pvalue > 0.01
+
+
+@pytest.mark.slow
+def test_unit_repeat_p_values_are_uniform_in_500_runs() -> None:
+    """Kolmogorov-Smirnov of 500 seeded runs' p-values against scipy.stats.uniform."""
+    p = _unit_repeat_p_values(500)
+    assert stats.kstest(p, stats.uniform.cdf).pvalue > 0.01
+
+
+# -- decisions without draws ----------------------------------------------------------------------
+def test_actions_varying_without_draws_name_randomness_outside_draw(ledger: dl.Ledger) -> None:
+    """A decision that picks its card with the `random` module records no draw; the same
+    inputs then show different actions, and the audit says what likely happened."""
+    import random
+
+    rand = random.Random(3)
+
+    @ledger.decision("hidden-card")
+    def hidden(tier: str, draw: dl.Draw) -> str:
+        return rand.choice(synth.CARDS)
+
+    @ledger.decision("fixed-card")
+    def fixed(tier: str, draw: dl.Draw) -> str:
+        return synth.CARDS[len(tier)]
+
+    for i in range(40):
+        hidden("plus" if i % 2 else "basic")
+        fixed("plus" if i % 2 else "basic")
+    for chunk in (7, 50_000):  # the same inputs in different chunks still meet at the merge
+        varied = find(audit(ledger, chunk_size=chunk), "hidden-card", "actions_without_draws")
+        assert (2.0, True, 40) == (varied.statistic, varied.alarm, varied.n)
+    report = audit(ledger)
+    assert "likely randomness outside `draw` (the `random` module" in varied.detail
+    assert "random or clock outside draw" in report.render()
+    assert not find(report, "fixed-card", "actions_without_draws").alarm
+    assert not report.ok

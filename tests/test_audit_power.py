@@ -2,8 +2,8 @@
 
 Calibration: correctly randomized streams raise an alarm in at most 1% of seeded runs.
 Power: with 100,000 decisions, five kinds of faulty randomization are flagged in at least 99%
-of seeded runs. The full runs (200 and 100 seeds) are marked slow; the default run checks a
-few seeds of each.
+of seeded runs, and shoppers pinned to one arm with 1,600 decisions. The full runs (200 and
+100 seeds) are marked slow; the default run checks a few seeds of each.
 """
 
 from __future__ import annotations
@@ -24,6 +24,7 @@ CORRECT: dict[str, Make] = {
     "softmax": lambda r: synth.softmax(r, 5000, 0.7),
     "lognormal": lambda r: synth.lognormal(r, 5000, 0.35),
     "bucket": lambda r: synth.bucket(r, 5000, units=3000),
+    "repeat visits": lambda r: synth.repeat_visits(r, 1250, 4),
 }
 
 N = 100_000
@@ -36,6 +37,10 @@ FAULTY: dict[str, Make] = {
     "uniforms reused across decisions": lambda r: synth.categorical(r, N, [0.6, 0.3, 0.1], reuse=2),
     "bucket share moves with the hour of day": lambda r: synth.bucket(
         r, N, units=60_000, hour_swing=0.05
+    ),
+    # far fewer decisions suffice: 400 shoppers, 4 visits each (1,600 decisions)
+    "a fifth of the shoppers pinned to their first discount": lambda r: synth.repeat_visits(
+        r, 400, 4, sticky=0.2
     ),
 }
 

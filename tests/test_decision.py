@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 import threading
+import warnings
 from typing import Any
 
 import pytest
@@ -376,3 +377,26 @@ def test_bucket_assignment_is_recorded_and_stable(ledger: dl.Ledger) -> None:
     assert "bucket" == draw.kind
     assert {"unit": "shopper-000017", "shares": shares, "salt": "reminder-test"} == draw.args
     assert "reminders" == cap.decisions[-1].stream
+
+
+def test_a_decision_defined_in_main_warns_that_replay_cannot_import_it(
+    ledger: dl.Ledger,
+) -> None:
+    """Replay never imports __main__: a decision defined in a script run directly is
+    recorded, but its records can never be verified, so defining it warns."""
+
+    def feature_card(draw: dl.Draw) -> bool:
+        return draw.bernoulli(0.5, name="show")
+
+    feature_card.__module__ = "__main__"
+    with pytest.warns(dl.UnreplayableDecisionWarning, match="defined in __main__.*cannot be verif"):
+        ledger.decision("recipe-card-script")(feature_card)
+
+
+def test_a_decision_defined_in_a_module_does_not_warn(ledger: dl.Ledger) -> None:
+    def feature_card(draw: dl.Draw) -> bool:
+        return draw.bernoulli(0.5, name="show")
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        ledger.decision("recipe-card-module")(feature_card)

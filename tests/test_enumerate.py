@@ -194,14 +194,39 @@ def test_many_branches_exceed_the_budget() -> None:
 
 
 def test_one_draw_beyond_the_budget_is_read_from_the_draw() -> None:
-    """A single integers draw over 10**9 values returns its value: 1e-9 exactly, no sampling."""
+    """A single integers draw over 10**9 values returns its value: 1e-9, no sampling, labelled
+    "one-draw" (too many branches to prove that no other value gives the same action)."""
     found = propensity(wide, {}, {}, "123456789")
-    assert ("exact", pytest.approx(1e-9, rel=1e-12)) == (found.method, found.value)
+    assert ("one-draw", pytest.approx(1e-9, rel=1e-12)) == (found.method, found.value)
 
 
 @led.decision("wide")
 def wide(draw: dl.Draw) -> int:
     return draw.integers(0, 10**9)
+
+
+@led.decision("wide-folded")
+def wide_folded(draw: dl.Draw) -> int:
+    """integers(0, 5000) returned as drawn, except 4321, which is shown as 7."""
+    slot = draw.integers(0, 5000)
+    return 7 if slot == 4321 else slot
+
+
+def test_one_draw_beyond_the_budget_is_not_called_exact() -> None:
+    """Random branches cannot rule out another value returning the same action (4321 -> 7):
+    the draw's probability is reported as "one-draw", never "exact"; with a budget that lists
+    every branch, P(7) = 2 / 5000 (counted by hand) and P(4321) = 0."""
+    found = propensity(wide_folded, {}, {}, "7")
+    assert ("one-draw", pytest.approx(1 / 5000, rel=1e-12)) == (found.method, found.value)
+    listed = propensity(wide_folded, {}, {}, "7", budget=5000)
+    assert ("enumerated", pytest.approx(2 / 5000, rel=1e-12)) == (listed.method, listed.value)
+    assert 0.0 == propensity(wide_folded, {}, {}, "4321", budget=5000).value
+
+
+def test_one_draw_with_every_branch_listed_is_exact() -> None:
+    """Every option replayed returns its own value: the draw's probability is proven."""
+    found = propensity(menu, {"options": ["soup", "salad"], "probs": [0.25, 0.75]}, {}, '"soup"')
+    assert ("exact", 0.25) == (found.method, found.value)
 
 
 def test_no_draw_is_probability_one() -> None:

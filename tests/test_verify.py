@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import importlib
+import json
 import math
 import os
 import sqlite3
@@ -20,6 +21,7 @@ from hypothesis import HealthCheck, given, settings
 from strategies import decision_specs
 
 import drawledger as dl
+import drawledger.testing
 from drawledger._records import to_json
 from drawledger.draw import bucket_assign
 from drawledger.exceptions import LedgerError, ReplayError
@@ -29,6 +31,7 @@ from drawledger.replay.verify import Settings, verify_chunk
 
 SERVICE = """
 import drawledger as dl
+import drawledger.testing
 
 ledger = dl.Ledger({ledger!r})
 _served = 0
@@ -485,3 +488,53 @@ def test_duplicated_records_are_all_counted_whatever_the_chunks(
     assert 11 == report.verified
     assert 2 == (report.rows["decision_id"] == "d5").sum()
     assert {"integrity"} <= _reasons(report, "d5")
+
+
+GROUP_CARDS = [f"card-{i}" for i in range(10)]
+
+
+@_mixed.decision("card-group")
+def card_group(merge: dict[str, str], draw: dl.Draw) -> str:
+    """One draw among ten cards; ``merge`` folds some cards into another card's group."""
+    card = draw.categorical(GROUP_CARDS, [0.1] * 10, name="card")
+    return merge.get(card, card)
+
+
+def test_one_draw_returning_its_value_is_not_exact_when_two_cards_share_the_action(
+    ledger_path: Path,
+) -> None:
+    """Ten cards at 0.1 each; card-1 folded into card-0: P(card-0) = 0.1 + 0.1 = 0.2.
+
+    The first decisions fold nothing, so the function looks like "one draw, its value
+    returned"; a later decision that drew card-0 itself must still sum both cards.
+    """
+    led = dl.Ledger(ledger_path)
+    card_group.ledger = led
+    with drawledger.testing.capture(led, seed=7, write=True):
+        for i in range(40):
+            card_group({} if i < 12 else {"card-1": "card-0"}, decision_id=f"g{i}")
+    led.close()
+    rows = verify(ledger_path).rows
+    folded = rows[(rows["action"] == '"card-0"') & (rows["decision_id"].str[1:].astype(int) >= 12)]
+    assert len(folded) > 0
+    assert [0.2] * len(folded) == pytest.approx(list(folded["propensity"]), rel=1e-12)
+    assert {"enumerated"} == set(folded["propensity_method"])
+
+
+def test_randomness_outside_draw_is_named_as_the_likely_cause(
+    service: Callable[..., Service],
+) -> None:
+    """A card picked with the `random` module makes no draw: the recorded actions cannot be
+    replayed, and the reasons say why in plain words."""
+    body = "    import random\n\n    return cards[random.randrange(3)]"
+    s = service(body, n=30)
+    import random
+
+    random.seed(5)
+    report = s.verify()
+    assert {"action", "nondeterministic"} <= set(report.by_reason)
+    action_detail = report.examples["action"][0][1]
+    assert "although no draw was made: likely randomness outside `draw`" in action_detail
+    assert "the `random` module, a global numpy generator), a clock" in action_detail
+    assert "likely randomness outside `draw`" in report.examples["nondeterministic"][0][1]
+    assert "likely randomness outside `draw`" in json.dumps(report.to_dict())

@@ -14,6 +14,7 @@ from drawledger.exceptions import (
     LedgerError,
     NotSerializableError,
     ReplayError,
+    UnreplayableDecisionWarning,
 )
 from drawledger.ledger import Decision, Ledger
 
@@ -31,6 +32,7 @@ __all__ = [
     "LedgerError",
     "NotSerializableError",
     "ReplayError",
+    "UnreplayableDecisionWarning",
     "__version__",
     "ingest",
 ]

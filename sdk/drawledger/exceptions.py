@@ -19,6 +19,7 @@ __all__ = [
     "NotSerializableError",
     "OutputError",
     "ReplayError",
+    "UnreplayableDecisionWarning",
 ]
 
 
@@ -90,3 +91,7 @@ class BadRecordError(ReplayError):
 class OutputError(DrawledgerError, OSError):
     """An output file (a JSON result, an export, a report, a plot) cannot be written where asked:
     its folder is missing or not writable, or the name is a folder."""
+
+
+class UnreplayableDecisionWarning(UserWarning):
+    """A decision is defined where replay cannot import it again (a script run as __main__)."""

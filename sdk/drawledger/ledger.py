@@ -17,6 +17,7 @@ import textwrap
 import threading
 import time
 import tokenize
+import warnings
 import weakref
 from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
@@ -32,6 +33,7 @@ from drawledger.exceptions import (
     LedgerClosedError,
     LedgerError,
     NotSerializableError,
+    UnreplayableDecisionWarning,
 )
 
 __all__ = ["Decision", "Ledger"]
@@ -360,6 +362,15 @@ class Ledger:
             raise DecisionDefinitionError("a decision's stream name must be a non-empty string")
 
         def register(fn: Callable[..., R]) -> Decision[R]:
+            if getattr(fn, "__module__", None) == "__main__":
+                warnings.warn(
+                    f"decision {stream!r} ({getattr(fn, '__qualname__', fn)!s}) is defined in "
+                    "__main__, the script being run: replay imports decisions by module name "
+                    "and never imports __main__, so these records cannot be verified later; "
+                    "define it in a module and import it",
+                    UnreplayableDecisionWarning,
+                    stacklevel=2,
+                )
             return Decision(self, stream, fn)
 
         return register

@@ -241,3 +241,41 @@ def bucket(
         units=names,
         seeded=False,
     )
+
+
+def repeat_visits(
+    rng: np.random.Generator,
+    units: int,
+    visits: int,
+    *,
+    sticky: float = 0.0,
+    stream: str = "slot-discount",
+) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Shoppers offered a discount on each of ``visits`` visits, visits interleaved in time.
+
+    Each decision declares one of two probability vectors (varying declarations). A share
+    ``sticky`` of the shoppers is pinned: every visit repeats the first visit's discount (the
+    declared probability recorded with it) while the record claims an independent draw.
+    """
+    vectors = np.array([[0.5, 0.3, 0.2], [0.2, 0.3, 0.5]])
+    opts = [0, 5, 10]
+    n = units * visits
+    which = rng.integers(0, 2, size=n)
+    u = uniforms(rng, n)
+    j = pick(np.cumsum(vectors[which], axis=1), u)
+    who = np.arange(n) % units  # visit v of shopper k is decision v * units + k
+    pinned = rng.random(units) < sticky
+    first = j[:units]
+    j = np.where(pinned[who], first[who], j)
+    args = [_json({"options": opts, "probs": vectors[w].tolist()}) for w in range(2)]
+    return tables(
+        stream,
+        "categorical",
+        [args[w] for w in which],
+        [_json(opts[k]) for k in j],
+        vectors[which, j],
+        u,
+        rng,
+        units=[f"shopper-{k:05d}" for k in who],
+        name="discount",
+    )

@@ -12,10 +12,18 @@ from drawledger.replay.audit._limits import (
     AUDIT_DECISION_COLUMNS,
     AUDIT_DRAW_COLUMNS,
     SAMPLE_SIZE,
+    UNDRAWN_COLUMNS,
     GroupKey,
 )
 from drawledger.replay.audit._report import AuditFigure, AuditReport, AuditTest
-from drawledger.replay.audit._state import GroupState, Sketch, StreamState, group_state, unit_frame
+from drawledger.replay.audit._state import (
+    GroupState,
+    Sketch,
+    StreamState,
+    Undrawn,
+    group_state,
+    unit_frame,
+)
 from drawledger.replay.audit._tests import Found, group_figure, group_tests, stream_tests, verdicts
 
 if TYPE_CHECKING:
@@ -87,9 +95,16 @@ def chunk_state(
         s.decisions += len(part)
         s.seeded += len(seeds)
         s.seeds.merge(Sketch(sample_size, seeds.astype(str)))
-    rows = draws[list(AUDIT_DRAW_COLUMNS)].merge(
-        decisions[["decision_id", "stream", "unit", "ts", "inputs"]], on="decision_id"
-    )
+        if UNDRAWN_COLUMNS <= set(part.columns):
+            bare = part[~part["decision_id"].isin(draws["decision_id"])]
+            if len(bare):
+                record = bare["fn"].astype(str) + "\0" + bare["inputs"].astype(str) + "\0"
+                record += bare["params"].astype(str)
+                s.undrawn = Undrawn(sample_size)
+                s.undrawn.add(record.to_numpy(dtype=object), bare["action"].to_numpy(dtype=object))
+    columns = ["decision_id", "stream", "unit", "ts", "inputs"]
+    columns += ["fn"] if "fn" in decisions.columns else []  # no function: a declared draw
+    rows = draws[list(AUDIT_DRAW_COLUMNS)].merge(decisions[columns], on="decision_id")
     for (g_stream, kind, name), part in rows.groupby(
         ["stream", "kind", "name"], dropna=False, sort=False
     ):

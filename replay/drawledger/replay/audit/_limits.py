@@ -40,6 +40,13 @@ MIN_KS = 20
 MIN_RANK = 30
 
 
+# The consistency check names at most this many decisions whose value contradicts its uniforms.
+MAX_EXAMPLES = 5
+
+
+CONTRADICTS = "values contradict their uniforms (draw spec v1)"
+
+
 # The assignment-ratio test keeps per-option sums for at most this many distinct options.
 MAX_OPTIONS = 100
 
@@ -92,6 +99,8 @@ TEST_LABELS = {
     "pit_vs_input": "PIT vs input",
     "pit_vs_hour": "PIT by hour of day",
     "unit_in_two_arms": "units in two arms",
+    "unit_repeats": "arms repeat within units",
+    "actions_without_draws": "no draw, yet actions vary (random or clock outside draw)",
     "repeated_seeds": "repeated seeds",
     "repeated_uniforms": "repeated uniforms",
 }
@@ -110,6 +119,9 @@ SALT_K = np.uint64(0x2545F4914F6CDD1D)  # sample selection
 
 
 AUDIT_DECISION_COLUMNS = ("decision_id", "stream", "unit", "ts", "inputs", "seed")
+
+
+UNDRAWN_COLUMNS = frozenset({"fn", "inputs", "params", "action"})  # decisions without draws
 
 
 AUDIT_DRAW_COLUMNS = ("decision_id", "idx", "name", "kind", "args", "u", "value", "prob")

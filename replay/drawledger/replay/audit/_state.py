@@ -18,7 +18,9 @@ from drawledger.replay.audit._declared import Parsed, load_texts
 from drawledger.replay.audit._limits import (
     CAL_EDGES,
     CAL_KEYS,
+    CONTRADICTS,
     HASH_KEY,
+    MAX_EXAMPLES,
     MAX_OPTIONS,
     SALT_K,
     SALT_V,
@@ -28,6 +30,8 @@ from drawledger.replay.audit._limits import (
 )
 from drawledger.replay.audit._parse import close_to, parse_draws, parse_uniforms
 from drawledger.replay.audit._stats import BINS, FloatArray
+from drawledger.replay.audit._units import PAIRED_KINDS, UnitPairs, unit_pairs
+from drawledger.replay.audit._values import contradicting
 
 if TYPE_CHECKING:
     pass
@@ -172,6 +176,8 @@ class GroupState:
     varying: bool = False
     sample: _Sample = field(init=False)
     units: pd.DataFrame | None = None  # bucket draws: one row per unit
+    examples: list[str] = field(default_factory=list)  # ids of draws contradicting uniforms
+    pairs: UnitPairs | None = None  # consecutive draws of the same unit
 
     def __post_init__(self) -> None:
         self.sample = _Sample(self.size)
@@ -184,6 +190,7 @@ class GroupState:
                 self.signature, self.varying = None, True
         self.draws += o.draws
         self.problems.update(o.problems)
+        self.examples.extend(o.examples[: MAX_EXAMPLES - len(self.examples)])
         self.steps += o.steps
         self.uniforms += o.uniforms
         self.u_hist = self.u_hist + o.u_hist
@@ -201,6 +208,11 @@ class GroupState:
                 o.calibration if self.calibration is None else self.calibration.merge(o.calibration)
             )
         self.sample.merge(o.sample)
+        if o.pairs is not None:
+            if self.pairs is None:
+                self.pairs = o.pairs
+            else:
+                self.pairs.merge(o.pairs)
         if o.units is not None:
             self.units = (
                 o.units if self.units is None else merge_units([self.units, o.units], self.size)
@@ -222,13 +234,21 @@ def group_state(kind: str, frame: pd.DataFrame, size: int) -> tuple[GroupState, 
     problems = parsed.problems
     differs = parsed.ok & ~close_to(recorded, parsed.declared)
     problems["recorded probability differs from the declaration"] += int(differs.sum())
-    flat_u, u_len, malformed = parse_uniforms(frame["u"].to_numpy(dtype=object))
+    u_texts = frame["u"].to_numpy(dtype=object)
+    flat_u, u_len, malformed = parse_uniforms(u_texts)
     problems["recorded uniforms are not numbers in [0, 1]"] += int(malformed.sum())
+    # declared draws (no function to replay) with uniforms: their value must follow from them
+    declared = frame["fn"].isna().to_numpy() if "fn" in frame.columns else np.ones(len(frame), bool)
+    check = parsed.ok & ~differs & ~malformed & declared & (u_len > 0)
+    contradicts = contradicting(kind, args, u_texts, values, check)
+    problems[CONTRADICTS] += int(contradicts.sum())
+    ids = frame["decision_id"].to_numpy(dtype=object)
+    st.examples = [str(x) for x in ids[np.flatnonzero(contradicts)[:MAX_EXAMPLES]]]
     st.problems = Counter({k: v for k, v in problems.items() if v})
-    keep = (parsed.ok & ~differs & ~malformed)[parsed.row]
+    keep = (parsed.ok & ~differs & ~malformed)[parsed.row]  # contradicting values stay in
     row, step = parsed.row[keep], parsed.step[keep]
     st.steps = len(row)
-    h_row = _hash_ids(frame["decision_id"].to_numpy(dtype=object), frame["idx"].to_numpy(np.int64))
+    h_row = _hash_ids(ids, frame["idx"].to_numpy(np.int64))
     h = _stats.mix64(h_row[row] ^ ((step.astype(np.uint64) + np.uint64(1)) * STEP))
     v = _stats.to_unit(_stats.mix64(h ^ SALT_V))
     pit = np.clip(parsed.lo[keep] + v * parsed.width[keep], 0.0, 1.0)
@@ -244,6 +264,11 @@ def group_state(kind: str, frame: pd.DataFrame, size: int) -> tuple[GroupState, 
     pit_bin = np.minimum((pit * BINS).astype(np.int64), BINS - 1)
     st.hour_hist = np.bincount(hour * BINS + pit_bin, minlength=24 * BINS).reshape(24, BINS)
     st.note = parsed.note
+    if kind in PAIRED_KINDS and "unit" in frame.columns:
+        codes, uniq = pd.factorize(frame["unit"].to_numpy(dtype=object), use_na_sentinel=False)
+        names = np.array(["" if x is None or x != x else str(x) for x in uniq], dtype=object)
+        unit_keys = _hash_ids(names, np.zeros(len(names), np.int64))[codes]
+        st.pairs = unit_pairs(kind, frame, parsed, keep, unit_keys)
     if parsed.keys is not None and st.steps:
         _discrete_stats(st, parsed, keep)
     st.sample.add(_sample_frame(frame, row, ts, u, pit, _stats.mix64(h ^ SALT_K), size))
@@ -353,6 +378,56 @@ def unit_frame(rows: pd.DataFrame, size: int) -> pd.DataFrame:
     return merge_units([units], size)
 
 
+class Undrawn:
+    """Decisions without draws: the actions seen per (function, inputs, parameters).
+
+    Such a decision should be a function of what it recorded; two actions for the same record
+    show randomness the ledger did not capture. Keeps at most ``size`` records (those with the
+    smallest keyed hash), so the count is over a sample when ``truncated``.
+    """
+
+    def __init__(self, size: int) -> None:
+        self.size = size
+        self.decisions = 0
+        self.truncated = False
+        self.actions: dict[int, int] = {}  # record key -> action key, or VARIED
+
+    VARIED = -1
+
+    def add(self, records: npt.NDArray[Any], actions: npt.NDArray[Any]) -> None:
+        self.decisions += len(records)
+        keys = id_keys(records.astype(str), HASH_KEY).tolist()
+        acts = id_keys(actions.astype(str), HASH_KEY).astype(np.int64).tolist()
+        self._put(dict(zip(keys, acts, strict=True)) if len(set(keys)) == len(keys)
+                  else _fold(keys, acts))  # fmt: skip
+
+    def _put(self, other: dict[int, int]) -> None:
+        mine = self.actions
+        for k, a in other.items():
+            seen = mine.get(k)
+            mine[k] = a if seen is None or seen == a else self.VARIED
+        if len(mine) > self.size:
+            self.actions = dict(sorted(mine.items())[: self.size])
+            self.truncated = True
+
+    def merge(self, o: Undrawn) -> None:
+        self.decisions += o.decisions
+        self.truncated |= o.truncated
+        self._put(o.actions)
+
+    @property
+    def varied(self) -> int:
+        return sum(1 for a in self.actions.values() if a == self.VARIED)
+
+
+def _fold(keys: list[int], acts: list[int]) -> dict[int, int]:
+    out: dict[int, int] = {}
+    for k, a in zip(keys, acts, strict=True):
+        seen = out.get(k)
+        out[k] = a if seen is None or seen == a else Undrawn.VARIED
+    return out
+
+
 @dataclass
 class StreamState:
     seeds: Sketch
@@ -360,6 +435,7 @@ class StreamState:
     decisions: int = 0
     seeded: int = 0  # decisions with a seed
     uniform_count: int = 0  # uniforms recorded by draws other than bucket
+    undrawn: Undrawn | None = None
 
     def merge(self, o: StreamState) -> None:
         self.seeds.merge(o.seeds)
@@ -367,3 +443,8 @@ class StreamState:
         self.decisions += o.decisions
         self.seeded += o.seeded
         self.uniform_count += o.uniform_count
+        if o.undrawn is not None:
+            if self.undrawn is None:
+                self.undrawn = o.undrawn
+            else:
+                self.undrawn.merge(o.undrawn)

@@ -25,6 +25,7 @@ from drawledger.replay.audit._limits import (
 from drawledger.replay.audit._report import AuditFigure, AuditTest
 from drawledger.replay.audit._state import Cells, GroupState, Sketch, StreamState
 from drawledger.replay.audit._stats import FloatArray, TestResult
+from drawledger.replay.audit._units import sticky_test
 
 if TYPE_CHECKING:
     pass
@@ -54,6 +55,9 @@ def group_tests(key: GroupKey, g: GroupState) -> list[Found]:
 
     bad = sum(g.problems.values())
     detail = "; ".join(f"{v} {k}" for k, v in sorted(g.problems.items()))
+    if g.examples:
+        shown = ", ".join(repr(x[:40]) for x in g.examples)
+        detail += f" (contradicting their uniforms: decisions {shown})"
     out = [found("consistency", g.draws, None, count=bad, detail=detail)]
     if kind == "bucket" and g.units is not None:
         units = g.units
@@ -67,6 +71,11 @@ def group_tests(key: GroupKey, g: GroupState) -> list[Found]:
                 detail="counts units; each unit's first draw enters the other tests",
             )
         )
+    if g.pairs is not None and g.pairs.pairs:
+        pairs = g.pairs
+        how = (f"{pairs.matches} of {pairs.pairs} consecutive draws of a unit repeat its "
+               f"previous pick, {pairs.expected:.1f} expected")  # fmt: skip
+        out.append(found("unit_repeats", pairs.pairs, sticky_test(pairs), detail=how))
     if not g.steps:
         return out
     if g.ratio is not None and int((g.ratio.expected > 0).sum()) >= 2:
@@ -164,8 +173,26 @@ def _by_hour(hist: IntArray) -> tuple[TestResult | None, int]:
     return TestResult(stat, float(stats.chi2.sf(stat, df)), df), len(used)
 
 
+UNDRAWN_CAUSE = (
+    "the same function, inputs and parameters gave different actions without a recorded draw: "
+    "likely randomness outside `draw` (the `random` module, a global numpy generator) or a clock"
+)
+
+
 def stream_tests(stream: str, s: StreamState) -> list[Found]:
     out = []
+    if s.undrawn is not None:
+        u = s.undrawn
+        varied = u.varied
+        detail = (
+            f"{varied} record(s): {UNDRAWN_CAUSE}"
+            if varied
+            else ("decisions without draws give one action per function, inputs and parameters")
+        )
+        if u.truncated:
+            detail += f" (on a sample of {len(u.actions)} records)"
+        out.append(Found(stream, None, None, "actions_without_draws", u.decisions, None,
+                         count=varied, detail=detail))  # fmt: skip
     if s.seeded:
         kept = int(s.seeds.counts.sum())
         share = _seed_share(s.seeds) if s.seeds.truncated else 1.0

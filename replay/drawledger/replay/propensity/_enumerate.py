@@ -26,6 +26,7 @@ __all__ = [
     "ENUMERATED",
     "EXACT",
     "MONTE_CARLO",
+    "ONE_DRAW",
     "BranchingDraw",
     "Found",
     "Memo",
@@ -40,6 +41,7 @@ __all__ = [
 ]
 
 EXACT, ENUMERATED, DENSITY, MONTE_CARLO = "exact", "enumerated", "density", "monte-carlo"
+ONE_DRAW = "one-draw"
 DEFAULT_BUDGET = 4096
 DEFAULT_MC_SAMPLES = 2000
 PROBE_RUNS = 16  # random branches tried when there are too many to list
@@ -49,9 +51,13 @@ _NO_SEED = bytes(16)
 class Propensity(NamedTuple):
     """The probability (or density) of an action and how it was obtained.
 
-    ``method`` is "exact" (the decision's one draw returned it), "enumerated" (summed over
-    every branch of the discrete draws), "density" (the action is a continuous draw's value)
-    or "monte-carlo" (re-executions with fresh seeds; ``stderr`` is the standard error).
+    ``method`` is "exact" (every branch was replayed: each made one draw and returned its
+    value, so the action's probability is that of its option), "enumerated" (summed over every
+    branch of the discrete draws), "one-draw" (the probability of the one draw's value when
+    there are too many branches to replay: random branches returned their draw's value, but no
+    other value returning the same action is ruled out), "density" (the action is a
+    continuous draw's value) or "monte-carlo" (re-executions with fresh seeds; ``stderr`` is
+    the standard error).
     """
 
     value: float
@@ -367,8 +373,8 @@ def distribution(
                 return Found(DENSITY, {action_json: _density_at(first, target)}, 0, False, True)
         else:
             p = single_draw_probability(first, action_json)
-            if p is not None:
-                return Found(EXACT, {action_json: p}, 0, False, True)
+            if p is not None:  # not proven: only sampled branches were replayed
+                return Found(ONE_DRAW, {action_json: p}, 0, False, True)
     density = _density(run, action_json, budget)
     if density is not None:
         return Found(DENSITY, {action_json: density}, 0, False, False)
@@ -466,7 +472,8 @@ def propensity(
     1. every branch of the discrete draws, up to ``budget`` paths: "exact" when each branch
        makes one draw and returns its value, else "enumerated" (the sum over branches);
     2. beyond the budget, when random branches each make one draw that returns the action:
-       that draw's probability ("exact") or density ("density");
+       that draw's probability ("one-draw": not proven, as other values of the draw could
+       return the same action) or density ("density");
     3. the density of the continuous draw whose value is the action, summed over the
        discrete branches ("density");
     4. ``mc_samples`` re-executions with seeds derived from ``seed`` ("monte-carlo", with

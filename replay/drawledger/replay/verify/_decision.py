@@ -34,7 +34,6 @@ from drawledger.replay.propensity import (
     Propensity,
     read,
     remembered,
-    single_draw_probability,
 )
 from drawledger.replay.verify._imports import (
     build_inputs,
@@ -44,6 +43,9 @@ from drawledger.replay.verify._imports import (
     resolve_decision,
 )
 from drawledger.replay.verify._types import PROBES, REL_TOL, SHOW, Row, Settings
+
+OUTSIDE_DRAW = ("likely randomness outside `draw` (the `random` module, a global numpy "
+                "generator), a clock, or state kept between calls")  # fmt: skip
 
 
 def _close(a: float, b: float) -> bool:
@@ -252,7 +254,10 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
         action_key = action
     else:
         action_key = to_json(from_json(row[DEC.action]), "action")
-        out.add("action", f"action {_short(action)} replayed, {_short(row[DEC.action])} recorded")
+        detail = f"action {_short(action)} replayed, {_short(row[DEC.action])} recorded"
+        if not records and not draws:
+            detail += f" although no draw was made: {OUTSIDE_DRAW}"
+        out.add("action", detail)
     prop, kind = _logged(first, action)
     if not _close(prop, logged) or kind != row[DEC.propensity_kind]:
         recorded = f"{logged!r} ({row[DEC.propensity_kind]})"
@@ -269,8 +274,8 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
         out.add("nondeterministic", f"a second run raised {type(exc).__name__}: {exc}")
     else:
         if not same:
-            out.add("nondeterministic", "a second run with the same seed and inputs differs "
-                    "(hidden state, a clock, or inputs changed by the function)")  # fmt: skip
+            out.add("nondeterministic", "a second run with the same seed and inputs differs: "
+                    f"{OUTSIDE_DRAW}, or inputs changed by the function")  # fmt: skip
     try:
         out.propensity = _propensity(ctx, decision, inputs, params, action_key, records, first,
                                      action, (row[DEC.inputs], row[DEC.params]))  # fmt: skip
@@ -293,9 +298,11 @@ def _propensity(
 ) -> Propensity:
     """The replayed propensity of the recorded action.
 
-    A function whose draws were fully enumerated for its first decisions in this chunk (the
-    probes) and always made one draw returning its value is trusted to do so: later decisions
-    read the probability of that one draw ("exact") or its density.
+    A discrete action's probability is always read from the enumeration of this decision's
+    branches (cached per inputs and parameters): a run that made one draw and returned its
+    value does not show that no other option returns the same action. A function whose first
+    decisions in this chunk (the probes) always made one continuous draw returning its value
+    is trusted to do so: later decisions read that draw's density.
     """
     if not records:  # no draw: nothing random happens before or after
         return Propensity(1.0 if returned == action_key else 0.0, EXACT)
@@ -307,9 +314,6 @@ def _propensity(
         rec = records[0]
         if rec.is_density and returned == action_key:
             return Propensity(rec.prob, DENSITY)
-        p = None if rec.is_density else single_draw_probability(rec, action_key, encoded[0][4])
-        if p is not None:
-            return Propensity(p, EXACT)
     settings = ctx.settings
     found = remembered(ctx.memo, decision, inputs, params, action_key, budget=settings.budget,
                        mc_samples=settings.mc_samples, texts=texts)  # fmt: skip

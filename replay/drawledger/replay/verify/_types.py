@@ -52,7 +52,7 @@ COUNTS = ("decisions", "verified", "mismatched", "unreplayable")
 REL_TOL = 1e-12
 
 
-PROBES = 8  # decisions of each function enumerated fully per chunk before the one-draw path
+PROBES = 8  # decisions of each function checked fully per chunk before reading a density
 
 
 SHOW = 70
