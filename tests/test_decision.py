@@ -6,6 +6,7 @@ import math
 import threading
 from typing import Any
 
+import numpy as np
 import pytest
 from pydantic import BaseModel
 from recipe_card import CARDS, SCORES, make_decision
@@ -178,6 +179,32 @@ def test_non_serializable_inputs_raise_and_record_nothing(
     assert 0 == cap.decisions[0].seq
 
 
+@pytest.mark.parametrize(
+    ("bad_input", "where"),
+    [
+        (np.float32("inf"), "basket_total"),
+        (np.float64("nan"), "basket_total"),
+        (np.array([12.5, np.nan]), r"basket_total\[1\]"),
+        ({"fees": [np.float16("-inf")]}, r"basket_total\.fees\[0\]"),
+    ],
+)
+def test_numpy_nan_and_infinity_in_inputs_are_refused_naming_the_input(
+    ledger: dl.Ledger, bad_input: object, where: str
+) -> None:
+    """numpy NaN and infinities are refused like Python's (orjson would write them as null),
+    and the error names where they sit; nothing is recorded."""
+
+    @ledger.decision("basket-reminder")
+    def remind(basket_total: Any, draw: dl.Draw) -> bool:
+        return draw.bernoulli(0.5)
+
+    with capture(ledger) as cap:
+        with pytest.raises(NotSerializableError, match=f"inputs: {where} is NaN or an infinity"):
+            remind(bad_input)
+        remind(np.array([12.5, 3.0]))  # finite numpy values are recorded as numbers
+    assert [{"basket_total": [12.5, 3.0]}] == [d.inputs for d in cap.decisions]
+
+
 def test_a_raising_decision_records_nothing(ledger_path: Any) -> None:
     """An exception inside the function propagates; nothing of it is written; the ledger
     stays usable and the sequence has no gap."""
@@ -330,6 +357,19 @@ def test_outcomes_are_recorded_and_checked(ledger: dl.Ledger) -> None:
     assert [("req-8c1", "checkout", 1.0), ("req-8c1", "basket-value", 1.0)] == [
         (o.decision_id, o.name, o.value) for o in cap.outcomes
     ]
+
+
+def test_outcomes_accept_numpy_numbers_and_refuse_what_is_not_finite(ledger: dl.Ledger) -> None:
+    """numpy integer and float scalars are numbers; their NaN and infinities, and integers too
+    large for a float, are refused with the usual one-line error."""
+    with capture(ledger) as cap:
+        ledger.outcome("req-8c1", "checkout", np.int64(1))
+        ledger.outcome("req-8c1", "basket-value", np.float32(23.5))
+        for bad in (np.float64("nan"), np.float32("inf"), 10**400, np.str_("1.0")):
+            with pytest.raises(NotSerializableError, match="value must be a finite number"):
+                ledger.outcome("req-8c1", "checkout", bad)
+    assert [1.0, 23.5] == [o.value for o in cap.outcomes]
+    assert [float, float] == [type(o.value) for o in cap.outcomes]
 
 
 def test_calls_after_close_raise(ledger_path: Any) -> None:

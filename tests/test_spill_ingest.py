@@ -433,3 +433,30 @@ def test_lone_surrogates_are_refused_at_the_call_and_the_rest_is_written(tmp_pat
     led.close()
     assert (2, 0, 0) == (led.stats()["written"], led.stats()["spilled"], led.stats()["dropped"])
     assert check_integrity(target).ok
+
+
+@pytest.mark.parametrize(
+    ("u", "problem"),
+    [
+        ([1.5], r"u\[0\] is 1.5, not a number strictly between 0 and 1"),
+        ([0.25, 0.0], r"u\[1\] is 0.0"),
+        ([-0.5], r"u\[0\] is -0.5"),
+        ([float("nan")], r"u\[0\] is nan"),
+        ([True], r"u\[0\] is True"),
+        (["0.5"], r"u\[0\] is '0.5'"),
+        (0.5, "u must be a list of uniforms"),
+        ("0.5", "u must be a list of uniforms"),
+    ],
+)
+def test_record_draw_refuses_uniforms_that_ingest_would_refuse(
+    ledger_path: Path, u: Any, problem: str
+) -> None:
+    """Declared uniforms lie strictly between 0 and 1 (as ingest requires): others are refused
+    at the call with a DrawArgumentError naming the entry, and nothing is recorded."""
+    led = dl.Ledger(ledger_path)
+    with pytest.raises(dl.DrawArgumentError, match=problem):
+        led.record_draw("free-delivery", "bernoulli", {"p": 0.5}, True, 0.5, u=u)
+    led.record_draw("free-delivery", "bernoulli", {"p": 0.5}, True, 0.5, u=(0.25,))
+    led.close()
+    assert (1, 1) == (led.stats()["recorded"], led.stats()["written"])
+    assert ["[0.25]"] == list(read_tables(ledger_path).draws["u"])

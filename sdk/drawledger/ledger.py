@@ -9,6 +9,7 @@ import hashlib
 import inspect
 import itertools
 import math
+import numbers
 import operator
 import os
 import socket
@@ -183,6 +184,37 @@ def _json_or_none(obj: Any) -> str | None:
         return _records.to_json(obj, "value")
     except NotSerializableError:
         return None
+
+
+def _finite_number(x: Any) -> float | None:
+    """``x`` as a finite float: a bool, an int, a float or any other real number (numpy's
+    integer and float scalars); None for anything else, NaN, infinities and overflows."""
+    if type(x) is not float:
+        if not isinstance(x, numbers.Real):
+            return None
+        try:
+            x = float(x)
+        except (OverflowError, TypeError, ValueError):
+            return None
+    return x if math.isfinite(x) else None
+
+
+def _declared_uniforms(kind: str, u: Any) -> list[float]:
+    """The uniforms of a declared draw: a list of numbers strictly between 0 and 1, as every
+    uniform of the draw specification is (and as ingest requires)."""
+    if u is None:
+        return []
+    if isinstance(u, (str, bytes, Mapping)) or not isinstance(u, Sequence):
+        raise DrawArgumentError(f"declared {kind} draw: u must be a list of uniforms, got {u!r}")
+    out = []
+    for i, x in enumerate(u):
+        number = None if isinstance(x, bool) else _finite_number(x)
+        if number is None or not 0.0 < number < 1.0:
+            raise DrawArgumentError(
+                f"declared {kind} draw: u[{i}] is {x!r}, not a number strictly between 0 and 1"
+            )
+        out.append(number)
+    return out
 
 
 def _timestamp(ts: Any) -> float:
@@ -440,20 +472,15 @@ class Ledger:
         if not isinstance(name, str) or not name:
             raise NotSerializableError("outcome: name must be a non-empty string")
         _plain_text(decision_id, name)
-        if isinstance(value, bool):
-            value = float(value)
-        if (
-            not isinstance(value, (int, float))
-            or value != value
-            or value in (float("inf"), float("-inf"))
-        ):
+        number = _finite_number(value)
+        if number is None:
             raise NotSerializableError(
                 f"outcome {name!r}: value must be a finite number, got {value!r}"
             )
         if self._closed:
             raise LedgerClosedError(f"ledger {self.target!r} is closed")
         stamp = time.time() if ts is None else _timestamp(ts)
-        self._enqueue(("o-", (decision_id, name, float(value) + 0.0, stamp, self.writer)))
+        self._enqueue(("o-", (decision_id, name, number + 0.0, stamp, self.writer)))
 
     def bucket(
         self,
@@ -508,7 +535,8 @@ class Ledger:
         density = kind in ("uniform", "normal", "lognormal") if is_density is None else is_density
         if not density and prob > 1.0:
             raise DrawArgumentError(f"declared {kind} draw: probability {prob} exceeds 1")
-        record = DrawRecord(0, None, kind, dict(args), list(u or []), value, float(prob), density)
+        uniforms = _declared_uniforms(kind, u)
+        record = DrawRecord(0, None, kind, dict(args), uniforms, value, float(prob), density)
         action = _records.to_json(value, f"declared {kind} draw: value")
         return self._append_decision(decision_id, stream, unit, ts, None, None, "{}", "{}",
                                      action, float(prob), "exact", None, [record])  # fmt: skip
