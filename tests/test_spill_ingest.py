@@ -460,3 +460,94 @@ def test_record_draw_refuses_uniforms_that_ingest_would_refuse(
     led.close()
     assert (1, 1) == (led.stats()["recorded"], led.stats()["written"])
     assert ["[0.25]"] == list(read_tables(ledger_path).draws["u"])
+
+
+# -- ingest: numbers out of range, conflicts --------------------------------------------------
+def _resealed(line: bytes, **changes: Any) -> bytes:
+    """A spilled decision with some columns changed and its (unkeyed) hash recomputed, as
+    someone without an integrity key can do."""
+    from drawledger._records import DECISION_COLUMNS, decision_hash
+
+    record = orjson.loads(line)
+    row = record["decision"]
+    for column, value in changes.items():
+        row[DECISION_COLUMNS.index(column)] = value
+    row[-1] = decision_hash(tuple(row[:-1]), [tuple(d) for d in record["draws"]])
+    return orjson.dumps(record)
+
+
+@pytest.mark.parametrize("seq", [2**63, 2**64 - 1])
+def test_an_out_of_range_number_skips_its_line_not_the_file(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], seq: int
+) -> None:
+    """seq 2**63 does not fit a 64-bit integer column: that line is malformed, the others load
+    (the database used to refuse the whole batch and stop the file)."""
+    spill = _spill_of(tmp_path, 6)
+    lines = _lines(spill)
+    lines[3] = _resealed(lines[3], seq=seq)
+    spill.write_bytes(b"\n".join(lines) + b"\n")
+    target = tmp_path / "x.db"
+    report = dl.ingest(spill, target)
+    assert [4] == [n for n, _ in report.malformed]
+    assert "seq must be" in report.malformed[0][1]
+    assert 5 == report.decisions
+    assert 2 == main(["ingest", str(spill), str(target)])
+    err = capsys.readouterr().err
+    assert "line 4" in err and "Traceback" not in err
+
+
+def test_a_spilled_record_that_differs_from_the_stored_one_is_a_conflict(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Same writer and seq as a stored record, other content (and a hash that matches it): not
+    "already in the ledger" but a conflict (tampering or a bug), counted, shown first, exit 1."""
+    spill = _spill_of(tmp_path, 4)
+    target = tmp_path / "x.db"
+    assert dl.ingest(spill, target).ok
+    lines = _lines(spill)
+    lines[2] = _resealed(lines[2], propensity=0.5)
+    altered = tmp_path / "altered.jsonl"
+    altered.write_bytes(b"\n".join(lines) + b"\n")
+    report = dl.ingest(altered, target)
+    assert (3, 0, False) == (report.already_present, report.decisions, report.ok)
+    assert [3] == [n for n, _ in report.conflicting]
+    assert "differs from the stored record" in report.conflicting[0][1]
+    assert 1 == len(report.to_dict()["conflicting"])
+    assert report.render().startswith("CONFLICT")
+    assert 1 == main(["ingest", str(altered), str(target)])
+    err = capsys.readouterr().err
+    assert "1 conflicting" in err and "line 3" in err
+    assert 1 == len(err.strip().splitlines())
+    stored = read_tables(target).decisions
+    assert 0.5 not in set(stored["propensity"])  # the stored record is left as it was
+
+
+@pytest.mark.parametrize("fmt", [None, "parquet"])
+def test_ingest_refuses_a_decision_id_already_in_the_ledger_under_another_record(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], fmt: str | None
+) -> None:
+    """A spilled decision or a declared draw reusing a stored decision id (another writer, or
+    another stream) is refused, counted and shown: ids are unique per ledger. The refused
+    spilled record's seq stays a gap in its writer's chain, so integrity keeps saying so."""
+    target = tmp_path / ("ledger" if fmt else "x.db")
+    live = dl.Ledger(target, format=fmt)
+    _decide(live, 1, outcomes=False)  # basket-0, by this writer
+    live.record_draw("free-delivery", "bernoulli", {"p": 0.2}, True, 0.2, decision_id="legacy-1")
+    live.close()
+    spill = _spill_of(tmp_path, 3)  # basket-0, basket-1, basket-2 by another writer
+    report = dl.ingest(spill, target)
+    assert (2, False) == (report.decisions, report.ok)
+    assert [1] == [n for n, _ in report.duplicate_ids]
+    assert "'basket-0' is already in the ledger" in report.duplicate_ids[0][1]
+    declared = tmp_path / "declared.jsonl"
+    declared.write_bytes(orjson.dumps(_declared(decision_id="basket-1")) + b"\n"
+                         + orjson.dumps(_declared(decision_id="legacy-1")) + b"\n")  # fmt: skip
+    second = dl.ingest(declared, target)
+    assert (0, 1) == (second.declared, second.already_present)  # legacy-1: same stream
+    assert [1] == [n for n, _ in second.duplicate_ids]  # basket-1: stream reminder-delay
+    assert 1 == main(["ingest", str(spill), str(target)])
+    assert "1 records refused for a decision id already in the ledger" in capsys.readouterr().err
+    tables = read_tables(target)
+    assert 1 == int((tables.decisions["decision_id"] == "basket-0").sum())
+    integrity = check_integrity(target)
+    assert (0, 1) == (integrity.duplicates, integrity.gaps)

@@ -5,13 +5,17 @@ A line is one of (docs/ledger.md):
 - a spilled decision ``{"decision": [...16 values...], "draws": [[...9 values...], ...]}`` or a
   spilled outcome ``{"outcome": [...8 values...]}``, as the writer spills them. They are stored
   as they are (same writer, seq and hash) after their hash is checked with the ledger's
-  integrity key; a record whose (writer, seq) is already in the ledger is skipped, so loading a
-  file twice, or a file the writer later managed to write anyway, adds each record once;
+  integrity key; a record whose (writer, seq) is already in the ledger with the same hash is
+  skipped, so loading a file twice, or a file the writer later managed to write anyway, adds
+  each record once; one whose (writer, seq) is stored with another hash is a *conflict*
+  (tampering or a bug), reported and not loaded;
 - a declared draw ``{"decision_id", "stream", "unit", "ts", "kind", "args", "value", "prob"}``
   with optional ``"u"``, recorded as by ``Ledger.record_draw``; a declared draw whose
   decision id is already among the decisions of its stream is skipped.
 
-A malformed line is reported with its line number and skipped; every other line is loaded.
+A decision whose id is already in the ledger under another record (another stream, or another
+writer and seq) is refused and reported: decision ids are unique per ledger. A malformed line
+is reported with its line number and skipped; every other line is loaded.
 """
 
 from __future__ import annotations
@@ -63,11 +67,13 @@ class IngestReport:
     already_present: int = 0
     spilled: int = 0
     malformed: list[tuple[int, str]] = field(default_factory=list)
+    conflicting: list[tuple[int, str]] = field(default_factory=list)
+    duplicate_ids: list[tuple[int, str]] = field(default_factory=list)
 
     @property
     def ok(self) -> bool:
         """Every line was loaded (or was already present)."""
-        return not self.malformed and not self.spilled
+        return not (self.malformed or self.spilled or self.conflicting or self.duplicate_ids)
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -80,18 +86,33 @@ class IngestReport:
             "already_present": self.already_present,
             "spilled": self.spilled,
             "malformed": [{"line": n, "reason": r} for n, r in self.malformed],
+            "conflicting": [{"line": n, "reason": r} for n, r in self.conflicting],
+            "duplicate_ids": [{"line": n, "reason": r} for n, r in self.duplicate_ids],
         }
 
     def render(self) -> str:
-        """Plain-text summary for the terminal."""
-        out = [
+        """Plain-text summary for the terminal; conflicts first, above everything else."""
+        out = []
+        if self.conflicting:
+            out.append(
+                f"CONFLICT: {len(self.conflicting)} records differ from the stored records with "
+                "the same writer and seq (tampering or a bug); they were not loaded"
+            )
+        out.append(
             f"{self.file}: {self.lines} lines; loaded {self.decisions} spilled decisions, "
             f"{self.outcomes} spilled outcomes, {self.declared} declared draws; "
-            f"{self.already_present} already in the ledger; {len(self.malformed)} malformed"
-        ]
-        out += [f"  line {n}: {reason}" for n, reason in self.malformed[:MAX_SHOWN]]
-        if len(self.malformed) > MAX_SHOWN:
-            out.append(f"  ... and {len(self.malformed) - MAX_SHOWN} more malformed lines")
+            f"{self.already_present} already in the ledger; {len(self.conflicting)} conflicting; "
+            f"{len(self.duplicate_ids)} refused for a decision id already in the ledger; "
+            f"{len(self.malformed)} malformed"
+        )
+        for label, found in (
+            ("conflicting", self.conflicting),
+            ("refused", self.duplicate_ids),
+            ("malformed", self.malformed),
+        ):
+            out += [f"  line {n}: {reason}" for n, reason in found[:MAX_SHOWN]]
+            if len(found) > MAX_SHOWN:
+                out.append(f"  ... and {len(found) - MAX_SHOWN} more {label} lines")
         if self.spilled:
             out.append(f"  {self.spilled} declared draws could not be written and were spilled")
         return "\n".join(out)
@@ -146,6 +167,9 @@ def ingest(
             led.close()
 
 
+Spilled = tuple[int, str, Row, list[Row]]  # line number, kind ("d" or "o"), row, draw rows
+
+
 class _Loader:
     def __init__(self, path: Path, ledger: Ledger, sink: _sinks.Sink) -> None:
         self.path = path
@@ -154,15 +178,15 @@ class _Loader:
         self.key = ledger._key
         self.report = IngestReport(os.fspath(path))
         self.spilled_before = ledger.stats()["spilled"]
-        self.seen_declared: set[str] = set()
+        self.loaded: dict[str, str] = {}  # stream of each decision id loaded by this run
 
     def run(self) -> IngestReport:
-        spilled: list[tuple[str, Row, list[Row]]] = []
+        spilled: list[Spilled] = []
         declared: list[tuple[int, dict[str, Any]]] = []
         for number, obj in self._objects():
             try:
                 if "decision" in obj or "outcome" in obj:
-                    spilled.append(_spill_record(obj, self.key))
+                    spilled.append((number, *_spill_record(obj, self.key)))
                 else:
                     declared.append((number, _declared(obj)))
             except _Bad as exc:
@@ -198,32 +222,52 @@ class _Loader:
         except OSError as exc:
             raise LedgerError(f"cannot read {os.fspath(self.path)!r}: {exc}") from None
 
-    def _load_spilled(self, records: list[tuple[str, Row, list[Row]]]) -> None:
+    def _load_spilled(self, records: list[Spilled]) -> None:
         if not records:
             return
-        fresh: list[tuple[str, Row, list[Row]]] = []
-        taken: set[tuple[str, str, int]] = set()
+        stored: dict[tuple[str, str, int], str] = {}  # (kind, writer, seq) -> hash
         for kind, table in (("d", "decisions"), ("o", "outcomes")):
             at = _POSITIONS[kind]
             by_writer: dict[str, list[int]] = {}
-            for k, row, _ in records:
+            for _, k, row, _ in records:
                 if k == kind:
                     by_writer.setdefault(row[at.writer], []).append(row[at.seq])
             for writer, seqs in by_writer.items():
-                present = self.sink.present_seqs(table, writer, min(seqs), max(seqs))
-                taken.update((kind, writer, s) for s in present)
+                present = self.sink.present_hashes(table, writer, min(seqs), max(seqs))
+                stored.update(((kind, writer, s), h) for s, h in present.items())
+        fresh: list[Spilled] = []
         for rec in records:
-            kind, row, _ = rec
+            number, kind, row, _ = rec
             at = _POSITIONS[kind]
             key = (kind, row[at.writer], row[at.seq])
-            if key in taken:
+            have = stored.get(key)
+            if have is None:
+                stored[key] = row[at.hash]
+                fresh.append(rec)
+            elif have == row[at.hash]:
                 self.report.already_present += 1
             else:
-                taken.add(key)
-                fresh.append(rec)
-        decisions = [row for k, row, _ in fresh if k == "d"]
-        draws = [d for k, _, d in fresh if k == "d"]
-        outcomes = [row for k, row, _ in fresh if k == "o"]
+                what = "decision" if kind == "d" else "outcome of"
+                self.report.conflicting.append((number, (
+                    f"{what} {row[at.decision_id]!r} (writer {row[at.writer]}, seq "
+                    f"{row[at.seq]}) differs from the stored record with the same writer and "
+                    "seq: tampering or a bug; not loaded"
+                )))  # fmt: skip
+        ids = [row[DEC.decision_id] for _, k, row, _ in fresh if k == "d"]
+        taken = self.sink.stored_ids(ids) if ids else {}
+        decisions, draws, outcomes = [], [], []
+        for number, kind, row, its_draws in fresh:
+            if kind == "o":
+                outcomes.append(row)
+                continue
+            did = row[DEC.decision_id]
+            stream = taken.get(did) or self.loaded.get(did)
+            if stream is not None:
+                self.report.duplicate_ids.append((number, _duplicate(did, stream)))
+                continue
+            self.loaded[did] = row[DEC.stream]
+            decisions.append(row)
+            draws.append(its_draws)
         self.sink.write(decisions, draws, outcomes)
         self.report.decisions += len(decisions)
         self.report.outcomes += len(outcomes)
@@ -231,12 +275,15 @@ class _Loader:
     def _load_declared(self, lines: list[tuple[int, dict[str, Any]]]) -> None:
         if not lines:
             return
-        ids = [obj["decision_id"] for _, obj in lines]
-        present = self.sink.present_ids(ids, {obj["stream"] for _, obj in lines})
+        taken = self.sink.stored_ids([obj["decision_id"] for _, obj in lines])
         for number, obj in lines:
             did = obj["decision_id"]
-            if did in present or did in self.seen_declared:
-                self.report.already_present += 1
+            stream = taken.get(did) or self.loaded.get(did)
+            if stream is not None:
+                if stream == obj["stream"]:
+                    self.report.already_present += 1
+                else:
+                    self.report.duplicate_ids.append((number, _duplicate(did, stream)))
                 continue
             try:
                 self.ledger.record_draw(
@@ -248,9 +295,16 @@ class _Loader:
                     raise
                 self.report.malformed.append((number, str(exc)))
                 continue
-            self.seen_declared.add(did)
+            self.loaded[did] = obj["stream"]
             self.report.declared += 1
         self.ledger.flush()
+
+
+def _duplicate(did: str, stream: str) -> str:
+    return (
+        f"decision id {did!r} is already in the ledger (stream {stream!r}) under another "
+        "record; decision ids are unique per ledger, so this one was not loaded"
+    )
 
 
 def _number(x: Any, what: str) -> float:
@@ -270,8 +324,9 @@ def _text(x: Any, what: str, *, nullable: bool = False) -> Any:
 
 
 def _count(x: Any, what: str) -> int:
-    if isinstance(x, bool) or not isinstance(x, int) or x < 0:
-        raise _Bad(f"{what} must be a non-negative integer, got {x!r}")
+    """A non-negative integer that fits the 64-bit integer columns of every sink."""
+    if isinstance(x, bool) or not isinstance(x, int) or not 0 <= x < 2**63:
+        raise _Bad(f"{what} must be an integer from 0 to 2**63 - 1, got {x!r}")
     return x
 
 
