@@ -15,6 +15,7 @@ import drawledger as dl
 from drawledger.exceptions import (
     DecisionDefinitionError,
     DrawArgumentError,
+    DuplicateDecisionError,
     LedgerClosedError,
     LedgerError,
     NotSerializableError,
@@ -370,6 +371,42 @@ def test_outcomes_accept_numpy_numbers_and_refuse_what_is_not_finite(ledger: dl.
                 ledger.outcome("req-8c1", "checkout", bad)
     assert [1.0, 23.5] == [o.value for o in cap.outcomes]
     assert [float, float] == [type(o.value) for o in cap.outcomes]
+
+
+def test_a_reused_decision_id_is_refused_at_the_call(ledger_path: Any) -> None:
+    """A retried request that records its decision id again gets DuplicateDecisionError (a
+    ValueError) before its function runs or anything is queued; the ledger stays whole (it
+    used to hold the id twice and fail integrity for good)."""
+    from drawledger.replay import check_integrity
+
+    ledger = dl.Ledger(ledger_path)
+    calls: list[str] = []
+
+    @ledger.decision("recipe-card")
+    def feature_card(scores: list[float], draw: dl.Draw) -> str:
+        calls.append("ran")
+        return draw.softmax(CARDS, scores, name="card")
+
+    feature_card(SCORES, decision_id="req-8c1")
+    with pytest.raises(DuplicateDecisionError, match="'req-8c1' was already recorded") as info:
+        feature_card(SCORES, decision_id="req-8c1")
+    assert isinstance(info.value, ValueError)
+    assert ["ran"] == calls  # refused before the function ran: no draw, no side effect
+    with pytest.raises(DuplicateDecisionError):
+        ledger.record_draw("free-delivery", "bernoulli", {"p": 0.2}, True, 0.2,
+                           decision_id="req-8c1")  # fmt: skip
+    with pytest.raises(DuplicateDecisionError):
+        ledger.bucket("shopper-1", {"a": 0.5, "b": 0.5}, "menu", decision_id="req-8c1")
+    with pytest.raises(ZeroDivisionError):  # a call that fails does not use up its id
+        ledger.decision("broken")(lambda draw: 1 / 0 if draw else None)(decision_id="req-2")
+    ledger.record_draw("free-delivery", "bernoulli", {"p": 0.2}, True, 0.2, decision_id="req-2")
+    ledger.outcome("req-8c1", "checkout", 1.0)  # outcomes are recorded by id, many per id
+    ledger.outcome("req-8c1", "checkout", 0.0)
+    ledger.close()
+    assert (4, 4, 0) == (ledger.stats()["recorded"], ledger.stats()["written"],
+                         ledger.stats()["rejected"])  # fmt: skip
+    report = check_integrity(ledger_path)
+    assert (True, 2, 0) == (report.ok, report.decisions, report.duplicates)
 
 
 def test_calls_after_close_raise(ledger_path: Any) -> None:

@@ -551,3 +551,37 @@ def test_ingest_refuses_a_decision_id_already_in_the_ledger_under_another_record
     assert 1 == int((tables.decisions["decision_id"] == "basket-0").sum())
     integrity = check_integrity(target)
     assert (0, 1) == (integrity.duplicates, integrity.gaps)
+
+
+# -- decision ids already in the ledger ---------------------------------------------------------
+def test_a_decision_id_stored_by_another_writer_is_rejected_and_the_batch_written(
+    tmp_path: Path,
+) -> None:
+    """Another process (another writer) already stored the id, or this ledger forgot it
+    (recent_ids): the writer leaves that decision out of its chain and out of the ledger,
+    counts it in ``rejected`` and keeps it in the reject file; the rest of the batch is
+    written and the integrity check finds nothing wrong."""
+    target = tmp_path / "x.db"
+    first = dl.Ledger(target)
+    _decide(first, 2, outcomes=False)  # basket-0, basket-1
+    first.close()
+    second = dl.Ledger(target, recent_ids=2, batch_size=100)
+    ids = _decide(second, 6, outcomes=False)  # basket-0 .. basket-5: two already stored
+    second.record_draw(
+        "free-delivery", "bernoulli", {"p": 0.5}, True, 0.5, decision_id="basket-2"
+    )  # forgotten by recent_ids=2, seen by the writer
+    second.outcome("basket-0", "checkout", 1.0)  # outcomes find the stored decision
+    second.close()
+    stats = second.stats()
+    assert {"recorded": 8, "written": 5, "rejected": 3, "spilled": 0, "dropped": 0} == {
+        k: stats[k] for k in ("recorded", "written", "rejected", "spilled", "dropped")
+    }
+    rejected = [orjson.loads(line) for line in _lines(second.reject_path)]
+    assert ["basket-0", "basket-1", "basket-2"] == [r["decision"][0] for r in rejected]
+    assert {"decision id already in the ledger"} == {r["rejected"] for r in rejected}
+    assert sorted(ids) == sorted(read_tables(target).decisions["decision_id"])
+    report = check_integrity(target)
+    assert (True, 0, 0, 6) == (report.ok, report.duplicates, report.gaps, report.decisions)
+    again = dl.ingest(second.reject_path, target)  # a reject file is not a spill file
+    assert [1, 2, 3] == [n for n, _ in again.malformed]
+    assert "refused by its writer" in again.malformed[0][1]

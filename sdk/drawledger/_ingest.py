@@ -349,6 +349,9 @@ def _row(values: Any, table: TableSpec, what: str) -> Row:
 
 def _spill_record(obj: dict[str, Any], key: bytes) -> tuple[str, Row, list[Row]]:
     """A spilled decision or outcome, checked field by field and against its hash."""
+    if "rejected" in obj:
+        raise _Bad("a decision refused by its writer (a reject file line, kept for inspection): "
+                   "its id was already in the ledger; it cannot be loaded")  # fmt: skip
     if "decision" in obj:
         if set(obj) != {"decision", "draws"} or not isinstance(obj["draws"], list):
             raise _Bad('a spilled decision has exactly the keys "decision" and "draws" (a list)')

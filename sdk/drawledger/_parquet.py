@@ -221,6 +221,8 @@ def rows_to_table(rows: Sequence[Row], table: str) -> pa.Table:
 class ParquetSink:
     """Writes each batch as part files; ``durability="full"`` also fsyncs files and directories."""
 
+    indexed_ids = False  # stored_ids reads every part: ingest asks, the writer does not
+
     def __init__(self, root: str, *, durability: str = "normal") -> None:
         self.root = Path(root).expanduser()
         self.full = durability == "full"

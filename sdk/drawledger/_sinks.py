@@ -23,6 +23,9 @@ DURABILITY = ("normal", "full")
 
 
 class Sink(Protocol):
+    indexed_ids: bool
+    """Whether ``stored_ids`` is an index lookup, cheap enough for the writer to ask per batch."""
+
     def write(self, decisions: list[Row], draws: list[list[Row]], outcomes: list[Row]) -> None:
         """Store one batch; ``draws[i]`` are the draw rows of ``decisions[i]``.
 
@@ -145,6 +148,8 @@ class SqlSink:
     the driver's ``executemany``. The unique (writer, seq) indexes refuse a second copy of a
     record.
     """
+
+    indexed_ids = True
 
     def __init__(self, url: str, *, durability: str = "normal") -> None:
         self.url = url

@@ -15,7 +15,11 @@ JSON Lines file (fsynced) so that no acknowledged record is lost. The policies
 - spill failure too (disk full, directory not writable): the batch goes back to the front of
   the queue and is tried again later; ``flush()`` raises ``LedgerError`` naming the error; the
   thread never dies of it. Only a record that finds both the queue full and the spill file
-  failing is dropped, and counted (``dropped``), and logged.
+  failing is dropped, and counted (``dropped``), and logged;
+- a decision whose id the sink already holds (recorded by another process, or too long ago for
+  the ledger's memory of recent ids): on a sink that can look ids up by index (SQL), the batch
+  is checked before it is sealed, and such a decision is left out of the chain and appended to
+  the reject file (``rejected``, logged); the rest of the batch is written as usual.
 """
 
 from __future__ import annotations
@@ -32,6 +36,7 @@ from typing import Any
 import orjson
 
 from drawledger import _records
+from drawledger._schema import DEC
 from drawledger._sinks import Sink
 from drawledger.exceptions import LedgerError
 
@@ -50,12 +55,13 @@ MAX_COOLDOWN = 60.0
 class Stats:
     """Counters of one ledger in one process (see ``Ledger.stats``)."""
 
-    __slots__ = ("dropped", "recorded", "retried", "spilled", "written")
+    __slots__ = ("dropped", "recorded", "rejected", "retried", "spilled", "written")
 
     def __init__(self) -> None:
         self.recorded = 0
         self.written = 0
         self.spilled = 0
+        self.rejected = 0
         self.retried = 0
         self.dropped = 0
 
@@ -112,7 +118,10 @@ class SpillFile:
         self._lock = threading.Lock()
 
     def write(self, items: list[Item]) -> None:
-        data = b"".join(spill_line(item) + b"\n" for item in items)
+        self.append(b"".join(spill_line(item) + b"\n" for item in items))
+
+    def append(self, data: bytes) -> None:
+        """Append lines (bytes ending in a newline) and fsync them."""
         with self._lock:
             self.path.parent.mkdir(parents=True, exist_ok=True)
             fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o600)
@@ -149,10 +158,12 @@ class Writer:
         retries: int = 2,
         retry_delay: float = 0.05,
         cooldown: float = 1.0,
+        rejects: SpillFile | None = None,
     ) -> None:
         self._open_sink = open_sink
         self._sink: Sink | None = None
         self.spill = spill
+        self.rejects = rejects or SpillFile(spill.path.with_name("drawledger-rejected.jsonl"))
         self.stats = stats
         self.chain = chain
         self.batch_size = batch_size
@@ -319,9 +330,11 @@ class Writer:
     def _seal_batch(self, items: list[Item]) -> list[Item]:
         """The batch sealed in order (the caller holds the chain lock).
 
-        The serving thread checked every field, so sealing cannot fail; if it did, the record
-        is dropped and counted rather than the thread dying.
+        Decisions whose id the sink already holds are left out first (``_screen``). The serving
+        thread checked every field, so sealing cannot fail; if it did, the record is dropped and
+        counted rather than the thread dying.
         """
+        items = self._screen(items)
         seal = self.chain.seal
         sealed = []
         for item in items:
@@ -332,6 +345,63 @@ class Writer:
                 self.stats.dropped += 1
                 log.error("drawledger: record dropped: it cannot be hashed: %s", exc)
         return sealed
+
+    def _screen(self, items: list[Item]) -> list[Item]:
+        """The batch without the unsealed decisions whose given id the sink already holds.
+
+        Only on a sink that looks ids up by index (``indexed_ids``), and only for ids given by
+        the caller (generated ids, ``<writer>.<n>``, are unique by construction). When the sink
+        cannot be asked (down, cooling off), the batch goes on as it is: ingest and the
+        integrity check catch a reuse later. A refused decision is never sealed, so its
+        writer's chain has no gap; it goes to the reject file.
+        """
+        given: list[str] = []
+        for item in items:
+            if item[0] == "d-":
+                did, writer = item[1][DEC.decision_id], item[1][DEC.writer]
+                if not (did.startswith(writer) and did[len(writer) : len(writer) + 1] == "."):
+                    given.append(did)
+        if not given or time.monotonic() < self._down_until:
+            return items
+        try:
+            if self._sink is None:
+                self._sink = self._open_sink()
+            if not self._sink.indexed_ids:
+                return items
+            taken = set(self._sink.stored_ids(given))
+        except Exception as exc:  # the write that follows retries, spills and reports
+            self.last_error = exc
+            return items
+        kept: list[Item] = []
+        refused: list[Item] = []
+        for item in items:
+            if item[0] == "d-":
+                did = item[1][DEC.decision_id]
+                if did in taken:
+                    refused.append(item)
+                    continue
+                taken.add(did)  # a second use in this batch is refused too
+            kept.append(item)
+        if refused:
+            self._reject(refused)
+        return kept
+
+    def _reject(self, items: list[Item]) -> None:
+        reason = "decision id already in the ledger"
+        lines = [orjson.dumps({"rejected": reason, "decision": list(item[1]), "draws": item[2]})
+                 for item in items]  # fmt: skip
+        ids = ", ".join(repr(item[1][0]) for item in items[:5])
+        try:
+            self.rejects.append(b"".join(line + b"\n" for line in lines))
+        except Exception as exc:
+            self.last_error = exc
+            self.stats.dropped += len(items)
+            log.error("drawledger: %d decisions dropped: their id is already in the ledger "
+                      "(%s) and the reject file failed: %s", len(items), ids, exc)  # fmt: skip
+            return
+        self.stats.rejected += len(items)
+        log.error("drawledger: %d decisions not written: their id is already in the ledger "
+                  "(%s); kept in %s", len(items), ids, self.rejects.path)  # fmt: skip
 
     def _write(self, items: list[Item]) -> BaseException | None:
         """Write a batch to the sink or the spill file; the error when neither took it."""
