@@ -361,16 +361,17 @@ def test_outcomes_are_recorded_and_checked(ledger: dl.Ledger) -> None:
 
 
 def test_outcomes_accept_numpy_numbers_and_refuse_what_is_not_finite(ledger: dl.Ledger) -> None:
-    """numpy integer and float scalars are numbers; their NaN and infinities, and integers too
-    large for a float, are refused with the usual one-line error."""
+    """numpy integer, float and bool scalars are numbers (as Python's); NaN, infinities and
+    integers too large for a float are refused with the usual one-line error."""
     with capture(ledger) as cap:
         ledger.outcome("req-8c1", "checkout", np.int64(1))
         ledger.outcome("req-8c1", "basket-value", np.float32(23.5))
+        ledger.outcome("req-8c1", "reordered", np.bool_(True))  # as a Python bool: 1.0
         for bad in (np.float64("nan"), np.float32("inf"), 10**400, np.str_("1.0")):
             with pytest.raises(NotSerializableError, match="value must be a finite number"):
                 ledger.outcome("req-8c1", "checkout", bad)
-    assert [1.0, 23.5] == [o.value for o in cap.outcomes]
-    assert [float, float] == [type(o.value) for o in cap.outcomes]
+    assert [1.0, 23.5, 1.0] == [o.value for o in cap.outcomes]
+    assert [float] * 3 == [type(o.value) for o in cap.outcomes]
 
 
 def test_a_reused_decision_id_is_refused_at_the_call(ledger_path: Any) -> None:

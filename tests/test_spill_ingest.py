@@ -496,6 +496,20 @@ def test_an_out_of_range_number_skips_its_line_not_the_file(
     assert "line 4" in err and "Traceback" not in err
 
 
+def test_a_spilled_draw_with_is_density_other_than_0_or_1_is_malformed(tmp_path: Path) -> None:
+    """The hash covers is_density as true/false, so 5 would pass it and be stored as 5."""
+    spill = _spill_of(tmp_path, 3)
+    lines = _lines(spill)
+    record = orjson.loads(lines[1])
+    record["draws"][0][-1] = 5
+    lines[1] = orjson.dumps(record)
+    spill.write_bytes(b"\n".join(lines) + b"\n")
+    report = dl.ingest(spill, tmp_path / "x.db")
+    assert [2] == [n for n, _ in report.malformed]
+    assert "is_density other than 0 or 1" in report.malformed[0][1]
+    assert 2 == report.decisions
+
+
 def test_a_spilled_record_that_differs_from_the_stored_one_is_a_conflict(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

@@ -15,9 +15,11 @@ __all__ = ["RecentIds", "declared_uniforms", "finite_number"]
 
 def finite_number(x: Any) -> float | None:
     """``x`` as a finite float: a bool, an int, a float or any other real number (numpy's
-    integer and float scalars); None for anything else, NaN, infinities and overflows."""
+    integer, float and bool scalars); None for anything else, NaN, infinities and overflows."""
     if type(x) is not float:
-        if not isinstance(x, numbers.Real):
+        if not isinstance(x, numbers.Real) and not (
+            type(x).__name__ in ("bool", "bool_") and type(x).__module__ == "numpy"
+        ):
             return None
         try:
             x = float(x)

@@ -249,7 +249,7 @@ class _Loader:
             else:
                 what = "decision" if kind == "d" else "outcome of"
                 self.report.conflicting.append((number, (
-                    f"{what} {row[at.decision_id]!r} (writer {row[at.writer]}, seq "
+                    f"{what} {row[at.decision_id]!r} (writer {row[at.writer]!r}, seq "
                     f"{row[at.seq]}) differs from the stored record with the same writer and "
                     "seq: tampering or a bug; not loaded"
                 )))  # fmt: skip
@@ -358,6 +358,8 @@ def _spill_record(obj: dict[str, Any], key: bytes) -> tuple[str, Row, list[Row]]
         row = _row(obj["decision"], DECISIONS, "decision")
         draws = [_row(d, DRAWS, "draw") for d in obj["draws"]]
         did = row[DEC.decision_id]
+        if any(d[DRAW.is_density] not in (0, 1) for d in draws):
+            raise _Bad(f"a draw of spilled decision {did!r} has is_density other than 0 or 1")
         if any(d[DRAW.decision_id] != did for d in draws):
             raise _Bad(f"a draw of spilled decision {did!r} names another decision")
         if _records.decision_hash(row[: DEC.hash], draws, key) != row[DEC.hash]:
