@@ -265,6 +265,8 @@ def test_unit_and_decision_id_must_be_text(ledger: dl.Ledger) -> None:
             feature_card(CARDS, SCORES, unit=17)  # type: ignore[arg-type]
         with pytest.raises(NotSerializableError, match="decision_id"):
             feature_card(CARDS, SCORES, decision_id="")
+        with pytest.raises(NotSerializableError, match="decision_id"):
+            feature_card(CARDS, SCORES, decision_id=["req-8c1"])  # type: ignore[arg-type]
     assert [] == cap.decisions
 
 

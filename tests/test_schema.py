@@ -223,7 +223,7 @@ def _type_error(what: str, column: _schema.Column) -> str:
     if column.kind == "float":
         return f"{what} {column.name} must be a finite number, got {wrong!r}"
     if column.kind == "integer":
-        return f"{what} {column.name} must be a non-negative integer, got {wrong!r}"
+        return f"{what} {column.name} must be an integer from 0 to 2**63 - 1, got {wrong!r}"
     null = " or null" if column.nullable else ""
     return f"{what} {column.name} must be a string{null}, got {wrong!r}"
 

@@ -12,6 +12,7 @@ from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import orjson
 import pytest
 
@@ -599,3 +600,16 @@ def test_a_decision_id_stored_by_another_writer_is_rejected_and_the_batch_writte
     again = dl.ingest(second.reject_path, target)  # a reject file is not a spill file
     assert [1, 2, 3] == [n for n, _ in again.malformed]
     assert "refused by its writer" in again.malformed[0][1]
+
+
+@pytest.mark.parametrize("prob", [10**400, float("inf"), float("nan"), -0.5, True, "0.05"])
+def test_record_draw_refuses_a_probability_that_is_not_a_finite_number(
+    ledger_path: Path, prob: Any
+) -> None:
+    """Also an integer too large for a float (it used to escape as a raw OverflowError)."""
+    led = dl.Ledger(ledger_path)
+    with pytest.raises(dl.DrawArgumentError, match="prob must be a finite number >= 0"):
+        led.record_draw("slot-delay", "uniform", {"low": 10.0, "high": 30.0}, 20.0, prob)
+    led.record_draw("slot-delay", "uniform", {"low": 10.0, "high": 30.0}, 20.0, np.float32(0.05))
+    led.close()
+    assert (1, 1) == (led.stats()["recorded"], led.stats()["written"])

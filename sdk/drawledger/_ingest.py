@@ -261,7 +261,7 @@ class _Loader:
                 outcomes.append(row)
                 continue
             did = row[DEC.decision_id]
-            stream = taken.get(did) or self.loaded.get(did)
+            stream = taken.get(did, self.loaded.get(did))
             if stream is not None:
                 self.report.duplicate_ids.append((number, _duplicate(did, stream)))
                 continue
@@ -278,7 +278,7 @@ class _Loader:
         taken = self.sink.stored_ids([obj["decision_id"] for _, obj in lines])
         for number, obj in lines:
             did = obj["decision_id"]
-            stream = taken.get(did) or self.loaded.get(did)
+            stream = taken.get(did, self.loaded.get(did))
             if stream is not None:
                 if stream == obj["stream"]:
                     self.report.already_present += 1

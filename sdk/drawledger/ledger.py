@@ -161,7 +161,7 @@ class Decision(Generic[R]):
 
     def __call__(self, *args: Any, unit: str | None = None, decision_id: str | None = None,
                  **kwargs: Any) -> R:  # fmt: skip
-        if decision_id is not None and decision_id in self.ledger._recent:
+        if type(decision_id) is str and decision_id in self.ledger._recent:
             self.ledger._refuse(decision_id)  # before the function runs: nothing is drawn
         params_json = self._params_json
         if kwargs or len(args) != len(self.inputs) or params_json is None:
@@ -521,17 +521,17 @@ class Ledger:
             raise DrawArgumentError("declared draw: stream must be a non-empty string")
         if not isinstance(args, Mapping):
             raise DrawArgumentError(f"declared {kind} draw: args must be an object")
-        if isinstance(prob, bool) or not isinstance(prob, (int, float)) or not prob >= 0.0 \
-                or prob == float("inf"):  # fmt: skip
+        p = None if isinstance(prob, bool) else finite_number(prob)
+        if p is None or not p >= 0.0:
             raise DrawArgumentError(f"declared {kind} draw: prob must be a finite number >= 0")
         density = kind in ("uniform", "normal", "lognormal") if is_density is None else is_density
-        if not density and prob > 1.0:
-            raise DrawArgumentError(f"declared {kind} draw: probability {prob} exceeds 1")
+        if not density and p > 1.0:
+            raise DrawArgumentError(f"declared {kind} draw: probability {p} exceeds 1")
         uniforms = declared_uniforms(kind, u)
-        record = DrawRecord(0, None, kind, dict(args), uniforms, value, float(prob), density)
+        record = DrawRecord(0, None, kind, dict(args), uniforms, value, p, density)
         action = _records.to_json(value, f"declared {kind} draw: value")
         return self._append_decision(decision_id, stream, unit, ts, None, None, "{}", "{}",
-                                     action, float(prob), "exact", None, [record])  # fmt: skip
+                                     action, p, "exact", None, [record])  # fmt: skip
 
     # -- lifecycle ----------------------------------------------------------------------------
     def flush(self, timeout: float | None = None) -> None:
