@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import contextlib
+import functools
 import os
 import sqlite3
 import subprocess
+import tempfile
 import threading
 import time
 from collections.abc import Callable, Iterator
@@ -15,6 +17,8 @@ from typing import Any
 import numpy as np
 import orjson
 import pytest
+from hypothesis import HealthCheck, example, given, settings
+from hypothesis import strategies as st
 
 import drawledger as dl
 from drawledger import _parquet
@@ -495,6 +499,44 @@ def test_an_out_of_range_number_skips_its_line_not_the_file(
     assert 2 == main(["ingest", str(spill), str(target)])
     err = capsys.readouterr().err
     assert "line 4" in err and "Traceback" not in err
+
+
+@functools.cache
+def _three_spilled_lines() -> tuple[bytes, ...]:
+    """Three spilled decisions, made once for the property below."""
+    with tempfile.TemporaryDirectory() as folder:
+        return tuple(_lines(_spill_of(Path(folder), 3)))
+
+
+@settings(
+    max_examples=15, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(column=st.sampled_from(["seq", "idx"]), value=st.integers(-(2**63), 2**64 - 1))
+@example(column="seq", value=2**63)  # the first that no 64-bit column holds
+@example(column="idx", value=2**31)  # the first that PostgreSQL's INTEGER does not hold
+def test_any_integer_in_an_integer_column_is_loaded_or_skipped_never_stops_the_file(
+    tmp_path: Path, column: str, value: int
+) -> None:
+    """Whatever integer a spilled line carries (hash recomputed to match it), ingest loads it
+    or reports that line (malformed; conflicting when it takes another record's seq); it never
+    stops the file, and the other lines always load."""
+    from drawledger._records import DRAW_COLUMNS
+
+    folder = Path(tempfile.mkdtemp(dir=tmp_path))  # one per example
+    lines = list(_three_spilled_lines())
+    if column == "seq":
+        lines[1] = _resealed(lines[1], seq=value)
+    else:
+        record = orjson.loads(lines[1])
+        record["draws"][0][DRAW_COLUMNS.index("idx")] = value
+        lines[1] = _resealed(orjson.dumps(record))
+    path = folder / "in.jsonl"
+    path.write_bytes(b"\n".join(lines) + b"\n")
+    report = dl.ingest(path, folder / "x.db")
+    assert 3 == report.decisions + len(report.malformed) + len(report.conflicting)
+    assert [] == [n for n, _ in report.malformed + report.conflicting if n != 2]
+    if not 0 <= value < 2 ** (63 if column == "seq" else 31):
+        assert 1 == len(report.malformed)
 
 
 def test_a_spilled_draw_with_is_density_other_than_0_or_1_is_malformed(tmp_path: Path) -> None:

@@ -323,10 +323,11 @@ def _text(x: Any, what: str, *, nullable: bool = False) -> Any:
     return x
 
 
-def _count(x: Any, what: str) -> int:
-    """A non-negative integer that fits the 64-bit integer columns of every sink."""
-    if isinstance(x, bool) or not isinstance(x, int) or not 0 <= x < 2**63:
-        raise _Bad(f"{what} must be an integer from 0 to 2**63 - 1, got {x!r}")
+def _count(x: Any, what: str, bits: int) -> int:
+    """A non-negative integer that fits its column in every sink: a wide column is a 64-bit
+    BIGINT, the others a 32-bit INTEGER in PostgreSQL."""
+    if isinstance(x, bool) or not isinstance(x, int) or not 0 <= x < 2**bits:
+        raise _Bad(f"{what} must be an integer from 0 to 2**{bits} - 1, got {x!r}")
     return x
 
 
@@ -335,7 +336,7 @@ def _field(column: Column, x: Any, what: str) -> Any:
     if column.kind == "float":
         return _number(x, what)
     if column.kind == "integer":
-        return _count(x, what)
+        return _count(x, what, 63 if column.wide else 31)
     return _text(x, what, nullable=column.nullable)
 
 
