@@ -8,10 +8,14 @@ from typing import Any
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from pydantic import BaseModel
 from recipe_card import CARDS, SCORES, make_decision
+from strategies import json_values
 
 import drawledger as dl
+from drawledger._records import to_json
 from drawledger.exceptions import (
     DecisionDefinitionError,
     DrawArgumentError,
@@ -204,6 +208,29 @@ def test_numpy_nan_and_infinity_in_inputs_are_refused_naming_the_input(
             remind(bad_input)
         remind(np.array([12.5, 3.0]))  # finite numpy values are recorded as numbers
     assert [{"basket_total": [12.5, 3.0]}] == [d.inputs for d in cap.decisions]
+
+
+NON_FINITE = [math.nan, -math.inf, np.float32("nan"), np.float64("inf"), np.float16("-inf")]
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    value=json_values,
+    bad=st.sampled_from(NON_FINITE),
+    at=st.integers(0, 3),
+    in_array=st.booleans(),
+)
+def test_any_nan_or_infinity_anywhere_is_refused_naming_its_place(
+    value: Any, bad: Any, at: int, in_array: bool
+) -> None:
+    """Wherever a NaN or an infinity sits among JSON values (Python's or numpy's, alone or
+    inside a numpy array), recording JSON refuses it and names the path to it."""
+    fee = np.array([1.5, bad, 2.0]) if in_array else bad
+    basket = [value] * 3
+    basket.insert(at, {"fee": fee})
+    where = rf"basket\[{at}\]\.fee" + (r"\[1\]" if in_array else "")
+    with pytest.raises(NotSerializableError, match=f"^inputs: {where} is NaN or an infinity"):
+        to_json({"basket": basket}, "inputs")
 
 
 def test_a_raising_decision_records_nothing(ledger_path: Any) -> None:
