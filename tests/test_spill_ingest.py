@@ -655,3 +655,32 @@ def test_record_draw_refuses_a_probability_that_is_not_a_finite_number(
     led.record_draw("slot-delay", "uniform", {"low": 10.0, "high": 30.0}, 20.0, np.float32(0.05))
     led.close()
     assert (1, 1) == (led.stats()["recorded"], led.stats()["written"])
+
+
+def test_a_declared_draw_the_writer_rejects_during_ingest_is_not_counted_as_loaded(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Another process stores the id between ingest's look-up and the write: the writer rejects
+    the declared draw, and the report says so instead of counting it as loaded."""
+    from drawledger import _sinks
+
+    target = tmp_path / "x.db"
+    other = dl.Ledger(target)
+    other.record_draw("free-delivery", "bernoulli", {"p": 0.2}, True, 0.2, decision_id="legacy-1")
+    other.close()
+    led = dl.Ledger(target)
+    led.record_draw("free-delivery", "bernoulli", {"p": 0.2}, True, 0.2, decision_id="own-1")
+    led.flush()  # its writer has its sink open: only ingest's own sink is patched below
+
+    class Blind(_sinks.SqlSink):
+        def stored_ids(self, ids: list[str]) -> dict[str, str]:
+            return {}  # as if the other process had not committed yet
+
+    monkeypatch.setattr(_sinks, "open_sink", lambda target, *a, **k: Blind(f"sqlite:///{target}"))
+    path = tmp_path / "declared.jsonl"
+    path.write_bytes(orjson.dumps(_declared(decision_id="legacy-1")) + b"\n")
+    report = dl.ingest(path, led)
+    led.close()
+    assert (0, 1, False) == (report.declared, report.rejected, report.ok)
+    assert "1 declared draws were refused by the writer" in report.render()
+    assert 1 == int((read_tables(target).decisions["decision_id"] == "legacy-1").sum())

@@ -66,6 +66,7 @@ class IngestReport:
     declared: int = 0
     already_present: int = 0
     spilled: int = 0
+    rejected: int = 0
     malformed: list[tuple[int, str]] = field(default_factory=list)
     conflicting: list[tuple[int, str]] = field(default_factory=list)
     duplicate_ids: list[tuple[int, str]] = field(default_factory=list)
@@ -73,7 +74,8 @@ class IngestReport:
     @property
     def ok(self) -> bool:
         """Every line was loaded (or was already present)."""
-        return not (self.malformed or self.spilled or self.conflicting or self.duplicate_ids)
+        return not (self.malformed or self.spilled or self.rejected or self.conflicting
+                    or self.duplicate_ids)  # fmt: skip
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -85,6 +87,7 @@ class IngestReport:
             "declared": self.declared,
             "already_present": self.already_present,
             "spilled": self.spilled,
+            "rejected": self.rejected,
             "malformed": [{"line": n, "reason": r} for n, r in self.malformed],
             "conflicting": [{"line": n, "reason": r} for n, r in self.conflicting],
             "duplicate_ids": [{"line": n, "reason": r} for n, r in self.duplicate_ids],
@@ -115,6 +118,9 @@ class IngestReport:
                 out.append(f"  ... and {len(found) - MAX_SHOWN} more {label} lines")
         if self.spilled:
             out.append(f"  {self.spilled} declared draws could not be written and were spilled")
+        if self.rejected:
+            out.append(f"  {self.rejected} declared draws were refused by the writer: their "
+                       "decision id reached the ledger during the ingest")  # fmt: skip
         return "\n".join(out)
 
     def __str__(self) -> str:
@@ -177,7 +183,8 @@ class _Loader:
         self.sink = sink
         self.key = ledger._key
         self.report = IngestReport(os.fspath(path))
-        self.spilled_before = ledger.stats()["spilled"]
+        before = ledger.stats()
+        self.spilled_before, self.rejected_before = before["spilled"], before["rejected"]
         self.loaded: dict[str, str] = {}  # stream of each decision id loaded by this run
 
     def run(self) -> IngestReport:
@@ -200,7 +207,10 @@ class _Loader:
         self._load_spilled(spilled)
         self._load_declared(declared)
         self.ledger.flush()
-        self.report.spilled = self.ledger.stats()["spilled"] - self.spilled_before
+        after = self.ledger.stats()
+        self.report.spilled = after["spilled"] - self.spilled_before
+        self.report.rejected = after["rejected"] - self.rejected_before
+        self.report.declared -= self.report.rejected  # recorded, then refused by the writer
         return self.report
 
     def _objects(self) -> Iterator[tuple[int, dict[str, Any]]]:

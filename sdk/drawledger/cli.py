@@ -69,11 +69,14 @@ def _ingest(args: argparse.Namespace) -> int:
     if report.spilled:
         problems.append(f"{report.spilled} declared draws could not be written and were "
                         "spilled; ingest that spill file again")  # fmt: skip
+    if report.rejected:
+        problems.append(f"{report.rejected} declared draws were refused by the writer: their "
+                        "decision id reached the ledger during the ingest")  # fmt: skip
     if problems:
         print(f"drawledger ingest: error: {'; '.join(problems)}", file=sys.stderr)
     if report.malformed or report.spilled:
         return EXIT_USAGE
-    return EXIT_FOUND if report.conflicting or report.duplicate_ids else EXIT_OK
+    return EXIT_FOUND if report.conflicting or report.duplicate_ids or report.rejected else EXIT_OK
 
 
 def _verify(args: argparse.Namespace) -> int:
