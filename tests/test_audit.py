@@ -5,6 +5,7 @@ from __future__ import annotations
 import itertools
 import json
 import math
+import sqlite3
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -265,7 +266,9 @@ def declared(
     ledger.record_draw(stream, kind, args, value, prob, **kw)
 
 
-def test_inconsistent_declared_draws_are_counted_and_alarm(ledger: dl.Ledger) -> None:
+def test_inconsistent_declared_draws_are_counted_and_alarm(
+    ledger: dl.Ledger, ledger_path: Path
+) -> None:
     """Values outside the options, probabilities that differ from the declaration, invalid
     declarations and malformed uniforms are each counted in the consistency check."""
     opts = {"options": [0, 5, 10], "probs": [0.6, 0.3, 0.1]}
@@ -274,9 +277,12 @@ def test_inconsistent_declared_draws_are_counted_and_alarm(ledger: dl.Ledger) ->
     declared(ledger, "bad", "categorical", opts, 7, 0.3)  # not an option
     declared(ledger, "bad", "categorical", opts, 5, 0.6)  # wrong probability
     declared(ledger, "bad", "categorical", {"options": [0, 5], "probs": [0.5, 0.4]}, 5, 0.4)
-    declared(ledger, "bad", "categorical", opts, 10, 0.1, u=[1.5])  # u outside [0, 1]
+    declared(ledger, "bad", "categorical", opts, 10, 0.1, u=[0.875])  # u made 1.5 below
     declared(ledger, "bad", "lognormal", {"mu": 0.0, "sigma": 0.3}, -1.0, 0.5)  # impossible
     declared(ledger, "bad", "uniform", {"low": 10.0, "high": 30.0}, 20.0, 0.05)  # fine
+    ledger.flush()  # record_draw refuses uniforms outside (0, 1): edit one in the database
+    with sqlite3.connect(ledger_path) as con:
+        con.execute("UPDATE draws SET u = '[1.5]' WHERE u = '[0.875]'")
     report = audit(ledger)
     bad = [t for t in report.tests if (t.stream, t.test) == ("bad", "consistency")]
     by_kind = {t.kind: t for t in bad}
@@ -289,6 +295,28 @@ def test_inconsistent_declared_draws_are_counted_and_alarm(ledger: dl.Ledger) ->
     assert 1.0 == by_kind["lognormal"].statistic
     assert 0.0 == by_kind["uniform"].statistic
     assert not find(report, "ok-stream", "consistency").alarm
+    assert not report.ok
+
+
+@pytest.mark.parametrize("stored", ["9e999", "-9e999"])
+def test_a_recorded_probability_that_is_not_finite_is_flagged(
+    ledger: dl.Ledger, ledger_path: Path, stored: str
+) -> None:
+    """An infinite recorded probability or density is never "as declared" (inf - p is inf,
+    which a relative tolerance times inf would accept): it is counted and alarms."""
+    opts = {"options": [0, 5, 10], "probs": [0.6, 0.3, 0.1]}
+    for i in range(30):
+        declared(ledger, "coupon", "categorical", opts, 5, 0.3, decision_id=f"c-{i}")
+        declared(ledger, "slot-delay", "uniform", {"low": 10.0, "high": 30.0}, 20.0, 0.05,
+                 decision_id=f"u-{i}")  # fmt: skip
+    ledger.flush()
+    with sqlite3.connect(ledger_path) as con:  # SQLite reads 9e999 as an infinity
+        con.execute(f"UPDATE draws SET prob = {stored} WHERE decision_id IN ('c-3', 'u-4')")
+    report = audit(ledger)
+    for stream in ("coupon", "slot-delay"):
+        check = find(report, stream, "consistency")
+        assert (1.0, True) == (check.statistic, check.alarm)
+        assert "1 recorded probability is not a finite number" in check.detail
     assert not report.ok
 
 

@@ -7,14 +7,20 @@ import threading
 import warnings
 from typing import Any
 
+import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from pydantic import BaseModel
 from recipe_card import CARDS, SCORES, make_decision
+from strategies import json_values
 
 import drawledger as dl
+from drawledger._records import to_json
 from drawledger.exceptions import (
     DecisionDefinitionError,
     DrawArgumentError,
+    DuplicateDecisionError,
     LedgerClosedError,
     LedgerError,
     NotSerializableError,
@@ -179,6 +185,55 @@ def test_non_serializable_inputs_raise_and_record_nothing(
     assert 0 == cap.decisions[0].seq
 
 
+@pytest.mark.parametrize(
+    ("bad_input", "where"),
+    [
+        (np.float32("inf"), "basket_total"),
+        (np.float64("nan"), "basket_total"),
+        (np.array([12.5, np.nan]), r"basket_total\[1\]"),
+        ({"fees": [np.float16("-inf")]}, r"basket_total\.fees\[0\]"),
+    ],
+)
+def test_numpy_nan_and_infinity_in_inputs_are_refused_naming_the_input(
+    ledger: dl.Ledger, bad_input: object, where: str
+) -> None:
+    """numpy NaN and infinities are refused like Python's (orjson would write them as null),
+    and the error names where they sit; nothing is recorded."""
+
+    @ledger.decision("basket-reminder")
+    def remind(basket_total: Any, draw: dl.Draw) -> bool:
+        return draw.bernoulli(0.5)
+
+    with capture(ledger) as cap:
+        with pytest.raises(NotSerializableError, match=f"inputs: {where} is NaN or an infinity"):
+            remind(bad_input)
+        remind(np.array([12.5, 3.0]))  # finite numpy values are recorded as numbers
+    assert [{"basket_total": [12.5, 3.0]}] == [d.inputs for d in cap.decisions]
+
+
+NON_FINITE = [math.nan, -math.inf, np.float32("nan"), np.float64("inf"), np.float16("-inf")]
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    value=json_values,
+    bad=st.sampled_from(NON_FINITE),
+    at=st.integers(0, 3),
+    in_array=st.booleans(),
+)
+def test_any_nan_or_infinity_anywhere_is_refused_naming_its_place(
+    value: Any, bad: Any, at: int, in_array: bool
+) -> None:
+    """Wherever a NaN or an infinity sits among JSON values (Python's or numpy's, alone or
+    inside a numpy array), recording JSON refuses it and names the path to it."""
+    fee = np.array([1.5, bad, 2.0]) if in_array else bad
+    basket = [value] * 3
+    basket.insert(at, {"fee": fee})
+    where = rf"basket\[{at}\]\.fee" + (r"\[1\]" if in_array else "")
+    with pytest.raises(NotSerializableError, match=f"^inputs: {where} is NaN or an infinity"):
+        to_json({"basket": basket}, "inputs")
+
+
 def test_a_raising_decision_records_nothing(ledger_path: Any) -> None:
     """An exception inside the function propagates; nothing of it is written; the ledger
     stays usable and the sequence has no gap."""
@@ -238,6 +293,8 @@ def test_unit_and_decision_id_must_be_text(ledger: dl.Ledger) -> None:
             feature_card(CARDS, SCORES, unit=17)  # type: ignore[arg-type]
         with pytest.raises(NotSerializableError, match="decision_id"):
             feature_card(CARDS, SCORES, decision_id="")
+        with pytest.raises(NotSerializableError, match="decision_id"):
+            feature_card(CARDS, SCORES, decision_id=["req-8c1"])  # type: ignore[arg-type]
     assert [] == cap.decisions
 
 
@@ -331,6 +388,56 @@ def test_outcomes_are_recorded_and_checked(ledger: dl.Ledger) -> None:
     assert [("req-8c1", "checkout", 1.0), ("req-8c1", "basket-value", 1.0)] == [
         (o.decision_id, o.name, o.value) for o in cap.outcomes
     ]
+
+
+def test_outcomes_accept_numpy_numbers_and_refuse_what_is_not_finite(ledger: dl.Ledger) -> None:
+    """numpy integer, float and bool scalars are numbers (as Python's); NaN, infinities and
+    integers too large for a float are refused with the usual one-line error."""
+    with capture(ledger) as cap:
+        ledger.outcome("req-8c1", "checkout", np.int64(1))
+        ledger.outcome("req-8c1", "basket-value", np.float32(23.5))
+        ledger.outcome("req-8c1", "reordered", np.bool_(True))  # as a Python bool: 1.0
+        for bad in (np.float64("nan"), np.float32("inf"), 10**400, np.str_("1.0")):
+            with pytest.raises(NotSerializableError, match="value must be a finite number"):
+                ledger.outcome("req-8c1", "checkout", bad)
+    assert [1.0, 23.5, 1.0] == [o.value for o in cap.outcomes]
+    assert [float] * 3 == [type(o.value) for o in cap.outcomes]
+
+
+def test_a_reused_decision_id_is_refused_at_the_call(ledger_path: Any) -> None:
+    """A retried request that records its decision id again gets DuplicateDecisionError (a
+    ValueError) before its function runs or anything is queued; the ledger stays whole (it
+    used to hold the id twice and fail integrity for good)."""
+    from drawledger.replay import check_integrity
+
+    ledger = dl.Ledger(ledger_path)
+    calls: list[str] = []
+
+    @ledger.decision("recipe-card")
+    def feature_card(scores: list[float], draw: dl.Draw) -> str:
+        calls.append("ran")
+        return draw.softmax(CARDS, scores, name="card")
+
+    feature_card(SCORES, decision_id="req-8c1")
+    with pytest.raises(DuplicateDecisionError, match="'req-8c1' was already recorded") as info:
+        feature_card(SCORES, decision_id="req-8c1")
+    assert isinstance(info.value, ValueError)
+    assert ["ran"] == calls  # refused before the function ran: no draw, no side effect
+    with pytest.raises(DuplicateDecisionError):
+        ledger.record_draw("free-delivery", "bernoulli", {"p": 0.2}, True, 0.2,
+                           decision_id="req-8c1")  # fmt: skip
+    with pytest.raises(DuplicateDecisionError):
+        ledger.bucket("shopper-1", {"a": 0.5, "b": 0.5}, "menu", decision_id="req-8c1")
+    with pytest.raises(ZeroDivisionError):  # a call that fails does not use up its id
+        ledger.decision("broken")(lambda draw: 1 / 0 if draw else None)(decision_id="req-2")
+    ledger.record_draw("free-delivery", "bernoulli", {"p": 0.2}, True, 0.2, decision_id="req-2")
+    ledger.outcome("req-8c1", "checkout", 1.0)  # outcomes are recorded by id, many per id
+    ledger.outcome("req-8c1", "checkout", 0.0)
+    ledger.close()
+    assert (4, 4, 0) == (ledger.stats()["recorded"], ledger.stats()["written"],
+                         ledger.stats()["rejected"])  # fmt: skip
+    report = check_integrity(ledger_path)
+    assert (True, 2, 0) == (report.ok, report.decisions, report.duplicates)
 
 
 def test_calls_after_close_raise(ledger_path: Any) -> None:

@@ -451,3 +451,30 @@ def test_a_density_too_narrow_to_record_is_refused() -> None:
     with pytest.raises(DrawArgumentError, match=r"density .* is 0\.0, which cannot be recorded"):
         d.lognormal(0.25, 2.1e-86)
     assert [] == d.records
+
+
+GOOD = [
+    ("categorical", {"options": ["a", "b"], "probs": [0.5, 0.5]}),
+    ("bernoulli", {"p": 0.5}),
+    ("integers", {"low": 0, "high": 3}),
+    ("softmax", {"options": CARDS, "scores": SCORES, "temperature": 1.0}),
+    ("epsilon_greedy", {"options": CARDS, "scores": SCORES, "epsilon": 0.1}),
+    ("slate", {"options": CARDS, "weights": [1.0] * 6, "k": 2}),
+    ("uniform", {"low": 0.0, "high": 1.0}),
+    ("normal", {"mean": 0.0, "sd": 1.0}),
+    ("lognormal", {"mu": 0.0, "sigma": 1.0}),
+]
+
+
+@pytest.mark.parametrize(("kind", "args"), GOOD, ids=[k for k, _ in GOOD])
+@pytest.mark.parametrize("name", [5, b"card", ["card"]])
+def test_a_draw_name_that_is_not_text_is_refused(kind: str, args: dict, name: Any) -> None:
+    """name= must be a string (or None): anything else is a DrawArgumentError naming the
+    argument, not a TypeError from deep inside; nothing is recorded, no uniform is used."""
+    d = Draw(seed_of(6))
+    with pytest.raises(DrawArgumentError, match=f"^{kind} draw: name must be a string") as info:
+        getattr(d, kind)(**args, name=name)
+    assert type(name).__name__ in str(info.value)
+    assert [] == d.records
+    d.bernoulli(0.5)
+    assert _stream.uniforms(seed_of(6), 1) == d.records[0].u

@@ -226,7 +226,8 @@ def _type_error(what: str, column: _schema.Column) -> str:
     if column.kind == "float":
         return f"{what} {column.name} must be a finite number, got {wrong!r}"
     if column.kind == "integer":
-        return f"{what} {column.name} must be a non-negative integer, got {wrong!r}"
+        bits = 63 if column.wide else 31
+        return f"{what} {column.name} must be an integer from 0 to 2**{bits} - 1, got {wrong!r}"
     null = " or null" if column.nullable else ""
     return f"{what} {column.name} must be a string{null}, got {wrong!r}"
 

@@ -106,3 +106,25 @@ def test_spill_from_an_outage_is_ingested_into_postgresql_once(postgres_url: str
 def test_unreachable_server_is_a_clear_error_for_readers() -> None:
     with pytest.raises(dl.LedgerError, match="cannot read ledger"):
         read_tables("postgresql+psycopg://postgres@127.0.0.1:1/test")
+
+
+def test_a_decision_id_stored_by_another_writer_is_rejected(postgres_url: str,
+                                                             tmp_path: Path) -> None:  # fmt: skip
+    """Retried requests served by another process: the id is looked up in the decision_id
+    index before the batch is sealed; the reused one is rejected, the rest written, and the
+    ledger stays whole. Ingest refuses the same reuse from a spill file."""
+    first = dl.Ledger(postgres_url, spill_dir=tmp_path)
+    _record(first, 3)
+    first.close()
+    second = dl.Ledger(postgres_url, spill_dir=tmp_path)
+    _record(second, 5)  # req-0 .. req-4: three stored by the first writer
+    second.close()
+    assert (3, 7) == (second.stats()["rejected"], second.stats()["written"])
+    down = dl.Ledger("postgresql+psycopg://postgres@127.0.0.1:1/test", spill_dir=tmp_path)
+    _record(down, 6)
+    down.close()
+    report = dl.ingest(down.spill_path, postgres_url)
+    assert (1, 6, 5) == (report.decisions, report.outcomes, len(report.duplicate_ids))
+    assert 6 == len(read_tables(postgres_url).decisions)
+    integrity = check_integrity(postgres_url)
+    assert (0, 0, 5) == (integrity.duplicates, integrity.broken_links, integrity.gaps)

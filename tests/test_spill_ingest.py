@@ -4,10 +4,12 @@ from __future__ import annotations
 
 import contextlib
 import errno
+import functools
 import os
 import sqlite3
 import subprocess
 import sys
+import tempfile
 import threading
 import time
 import uuid
@@ -15,9 +17,10 @@ from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import orjson
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 import drawledger as dl
@@ -669,3 +672,249 @@ def test_close_with_a_timeout_returns_and_spills_what_a_stuck_sink_left_queued(
     assert (1, 0, 0) == (led.stats()["written"], led.stats()["queued"], led.stats()["dropped"])
     dl.ingest(led.spill_path, target)
     assert check_integrity(target).ok
+
+
+@pytest.mark.parametrize(
+    ("u", "problem"),
+    [
+        ([1.5], r"u\[0\] is 1.5, not a number strictly between 0 and 1"),
+        ([0.25, 0.0], r"u\[1\] is 0.0"),
+        ([-0.5], r"u\[0\] is -0.5"),
+        ([float("nan")], r"u\[0\] is nan"),
+        ([True], r"u\[0\] is True"),
+        (["0.5"], r"u\[0\] is '0.5'"),
+        (0.5, "u must be a list of uniforms"),
+        ("0.5", "u must be a list of uniforms"),
+    ],
+)
+def test_record_draw_refuses_uniforms_that_ingest_would_refuse(
+    ledger_path: Path, u: Any, problem: str
+) -> None:
+    """Declared uniforms lie strictly between 0 and 1 (as ingest requires): others are refused
+    at the call with a DrawArgumentError naming the entry, and nothing is recorded."""
+    led = dl.Ledger(ledger_path)
+    with pytest.raises(dl.DrawArgumentError, match=problem):
+        led.record_draw("free-delivery", "bernoulli", {"p": 0.5}, True, 0.5, u=u)
+    led.record_draw("free-delivery", "bernoulli", {"p": 0.5}, True, 0.5, u=(0.25,))
+    led.close()
+    assert (1, 1) == (led.stats()["recorded"], led.stats()["written"])
+    assert ["[0.25]"] == list(read_tables(ledger_path).draws["u"])
+
+
+# -- ingest: numbers out of range, conflicts --------------------------------------------------
+def _resealed(line: bytes, **changes: Any) -> bytes:
+    """A spilled decision with some columns changed and its (unkeyed) hash recomputed, as
+    someone without an integrity key can do."""
+    from drawledger._records import DECISION_COLUMNS, decision_hash
+
+    record = orjson.loads(line)
+    row = record["decision"]
+    for column, value in changes.items():
+        row[DECISION_COLUMNS.index(column)] = value
+    row[-1] = decision_hash(tuple(row[:-1]), [tuple(d) for d in record["draws"]])
+    return orjson.dumps(record)
+
+
+@pytest.mark.parametrize("seq", [2**63, 2**64 - 1])
+def test_an_out_of_range_number_skips_its_line_not_the_file(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], seq: int
+) -> None:
+    """seq 2**63 does not fit a 64-bit integer column: that line is malformed, the others load
+    (the database used to refuse the whole batch and stop the file)."""
+    spill = _spill_of(tmp_path, 6)
+    lines = _lines(spill)
+    lines[3] = _resealed(lines[3], seq=seq)
+    spill.write_bytes(b"\n".join(lines) + b"\n")
+    target = tmp_path / "x.db"
+    report = dl.ingest(spill, target)
+    assert [4] == [n for n, _ in report.malformed]
+    assert "seq must be" in report.malformed[0][1]
+    assert 5 == report.decisions
+    assert 2 == main(["ingest", str(spill), str(target)])
+    err = capsys.readouterr().err
+    assert "line 4" in err and "Traceback" not in err
+
+
+@functools.cache
+def _three_spilled_lines() -> tuple[bytes, ...]:
+    """Three spilled decisions, made once for the property below."""
+    with tempfile.TemporaryDirectory() as folder:
+        return tuple(_lines(_spill_of(Path(folder), 3)))
+
+
+@settings(
+    max_examples=15, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(column=st.sampled_from(["seq", "idx"]), value=st.integers(-(2**63), 2**64 - 1))
+@example(column="seq", value=2**63)  # the first that no 64-bit column holds
+@example(column="idx", value=2**31)  # the first that PostgreSQL's INTEGER does not hold
+def test_any_integer_in_an_integer_column_is_loaded_or_skipped_never_stops_the_file(
+    tmp_path: Path, column: str, value: int
+) -> None:
+    """Whatever integer a spilled line carries (hash recomputed to match it), ingest loads it
+    or reports that line (malformed; conflicting when it takes another record's seq); it never
+    stops the file, and the other lines always load."""
+    from drawledger._records import DRAW_COLUMNS
+
+    folder = Path(tempfile.mkdtemp(dir=tmp_path))  # one per example
+    lines = list(_three_spilled_lines())
+    if column == "seq":
+        lines[1] = _resealed(lines[1], seq=value)
+    else:
+        record = orjson.loads(lines[1])
+        record["draws"][0][DRAW_COLUMNS.index("idx")] = value
+        lines[1] = _resealed(orjson.dumps(record))
+    path = folder / "in.jsonl"
+    path.write_bytes(b"\n".join(lines) + b"\n")
+    report = dl.ingest(path, folder / "x.db")
+    assert 3 == report.decisions + len(report.malformed) + len(report.conflicting)
+    assert [] == [n for n, _ in report.malformed + report.conflicting if n != 2]
+    if not 0 <= value < 2 ** (63 if column == "seq" else 31):
+        assert 1 == len(report.malformed)
+
+
+def test_a_spilled_draw_with_is_density_other_than_0_or_1_is_malformed(tmp_path: Path) -> None:
+    """The hash covers is_density as true/false, so 5 would pass it and be stored as 5."""
+    spill = _spill_of(tmp_path, 3)
+    lines = _lines(spill)
+    record = orjson.loads(lines[1])
+    record["draws"][0][-1] = 5
+    lines[1] = orjson.dumps(record)
+    spill.write_bytes(b"\n".join(lines) + b"\n")
+    report = dl.ingest(spill, tmp_path / "x.db")
+    assert [2] == [n for n, _ in report.malformed]
+    assert "is_density other than 0 or 1" in report.malformed[0][1]
+    assert 2 == report.decisions
+
+
+def test_a_spilled_record_that_differs_from_the_stored_one_is_a_conflict(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Same writer and seq as a stored record, other content (and a hash that matches it): not
+    "already in the ledger" but a conflict (tampering or a bug), counted, shown first, exit 1."""
+    spill = _spill_of(tmp_path, 4)
+    target = tmp_path / "x.db"
+    assert dl.ingest(spill, target).ok
+    lines = _lines(spill)
+    lines[2] = _resealed(lines[2], propensity=0.5)
+    altered = tmp_path / "altered.jsonl"
+    altered.write_bytes(b"\n".join(lines) + b"\n")
+    report = dl.ingest(altered, target)
+    assert (3, 0, False) == (report.already_present, report.decisions, report.ok)
+    assert [3] == [n for n, _ in report.conflicting]
+    assert "differs from the stored record" in report.conflicting[0][1]
+    assert 1 == len(report.to_dict()["conflicting"])
+    assert report.render().startswith("CONFLICT")
+    assert 1 == main(["ingest", str(altered), str(target)])
+    err = capsys.readouterr().err
+    assert "1 conflicting" in err and "line 3" in err
+    assert 1 == len(err.strip().splitlines())
+    stored = read_tables(target).decisions
+    assert 0.5 not in set(stored["propensity"])  # the stored record is left as it was
+
+
+@pytest.mark.parametrize("fmt", [None, "parquet"])
+def test_ingest_refuses_a_decision_id_already_in_the_ledger_under_another_record(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], fmt: str | None
+) -> None:
+    """A spilled decision or a declared draw reusing a stored decision id (another writer, or
+    another stream) is refused, counted and shown: ids are unique per ledger. The refused
+    spilled record's seq stays a gap in its writer's chain, so integrity keeps saying so."""
+    target = tmp_path / ("ledger" if fmt else "x.db")
+    live = dl.Ledger(target, format=fmt)
+    _decide(live, 1, outcomes=False)  # basket-0, by this writer
+    live.record_draw("free-delivery", "bernoulli", {"p": 0.2}, True, 0.2, decision_id="legacy-1")
+    live.close()
+    spill = _spill_of(tmp_path, 3)  # basket-0, basket-1, basket-2 by another writer
+    report = dl.ingest(spill, target)
+    assert (2, False) == (report.decisions, report.ok)
+    assert [1] == [n for n, _ in report.duplicate_ids]
+    assert "'basket-0' is already in the ledger" in report.duplicate_ids[0][1]
+    declared = tmp_path / "declared.jsonl"
+    declared.write_bytes(orjson.dumps(_declared(decision_id="basket-1")) + b"\n"
+                         + orjson.dumps(_declared(decision_id="legacy-1")) + b"\n")  # fmt: skip
+    second = dl.ingest(declared, target)
+    assert (0, 1) == (second.declared, second.already_present)  # legacy-1: same stream
+    assert [1] == [n for n, _ in second.duplicate_ids]  # basket-1: stream reminder-delay
+    assert 1 == main(["ingest", str(spill), str(target)])
+    assert "1 records refused for a decision id already in the ledger" in capsys.readouterr().err
+    tables = read_tables(target)
+    assert 1 == int((tables.decisions["decision_id"] == "basket-0").sum())
+    integrity = check_integrity(target)
+    assert (0, 1) == (integrity.duplicates, integrity.gaps)
+
+
+# -- decision ids already in the ledger ---------------------------------------------------------
+def test_a_decision_id_stored_by_another_writer_is_rejected_and_the_batch_written(
+    tmp_path: Path,
+) -> None:
+    """Another process (another writer) already stored the id, or this ledger forgot it
+    (recent_ids): the writer leaves that decision out of its chain and out of the ledger,
+    counts it in ``rejected`` and keeps it in the reject file; the rest of the batch is
+    written and the integrity check finds nothing wrong."""
+    target = tmp_path / "x.db"
+    first = dl.Ledger(target)
+    _decide(first, 2, outcomes=False)  # basket-0, basket-1
+    first.close()
+    second = dl.Ledger(target, recent_ids=2, batch_size=100)
+    ids = _decide(second, 6, outcomes=False)  # basket-0 .. basket-5: two already stored
+    second.record_draw(
+        "free-delivery", "bernoulli", {"p": 0.5}, True, 0.5, decision_id="basket-2"
+    )  # forgotten by recent_ids=2, seen by the writer
+    second.outcome("basket-0", "checkout", 1.0)  # outcomes find the stored decision
+    second.close()
+    stats = second.stats()
+    assert {"recorded": 8, "written": 5, "rejected": 3, "spilled": 0, "dropped": 0} == {
+        k: stats[k] for k in ("recorded", "written", "rejected", "spilled", "dropped")
+    }
+    rejected = [orjson.loads(line) for line in _lines(second.reject_path)]
+    assert ["basket-0", "basket-1", "basket-2"] == [r["decision"][0] for r in rejected]
+    assert {"decision id already in the ledger"} == {r["rejected"] for r in rejected}
+    assert sorted(ids) == sorted(read_tables(target).decisions["decision_id"])
+    report = check_integrity(target)
+    assert (True, 0, 0, 6) == (report.ok, report.duplicates, report.gaps, report.decisions)
+    again = dl.ingest(second.reject_path, target)  # a reject file is not a spill file
+    assert [1, 2, 3] == [n for n, _ in again.malformed]
+    assert "refused by its writer" in again.malformed[0][1]
+
+
+@pytest.mark.parametrize("prob", [10**400, float("inf"), float("nan"), -0.5, True, "0.05"])
+def test_record_draw_refuses_a_probability_that_is_not_a_finite_number(
+    ledger_path: Path, prob: Any
+) -> None:
+    """Also an integer too large for a float (it used to escape as a raw OverflowError)."""
+    led = dl.Ledger(ledger_path)
+    with pytest.raises(dl.DrawArgumentError, match="prob must be a finite number >= 0"):
+        led.record_draw("slot-delay", "uniform", {"low": 10.0, "high": 30.0}, 20.0, prob)
+    led.record_draw("slot-delay", "uniform", {"low": 10.0, "high": 30.0}, 20.0, np.float32(0.05))
+    led.close()
+    assert (1, 1) == (led.stats()["recorded"], led.stats()["written"])
+
+
+def test_a_declared_draw_the_writer_rejects_during_ingest_is_not_counted_as_loaded(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Another process stores the id between ingest's look-up and the write: the writer rejects
+    the declared draw, and the report says so instead of counting it as loaded."""
+    from drawledger import _sinks
+
+    target = tmp_path / "x.db"
+    other = dl.Ledger(target)
+    other.record_draw("free-delivery", "bernoulli", {"p": 0.2}, True, 0.2, decision_id="legacy-1")
+    other.close()
+    led = dl.Ledger(target)
+    led.record_draw("free-delivery", "bernoulli", {"p": 0.2}, True, 0.2, decision_id="own-1")
+    led.flush()  # its writer has its sink open: only ingest's own sink is patched below
+
+    class Blind(_sinks.SqlSink):
+        def stored_ids(self, ids: list[str]) -> dict[str, str]:
+            return {}  # as if the other process had not committed yet
+
+    monkeypatch.setattr(_sinks, "open_sink", lambda target, *a, **k: Blind(f"sqlite:///{target}"))
+    path = tmp_path / "declared.jsonl"
+    path.write_bytes(orjson.dumps(_declared(decision_id="legacy-1")) + b"\n")
+    report = dl.ingest(path, led)
+    led.close()
+    assert (0, 1, False) == (report.declared, report.rejected, report.ok)
+    assert "1 declared draws were refused by the writer" in report.render()
+    assert 1 == int((read_tables(target).decisions["decision_id"] == "legacy-1").sum())

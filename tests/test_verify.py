@@ -224,6 +224,8 @@ def test_hidden_global_counter_is_nondeterministic(service: Callable[..., Servic
     [
         ("UPDATE draws SET value = '\"taco-night-x\"' WHERE decision_id = 'd3'", "value"),
         ("UPDATE draws SET prob = prob * 1.000001 WHERE decision_id = 'd3'", "probability"),
+        ("UPDATE draws SET prob = 9e999 WHERE decision_id = 'd3'", "bad-record"),  # +inf
+        ("UPDATE draws SET prob = -9e999 WHERE decision_id = 'd3'", "bad-record"),  # -inf
         ("UPDATE decisions SET propensity = 0.5 WHERE decision_id = 'd3'", "probability"),
         ("UPDATE draws SET u = '[0.5]' WHERE decision_id = 'd3'", "value"),
         ("DELETE FROM draws WHERE decision_id = 'd3'", "draw-count"),

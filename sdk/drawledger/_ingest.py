@@ -5,17 +5,21 @@ A line is one of (docs/ledger.md):
 - a spilled decision ``{"decision": [...16 values...], "draws": [[...9 values...], ...]}`` or a
   spilled outcome ``{"outcome": [...8 values...]}``, as the writer spills them. They are stored
   as they are (same writer, seq and hash) after their hash is checked with the ledger's
-  integrity key; a record whose (writer, seq) is already in the ledger is skipped, so loading a
-  file twice, or a file the writer later managed to write anyway, adds each record once;
+  integrity key; a record whose (writer, seq) is already in the ledger with the same hash is
+  skipped, so loading a file twice, or a file the writer later managed to write anyway, adds
+  each record once; one whose (writer, seq) is stored with another hash is a *conflict*
+  (tampering or a bug), reported and not loaded;
 - a declared draw ``{"decision_id", "stream", "unit", "ts", "kind", "args", "value", "prob"}``
   with optional ``"u"``, recorded as by ``Ledger.record_draw``; a declared draw whose
   decision id is already among the decisions of its stream is skipped.
 
-A malformed line is reported with its line number and skipped; every other line is loaded. A
-spill record cut short (a write that failed on a full disk, or a crash in the middle of one) is a
-torn line: the last line of a file, without its line break, is counted under ``torn`` (the writer
-counts a record as spilled only once its whole line is on disk); a torn line inside the file is
-malformed, and a complete record glued after it on the same line is still loaded.
+A decision whose id is already in the ledger under another record (another stream, or another
+writer and seq) is refused and reported: decision ids are unique per ledger. A malformed line is
+reported with its line number and skipped; every other line is loaded. A spill record cut short
+(a write that failed on a full disk, or a crash in the middle of one) is a torn line: the last
+line of a file, without its line break, is counted under ``torn`` (the writer counts a record as
+spilled only once its whole line is on disk); a torn line inside the file is malformed, and a
+complete record glued after it on the same line is still loaded.
 """
 
 from __future__ import annotations
@@ -68,13 +72,17 @@ class IngestReport:
     declared: int = 0
     already_present: int = 0
     spilled: int = 0
+    rejected: int = 0
     malformed: list[tuple[int, str]] = field(default_factory=list)
     torn: list[int] = field(default_factory=list)
+    conflicting: list[tuple[int, str]] = field(default_factory=list)
+    duplicate_ids: list[tuple[int, str]] = field(default_factory=list)
 
     @property
     def ok(self) -> bool:
         """Every line was loaded (or was already present)."""
-        return not self.malformed and not self.spilled
+        return not (self.malformed or self.spilled or self.rejected or self.conflicting
+                    or self.duplicate_ids)  # fmt: skip
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -86,23 +94,42 @@ class IngestReport:
             "declared": self.declared,
             "already_present": self.already_present,
             "spilled": self.spilled,
+            "rejected": self.rejected,
             "malformed": [{"line": n, "reason": r} for n, r in self.malformed],
             "torn": list(self.torn),
+            "conflicting": [{"line": n, "reason": r} for n, r in self.conflicting],
+            "duplicate_ids": [{"line": n, "reason": r} for n, r in self.duplicate_ids],
         }
 
     def render(self) -> str:
-        """Plain-text summary for the terminal."""
-        out = [
+        """Plain-text summary for the terminal; conflicts first, above everything else."""
+        out = []
+        if self.conflicting:
+            out.append(
+                f"CONFLICT: {len(self.conflicting)} records differ from the stored records with "
+                "the same writer and seq (tampering or a bug); they were not loaded"
+            )
+        out.append(
             f"{self.file}: {self.lines} lines; loaded {self.decisions} spilled decisions, "
             f"{self.outcomes} spilled outcomes, {self.declared} declared draws; "
-            f"{self.already_present} already in the ledger; {len(self.malformed)} malformed"
+            f"{self.already_present} already in the ledger; {len(self.conflicting)} conflicting; "
+            f"{len(self.duplicate_ids)} refused for a decision id already in the ledger; "
+            f"{len(self.malformed)} malformed"
             + (f"; torn last line {self.torn[0]} skipped (a write cut short)" if self.torn else "")
-        ]
-        out += [f"  line {n}: {visible(reason)}" for n, reason in self.malformed[:MAX_SHOWN]]
-        if len(self.malformed) > MAX_SHOWN:
-            out.append(f"  ... and {len(self.malformed) - MAX_SHOWN} more malformed lines")
+        )
+        for label, found in (
+            ("conflicting", self.conflicting),
+            ("refused", self.duplicate_ids),
+            ("malformed", self.malformed),
+        ):
+            out += [f"  line {n}: {visible(reason)}" for n, reason in found[:MAX_SHOWN]]
+            if len(found) > MAX_SHOWN:
+                out.append(f"  ... and {len(found) - MAX_SHOWN} more {label} lines")
         if self.spilled:
             out.append(f"  {self.spilled} declared draws could not be written and were spilled")
+        if self.rejected:
+            out.append(f"  {self.rejected} declared draws were refused by the writer: their "
+                       "decision id reached the ledger during the ingest")  # fmt: skip
         return "\n".join(out)
 
     def __str__(self) -> str:
@@ -155,6 +182,9 @@ def ingest(
             led.close()
 
 
+Spilled = tuple[int, str, Row, list[Row]]  # line number, kind ("d" or "o"), row, draw rows
+
+
 class _Loader:
     def __init__(self, path: Path, ledger: Ledger, sink: _sinks.Sink) -> None:
         self.path = path
@@ -162,16 +192,17 @@ class _Loader:
         self.sink = sink
         self.key = ledger._key
         self.report = IngestReport(os.fspath(path))
-        self.spilled_before = ledger.stats()["spilled"]
-        self.seen_declared: set[str] = set()
+        before = ledger.stats()
+        self.spilled_before, self.rejected_before = before["spilled"], before["rejected"]
+        self.loaded: dict[str, str] = {}  # stream of each decision id loaded by this run
 
     def run(self) -> IngestReport:
-        spilled: list[tuple[str, Row, list[Row]]] = []
+        spilled: list[Spilled] = []
         declared: list[tuple[int, dict[str, Any]]] = []
         for number, obj in self._objects():
             try:
                 if "decision" in obj or "outcome" in obj:
-                    spilled.append(_spill_record(obj, self.key))
+                    spilled.append((number, *_spill_record(obj, self.key)))
                 else:
                     declared.append((number, _declared(obj)))
             except _Bad as exc:
@@ -185,7 +216,10 @@ class _Loader:
         self._load_spilled(spilled)
         self._load_declared(declared)
         self.ledger.flush()
-        self.report.spilled = self.ledger.stats()["spilled"] - self.spilled_before
+        after = self.ledger.stats()
+        self.report.spilled = after["spilled"] - self.spilled_before
+        self.report.rejected = after["rejected"] - self.rejected_before
+        self.report.declared -= self.report.rejected  # recorded, then refused by the writer
         return self.report
 
     def _objects(self) -> Iterator[tuple[int, dict[str, Any]]]:
@@ -217,34 +251,54 @@ class _Loader:
         except OSError as exc:
             raise LedgerError(f"cannot read {os.fspath(self.path)!r}: {exc}") from None
 
-    def _load_spilled(self, records: list[tuple[str, Row, list[Row]]]) -> None:
+    def _load_spilled(self, records: list[Spilled]) -> None:
         if not records:
             return
-        fresh: list[tuple[str, Row, list[Row]]] = []
-        taken: set[tuple[str, str, int]] = set()
+        stored: dict[tuple[str, str, int], str] = {}  # (kind, writer, seq) -> hash
         for kind, table in (("d", "decisions"), ("o", "outcomes")):
             at = _POSITIONS[kind]
             by_writer: dict[str, list[int]] = {}
-            for k, row, _ in records:
+            for _, k, row, _ in records:
                 if k == kind:
                     by_writer.setdefault(row[at.writer], []).append(row[at.seq])
             for writer, seqs in by_writer.items():
-                present = self.sink.present_seqs(table, writer, min(seqs), max(seqs))
-                taken.update((kind, writer, s) for s in present)
+                present = self.sink.present_hashes(table, writer, min(seqs), max(seqs))
+                stored.update(((kind, writer, s), h) for s, h in present.items())
+        fresh: list[Spilled] = []
         for rec in records:
-            kind, row, _ = rec
+            number, kind, row, _ = rec
             at = _POSITIONS[kind]
             key = (kind, row[at.writer], row[at.seq])
-            if key in taken:
+            have = stored.get(key)
+            if have is None:
+                stored[key] = row[at.hash]
+                fresh.append(rec)
+            elif have == row[at.hash]:
                 self.report.already_present += 1
             else:
-                taken.add(key)
-                fresh.append(rec)
-        decisions = [row for k, row, _ in fresh if k == "d"]
-        draws = [d for k, _, d in fresh if k == "d"]
-        outcomes = [row for k, row, _ in fresh if k == "o"]
+                what = "decision" if kind == "d" else "outcome of"
+                self.report.conflicting.append((number, (
+                    f"{what} {row[at.decision_id]!r} (writer {row[at.writer]!r}, seq "
+                    f"{row[at.seq]}) differs from the stored record with the same writer and "
+                    "seq: tampering or a bug; not loaded"
+                )))  # fmt: skip
+        ids = [row[DEC.decision_id] for _, k, row, _ in fresh if k == "d"]
+        taken = self.sink.stored_ids(ids) if ids else {}
+        decisions, draws, outcomes = [], [], []
+        for number, kind, row, its_draws in fresh:
+            if kind == "o":
+                outcomes.append(row)
+                continue
+            did = row[DEC.decision_id]
+            stream = taken.get(did, self.loaded.get(did))
+            if stream is not None:
+                self.report.duplicate_ids.append((number, _duplicate(did, stream)))
+                continue
+            self.loaded[did] = row[DEC.stream]
+            decisions.append(row)
+            draws.append(its_draws)
         self.sink.write(decisions, draws, outcomes)
-        for kind, row, _ in fresh:  # a chain that starts here: its writer never registered
+        for _, kind, row, _ in fresh:  # a chain that starts here: its writer never registered
             at = _POSITIONS[kind]
             if row[at.seq] == 0:
                 self.sink.register_writer(row[at.writer], row[at.ts], self.key, row[at.prev_hash])
@@ -254,12 +308,15 @@ class _Loader:
     def _load_declared(self, lines: list[tuple[int, dict[str, Any]]]) -> None:
         if not lines:
             return
-        ids = [obj["decision_id"] for _, obj in lines]
-        present = self.sink.present_ids(ids, {obj["stream"] for _, obj in lines})
+        taken = self.sink.stored_ids([obj["decision_id"] for _, obj in lines])
         for number, obj in lines:
             did = obj["decision_id"]
-            if did in present or did in self.seen_declared:
-                self.report.already_present += 1
+            stream = taken.get(did, self.loaded.get(did))
+            if stream is not None:
+                if stream == obj["stream"]:
+                    self.report.already_present += 1
+                else:
+                    self.report.duplicate_ids.append((number, _duplicate(did, stream)))
                 continue
             try:
                 self.ledger.record_draw(
@@ -271,7 +328,7 @@ class _Loader:
                     raise
                 self.report.malformed.append((number, str(exc)))
                 continue
-            self.seen_declared.add(did)
+            self.loaded[did] = obj["stream"]
             self.report.declared += 1
         self.ledger.flush()
 
@@ -308,6 +365,13 @@ def _after_torn(line: bytes) -> dict[str, Any] | None:
     return obj if isinstance(obj, dict) else None
 
 
+def _duplicate(did: str, stream: str) -> str:
+    return (
+        f"decision id {did!r} is already in the ledger (stream {stream!r}) under another "
+        "record; decision ids are unique per ledger, so this one was not loaded"
+    )
+
+
 def _number(x: Any, what: str) -> float:
     if isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x):
         raise _Bad(f"{what} must be a finite number, got {x!r}")
@@ -324,9 +388,11 @@ def _text(x: Any, what: str, *, nullable: bool = False) -> Any:
     return x
 
 
-def _count(x: Any, what: str) -> int:
-    if isinstance(x, bool) or not isinstance(x, int) or x < 0:
-        raise _Bad(f"{what} must be a non-negative integer, got {x!r}")
+def _count(x: Any, what: str, bits: int) -> int:
+    """A non-negative integer that fits its column in every sink: a wide column is a 64-bit
+    BIGINT, the others a 32-bit INTEGER in PostgreSQL."""
+    if isinstance(x, bool) or not isinstance(x, int) or not 0 <= x < 2**bits:
+        raise _Bad(f"{what} must be an integer from 0 to 2**{bits} - 1, got {x!r}")
     return x
 
 
@@ -335,7 +401,7 @@ def _field(column: Column, x: Any, what: str) -> Any:
     if column.kind == "float":
         return _number(x, what)
     if column.kind == "integer":
-        return _count(x, what)
+        return _count(x, what, 63 if column.wide else 31)
     return _text(x, what, nullable=column.nullable)
 
 
@@ -349,12 +415,17 @@ def _row(values: Any, table: TableSpec, what: str) -> Row:
 
 def _spill_record(obj: dict[str, Any], key: bytes) -> tuple[str, Row, list[Row]]:
     """A spilled decision or outcome, checked field by field and against its hash."""
+    if "rejected" in obj:
+        raise _Bad("a decision refused by its writer (a reject file line, kept for inspection): "
+                   "its id was already in the ledger; it cannot be loaded")  # fmt: skip
     if "decision" in obj:
         if set(obj) != {"decision", "draws"} or not isinstance(obj["draws"], list):
             raise _Bad('a spilled decision has exactly the keys "decision" and "draws" (a list)')
         row = _row(obj["decision"], DECISIONS, "decision")
         draws = [_row(d, DRAWS, "draw") for d in obj["draws"]]
         did = row[DEC.decision_id]
+        if any(d[DRAW.is_density] not in (0, 1) for d in draws):
+            raise _Bad(f"a draw of spilled decision {did!r} has is_density other than 0 or 1")
         if any(d[DRAW.decision_id] != did for d in draws):
             raise _Bad(f"a draw of spilled decision {did!r} names another decision")
         if _records.decision_hash(row[: DEC.hash], draws, key) != row[DEC.hash]:

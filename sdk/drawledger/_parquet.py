@@ -273,10 +273,12 @@ def rows_to_table(rows: Sequence[Row], table: str) -> pa.Table:
 class ParquetSink:
     """Writes each batch as part files; ``durability="full"`` also fsyncs files and directories."""
 
+    indexed_ids = False  # stored_ids reads every part: ingest asks, the writer does not
+
     def __init__(self, root: str, *, durability: str = "normal") -> None:
         self.root = Path(root).expanduser()
         self.full = durability == "full"
-        self._ids: dict[str, set[str]] = {}  # decision ids by stream directory (present_ids)
+        self._ids: dict[str, str] | None = None  # stream of each decision id (stored_ids)
         try:
             for table in TABLES:
                 (self.root / table).mkdir(parents=True, exist_ok=True)
@@ -331,37 +333,29 @@ class ParquetSink:
             for folder in {final.parent for _, final in staged}:
                 _fsync_path(folder, directory=True)
 
-    def present_seqs(self, table: str, writer: str, low: int, high: int) -> set[int]:
-        """The seqs of ``writer`` between ``low`` and ``high`` already in ``table``."""
+    def present_hashes(self, table: str, writer: str, low: int, high: int) -> dict[int, str]:
+        """The hash of each record of ``writer`` with a seq from ``low`` to ``high``, by seq."""
         tag = writer_tag(writer)
-        found: set[int] = set()
+        found: dict[int, str] = {}
         for part in parts(self.root, table):
             if part.tag == tag and part.first <= high and part.last >= low:
-                data = pq.read_table(part.path, columns=["writer", "seq"]).to_pydict()
-                found.update(
-                    s for w, s in zip(data["writer"], data["seq"], strict=True)
-                    if w == writer and low <= s <= high
-                )  # fmt: skip
+                data = pq.read_table(part.path, columns=["writer", "seq", "hash"]).to_pydict()
+                rows = zip(data["writer"], data["seq"], data["hash"], strict=True)
+                found.update((s, h) for w, s, h in rows if w == writer and low <= s <= high)
         return found
 
-    def present_ids(self, ids: list[str], streams: set[str]) -> set[str]:
-        """Which of these decision ids are already among the decisions of ``streams``.
+    def stored_ids(self, ids: list[str]) -> dict[str, str]:
+        """Which of these decision ids are already in the ledger, with their decision's stream.
 
-        Reads each stream's ids once per sink (ingest opens a sink of its own for this).
+        Reads every decision id once per sink (ingest opens a sink of its own for this).
         """
-        todo = {stream_dir(s) for s in streams} - set(self._ids)
-        if todo:
-            for sdir in todo:
-                self._ids[sdir] = set()
+        if self._ids is None:
+            self._ids = {}
             for part in parts(self.root, "decisions"):
-                sdir = part.path.parent.parent.name
-                if sdir in todo:
-                    column = pq.read_table(part.path, columns=["decision_id"]).column(0)
-                    self._ids[sdir].update(column.to_pylist())
-        found = set()
-        for s in streams:
-            found |= self._ids[stream_dir(s)].intersection(ids)
-        return found
+                data = pq.read_table(part.path, columns=["decision_id", "stream"]).to_pydict()
+                self._ids.update(zip(data["decision_id"], data["stream"], strict=True))
+        known = self._ids
+        return {i: known[i] for i in ids if i in known}
 
     def register_writer(
         self, writer: str, started: float, key: bytes, genesis: str | None = _registry.BIND

@@ -42,17 +42,37 @@ JSON_OPTIONS = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NON_STR_KEYS
 """The orjson options of every JSON text the ledger stores (with ``default=json_default``)."""
 
 
-def _has_non_finite(obj: Any) -> bool:
-    if isinstance(obj, float):
-        return not math.isfinite(obj)
+def non_finite_at(obj: Any, path: str = "") -> str | None:
+    """Where the first NaN or infinity sits in ``obj`` (``"scores[2]"``, ``"shopper.fee"``;
+    ``""`` for ``obj`` itself), or None when there is none.
+
+    Looks into dicts, lists, tuples, pydantic models, and numpy arrays and scalars (through
+    their ``tolist``, without importing numpy).
+    """
+    if isinstance(obj, float):  # numpy float64 too: it subclasses float
+        return None if math.isfinite(obj) else path
+    if obj is None or isinstance(obj, (str, int)):
+        return None
     if isinstance(obj, dict):
-        return any(_has_non_finite(v) for v in obj.values())
+        for k, v in obj.items():
+            found = non_finite_at(v, f"{path}.{k}" if path else str(k))
+            if found is not None:
+                return found
+        return None
     if isinstance(obj, (list, tuple)):
-        return any(_has_non_finite(v) for v in obj)
+        for i, v in enumerate(obj):
+            found = non_finite_at(v, f"{path}[{i}]")
+            if found is not None:
+                return found
+        return None
     dump = getattr(obj, "model_dump", None)
     if callable(dump):
-        return _has_non_finite(dump(mode="python"))
-    return False
+        return non_finite_at(dump(mode="python"), path)
+    if type(obj).__module__ == "numpy":  # arrays and scalars: float32, float16, ndarray
+        tolist = getattr(obj, "tolist", None)
+        if callable(tolist):
+            return non_finite_at(tolist(), path)
+    return None
 
 
 def to_json(obj: Any, what: str) -> str:
@@ -61,9 +81,13 @@ def to_json(obj: Any, what: str) -> str:
         raw = orjson.dumps(obj, default=json_default, option=JSON_OPTIONS)
     except (TypeError, orjson.JSONEncodeError) as exc:
         raise NotSerializableError(f"{what} cannot be recorded as JSON: {exc}") from None
-    # orjson writes NaN and infinities as null; JSON has no such numbers, so refuse them.
-    if raw.find(b"null") != -1 and _has_non_finite(obj):  # find: "in" costs an exception
-        raise NotSerializableError(f"{what} contains NaN or an infinity, which JSON cannot hold")
+    # orjson writes NaN and infinities (numpy's too) as null; JSON has no such numbers, so
+    # refuse them, naming where they sit.
+    if raw.find(b"null") != -1:  # find: "in" costs an exception
+        where = non_finite_at(obj)
+        if where is not None:
+            at = f": {where} is" if where else " is"
+            raise NotSerializableError(f"{what}{at} NaN or an infinity, which JSON cannot hold")
     return raw.decode()
 
 

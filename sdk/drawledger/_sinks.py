@@ -23,6 +23,9 @@ DURABILITY = ("normal", "full")
 
 
 class Sink(Protocol):
+    indexed_ids: bool
+    """Whether ``stored_ids`` is an index lookup, cheap enough for the writer to ask per batch."""
+
     def write(self, decisions: list[Row], draws: list[list[Row]], outcomes: list[Row]) -> None:
         """Store one batch; ``draws[i]`` are the draw rows of ``decisions[i]``.
 
@@ -30,11 +33,13 @@ class Sink(Protocol):
         after a failure must not leave two copies of a record.
         """
 
-    def present_seqs(self, table: str, writer: str, low: int, high: int) -> set[int]:
-        """The seqs of ``writer`` between ``low`` and ``high`` already in ``table``."""
+    def present_hashes(self, table: str, writer: str, low: int, high: int) -> dict[int, str]:
+        """The hash of each record of ``writer`` with a seq from ``low`` to ``high`` in
+        ``table``, by seq."""
 
-    def present_ids(self, ids: list[str], streams: set[str]) -> set[str]:
-        """Which of these decision ids are already among the decisions of ``streams``."""
+    def stored_ids(self, ids: list[str]) -> dict[str, str]:
+        """Which of these decision ids are already in the ledger (any stream), with the stream
+        of the decision that has each."""
 
     def register_writer(
         self, writer: str, started: float, key: bytes, genesis: str | None = _registry.BIND
@@ -149,6 +154,8 @@ class SqlSink:
     record.
     """
 
+    indexed_ids = True
+
     def __init__(self, url: str, *, durability: str = "normal") -> None:
         self.url = url
         self.engine = create_engine(url, durability)
@@ -183,22 +190,27 @@ class SqlSink:
         finally:
             cursor.close()
 
-    def present_seqs(self, table: str, writer: str, low: int, high: int) -> set[int]:
-        """The seqs of ``writer`` between ``low`` and ``high`` already in ``table``."""
-        sql = sa.text(f"SELECT seq FROM {table} WHERE writer = :w AND seq BETWEEN :lo AND :hi")
-        with self.engine.connect() as conn:
-            return {s for (s,) in conn.execute(sql, {"w": writer, "lo": low, "hi": high})}
-
-    def present_ids(self, ids: list[str], streams: set[str]) -> set[str]:
-        """Which of these decision ids are already among the decisions of ``streams``."""
-        found: set[str] = set()
+    def present_hashes(self, table: str, writer: str, low: int, high: int) -> dict[int, str]:
+        """The hash of each record of ``writer`` with a seq from ``low`` to ``high``, by seq."""
         sql = sa.text(
-            "SELECT decision_id FROM decisions WHERE decision_id IN :ids AND stream IN :streams"
-        ).bindparams(sa.bindparam("ids", expanding=True), sa.bindparam("streams", expanding=True))
+            f"SELECT seq, hash FROM {table} WHERE writer = :w AND seq BETWEEN :lo AND :hi"
+        )
+        with self.engine.connect() as conn:
+            return {seq: h for seq, h in conn.execute(sql, {"w": writer, "lo": low, "hi": high})}
+
+    def stored_ids(self, ids: list[str]) -> dict[str, str]:
+        """Which of these decision ids are already in the ledger, with their decision's stream.
+
+        One indexed lookup per 500 ids (the decision_id index).
+        """
+        found: dict[str, str] = {}
+        sql = sa.text(
+            "SELECT decision_id, stream FROM decisions WHERE decision_id IN :ids"
+        ).bindparams(sa.bindparam("ids", expanding=True))
         with self.engine.connect() as conn:
             for start in range(0, len(ids), 500):
-                params = {"ids": ids[start : start + 500], "streams": sorted(streams)}
-                found.update(d for (d,) in conn.execute(sql, params))
+                rows = conn.execute(sql, {"ids": ids[start : start + 500]})
+                found.update((d, s) for d, s in rows)
         return found
 
     def register_writer(

@@ -19,6 +19,10 @@ JSON Lines file (fsynced) so that no acknowledged record is lost. The policies
   Only a record that finds both the queue full and the spill file failing is dropped, and
   counted (``dropped``). Failures are counted (``spill_errors``) and logged at most once a
   minute per kind.
+- a decision whose id the sink already holds (recorded by another process, or too long ago for
+  the ledger's memory of recent ids): on a sink that can look ids up by index (SQL), the batch
+  is checked before it is sealed, and such a decision is left out of the chain and appended to
+  the reject file (``rejected``, logged); the rest of the batch is written as usual.
 - fork: ``before_fork`` waits for the write in progress and closes the sink's connections, so
   that a child inherits no database connection or library state in the middle of a call.
 """
@@ -38,6 +42,7 @@ from typing import Any
 import orjson
 
 from drawledger import _records
+from drawledger._schema import DEC
 from drawledger._sinks import Sink
 from drawledger.exceptions import LedgerError
 
@@ -81,12 +86,13 @@ class Throttle:
 class Stats:
     """Counters of one ledger in one process (see ``Ledger.stats``)."""
 
-    __slots__ = ("dropped", "recorded", "retried", "spill_errors", "spilled", "written")
+    __slots__ = ("dropped", "recorded", "rejected", "retried", "spill_errors", "spilled", "written")
 
     def __init__(self) -> None:
         self.recorded = 0
         self.written = 0
         self.spilled = 0
+        self.rejected = 0
         self.retried = 0
         self.dropped = 0
         self.spill_errors = 0
@@ -168,7 +174,10 @@ class SpillFile:
 
     def write(self, items: list[Item]) -> None:
         """Append the records, one line each, and fsync; raise ``OSError`` if not all landed."""
-        data = b"".join(spill_line(item) + b"\n" for item in items)
+        self.append(b"".join(spill_line(item) + b"\n" for item in items))
+
+    def append(self, data: bytes) -> None:
+        """Append lines (bytes ending in a newline), whole or not at all, and fsync them."""
         with self._lock:
             self.path.parent.mkdir(parents=True, exist_ok=True)
             fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o600)
@@ -224,12 +233,14 @@ class Writer:
         retry_delay: float = 0.05,
         cooldown: float = 1.0,
         on_start: Callable[[], None] | None = None,
+        rejects: SpillFile | None = None,
     ) -> None:
         self._open_sink = open_sink
         self._on_start = on_start
         self.refusal: str | None = None  # why this process must not write (see forget_after_fork)
         self._sink: Sink | None = None
         self.spill = spill
+        self.rejects = rejects or SpillFile(spill.path.with_name("drawledger-rejected.jsonl"))
         self.stats = stats
         self.chain = chain
         self.batch_size = batch_size
@@ -477,9 +488,11 @@ class Writer:
     def _seal_batch(self, items: list[Item]) -> list[Item]:
         """The batch sealed in order (the caller holds the chain lock).
 
-        The serving thread checked every field, so sealing cannot fail; if it did, the record
-        is dropped and counted rather than the thread dying.
+        Decisions whose id the sink already holds are left out first (``_screen``). The serving
+        thread checked every field, so sealing cannot fail; if it did, the record is dropped and
+        counted rather than the thread dying.
         """
+        items = self._screen(items)
         seal = self.chain.seal
         sealed = []
         for item in items:
@@ -490,6 +503,64 @@ class Writer:
                 self.stats.dropped += 1
                 log.error("drawledger: record dropped: it cannot be hashed: %s", exc)
         return sealed
+
+    def _screen(self, items: list[Item]) -> list[Item]:
+        """The batch without the unsealed decisions whose given id the sink already holds.
+
+        Only on a sink that looks ids up by index (``indexed_ids``), and only for ids given by
+        the caller (generated ids, ``<writer>.<n>``, are unique by construction). When the sink
+        cannot be asked (down, cooling off), the batch goes on as it is: ingest and the
+        integrity check catch a reuse later. A refused decision is never sealed, so its
+        writer's chain has no gap; it goes to the reject file.
+        """
+        given: list[str] = []
+        for item in items:
+            if item[0] == "d-":
+                did, writer = item[1][DEC.decision_id], item[1][DEC.writer]
+                if not (did.startswith(writer) and did[len(writer) : len(writer) + 1] == "."):
+                    given.append(did)
+        if not given or time.monotonic() < self._down_until:
+            return items
+        try:
+            with self.io_lock:  # a fork waits for it: SQLite must not fork mid-call
+                if self._sink is None:
+                    self._sink = self._open_sink()
+                if not self._sink.indexed_ids:
+                    return items
+                taken = set(self._sink.stored_ids(given))
+        except Exception as exc:  # the write that follows retries, spills and reports
+            self.last_error = exc
+            return items
+        kept: list[Item] = []
+        refused: list[Item] = []
+        for item in items:
+            if item[0] == "d-":
+                did = item[1][DEC.decision_id]
+                if did in taken:
+                    refused.append(item)
+                    continue
+                taken.add(did)  # a second use in this batch is refused too
+            kept.append(item)
+        if refused:
+            self._reject(refused)
+        return kept
+
+    def _reject(self, items: list[Item]) -> None:
+        reason = "decision id already in the ledger"
+        lines = [orjson.dumps({"rejected": reason, "decision": list(item[1]), "draws": item[2]})
+                 for item in items]  # fmt: skip
+        ids = ", ".join(repr(item[1][0]) for item in items[:5])
+        try:
+            self.rejects.append(b"".join(line + b"\n" for line in lines))
+        except Exception as exc:
+            self.last_error = exc
+            self.stats.dropped += len(items)
+            log.error("drawledger: %d decisions dropped: their id is already in the ledger "
+                      "(%s) and the reject file failed: %s", len(items), ids, exc)  # fmt: skip
+            return
+        self.stats.rejected += len(items)
+        log.error("drawledger: %d decisions not written: their id is already in the ledger "
+                  "(%s); kept in %s", len(items), ids, self.rejects.path)  # fmt: skip
 
     def _write(self, items: list[Item]) -> BaseException | None:
         """Write a batch to the sink or the spill file; the error when neither took it."""

@@ -77,7 +77,8 @@ def _write_json(path: str, data: dict[str, Any]) -> None:
 
 
 def _ingest(args: argparse.Namespace) -> int:
-    """Load a spill file or declared draws; exit 2 when a line or record could not be loaded."""
+    """Load a spill file or declared draws; exit 2 when a line or record could not be loaded,
+    1 when a record conflicts with a stored one or reuses a stored decision id."""
     import os
 
     from drawledger import ingest
@@ -85,14 +86,25 @@ def _ingest(args: argparse.Namespace) -> int:
     key = os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None
     report = ingest(args.file, args.ledger, integrity_key=key)
     print(report.render())
-    if report.malformed:
-        n, reason = report.malformed[0]
-        print(f"drawledger ingest: error: {len(report.malformed)} malformed lines skipped "
-              f"(first: line {n}: {visible(reason)})", file=sys.stderr)  # fmt: skip
-    elif report.spilled:
-        print(f"drawledger ingest: error: {report.spilled} declared draws could not be written "
-              "and were spilled; ingest that spill file again", file=sys.stderr)  # fmt: skip
-    return EXIT_OK if report.ok else EXIT_USAGE
+    problems = []
+    for label, found in (("conflicting records not loaded", report.conflicting),
+                         ("records refused for a decision id already in the ledger",
+                          report.duplicate_ids),
+                         ("malformed lines skipped", report.malformed)):  # fmt: skip
+        if found:
+            n, reason = found[0]
+            problems.append(f"{len(found)} {label} (first: line {n}: {visible(reason)})")
+    if report.spilled:
+        problems.append(f"{report.spilled} declared draws could not be written and were "
+                        "spilled; ingest that spill file again")  # fmt: skip
+    if report.rejected:
+        problems.append(f"{report.rejected} declared draws were refused by the writer: their "
+                        "decision id reached the ledger during the ingest")  # fmt: skip
+    if problems:
+        print(f"drawledger ingest: error: {'; '.join(problems)}", file=sys.stderr)
+    if report.malformed or report.spilled:
+        return EXIT_USAGE
+    return EXIT_FOUND if report.conflicting or report.duplicate_ids or report.rejected else EXIT_OK
 
 
 def _verify(args: argparse.Namespace) -> int:

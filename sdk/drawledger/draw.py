@@ -75,6 +75,14 @@ class DrawRecord(NamedTuple):
 _new_record = tuple.__new__  # DrawRecord without the Python-level __new__ of NamedTuple
 
 
+def _check_name(kind: str, name: Any) -> None:
+    """A draw's ``name=``: a string or None (str subclasses pass here; others raise)."""
+    if not isinstance(name, str):
+        raise DrawArgumentError(
+            f"{kind} draw: name must be a string or None, got {type(name).__name__} {name!r}"
+        )
+
+
 # -- the picking rule of the specification ----------------------------------------------------
 def categorical_index(probs: Sequence[float], u: float) -> int:
     """The first j with u < c_j (running left-to-right float sum of probs); else the last j > 0."""
@@ -156,6 +164,8 @@ class Draw:
         self, options: Sequence[T], probs: Sequence[float], *, name: str | None = None
     ) -> T:
         """One option with the given probabilities (finite, >= 0, summing to 1 within 1e-9)."""
+        if name is not None and type(name) is not str:
+            _check_name("categorical", name)
         opts, p = categorical_args(options, probs, name)
         j, u = self._pick(p)
         self._record("categorical", name, {"options": opts, "probs": p}, [u], opts[j], p[j])
@@ -163,6 +173,8 @@ class Draw:
 
     def bernoulli(self, p: float, *, name: str | None = None) -> bool:
         """True with probability ``p``: a categorical draw over [True, False] with [p, 1 - p]."""
+        if name is not None and type(name) is not str:
+            _check_name("bernoulli", name)
         probs = bernoulli_probs(p, name)
         j, u = self._pick(probs)
         value = j == 0
@@ -171,6 +183,8 @@ class Draw:
 
     def integers(self, low: int, high: int, *, name: str | None = None) -> int:
         """A uniform integer in [low, high) (high exclusive); probability 1 / (high - low)."""
+        if name is not None and type(name) is not str:
+            _check_name("integers", name)
         lo, hi, prob = integers_args(low, high, name)
         j, u = self._pick_integer(hi - lo)
         value = lo + j
@@ -186,6 +200,8 @@ class Draw:
         name: str | None = None,
     ) -> T:
         """One option with probability proportional to exp(score / temperature)."""
+        if name is not None and type(name) is not str:
+            _check_name("softmax", name)
         opts, s, t = softmax_args(options, scores, temperature, name)
         p = softmax_probs(s, t)
         j, u = self._pick(p)
@@ -202,6 +218,8 @@ class Draw:
         name: str | None = None,
     ) -> T:
         """The best-scoring option (ties share) with probability 1 - epsilon, else any option."""
+        if name is not None and type(name) is not str:
+            _check_name("epsilon_greedy", name)
         opts, s, e = epsilon_greedy_args(options, scores, epsilon, name)
         p = epsilon_greedy_probs(s, e)
         j, u = self._pick(p)
@@ -223,6 +241,8 @@ class Draw:
         with their weights divided by the remaining total (Plackett-Luce sampling). The
         probability is the product of the step probabilities.
         """
+        if name is not None and type(name) is not str:
+            _check_name("slate", name)
         opts, w, kk = slate_args(options, weights, k, name)
         chosen, used, prob = plackett_luce(opts, w, kk, self._pick)
         self._record("slate", name, {"options": opts, "weights": w, "k": kk}, used, chosen, prob)
@@ -231,6 +251,8 @@ class Draw:
     # -- continuous draws -----------------------------------------------------------------
     def uniform(self, low: float, high: float, *, name: str | None = None) -> float:
         """A real number uniform on [low, high]; density 1 / (high - low)."""
+        if name is not None and type(name) is not str:
+            _check_name("uniform", name)
         lo, hi, density = uniform_args(low, high, name)
         u = self._uniform()
         value = lo + (hi - lo) * u
@@ -239,6 +261,8 @@ class Draw:
 
     def normal(self, mean: float, sd: float, *, name: str | None = None) -> float:
         """mean + sd * z with z = AS241 inverse normal CDF of one uniform; density at the value."""
+        if name is not None and type(name) is not str:
+            _check_name("normal", name)
         m, s = normal_args(mean, sd, name)
         u = self._uniform()
         value = m + s * ppnd16(u if u < 1.0 else BELOW_ONE)
@@ -248,6 +272,8 @@ class Draw:
 
     def lognormal(self, mu: float, sigma: float, *, name: str | None = None) -> float:
         """exp(mu + sigma * z) with z = AS241 inverse normal CDF of one uniform."""
+        if name is not None and type(name) is not str:
+            _check_name("lognormal", name)
         m, s = lognormal_args(mu, sigma, name)
         u = self._uniform()
         value = _exp(m + s * ppnd16(u if u < 1.0 else BELOW_ONE))

@@ -11,6 +11,7 @@ __all__ = [
     "DecisionDefinitionError",
     "DrawArgumentError",
     "DrawledgerError",
+    "DuplicateDecisionError",
     "EstimateRefusedError",
     "LedgerClosedError",
     "LedgerError",
@@ -31,6 +32,14 @@ class DrawArgumentError(DrawledgerError, ValueError):
     """A draw was called with arguments that do not define a valid distribution.
 
     The message names the draw (its kind and name) and the problem.
+    """
+
+
+class DuplicateDecisionError(DrawledgerError, ValueError):
+    """A decision was given a ``decision_id`` that this ledger already recorded.
+
+    Decision ids are unique per ledger: outcomes find their decision by its id. A retried
+    request must not record its decision again.
     """
 
 

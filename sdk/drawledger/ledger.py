@@ -24,12 +24,14 @@ from pathlib import Path
 from typing import Any, Generic, ParamSpec, TypeVar
 
 from drawledger import _lifecycle, _records, _sinks, _stream
+from drawledger._checks import RecentIds, declared_uniforms, finite_number
 from drawledger._probability import decision_propensity
 from drawledger._writer import FORK_WAIT, Chain, SpillFile, Stats, Writer
 from drawledger.draw import Draw, DrawRecord, bucket_assign
 from drawledger.exceptions import (
     DecisionDefinitionError,
     DrawArgumentError,
+    DuplicateDecisionError,
     LedgerClosedError,
     LedgerError,
     NotSerializableError,
@@ -163,6 +165,8 @@ class Decision(Generic[R]):
 
     def __call__(self, *args: Any, unit: str | None = None, decision_id: str | None = None,
                  **kwargs: Any) -> R:  # fmt: skip
+        if type(decision_id) is str and decision_id in self.ledger._recent:
+            self.ledger._refuse(decision_id)  # before the function runs: nothing is drawn
         params_json = self._params_json
         if kwargs or len(args) != len(self.inputs) or params_json is None:
             inputs, params = self._bind(args, kwargs)
@@ -237,7 +241,9 @@ class Ledger:
     ``postgresql+psycopg://host/db``, or a directory with ``format="parquet"``. Records are
     queued and written in batches by a background thread; ``flush()`` waits until everything
     recorded before it is committed. ``durability="full"`` makes every commit survive power
-    loss, at a cost in throughput (docs/operations.md).
+    loss, at a cost in throughput (docs/operations.md). Decision ids are unique per ledger: the
+    last ``recent_ids`` ids given to it are remembered, and a reuse raises
+    ``DuplicateDecisionError`` at the call (docs/ledger.md, "Decision ids").
     """
 
     def __init__(
@@ -253,9 +259,12 @@ class Ledger:
         block_timeout: float = 1.0,
         spill_dir: str | os.PathLike[str] | None = None,
         durability: str = "normal",
+        recent_ids: int = 100_000,
     ) -> None:
         if queue_size < 1 or batch_size < 1:
             raise ValueError("queue_size and batch_size must be at least 1")
+        if isinstance(recent_ids, bool) or not isinstance(recent_ids, int) or recent_ids < 0:
+            raise ValueError("recent_ids must be an integer >= 0")
         self.target = os.fspath(target)
         self.format = format
         if format not in (None, "sql", "sqlite", "parquet"):
@@ -286,6 +295,9 @@ class Ledger:
         self._taps: list[Callable[[Any], bool]] = []
         self._batch_size = batch_size
         self._closed = False
+        # The decision ids given to this ledger lately (docs/ledger.md, "Decision ids"): a
+        # reuse is refused at the call. Kept across a fork: the parent's ids are in the ledger.
+        self._recent = RecentIds(recent_ids)
         self._init_process()
         _LEDGERS.add(self)
 
@@ -314,6 +326,7 @@ class Ledger:
             queue_size=self.queue_size,
             block_timeout=self.block_timeout,
             on_start=_guard_exit,
+            rejects=SpillFile(self._spill_dir / f"drawledger-rejected-{self.writer}.jsonl"),
         )
 
     def _open_sink(self) -> _sinks.Sink:
@@ -447,16 +460,27 @@ class Ledger:
         stamp = time.time() if ts is None else _timestamp(ts)
         row = (did, stream, unit, stamp, fn, chash, inputs, params, action, prop + 0.0, kind,
                seed, self.writer)  # fmt: skip
-        self._enqueue(("d-", row, draw_rows))
+        self._enqueue(("d-", row, draw_rows), decision_id)
         return did
 
-    def _enqueue(self, item: Any) -> None:
+    def _refuse(self, decision_id: str) -> None:
+        raise DuplicateDecisionError(
+            f"decision id {decision_id!r} was already recorded by this ledger; decision ids are "
+            "unique per ledger (a retried request must not record its decision again)"
+        )
+
+    def _enqueue(self, item: Any, claim: str | None = None) -> None:
         """Queue one unsealed record; the writer thread links it into the chain and hashes it.
 
-        ``Writer.put`` handles a full queue. Taps (drawledger.testing) get the record sealed at
-        once, with its seq and hash; a tap returning True holds the record back.
+        ``claim`` is a decision id given by the caller: refused when recently recorded, else
+        remembered. ``Writer.put`` handles a full queue. Taps (drawledger.testing) get the
+        record sealed at once, with its seq and hash; a tap returning True holds the record back.
         """
         with self._lock:
+            if claim is not None:
+                if claim in self._recent:
+                    self._refuse(claim)
+                self._recent.add(claim)
             self._stats.recorded += 1
             if self._taps:
                 item = self._writer.seal(item)
@@ -476,20 +500,15 @@ class Ledger:
         if not isinstance(name, str) or not name:
             raise NotSerializableError("outcome: name must be a non-empty string")
         _plain_text(decision_id, name)
-        if isinstance(value, bool):
-            value = float(value)
-        if (
-            not isinstance(value, (int, float))
-            or value != value
-            or value in (float("inf"), float("-inf"))
-        ):
+        number = finite_number(value)
+        if number is None:
             raise NotSerializableError(
                 f"outcome {name!r}: value must be a finite number, got {value!r}"
             )
         if self._closed:
             raise LedgerClosedError(f"ledger {self.target!r} is closed")
         stamp = time.time() if ts is None else _timestamp(ts)
-        self._enqueue(("o-", (decision_id, name, float(value) + 0.0, stamp, self.writer)))
+        self._enqueue(("o-", (decision_id, name, number + 0.0, stamp, self.writer)))
 
     def bucket(
         self,
@@ -538,16 +557,17 @@ class Ledger:
             raise DrawArgumentError("declared draw: stream must be a non-empty string")
         if not isinstance(args, Mapping):
             raise DrawArgumentError(f"declared {kind} draw: args must be an object")
-        if isinstance(prob, bool) or not isinstance(prob, (int, float)) or not prob >= 0.0 \
-                or prob == float("inf"):  # fmt: skip
+        p = None if isinstance(prob, bool) else finite_number(prob)
+        if p is None or not p >= 0.0:
             raise DrawArgumentError(f"declared {kind} draw: prob must be a finite number >= 0")
         density = kind in ("uniform", "normal", "lognormal") if is_density is None else is_density
-        if not density and prob > 1.0:
-            raise DrawArgumentError(f"declared {kind} draw: probability {prob} exceeds 1")
-        record = DrawRecord(0, None, kind, dict(args), list(u or []), value, float(prob), density)
+        if not density and p > 1.0:
+            raise DrawArgumentError(f"declared {kind} draw: probability {p} exceeds 1")
+        uniforms = declared_uniforms(kind, u)
+        record = DrawRecord(0, None, kind, dict(args), uniforms, value, p, density)
         action = _records.to_json(value, f"declared {kind} draw: value")
         return self._append_decision(decision_id, stream, unit, ts, None, None, "{}", "{}",
-                                     action, float(prob), "exact", None, [record])  # fmt: skip
+                                     action, p, "exact", None, [record])  # fmt: skip
 
     # -- lifecycle ----------------------------------------------------------------------------
     def flush(self, timeout: float | None = None) -> None:
@@ -575,8 +595,8 @@ class Ledger:
             self._writer.stop(timeout=30.0 if timeout is None else timeout)
 
     def stats(self) -> dict[str, int]:
-        """Counters of this process: recorded, written, spilled, retried, dropped, spill_errors,
-        queued (docs/operations.md)."""
+        """Counters of this process: recorded, written, spilled, rejected, retried, dropped,
+        spill_errors, queued (docs/operations.md)."""
         out = self._stats.as_dict()
         out["queued"] = sum(1 for item in list(self._writer.queue) if isinstance(item, tuple))
         return out
@@ -585,6 +605,11 @@ class Ledger:
     def spill_path(self) -> Path:
         """The JSON Lines file this process spills to when the sink fails."""
         return self._writer.spill.path
+
+    @property
+    def reject_path(self) -> Path:
+        """The JSON Lines file of decisions the writer refused: their id was already stored."""
+        return self._writer.rejects.path
 
 
 def _close_all(timeout: float | None = _lifecycle.EXIT_TIMEOUT) -> None:

@@ -366,10 +366,11 @@ def _parse_continuous(
 
 
 def close_to(recorded: FloatArray, declared: FloatArray) -> npt.NDArray[np.bool_]:
-    """Recorded probabilities (densities) equal to the declared ones within PROB_RTOL."""
+    """Recorded probabilities (densities) equal to the declared ones within PROB_RTOL; an
+    infinite one never is (inf - p is inf, within PROB_RTOL times an infinite scale)."""
     with np.errstate(invalid="ignore"):
         scale = np.maximum(np.abs(declared), np.abs(recorded))
-        return np.abs(recorded - declared) <= PROB_RTOL * scale
+        return (np.abs(recorded - declared) <= PROB_RTOL * scale) & np.isfinite(recorded)
 
 
 def parse_draws(

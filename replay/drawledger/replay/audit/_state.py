@@ -232,8 +232,10 @@ def group_state(kind: str, frame: pd.DataFrame, size: int) -> tuple[GroupState, 
     args, values = frame["args"].to_numpy(dtype=object), frame["value"].to_numpy(dtype=object)
     parsed = parse_draws(kind, args, values, recorded)
     problems = parsed.problems
+    finite = np.isfinite(recorded)
+    problems["recorded probability is not a finite number"] += int((parsed.ok & ~finite).sum())
     differs = parsed.ok & ~close_to(recorded, parsed.declared)
-    problems["recorded probability differs from the declaration"] += int(differs.sum())
+    problems["recorded probability differs from the declaration"] += int((differs & finite).sum())
     u_texts = frame["u"].to_numpy(dtype=object)
     flat_u, u_len, malformed = parse_uniforms(u_texts)
     problems["recorded uniforms are not numbers in [0, 1]"] += int(malformed.sum())

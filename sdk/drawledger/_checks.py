@@ -1,0 +1,71 @@
+"""Checks of the values a recording call is given, and the memory of recent decision ids."""
+
+from __future__ import annotations
+
+import math
+import numbers
+from collections import deque
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+from drawledger.exceptions import DrawArgumentError
+
+__all__ = ["RecentIds", "declared_uniforms", "finite_number"]
+
+
+def finite_number(x: Any) -> float | None:
+    """``x`` as a finite float: a bool, an int, a float or any other real number (numpy's
+    integer, float and bool scalars); None for anything else, NaN, infinities and overflows."""
+    if type(x) is not float:
+        if not isinstance(x, numbers.Real) and not (
+            type(x).__name__ in ("bool", "bool_") and type(x).__module__ == "numpy"
+        ):
+            return None
+        try:
+            x = float(x)
+        except (OverflowError, TypeError, ValueError):
+            return None
+    return x if math.isfinite(x) else None
+
+
+def declared_uniforms(kind: str, u: Any) -> list[float]:
+    """The uniforms of a declared draw: a list of numbers strictly between 0 and 1, as every
+    uniform of the draw specification is (and as ingest requires)."""
+    if u is None:
+        return []
+    if isinstance(u, (str, bytes, Mapping)) or not isinstance(u, Sequence):
+        raise DrawArgumentError(f"declared {kind} draw: u must be a list of uniforms, got {u!r}")
+    out = []
+    for i, x in enumerate(u):
+        number = None if isinstance(x, bool) else finite_number(x)
+        if number is None or not 0.0 < number < 1.0:
+            raise DrawArgumentError(
+                f"declared {kind} draw: u[{i}] is {x!r}, not a number strictly between 0 and 1"
+            )
+        out.append(number)
+    return out
+
+
+class RecentIds:
+    """The last ``size`` decision ids given to a ledger (0: none), oldest forgotten first.
+
+    The caller holds the lock that orders the recording calls.
+    """
+
+    __slots__ = ("_ids", "_order", "size")
+
+    def __init__(self, size: int) -> None:
+        self.size = size
+        self._ids: set[str] = set()
+        self._order: deque[str] = deque()
+
+    def __contains__(self, decision_id: object) -> bool:
+        return decision_id in self._ids
+
+    def add(self, decision_id: str) -> None:
+        if not self.size:
+            return
+        self._ids.add(decision_id)
+        self._order.append(decision_id)
+        if len(self._order) > self.size:
+            self._ids.discard(self._order.popleft())
