@@ -1,5 +1,6 @@
 """The randomization audit: do the recorded draws follow their declared distributions?"""
 
+from drawledger.replay.audit._collect import AuditState, chunk_state
 from drawledger.replay.audit._limits import TEST_LABELS
 from drawledger.replay.audit._report import AuditFigure, AuditReport, AuditTest
 from drawledger.replay.audit._run import audit, audit_tables
@@ -8,7 +9,9 @@ __all__ = [
     "TEST_LABELS",
     "AuditFigure",
     "AuditReport",
+    "AuditState",
     "AuditTest",
     "audit",
     "audit_tables",
+    "chunk_state",
 ]

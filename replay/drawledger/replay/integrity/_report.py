@@ -119,9 +119,16 @@ class Rec(NamedTuple):
     hash_ok: bool
 
 
-def walk(report: IntegrityReport, records: Iterable[Rec], dup_ids: set[str]) -> None:
-    """Check records of writer chains, given in (seq, order) order within each writer."""
-    state: dict[str, tuple[int, str | None]] = {}  # writer -> (next expected seq, last hash)
+def walk(
+    report: IntegrityReport, records: Iterable[Rec], dup_ids: set[str],
+    start: dict[str, tuple[int, str | None]] | None = None,
+) -> dict[str, tuple[int, str | None]]:  # fmt: skip
+    """Check records of writer chains, given in (seq, order) order within each writer.
+
+    ``start`` continues chains checked before: writer -> (next expected seq, last hash).
+    Returns where each chain stands after the records.
+    """
+    state: dict[str, tuple[int, str | None]] = dict(start or {})  # writer -> (next seq, hash)
     for rec in records:
         if rec.order == 0:
             report.decisions += 1
@@ -140,6 +147,7 @@ def walk(report: IntegrityReport, records: Iterable[Rec], dup_ids: set[str]) -> 
             report.note("broken_links", rec.decision_id)
         state[rec.writer] = (rec.seq + 1, rec.hash)
     report.writers += len(state)
+    return state
 
 
 def decision_rec(row: Row, draws: list[Row], key: bytes, dup_ids: set[str]) -> Rec:

@@ -1,6 +1,7 @@
 """The one way to read a ledger: cut any ledger (SQLite, PostgreSQL, Parquet) into pieces and read
 them, whole tables or chunks of decisions with their draws."""
 
+from drawledger.replay.sources._follow import Follower, Head, WriterPiece
 from drawledger.replay.sources._outcomes import outcome_totals, outcome_values, sql_streams
 from drawledger.replay.sources._parquet import (
     Piece,
@@ -25,14 +26,18 @@ from drawledger.replay.sources._tables import (
     is_parquet,
     open_engine,
     read_tables,
+    rows_frame,
 )
 
 __all__ = [
     "CHUNK_SIZE",
     "PARALLEL_CHUNK_SIZE",
+    "Follower",
+    "Head",
     "LedgerTables",
     "Piece",
     "Task",
+    "WriterPiece",
     "is_parquet",
     "iter_chunks",
     "iter_decision_chunks",
@@ -46,6 +51,7 @@ __all__ = [
     "read_piece",
     "read_piece_frames",
     "read_tables",
+    "rows_frame",
     "sql_streams",
     "stream_partitions",
     "writer_pages",
