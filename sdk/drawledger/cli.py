@@ -33,9 +33,15 @@ _EXTRA_NAMES = {
 }
 
 
+def _missing_name(exc: ImportError) -> str:
+    """The module an import missed; pandas re-raises a missing numpy without a name, so the
+    name of the error's cause."""
+    return exc.name or getattr(exc.__cause__, "name", None) or ""
+
+
 def _missing_extra(exc: ImportError, command: str) -> str | None:
     """The extra that provides the module ``exc`` misses (None: not an optional module)."""
-    module = (exc.name or "").split(".")[0]
+    module = _missing_name(exc).split(".")[0]
     if module == "pyarrow" and command == "ingest":  # the SDK writes Parquet with pyarrow alone
         return "parquet"
     return _EXTRAS.get(module)
@@ -431,7 +437,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--stream", metavar="S", help="decision stream of the estimate")
 
     p = add("guard", "follow a growing ledger: verify, check and audit new records",
-            "drawledger guard decisions.db --path . --state guard-state.json --once", _guard)  # fmt: skip
+            "drawledger guard decisions.db --path . --state guard.json --once",
+            _guard)  # fmt: skip
     p.description = (
         "Follow a ledger as it grows: replay each new decision, continue each writer's hash\n"
         "chain, and update anytime-valid evidence that randomization is as declared (an alarm\n"
@@ -442,7 +449,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     _replay_options(p)
     p.add_argument("--state", metavar="FILE",
-                   help="JSON file keeping where the guard stands, to resume after a restart")  # fmt: skip
+                   help="JSON file keeping where the guard stands, to resume after a "
+                   "restart")  # fmt: skip
     p.add_argument("--once", action="store_true", help="take in what is new, report and exit")
     p.add_argument("--interval", type=float, default=5.0, metavar="SECONDS",
                    help="seconds between looks at the ledger (default 5)")  # fmt: skip
@@ -453,7 +461,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--metrics-port", type=int, metavar="N",
                    help="serve Prometheus metrics on 127.0.0.1:N")  # fmt: skip
     p.add_argument("--alpha", type=float, default=0.01,
-                   help="false-alarm probability per draw over the whole run (default 0.01)")  # fmt: skip
+                   help="false-alarm probability per draw over the whole run "
+                   "(default 0.01)")  # fmt: skip
     p.add_argument("--window", type=int, default=10_000, metavar="N",
                    help="draws in the windowed drift view (default 10000)")  # fmt: skip
     p.add_argument("--gap-wait", type=float, default=30.0, metavar="SECONDS",
@@ -483,7 +492,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         extra = _missing_extra(exc, args.command)
         if extra is None or args.debug:
             raise
-        print(f"drawledger: {args.command} needs {_EXTRA_NAMES[extra]} ({exc.name} is missing): "
+        print(f"drawledger: {args.command} needs {_EXTRA_NAMES[extra]} ({_missing_name(exc)} is "
+              f"missing): "
               f"pip install 'drawledger[{extra}]'", file=sys.stderr)  # fmt: skip
         return EXIT_USAGE
     except (DrawledgerError, OSError, ValueError) as exc:

@@ -31,14 +31,14 @@ def safe(text: object) -> str:
 
 def alarm_line(alarm: dict[str, Any]) -> str:
     """One line naming the stream, test, evidence and first affected decision of an alarm."""
-    where = f"stream {safe(alarm['stream'])!r}" if alarm["stream"] else "ledger"
+    where = f"stream '{safe(alarm['stream'])}'" if alarm["stream"] else "ledger"
     if alarm.get("draw"):
-        where += f" draw {safe(alarm['draw'])!r}"
+        where += f" draw '{safe(alarm['draw'])}'"
     evidence = ""
     if alarm.get("evidence") is not None:
         evidence = f" e-value {alarm['evidence']:.4g} >= {alarm['threshold']:.4g};"
     first = alarm.get("decision")
-    at = f" first affected decision {safe(first)!r};" if first is not None else ""
+    at = f" first affected decision '{safe(first)}';" if first is not None else ""
     return (f"drawledger guard: ALARM {where} test {safe(alarm['test'])}:{evidence}{at} "
             f"{safe(alarm['detail'])}")  # fmt: skip
 
@@ -92,7 +92,10 @@ class GuardReport:
 
     def _head(self) -> str:
         s = self.state
-        verdict = "guard: no alarm" if self.ok else f"guard: {len(s.alarms)} ALARMS standing"
+        n = len(s.alarms)
+        verdict = (
+            "guard: no alarm" if self.ok else f"guard: {n} ALARM{'S' if n > 1 else ''} standing"
+        )
         return (f"{verdict}; {s.decisions} decisions and {s.outcomes} outcomes taken in, "
                 f"{s.verify['verified']} verified, {s.verify['mismatched']} mismatched, "
                 f"{s.verify['unreplayable']} unreplayable; behind the ledger by "
@@ -103,11 +106,15 @@ class GuardReport:
         from rich.table import Table
         from rich.text import Text
 
-        table = Table(title=f"draws watched (alarm at e-value >= {math.exp(threshold(self.alpha)):.4g}; "
-                      "window: fixed-n chi-square, information only)", title_justify="left")  # fmt: skip
+        limit = math.exp(threshold(self.alpha))
+        title = (f"draws watched (alarm at e-value >= {limit:.4g}; window: fixed-n chi-square, "
+                 "information only)")  # fmt: skip
+        table = Table(title=title, title_justify="left")
         for name in ("stream", "draw", "test", "n", "e-value", "uniforms e-value",
                      "window n", "window p"):  # fmt: skip
-            table.add_column(name, justify="left" if name in ("stream", "draw", "test") else "right")
+            table.add_column(
+                name, justify="left" if name in ("stream", "draw", "test") else "right"
+            )
         for d in self.draws():
             p = d["window"]["p_value"]
             table.add_row(Text(safe(d["stream"])), Text(safe(d["draw"] or "")), d["test"],

@@ -54,14 +54,18 @@ def contiguous(piece: WriterPiece, after: int) -> tuple[WriterPiece | None, int 
     return WriterPiece(piece.key, rows, draws, outcomes, hole - 1), hole
 
 
-def take_piece(state: GuardState, piece: WriterPiece, settings: StepSettings) -> list[dict[str, Any]]:
+def take_piece(
+    state: GuardState, piece: WriterPiece, settings: StepSettings
+) -> list[dict[str, Any]]:
     """Merge one piece into ``state``; the alarms it raises (not yet recorded)."""
     alarms: list[dict[str, Any]] = []
     rows, draws = piece.decisions, piece.draws
     mark = state.writers.get(piece.key)
     first_row = rows[0] if rows else None
-    writer = (mark.writer if mark is not None else
-              first_row[DEC.writer] if first_row is not None else piece.outcomes[0][OUT.writer])  # fmt: skip
+    if mark is not None:
+        writer = mark.writer
+    else:
+        writer = first_row[DEC.writer] if first_row is not None else piece.outcomes[0][OUT.writer]
     if mark is None:
         mark = state.writers[piece.key] = Mark(writer)
 
@@ -82,8 +86,8 @@ def take_piece(state: GuardState, piece: WriterPiece, settings: StepSettings) ->
         if n:
             state.integrity[problem] += n
             first = next(iter(found.examples.get(problem, [])), None)
-            alarms.append(new_alarm("", None, f"integrity:{problem}", first,
-                                 f"{n} {problem.replace('_', ' ')} in writer {writer}"))  # fmt: skip
+            detail = f"{n} {problem.replace('_', ' ')} in writer {writer}"
+            alarms.append(new_alarm("", None, f"integrity:{problem}", first, detail))
 
     # Replay: every decision re-executed and compared with its record.
     checked = verify_chunk(rows, draws, frozenset(found.decision_ids), settings.verify)
@@ -121,4 +125,3 @@ def take_piece(state: GuardState, piece: WriterPiece, settings: StepSettings) ->
         mark.ts = max(float(r[DEC.ts]) for r in rows)
     mark.hole_since = None
     return alarms
-

@@ -25,6 +25,12 @@ RATIO_KINDS = frozenset({"categorical", "bernoulli", "integers", "softmax", "eps
 # Declared probabilities agreeing to this relative tolerance are the same declaration.
 SAME_P = 1e-9
 
+HOW = {
+    "ratio": "picks per option against the declared probabilities",
+    "pit": "probability integral transforms in 10 bins against 0.1 each",
+    "uniforms": "recorded uniforms in 10 bins against 0.1 each",
+}
+
 PIT_KEYS = [f"[{i / UNIFORM_BINS:g}, {(i + 1) / UNIFORM_BINS:g})" for i in range(UNIFORM_BINS)]
 
 
@@ -87,14 +93,14 @@ def update_watches(
             watch.log_e = log_mixture_e(watch.counts, watch.declared)
             _slide(watch, piece, window)
         if group.uniforms:
-            watch.uniforms = [a + b for a, b in
-                              zip(watch.uniforms, coarsen_uniform(group.u_hist), strict=True)]  # fmt: skip
-            watch.log_e_uniforms = log_mixture_e(watch.uniforms, [1.0 / UNIFORM_BINS] * UNIFORM_BINS)
+            more = coarsen_uniform(group.u_hist)
+            watch.uniforms = [a + b for a, b in zip(watch.uniforms, more, strict=True)]
+            watch.log_e_uniforms = log_mixture_e(
+                watch.uniforms, [1.0 / UNIFORM_BINS] * UNIFORM_BINS
+            )
         for test, log_e in ((watch.test, watch.log_e), ("uniforms", watch.log_e_uniforms)):
             if log_e >= limit:
-                how = ("picks per option against the declared probabilities" if test == "ratio"
-                       else "probability integral transforms in 10 bins against 0.1 each"
-                       if test == "pit" else "recorded uniforms in 10 bins against 0.1 each")  # fmt: skip
+                how = HOW[test]
                 alarms.append(new_alarm(stream, draw, test, first, how, math.exp(min(log_e, 700.0)),
                                         math.exp(limit)))  # fmt: skip
     return alarms
@@ -135,4 +141,3 @@ def window_view(watch: Watch, alpha: float) -> dict[str, Any]:
     counts = np.sum(np.array(watch.window, dtype=np.float64), axis=0)
     p = window_test(list(counts), watch.declared)
     return {"n": int(counts.sum()), "p_value": p, "drift": p is not None and p < alpha}
-

@@ -1,0 +1,281 @@
+"""`drawledger guard`: following a growing ledger, resuming after a kill, routing alarms."""
+
+from __future__ import annotations
+
+import os
+import signal
+import socket
+import sqlite3
+import subprocess
+import sys
+import time
+import urllib.request
+from pathlib import Path
+from typing import Any
+
+import orjson
+import pytest
+import shop_decisions as sd
+from conftest import SUPPORT
+
+import drawledger as dl
+from drawledger.cli import main
+from drawledger.exceptions import ReplayError
+from drawledger.replay.guard import guard, load_state
+
+T0 = 1_767_225_600.0
+
+
+def shop_ledger(target: str | Path, n: int, *, start: int = 0, **kw: Any) -> None:
+    """n recipe-card and n explore-card decisions of the grocery app (replayable)."""
+    led = dl.Ledger(target, **kw)
+    sd.use(led)
+    for i in range(start, start + n):
+        sd.feature_card(sd.context(i), unit=f"shopper-{i % 97}")
+        sd.explore_card(sd.context(i), unit=f"shopper-{i % 97}")
+    led.close()
+
+
+def legacy_ledger(path: Path, drawn: float, n: int, *, stream: str = "slot-discount",
+                  seed: int = 7) -> Path:  # fmt: skip
+    """Declared 50/50 coin draws of a legacy service that really draws heads with ``drawn``."""
+    import numpy as np
+
+    led = dl.Ledger(path)
+    u = np.random.default_rng(seed).random(n)
+    for i in range(n):
+        heads = bool(u[i] < drawn)
+        led.record_draw(stream, "bernoulli", {"p": 0.5}, heads, 0.5,
+                        decision_id=f"legacy-{seed}-{i}", u=[float(u[i])], ts=T0 + i)  # fmt: skip
+    led.close()
+    return path
+
+
+def comparable(state_file: Path) -> dict[str, Any]:
+    """The saved state without the wall-clock times of its alarms."""
+    data = orjson.loads(state_file.read_bytes())
+    for alarm in data["alarms"]:
+        alarm.pop("time")
+    return data
+
+
+def test_a_correct_ledger_verifies_and_raises_no_alarm(tmp_path: Path) -> None:
+    db = tmp_path / "shop.db"
+    shop_ledger(db, 400)
+    report = guard(db, path=[SUPPORT], once=True)
+    data = report.to_dict()
+    assert (True, 800, 800, 0) == (data["ok"], data["decisions"], data["verified"],
+                                   data["mismatched"])  # fmt: skip
+    tests = {(d["stream"], d["draw"], d["test"]) for d in data["draws"]}
+    assert ("recipe-card", "card", "pit") in tests  # softmax over varying scores
+    assert ("explore-card", "explore", "ratio") in tests  # a coin with a fixed epsilon
+    assert 0 == data["lag"]["records"]
+
+
+def test_taking_in_a_growing_ledger_piece_by_piece_equals_one_pass(tmp_path: Path) -> None:
+    """Three looks while the ledger grows give the statistics of one look at the whole."""
+    db, state = tmp_path / "shop.db", tmp_path / "state.json"
+    for k in range(3):
+        shop_ledger(db, 150, start=150 * k)
+        guard(db, path=[SUPPORT], state=state, once=True, piece_size=100)
+    whole = guard(tmp_path / "shop.db", path=[SUPPORT], once=True, piece_size=100)
+    grown = load_state(state, os.fspath(db))
+    assert whole.state.decisions == grown.decisions == 900
+    assert whole.state.verify == grown.verify
+    for key, w in whole.state.watches.items():
+        assert (w.counts, w.uniforms) == (grown.watches[key].counts, grown.watches[key].uniforms)
+        assert w.log_e == pytest.approx(grown.watches[key].log_e, rel=1e-12)
+
+
+def test_a_ratio_drift_raises_one_alarm_line_and_exit_1(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Declared 50/50, drawn 60/40: the ratio process alarms, once, naming the stream, the
+    test, the e-value and the first decision of the piece in which it crossed."""
+    db = legacy_ledger(tmp_path / "coin.db", 0.6, 3000)
+    state = tmp_path / "state.json"
+    assert 1 == main(["guard", str(db), "--once", "--state", str(state)])
+    err = capsys.readouterr().err.splitlines()
+    ratio = [line for line in err if "test ratio" in line]
+    assert 1 == len(ratio)
+    assert "stream 'slot-discount'" in ratio[0] and "e-value" in ratio[0]
+    assert "first affected decision 'legacy-7-" in ratio[0]
+    # Looking again: the alarm still stands (exit 1) but is not announced again.
+    assert 1 == main(["guard", str(db), "--once", "--state", str(state)])
+    assert "ALARM" not in capsys.readouterr().err
+
+
+def test_correct_declared_draws_exit_0(tmp_path: Path) -> None:
+    db = legacy_ledger(tmp_path / "coin.db", 0.5, 3000)
+    assert 0 == main(["guard", str(db), "--once", "--json", str(tmp_path / "g.json")])
+    assert orjson.loads((tmp_path / "g.json").read_bytes())["ok"] is True
+
+
+def test_a_tampered_record_raises_verify_and_integrity_alarms(tmp_path: Path) -> None:
+    db = tmp_path / "shop.db"
+    shop_ledger(db, 100)
+    with sqlite3.connect(db) as conn:
+        did = conn.execute("SELECT decision_id FROM decisions WHERE stream = 'recipe-card' "
+                           "ORDER BY seq LIMIT 1 OFFSET 10").fetchone()[0]  # fmt: skip
+        conn.execute("UPDATE decisions SET propensity = 0.99 WHERE decision_id = ?", (did,))
+    report = guard(db, path=[SUPPORT], once=True)
+    tests = {a["test"]: a["decision"] for a in report.to_dict()["alarms"]}
+    assert did == tests["integrity:bad_hashes"]
+    assert any(t.startswith("verify:") for t in tests)
+    assert report.ok is False
+
+
+def test_a_hole_in_a_chain_is_waited_for_then_reported_as_a_gap(tmp_path: Path) -> None:
+    db = tmp_path / "shop.db"
+    shop_ledger(db, 100)
+    with sqlite3.connect(db) as conn:
+        conn.execute("DELETE FROM decisions WHERE seq = 50")
+    state = tmp_path / "state.json"
+    waiting = guard(db, path=[SUPPORT], once=True, state=state, gap_wait=3600.0)
+    assert (True, 50) == (waiting.ok, waiting.state.decisions)
+    assert 0 < waiting.lag_records
+    reported = guard(db, path=[SUPPORT], once=True, state=state, gap_wait=0.0)
+    # verify counts the decision after the gap as not verified, as ``drawledger verify`` does
+    assert {"integrity:gaps", "verify:integrity"} == {a["test"] for a in reported.state.alarms}
+    assert 199 == reported.state.decisions
+
+
+GUARD_RUN = """
+import sys
+sys.path.insert(0, sys.argv[3])
+from drawledger.replay.guard import guard
+guard(sys.argv[1], path=[sys.argv[3]], state=sys.argv[2], once=True, piece_size=40)
+"""
+
+
+def test_a_guard_killed_between_pieces_resumes_to_the_uninterrupted_result(
+    tmp_path: Path,
+) -> None:
+    """SIGKILL while taking in pieces, then a restart: the saved state equals that of a run
+    never interrupted (nothing read twice, nothing skipped)."""
+    db = tmp_path / "shop.db"
+    shop_ledger(db, 600)
+    killed, whole = tmp_path / "killed.json", tmp_path / "whole.json"
+    proc = subprocess.Popen([sys.executable, "-c", GUARD_RUN, str(db), str(killed),
+                             str(SUPPORT)])  # fmt: skip
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline:
+        if killed.exists() and orjson.loads(killed.read_bytes())["pieces"] >= 5:
+            break
+        time.sleep(0.02)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait()
+    partial = orjson.loads(killed.read_bytes())["decisions"]
+    assert 0 < partial < 1200, "the kill came between pieces, not after the last"
+    guard(db, path=[SUPPORT], state=killed, once=True, piece_size=40)
+    guard(db, path=[SUPPORT], state=whole, once=True, piece_size=40)
+    assert comparable(whole) == comparable(killed)
+
+
+def test_ledger_text_reaches_the_terminal_escaped_and_on_alarm_gets_json(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A stream named with a terminal escape sequence: the alarm line shows it escaped; the
+    --on-alarm command gets the alarm as JSON on stdin (an argument list, no shell)."""
+    evil = "slot\x1b[2J\x1b]0;pwned\x07-discount"
+    db = legacy_ledger(tmp_path / "coin.db", 0.65, 2000, stream=evil)
+    sink = tmp_path / "alarms.jsonl"
+    script = "import sys; open(sys.argv[1], 'ab').write(sys.stdin.buffer.read() + bytes([10]))"
+    hook = f'{sys.executable} -c "{script}" {sink}'
+    assert 1 == main(["guard", str(db), "--once", "--on-alarm", hook])
+    out = capsys.readouterr()
+    assert "\x1b" not in out.err and "\x07" not in out.err and "\x1b" not in out.out
+    assert "slot\\x1b[2J" in out.err
+    got = [orjson.loads(line) for line in sink.read_bytes().splitlines()]
+    assert evil in {a["stream"] for a in got}
+    assert {"stream", "test", "evidence", "decision"} <= set(got[0])
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["guard", "{tmp}/missing.db", "--once"], "no such file"),
+        (["guard", "{tmp}/coin.db", "--once", "--state", "{tmp}/bad.json"], "is not JSON"),
+        (["guard", "{tmp}/coin.db", "--once", "--alpha", "2"], "alpha must be"),
+        (["guard", "{tmp}/coin.db", "--once", "--interval", "0"], "interval must be"),
+        (["guard", "{tmp}/coin.db", "--once", "--on-alarm", ""], "--on-alarm: give a command"),
+    ],
+)
+def test_bad_usage_exits_2_with_one_line(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], argv: list[str], message: str
+) -> None:
+    legacy_ledger(tmp_path / "coin.db", 0.5, 20)
+    (tmp_path / "bad.json").write_text("{not json", encoding="utf-8")
+    assert 2 == main([a.format(tmp=tmp_path) for a in argv])
+    err = capsys.readouterr().err
+    assert 1 == len(err.splitlines()) and message in err and "Traceback" not in err
+
+
+def test_a_state_of_another_ledger_is_refused(tmp_path: Path) -> None:
+    a = legacy_ledger(tmp_path / "a.db", 0.5, 20)
+    b = legacy_ledger(tmp_path / "b.db", 0.5, 20)
+    state = tmp_path / "state.json"
+    guard(a, state=state, once=True)
+    with pytest.raises(ReplayError, match="follows another ledger"):
+        guard(b, state=state, once=True)
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def test_metrics_are_served_on_loopback_in_the_prometheus_text_format(tmp_path: Path) -> None:
+    db = legacy_ledger(tmp_path / "coin.db", 0.5, 500)
+    port = _free_port()
+    scraped: list[str] = []
+
+    def scrape(_seconds: float) -> None:
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=10) as r:
+            scraped.append(r.read().decode())
+        legacy_ledger(db, 0.5, 100, seed=8)  # the ledger grows between looks
+
+    guard(db, metrics_port=port, steps=2, interval=0.01, sleep=scrape)
+    text = scraped[0]
+    assert "drawledger_guard_decisions_seen 500.0" in text
+    assert 'drawledger_guard_evidence{draw="",stream="slot-discount",test="ratio"}' in text
+    assert "drawledger_guard_lag_records 0.0" in text
+    with pytest.raises(OSError):  # the server stopped with the guard
+        urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=2)
+
+
+def test_a_parquet_ledger_gives_the_statistics_of_the_same_sqlite_ledger(tmp_path: Path) -> None:
+    coin = legacy_ledger(tmp_path / "coin.db", 0.5, 700)
+    (tmp_path / "pq").mkdir()
+    assert 0 == main(["ingest", str(_as_jsonl(coin, tmp_path)), str(tmp_path / "pq")])
+    a = guard(coin, once=True, piece_size=100)
+    b = guard(tmp_path / "pq", once=True, piece_size=100)
+    assert a.state.decisions == b.state.decisions == 700
+    assert [w.counts for w in a.state.watches.values()] == [
+        w.counts for w in b.state.watches.values()]  # fmt: skip
+
+
+def _as_jsonl(db: Path, tmp_path: Path) -> Path:
+    """The declared draws of an SQLite ledger as JSON Lines for ``drawledger ingest``."""
+    out = tmp_path / "draws.jsonl"
+    with sqlite3.connect(db) as conn:
+        rows = conn.execute("SELECT d.decision_id, d.stream, d.ts, r.kind, r.args, r.value, "
+                            "r.prob, r.u FROM decisions d JOIN draws r USING (decision_id) "
+                            "ORDER BY d.seq").fetchall()  # fmt: skip
+    out.write_bytes(b"".join(orjson.dumps({
+        "decision_id": did, "stream": s, "unit": None, "ts": ts, "kind": k,
+        "args": orjson.loads(a), "value": orjson.loads(v), "prob": p, "u": orjson.loads(u),
+    }) + b"\n" for did, s, ts, k, a, v, p, u in rows))  # fmt: skip
+    return out
+
+
+@pytest.mark.postgres
+def test_a_postgresql_ledger_is_followed_like_sqlite(postgres_url: str, tmp_path: Path) -> None:
+    shop_ledger(postgres_url, 100)
+    state = tmp_path / "state.json"
+    first = guard(postgres_url, path=[SUPPORT], state=state, once=True, piece_size=64)
+    assert (200, 200) == (first.state.decisions, first.state.verify["verified"])
+    shop_ledger(postgres_url, 50, start=100)
+    again = guard(postgres_url, path=[SUPPORT], state=state, once=True, piece_size=64)
+    assert (300, 300, True) == (again.state.decisions, again.state.verify["verified"], again.ok)
