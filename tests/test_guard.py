@@ -279,3 +279,24 @@ def test_a_postgresql_ledger_is_followed_like_sqlite(postgres_url: str, tmp_path
     shop_ledger(postgres_url, 50, start=100)
     again = guard(postgres_url, path=[SUPPORT], state=state, once=True, piece_size=64)
     assert (300, 300, True) == (again.state.decisions, again.state.verify["verified"], again.ok)
+
+
+def test_a_hole_longer_than_a_piece_is_stepped_over_not_stuck_at(tmp_path: Path) -> None:
+    """A writer's seqs jump past a whole piece: the guard reports the gap and goes on."""
+    db = tmp_path / "shop.db"
+    shop_ledger(db, 100)
+    with sqlite3.connect(db) as conn:
+        conn.execute("DELETE FROM decisions WHERE seq BETWEEN 40 AND 150")
+    report = guard(db, path=[SUPPORT], once=True, gap_wait=0.0, piece_size=20)
+    assert (89, 0) == (report.state.decisions, report.lag_records)
+    assert 111 == report.state.integrity["gaps"]  # seqs 40 to 150
+
+
+def test_the_first_record_of_a_writer_missing_is_reported_once_waited_for(tmp_path: Path) -> None:
+    db = tmp_path / "shop.db"
+    shop_ledger(db, 50)
+    with sqlite3.connect(db) as conn:
+        conn.execute("DELETE FROM decisions WHERE seq = 0")
+    report = guard(db, path=[SUPPORT], once=True, gap_wait=0.0)
+    assert 99 == report.state.decisions
+    assert "integrity:gaps" in {a["test"] for a in report.state.alarms}

@@ -11,8 +11,8 @@ from drawledger.exceptions import ReplayError
 from drawledger.replay.guard._evidence import ALPHA
 from drawledger.replay.guard._metrics import Metrics
 from drawledger.replay.guard._report import GuardReport
-from drawledger.replay.guard._state import GuardState, load_state, save_state
-from drawledger.replay.guard._step import StepSettings, contiguous, take_piece
+from drawledger.replay.guard._state import GuardState, Mark, load_state, save_state
+from drawledger.replay.guard._step import StepSettings, contiguous, take_piece, writer_of
 from drawledger.replay.propensity import DEFAULT_BUDGET, DEFAULT_MC_SAMPLES
 from drawledger.replay.sources import Follower, Head
 from drawledger.replay.verify import Settings
@@ -69,15 +69,20 @@ def take_in(
             if piece is None:
                 break
             whole, hole = contiguous(piece, after)
-            if hole is not None and mark is not None and mark.hole_since is None:
-                mark.hole_since = clock()
-            waited = (clock() - mark.hole_since) if mark and mark.hole_since is not None else 0.0
-            if hole is not None and (mark is None or waited < gap_wait):
-                if mark is None and gap_wait > 0 and whole is None:
-                    break  # a first record missing: wait (no mark to time it yet)
-                if whole is None:
-                    break
-                piece = whole
+            if hole is None:
+                if mark is not None:
+                    mark.hole_since = None
+            else:
+                if mark is None:
+                    mark = state.writers[key] = Mark(writer_of(piece))
+                if mark.hole_since is None:
+                    mark.hole_since = clock()
+                if clock() - mark.hole_since < gap_wait:  # wait for the hole to fill
+                    if whole is None:
+                        break
+                    piece = whole
+                else:
+                    mark.hole_since = None  # waited long enough: the walk reports a gap
             emit(take_piece(state, piece, settings))
             save()
     return _lag(follower.heads(), state)

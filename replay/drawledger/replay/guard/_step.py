@@ -54,6 +54,11 @@ def contiguous(piece: WriterPiece, after: int) -> tuple[WriterPiece | None, int 
     return WriterPiece(piece.key, rows, draws, outcomes, hole - 1), hole
 
 
+def writer_of(piece: WriterPiece) -> str:
+    """The writer named by a piece's records."""
+    return str(piece.decisions[0][DEC.writer] if piece.decisions else piece.outcomes[0][OUT.writer])
+
+
 def take_piece(
     state: GuardState, piece: WriterPiece, settings: StepSettings
 ) -> list[dict[str, Any]]:
@@ -61,13 +66,9 @@ def take_piece(
     alarms: list[dict[str, Any]] = []
     rows, draws = piece.decisions, piece.draws
     mark = state.writers.get(piece.key)
-    first_row = rows[0] if rows else None
-    if mark is not None:
-        writer = mark.writer
-    else:
-        writer = first_row[DEC.writer] if first_row is not None else piece.outcomes[0][OUT.writer]
     if mark is None:
-        mark = state.writers[piece.key] = Mark(writer)
+        mark = state.writers[piece.key] = Mark(writer_of(piece))
+    writer = mark.writer
 
     # The chain, continued from where it stood.
     by_id: dict[str, list[tuple[Any, ...]]] = {}
@@ -123,5 +124,4 @@ def take_piece(
     mark.seq = max(mark.seq, piece.last)
     if rows:
         mark.ts = max(float(r[DEC.ts]) for r in rows)
-    mark.hole_since = None
     return alarms

@@ -70,7 +70,8 @@ class Follower:
     def read_after(self, key: str, after: int, size: int) -> WriterPiece | None:
         """The next piece of writer ``key`` after seq ``after`` (None when there is none).
 
-        SQL: the records up to the next multiple of ``size`` in seq; Parquet: whole part files
+        SQL: the records up to the next multiple of ``size`` in seq above the first one present
+        (a hole in the chain longer than ``size`` is stepped over, not stuck at); Parquet: whole part files
         in seq order until they hold ``size`` records. Both cuts depend only on ``after``, so a
         follower resumed from a saved seq takes the same pieces as one that never stopped.
         """
@@ -99,7 +100,14 @@ class Follower:
 
     def _sql_after(self, writer: str, after: int, size: int) -> WriterPiece | None:
         assert self.engine is not None
-        end = (after + 1) // size * size + size  # exclusive: the next multiple of size
+        with self.engine.connect() as conn:
+            firsts = [conn.execute(sa.text(f"SELECT MIN(seq) FROM {table} WHERE writer = :w "
+                                           "AND seq > :a"), {"w": writer, "a": after}).scalar()
+                      for table in ("decisions", "outcomes")]  # fmt: skip
+        present = [int(f) for f in firsts if f is not None]
+        if not present:
+            return None
+        end = min(present) // size * size + size  # exclusive: the next multiple of size
         rows, draws = read_sql_slice(self.engine, SqlSlice(writer, after + 1, end, 0))
         columns = ", ".join(TABLE_COLUMNS["outcomes"])
         with self.engine.connect() as conn:
