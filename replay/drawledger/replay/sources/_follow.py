@@ -71,8 +71,8 @@ class Follower:
         """The next piece of writer ``key`` after seq ``after`` (None when there is none).
 
         SQL: the records up to the next multiple of ``size`` in seq above the first one present
-        (a hole in the chain longer than ``size`` is stepped over, not stuck at); Parquet: whole part files
-        in seq order until they hold ``size`` records. Both cuts depend only on ``after``, so a
+        (a hole in the chain longer than ``size`` is stepped over, not stuck at); Parquet: whole
+        part files in seq order until they hold ``size`` records. Both cuts depend only on ``after``, so a
         follower resumed from a saved seq takes the same pieces as one that never stopped.
         """
         try:
