@@ -72,8 +72,9 @@ class Follower:
 
         SQL: the records up to the next multiple of ``size`` in seq above the first one present
         (a hole in the chain longer than ``size`` is stepped over, not stuck at); Parquet: whole
-        part files in seq order until they hold ``size`` records. Both cuts depend only on ``after``, so a
-        follower resumed from a saved seq takes the same pieces as one that never stopped.
+        part files in seq order until they hold ``size`` records. Both cuts depend only on
+        ``after`` and the ledger, so a follower resumed from a saved seq takes the same pieces as
+        one that never stopped.
         """
         try:
             return self._parquet_after(key, after, size) if self.parquet else (
