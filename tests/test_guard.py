@@ -300,3 +300,10 @@ def test_the_first_record_of_a_writer_missing_is_reported_once_waited_for(tmp_pa
     report = guard(db, path=[SUPPORT], once=True, gap_wait=0.0)
     assert 99 == report.state.decisions
     assert "integrity:gaps" in {a["test"] for a in report.state.alarms}
+
+
+def test_docs_guard_python_runs(tmp_path: Path, run_markdown: Any) -> None:
+    """The Python block of docs/guard.md runs as written and prints what it says."""
+    done = run_markdown("docs/guard.md")
+    assert 0 == done.returncode, done.stderr
+    assert "True ratio\n" == done.stdout
