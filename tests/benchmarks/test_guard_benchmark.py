@@ -25,9 +25,9 @@ from pathlib import Path
 
 import pytest
 import shop_decisions as sd
+from conftest import SUPPORT
 
 import drawledger as dl
-from conftest import SUPPORT
 from drawledger.replay.guard import guard
 
 pytestmark = pytest.mark.benchmark
