@@ -307,3 +307,64 @@ def test_docs_guard_python_runs(tmp_path: Path, run_markdown: Any) -> None:
     done = run_markdown("docs/guard.md")
     assert 0 == done.returncode, done.stderr
     assert "True ratio\n" == done.stdout
+
+
+def _grow_and_watch(ledgers: int, batches: int, size: int, drift_at: int | None,
+                    tmp_path: Path) -> tuple[list[int | None], list[bool]]:  # fmt: skip
+    """Declared 50/50 coins recorded in batches, the guard run once after each batch (resuming
+    from its state file). Per ledger: the decisions from the drift (to 0.55 at batch
+    ``drift_at``) to the guard's alarm (None: no alarm), and whether a fixed-n chi-square of the
+    counts re-run after every batch ever had p < 0.01 (scipy.stats.chisquare)."""
+    import numpy as np
+    from scipy import stats
+
+    delays: list[int | None] = []
+    fixed: list[bool] = []
+    for k in range(ledgers):
+        db, state = tmp_path / f"coin-{k}.db", tmp_path / f"state-{k}.json"
+        rng = np.random.default_rng(1000 + k)
+        found: int | None = None
+        fixed_alarm = False
+        for b in range(batches):
+            p = 0.55 if drift_at is not None and b >= drift_at else 0.5
+            led = dl.Ledger(db)
+            for i, u in enumerate(rng.random(size)):
+                led.record_draw("slot-discount", "bernoulli", {"p": 0.5}, bool(u < p), 0.5,
+                                decision_id=f"c{k}-{b}-{i}", u=[float(u)],
+                                ts=T0 + b * size + i)  # fmt: skip
+            led.close()
+            report = guard(db, state=state, once=True)
+            counts = next(iter(report.state.watches.values())).counts
+            fixed_alarm |= bool(stats.chisquare(counts).pvalue < 0.01)
+            if not report.ok:
+                found = (b + 1 - (drift_at or 0)) * size
+                break
+        delays.append(found)
+        fixed.append(fixed_alarm)
+    return delays, fixed
+
+
+@pytest.mark.slow
+def test_growing_ledgers_watched_by_the_guard_keep_alpha(tmp_path: Path) -> None:
+    """100 ledgers x 200 batches, correct randomization: the share of ledgers with any alarm
+    stays within the binomial tolerance of alpha = 0.01 (scipy.stats.binom, 99th percentile);
+    the chi-square re-run after every batch alarms on clearly more of them."""
+    from scipy import stats
+
+    delays, fixed = _grow_and_watch(100, 200, 25, None, tmp_path)
+    alarmed = sum(d is not None for d in delays)
+    print(f"\nguard: {alarmed}/100 ledgers alarmed; chi-square per batch: {sum(fixed)}/100")
+    assert alarmed <= stats.binom.ppf(0.99, 100, 0.01)
+    assert sum(fixed) > max(2 * alarmed, 5)
+
+
+@pytest.mark.slow
+def test_a_drift_in_a_growing_ledger_is_found_by_the_guard(tmp_path: Path) -> None:
+    """0.5 -> 0.55 from batch 100 of 200 (batches of 200): the median delay in decisions."""
+    import numpy as np
+
+    delays, _ = _grow_and_watch(20, 200, 200, 100, tmp_path)
+    found = [d for d in delays if d is not None]
+    print(f"\nguard on growing ledgers: {len(found)}/20 alarmed after the drift, median delay "
+          f"{np.median(found):.0f} decisions")  # fmt: skip
+    assert len(found) >= 18

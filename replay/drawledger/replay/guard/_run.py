@@ -150,6 +150,11 @@ def guard(
             if on_alarm is not None:
                 on_alarm(alarm)
 
+    saved: list[bytes | None] = [None]
+
+    def save() -> None:
+        saved[0] = save_state(state, current, saved[0])
+
     follower = Follower(ledger, format=format)
     served = Metrics(metrics_port) if metrics_port is not None else None
     lag: tuple[int, float | None] = (0, None)
@@ -157,9 +162,8 @@ def guard(
         looks = 0
         while True:
             lag = take_in(follower, current, settings, piece_size=piece_size,
-                          gap_wait=gap_wait, emit=emit,
-                          save=lambda: save_state(state, current))  # fmt: skip
-            save_state(state, current)
+                          gap_wait=gap_wait, emit=emit, save=save)  # fmt: skip
+            save()
             if served is not None:
                 served.update(current, *lag)
             looks += 1

@@ -168,13 +168,19 @@ def load_state(path: str | os.PathLike[str] | None, ledger: str) -> GuardState:
     return state
 
 
-def save_state(path: str | os.PathLike[str] | None, state: GuardState) -> None:
-    """Write the state atomically: a reader or a restart sees the old file or the new one."""
-    if path is None:
-        return
+def save_state(
+    path: str | os.PathLike[str] | None, state: GuardState, unchanged: bytes | None = None
+) -> bytes:
+    """Write the state atomically: a reader or a restart sees the old file or the new one.
+
+    Returns the bytes written; when they equal ``unchanged`` (what the file already holds)
+    nothing is written.
+    """
+    data = orjson.dumps(state.to_dict(), option=orjson.OPT_INDENT_2) + b"\n"
+    if path is None or data == unchanged:
+        return data
     target = Path(path)
     tmp = target.with_name(f".{target.name}.{os.getpid()}.tmp")
-    data = orjson.dumps(state.to_dict(), option=orjson.OPT_INDENT_2) + b"\n"
     try:
         with open(tmp, "wb") as out:
             out.write(data)
@@ -188,10 +194,11 @@ def save_state(path: str | os.PathLike[str] | None, state: GuardState) -> None:
     try:
         fd = os.open(target.parent, os.O_RDONLY | flags)
     except OSError:
-        return
+        return data
     try:
         os.fsync(fd)
     except OSError:
         pass
     finally:
         os.close(fd)
+    return data
