@@ -17,6 +17,7 @@ import orjson
 import pytest
 import shop_decisions as sd
 from conftest import SUPPORT
+from test_examples import EXAMPLES, service  # noqa: F401  (the live service fixture)
 
 import drawledger as dl
 from drawledger.cli import main
@@ -368,3 +369,57 @@ def test_a_drift_in_a_growing_ledger_is_found_by_the_guard(tmp_path: Path) -> No
     print(f"\nguard on growing ledgers: {len(found)}/20 alarmed after the drift, median delay "
           f"{np.median(found):.0f} decisions")  # fmt: skip
     assert len(found) >= 18
+
+
+@pytest.mark.slow
+def test_the_guard_follows_the_live_example_service_under_load(
+    request: pytest.FixtureRequest, tmp_path: Path
+) -> None:
+    """The FastAPI example on loopback under load, the guard following its ledger with its
+    metrics on loopback: scraped while the load runs and after, every decision is taken in
+    and verified, and no alarm fires."""
+    port, ledger = request.getfixturevalue("service")
+    load = subprocess.Popen([sys.executable, str(EXAMPLES / "load.py"), "--port", str(port),
+                             "--sessions", "400", "--ledger", str(ledger)],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)  # fmt: skip
+    deadline = time.monotonic() + 60
+    while not ledger.exists() and time.monotonic() < deadline:
+        time.sleep(0.1)
+    mport = _free_port()
+    watcher = subprocess.Popen(
+        [sys.executable, "-m", "drawledger.cli", "guard", str(ledger), "--path", str(EXAMPLES),
+         "--state", str(tmp_path / "guard.json"), "--interval", "0.2",
+         "--metrics-port", str(mport)],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+    )  # fmt: skip
+
+    def scrape() -> dict[str, float]:
+        try:
+            with urllib.request.urlopen(f"http://127.0.0.1:{mport}/metrics", timeout=5) as r:
+                text = r.read().decode()
+        except OSError:
+            return {}
+        return {line.split(" ")[0]: float(line.split(" ")[1]) for line in text.splitlines()
+                if line.startswith("drawledger_guard_") and "{" not in line}  # fmt: skip
+
+    try:
+        during = []
+        while load.poll() is None:
+            during.append(scrape().get("drawledger_guard_decisions_seen"))
+            time.sleep(0.3)
+        assert 0 == load.returncode, load.stderr.read()  # type: ignore[union-attr]
+        deadline = time.monotonic() + 120
+        seen: dict[str, float] = {}
+        while time.monotonic() < deadline:
+            seen = scrape()
+            if seen.get("drawledger_guard_decisions_seen") == 800:
+                break
+            time.sleep(0.3)
+    finally:
+        watcher.send_signal(signal.SIGINT)
+        _out, err = watcher.communicate(timeout=60)
+    print(f"\nseen while the load ran: {during}; after: {seen}")
+    assert 800 == seen["drawledger_guard_decisions_seen"]
+    assert 800 == seen["drawledger_guard_decisions_verified"]
+    assert 0 == seen["drawledger_guard_alarms"] == seen["drawledger_guard_lag_records"]
+    assert "ALARM" not in err

@@ -53,11 +53,13 @@ def _lag(heads: dict[str, Head], state: GuardState) -> tuple[int, float | None]:
 
 def take_in(
     follower: Follower, state: GuardState, settings: StepSettings, *, piece_size: int,
-    gap_wait: float, emit: Callable[[list[Alarm]], None], save: Callable[[], None],
+    gap_wait: float, emit: Callable[[list[Alarm]], None],
+    after_piece: Callable[[tuple[int, float | None]], None],
     clock: Callable[[], float] = time.time,
 ) -> tuple[int, float | None]:  # fmt: skip
-    """Take in every new record of every writer, piece by piece (the state saved after each);
-    returns the lag behind the ledger when done."""
+    """Take in every new record of every writer, piece by piece; ``after_piece`` is called
+    after each (to save the state) with the lag behind the newest records seen when the look
+    began. Returns the lag behind the ledger when done."""
     heads = follower.heads()
     for key in sorted(heads):
         while True:
@@ -84,7 +86,7 @@ def take_in(
                 else:
                     mark.hole_since = None  # waited long enough: the walk reports a gap
             emit(take_piece(state, piece, settings))
-            save()
+            after_piece(_lag(heads, state))
     return _lag(follower.heads(), state)
 
 
@@ -152,20 +154,21 @@ def guard(
 
     saved: list[bytes | None] = [None]
 
-    def save() -> None:
-        saved[0] = save_state(state, current, saved[0])
-
     follower = Follower(ledger, format=format)
     served = Metrics(metrics_port) if metrics_port is not None else None
+
+    def save(lag: tuple[int, float | None]) -> None:
+        saved[0] = save_state(state, current, saved[0])
+        if served is not None:
+            served.update(current, *lag)
+
     lag: tuple[int, float | None] = (0, None)
     try:
         looks = 0
         while True:
             lag = take_in(follower, current, settings, piece_size=piece_size,
-                          gap_wait=gap_wait, emit=emit, save=save)  # fmt: skip
-            save()
-            if served is not None:
-                served.update(current, *lag)
+                          gap_wait=gap_wait, emit=emit, after_piece=save)  # fmt: skip
+            save(lag)
             looks += 1
             if once or (steps is not None and looks >= steps):
                 break
