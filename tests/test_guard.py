@@ -423,3 +423,34 @@ def test_the_guard_follows_the_live_example_service_under_load(
     assert 800 == seen["drawledger_guard_decisions_verified"]
     assert 0 == seen["drawledger_guard_alarms"] == seen["drawledger_guard_lag_records"]
     assert "ALARM" not in err
+
+
+def test_a_ledger_replaced_under_the_state_file_is_refused_not_followed(tmp_path: Path) -> None:
+    """A demo re-run replaces the ledger at the same path: the state covered more than the new
+    ledger holds, and the guard says so instead of waiting forever for records."""
+    db, state = tmp_path / "coin.db", tmp_path / "state.json"
+    legacy_ledger(db, 0.5, 300)
+    guard(db, state=state, once=True)
+    db.unlink()
+    legacy_ledger(db, 0.5, 100)
+    with pytest.raises(ReplayError, match="the ledger was replaced or records were removed"):
+        guard(db, state=state, once=True)
+
+
+def test_a_changed_declaration_stops_the_ratio_process_without_an_alarm(tmp_path: Path) -> None:
+    """A coin declared 0.5, then 0.3 (a new arm split), each drawn as declared: the ratio
+    process stops at the change and says so; no alarm."""
+    import numpy as np
+
+    db = tmp_path / "coin.db"
+    led = dl.Ledger(db)
+    u = np.random.default_rng(3).random(2000)
+    for i in range(2000):
+        p = 0.5 if i < 1000 else 0.3
+        led.record_draw("slot-discount", "bernoulli", {"p": p}, bool(u[i] < p),
+                        p if u[i] < p else 1 - p, decision_id=f"d{i}", u=[float(u[i])])  # fmt: skip
+    led.close()
+    report = guard(db, once=True)
+    (watch,) = report.state.watches.values()
+    assert (True, 1000) == (report.ok, watch.n)
+    assert watch.stopped is not None and "declared probabilities changed" in watch.stopped

@@ -61,6 +61,15 @@ def take_in(
     after each (to save the state) with the lag behind the newest records seen when the look
     began. Returns the lag behind the ledger when done."""
     heads = follower.heads()
+    for key, mark in state.writers.items():
+        head = heads.get(key)
+        if head is None or head.seq < mark.seq:
+            ends = "has no records" if head is None else f"ends at seq {head.seq}"
+            raise ReplayError(
+                f"writer {mark.writer!r} {ends} but the guard's state covered it to seq "
+                f"{mark.seq}: the ledger was replaced or records were removed; check it with "
+                "drawledger verify and start a new state file"
+            )
     for key in sorted(heads):
         while True:
             mark = state.writers.get(key)
