@@ -61,13 +61,13 @@ def take_in(
     after each (to save the state) with the lag behind the newest records seen when the look
     began. Returns the lag behind the ledger when done."""
     heads = follower.heads()
-    for key, mark in state.writers.items():
+    for key, covered in state.writers.items():
         head = heads.get(key)
-        if head is None or head.seq < mark.seq:
+        if head is None or head.seq < covered.seq:
             ends = "has no records" if head is None else f"ends at seq {head.seq}"
             raise ReplayError(
-                f"writer {mark.writer!r} {ends} but the guard's state covered it to seq "
-                f"{mark.seq}: the ledger was replaced or records were removed; check it with "
+                f"writer {covered.writer!r} {ends} but the guard's state covered it to seq "
+                f"{covered.seq}: the ledger was replaced or records were removed; check it with "
                 "drawledger verify and start a new state file"
             )
     for key in sorted(heads):
