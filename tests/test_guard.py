@@ -454,3 +454,18 @@ def test_a_changed_declaration_stops_the_ratio_process_without_an_alarm(tmp_path
     (watch,) = report.state.watches.values()
     assert (True, 1000) == (report.ok, watch.n)
     assert watch.stopped is not None and "declared probabilities changed" in watch.stopped
+
+
+def test_parquet_parts_of_interleaved_streams_are_taken_whole_in_small_pieces(
+    tmp_path: Path,
+) -> None:
+    """Two streams recorded alternately: each batch writes one part file per stream with
+    interleaved seqs. Pieces smaller than a part still take every overlapping part, so the
+    chain has no gap and every decision verifies, as on SQLite."""
+    shop_ledger(tmp_path / "pq", 150, format="parquet")
+    shop_ledger(tmp_path / "shop.db", 150)
+    a = guard(tmp_path / "pq", path=[SUPPORT], once=True, piece_size=7, gap_wait=0.0)
+    b = guard(tmp_path / "shop.db", path=[SUPPORT], once=True, piece_size=7, gap_wait=0.0)
+    assert (300, 300, True) == (a.state.decisions, a.state.verify["verified"], a.ok)
+    assert 0 == sum(a.state.integrity.values())
+    assert set(b.state.watches) == set(a.state.watches)  # the same draws watched
