@@ -15,6 +15,8 @@ from typing import Any
 
 import orjson
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 import shop_decisions as sd
 from conftest import SUPPORT
 from test_examples import EXAMPLES, service  # noqa: F401  (the live service fixture)
@@ -22,7 +24,7 @@ from test_examples import EXAMPLES, service  # noqa: F401  (the live service fix
 import drawledger as dl
 from drawledger.cli import main
 from drawledger.exceptions import ReplayError
-from drawledger.replay.guard import guard, load_state
+from drawledger.replay.guard import guard, load_state, safe
 
 T0 = 1_767_225_600.0
 
@@ -469,3 +471,30 @@ def test_parquet_parts_of_interleaved_streams_are_taken_whole_in_small_pieces(
     assert (300, 300, True) == (a.state.decisions, a.state.verify["verified"], a.ok)
     assert 0 == sum(a.state.integrity.values())
     assert set(b.state.watches) == set(a.state.watches)  # the same draws watched
+
+
+def test_the_window_shows_a_recent_drift_as_information_not_an_alarm(tmp_path: Path) -> None:
+    """20 000 coins drawn as declared, then 3000 at 0.54: the window of the last 3000 shows
+    the drift (p < alpha); the cumulative evidence, diluted, raises no alarm, and the window
+    does not change the verdict."""
+    import numpy as np
+
+    db = tmp_path / "coin.db"
+    led = dl.Ledger(db)
+    u = np.random.default_rng(11).random(23_000)
+    for i in range(23_000):
+        p = 0.5 if i < 20_000 else 0.54
+        led.record_draw("slot-discount", "bernoulli", {"p": 0.5}, bool(u[i] < p), 0.5,
+                        decision_id=f"d{i}", u=[float(u[i])])  # fmt: skip
+    led.close()
+    report = guard(db, once=True, window=3000)
+    (draw,) = report.to_dict()["draws"]
+    assert (True, 3000, True) == (report.ok, draw["window"]["n"], draw["window"]["drift"])
+
+
+@given(st.text())
+def test_nothing_unprintable_reaches_the_terminal(text: str) -> None:
+    """Whatever a ledger holds, the shown text has no control or format characters."""
+    shown = safe(text)
+    assert all(ch.isprintable() for ch in shown)
+    assert safe(text + "\x1b") == shown + "\\x1b"
