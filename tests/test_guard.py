@@ -15,10 +15,10 @@ from typing import Any
 
 import orjson
 import pytest
-from hypothesis import given
-from hypothesis import strategies as st
 import shop_decisions as sd
 from conftest import SUPPORT
+from hypothesis import given
+from hypothesis import strategies as st
 from test_examples import EXAMPLES, service  # noqa: F401  (the live service fixture)
 
 import drawledger as dl
