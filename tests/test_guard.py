@@ -498,3 +498,31 @@ def test_nothing_unprintable_reaches_the_terminal(text: str) -> None:
     shown = safe(text)
     assert all(ch.isprintable() for ch in shown)
     assert safe(text + "\x1b") == shown + "\\x1b"
+
+
+JSON = st.recursive(
+    st.none() | st.booleans() | st.integers(-(2**63), 2**63 - 1) | st.floats(allow_nan=False)
+    | st.text(max_size=5),
+    lambda inner: st.lists(inner, max_size=3) | st.dictionaries(st.text(max_size=8), inner,
+                                                                  max_size=4),
+    max_leaves=12,
+)  # fmt: skip
+
+
+@given(JSON, st.sampled_from(["writers", "watches", "verify", "alarms", "decisions", None]))
+def test_a_damaged_state_file_is_refused_with_a_replay_error(junk: Any, where: str | None) -> None:
+    """Any JSON in place of a state, or in place of one of its parts: a ReplayError naming the
+    file, never another exception (and never a state that looks valid but is not)."""
+    import tempfile
+
+    good = {"version": 1, "ledger": "x.db", "writers": {}, "watches": [], "decisions": 0,
+            "outcomes": 0, "verify": {}, "by_reason": {}, "integrity": {}, "alarms": [],
+            "pieces": 0}  # fmt: skip
+    data = junk if where is None else {**good, where: junk}
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "state.json"
+        path.write_bytes(orjson.dumps(data))
+        try:
+            load_state(path, "x.db")
+        except ReplayError as exc:
+            assert "state.json" in str(exc)
