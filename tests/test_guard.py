@@ -144,9 +144,20 @@ def test_a_hole_in_a_chain_is_waited_for_then_reported_as_a_gap(tmp_path: Path) 
 
 
 GUARD_RUN = """
-import sys
+import sys, time
 sys.path.insert(0, sys.argv[3])
 from drawledger.replay.guard import guard
+from drawledger.replay.sources import Follower
+
+read_after = Follower.read_after
+
+
+def slow_read_after(self, *args):  # each piece takes a while: the kill lands between pieces
+    time.sleep(0.05)
+    return read_after(self, *args)
+
+
+Follower.read_after = slow_read_after
 guard(sys.argv[1], path=[sys.argv[3]], state=sys.argv[2], once=True, piece_size=40)
 """
 
