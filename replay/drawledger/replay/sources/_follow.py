@@ -25,6 +25,18 @@ from drawledger.replay.sources._tables import TABLE_COLUMNS, is_parquet, open_en
 Row = tuple[Any, ...]
 
 
+# The distinct writers of a table by a skip scan of its (writer, seq) index: one index lookup
+# per writer (a plain SELECT DISTINCT reads the whole index).
+_WRITERS = (
+    "WITH RECURSIVE w(x) AS (SELECT MIN(writer) FROM {table} UNION ALL "
+    "SELECT (SELECT MIN(writer) FROM {table} WHERE writer > w.x) FROM w WHERE w.x IS NOT NULL) "
+    "SELECT x FROM w"
+)
+
+
+_NEWEST_TS = sa.text("SELECT ts FROM decisions WHERE writer = :w ORDER BY seq DESC LIMIT 1")
+
+
 @dataclass(frozen=True)
 class Head:
     """The newest record of one writer: its seq and the ts of its newest decision."""
@@ -83,20 +95,24 @@ class Follower:
             raise LedgerError(f"cannot read ledger: {str(exc).splitlines()[0]}") from None
 
     def _sql_heads(self) -> dict[str, Head]:
+        """Each writer's newest record by index lookups: the writers found by a skip scan of
+        the (writer, seq) index, then each one's largest seq; the cost grows with the number
+        of writers, not of records."""
         assert self.engine is not None
         out: dict[str, Head] = {}
         with self.engine.connect() as conn:
-            ts: dict[str, float] = dict(conn.execute(sa.text(
-                "SELECT d.writer, d.ts FROM decisions d JOIN (SELECT writer, MAX(seq) AS m "
-                "FROM decisions GROUP BY writer) h ON d.writer = h.writer AND d.seq = h.m"
-            )).all())  # fmt: skip
             for table in ("decisions", "outcomes"):
-                for writer, seq in conn.execute(
-                    sa.text(f"SELECT writer, MAX(seq) FROM {table} GROUP BY writer")
-                ):
+                for (writer,) in conn.execute(sa.text(_WRITERS.format(table=table))):
+                    if writer is None:
+                        continue
+                    seq = conn.execute(sa.text(f"SELECT MAX(seq) FROM {table} WHERE writer = :w"),
+                                       {"w": writer}).scalar()  # fmt: skip
                     old = out.get(writer)
-                    if old is None or seq > old.seq:
-                        out[writer] = Head(int(seq), ts.get(writer))
+                    if seq is not None and (old is None or seq > old.seq):
+                        out[writer] = Head(int(seq), None)
+            for writer, head in out.items():
+                ts = conn.execute(_NEWEST_TS, {"w": writer}).scalar()
+                out[writer] = Head(head.seq, None if ts is None else float(ts))
         return out
 
     def _sql_after(self, writer: str, after: int, size: int) -> WriterPiece | None:
