@@ -537,3 +537,13 @@ def test_a_damaged_state_file_is_refused_with_a_replay_error(junk: Any, where: s
             load_state(path, "x.db")
         except ReplayError as exc:
             assert "state.json" in str(exc)
+
+
+def test_ctrl_c_between_looks_ends_following_with_the_summary(tmp_path: Path) -> None:
+    db = legacy_ledger(tmp_path / "coin.db", 0.5, 50)
+
+    def interrupted(_seconds: float) -> None:
+        raise KeyboardInterrupt
+
+    report = guard(db, interval=60.0, sleep=interrupted)
+    assert (True, 50) == (report.ok, report.state.decisions)

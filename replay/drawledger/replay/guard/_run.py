@@ -126,7 +126,7 @@ def guard(
     ``state`` is a JSON file that keeps where the guard stands, so that a restarted guard
     resumes where it stopped; without it every run starts from the beginning. ``once`` takes
     in what is new and returns; otherwise the guard looks again every ``interval`` seconds
-    (``steps`` looks at most). ``on_alarm`` is called with each new alarm. An alarm fires
+    (``steps`` looks at most; an interrupt while waiting ends it). ``on_alarm`` is called with each new alarm. An alarm fires
     when a draw's e-value reaches 2 / ``alpha``: under correct randomization that happens
     with probability at most ``alpha`` per draw over the whole run (docs/guard.md).
     """
@@ -181,7 +181,10 @@ def guard(
             looks += 1
             if once or (steps is not None and looks >= steps):
                 break
-            sleep(interval)
+            try:
+                sleep(interval)
+            except KeyboardInterrupt:  # Ctrl-C between looks: stop following, report
+                break
     finally:
         follower.close()
         if served is not None:
