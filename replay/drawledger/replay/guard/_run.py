@@ -126,9 +126,10 @@ def guard(
     ``state`` is a JSON file that keeps where the guard stands, so that a restarted guard
     resumes where it stopped; without it every run starts from the beginning. ``once`` takes
     in what is new and returns; otherwise the guard looks again every ``interval`` seconds
-    (``steps`` looks at most; an interrupt while waiting ends it). ``on_alarm`` is called with each new alarm. An alarm fires
-    when a draw's e-value reaches 2 / ``alpha``: under correct randomization that happens
-    with probability at most ``alpha`` per draw over the whole run (docs/guard.md).
+    (``steps`` looks at most; an interrupt while waiting ends it). ``on_alarm`` is called
+    with each new alarm. An alarm fires when a draw's e-value reaches 2 / ``alpha``: under
+    correct randomization that happens with probability at most ``alpha`` per draw over the
+    whole run (docs/guard.md).
     """
     if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0.0 < alpha < 1.0:
         raise ReplayError(f"alpha must be a number between 0 and 1, got {alpha!r}")
