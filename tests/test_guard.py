@@ -549,3 +549,23 @@ def test_ctrl_c_between_looks_ends_following_with_the_summary(tmp_path: Path) ->
 
     report = guard(db, interval=60.0, sleep=interrupted)
     assert (True, 50) == (report.ok, report.state.decisions)
+
+
+def test_json_dash_puts_the_summary_alone_on_stdout(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    db = legacy_ledger(tmp_path / "coin.db", 0.5, 100)
+    assert 0 == main(["guard", str(db), "--once", "--json", "-"])
+    data = orjson.loads(capsys.readouterr().out)
+    assert (True, 100) == (data["ok"], data["decisions"])
+
+
+def test_a_failing_on_alarm_command_is_one_line_and_the_guard_goes_on(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    db = legacy_ledger(tmp_path / "coin.db", 0.65, 2000)
+    hook = f'{sys.executable} -c "import sys; sys.exit(3)"'
+    assert 1 == main(["guard", str(db), "--once", "--on-alarm", hook])
+    err = capsys.readouterr().err
+    assert "drawledger guard: --on-alarm command exited 3\n" in err
+    assert "test ratio" in err
