@@ -24,7 +24,7 @@ from test_examples import EXAMPLES, service  # noqa: F401  (the live service fix
 import drawledger as dl
 from drawledger.cli import main
 from drawledger.exceptions import ReplayError
-from drawledger.replay.guard import guard, load_state, safe
+from drawledger.replay.guard import alarm_line, guard, load_state
 
 T0 = 1_767_225_600.0
 
@@ -505,12 +505,15 @@ def test_the_window_shows_a_recent_drift_as_information_not_an_alarm(tmp_path: P
     assert (True, 3000, True) == (report.ok, draw["window"]["n"], draw["window"]["drift"])
 
 
-@given(st.text())
-def test_nothing_unprintable_reaches_the_terminal(text: str) -> None:
-    """Whatever a ledger holds, the shown text has no control or format characters."""
-    shown = safe(text)
-    assert all(ch.isprintable() for ch in shown)
-    assert safe(text + "\x1b") == shown + "\\x1b"
+@given(st.text(), st.text())
+def test_nothing_unprintable_reaches_the_terminal(stream: str, decision: str) -> None:
+    """Whatever a ledger holds, an alarm line is one line without control, bidirectional or
+    invisible format characters (drawledger._text's definition of unsafe)."""
+    from drawledger._text import UNSAFE
+
+    line = alarm_line({"stream": stream, "draw": stream, "test": "ratio", "evidence": 1e3,
+                       "threshold": 200.0, "decision": decision, "detail": stream})  # fmt: skip
+    assert UNSAFE.search(line) is None
 
 
 JSON = st.recursive(

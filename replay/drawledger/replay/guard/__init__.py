@@ -7,7 +7,7 @@ from drawledger.replay.guard._evidence import (
     threshold,
     window_test,
 )
-from drawledger.replay.guard._report import GuardReport, alarm_line, safe
+from drawledger.replay.guard._report import GuardReport, alarm_line
 from drawledger.replay.guard._run import GAP_WAIT, PIECE_SIZE, WINDOW, guard
 from drawledger.replay.guard._state import GuardState, load_state, save_state
 
@@ -23,7 +23,6 @@ __all__ = [
     "guard",
     "load_state",
     "log_mixture_e",
-    "safe",
     "save_state",
     "threshold",
     "window_test",

@@ -7,6 +7,7 @@ import math
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
+from drawledger._text import visible
 from drawledger.replay._html import html_table
 from drawledger.replay.guard._evidence import threshold
 from drawledger.replay.guard._state import INTEGRITY_PROBLEMS, GuardState
@@ -16,31 +17,18 @@ if TYPE_CHECKING:
     from rich.console import Console, ConsoleOptions, RenderResult
 
 
-def safe(text: object) -> str:
-    """Ledger-derived text made harmless for a terminal: control characters (escape
-    sequences, carriage returns, bidirectional overrides' cousins in C0/C1) shown as escapes."""
-    out = []
-    for ch in str(text):
-        if ch.isprintable() or ch == " ":
-            out.append(ch)
-        else:
-            code = ord(ch)
-            out.append(f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}")
-    return "".join(out)
-
-
 def alarm_line(alarm: dict[str, Any]) -> str:
     """One line naming the stream, test, evidence and first affected decision of an alarm."""
-    where = f"stream '{safe(alarm['stream'])}'" if alarm["stream"] else "ledger"
+    where = f"stream '{visible(alarm['stream'])}'" if alarm["stream"] else "ledger"
     if alarm.get("draw"):
-        where += f" draw '{safe(alarm['draw'])}'"
+        where += f" draw '{visible(alarm['draw'])}'"
     evidence = ""
     if alarm.get("evidence") is not None:
         evidence = f" e-value {alarm['evidence']:.4g} >= {alarm['threshold']:.4g};"
     first = alarm.get("decision")
-    at = f" first affected decision '{safe(first)}';" if first is not None else ""
-    return (f"drawledger guard: ALARM {where} test {safe(alarm['test'])}:{evidence}{at} "
-            f"{safe(alarm['detail'])}")  # fmt: skip
+    at = f" first affected decision '{visible(first)}';" if first is not None else ""
+    return (f"drawledger guard: ALARM {where} test {visible(alarm['test'])}:{evidence}{at} "
+            f"{visible(alarm['detail'])}")  # fmt: skip
 
 
 @dataclass
@@ -117,7 +105,7 @@ class GuardReport:
             )
         for d in self.draws():
             p = d["window"]["p_value"]
-            table.add_row(Text(safe(d["stream"])), Text(safe(d["draw"] or "")), d["test"],
+            table.add_row(Text(visible(d["stream"])), Text(visible(d["draw"] or "")), d["test"],
                           str(d["n"]), f"{d['evidence']:.3g}", f"{d['uniforms_evidence']:.3g}",
                           str(d["window"]["n"]), "" if p is None else f"{p:.3g}")  # fmt: skip
         parts: list[Any] = [Text(self._head(), style="bold" if self.ok else "bold red"), table]
