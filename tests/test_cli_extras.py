@@ -82,3 +82,16 @@ def test_a_command_with_every_extra_installed_runs_past_the_imports(tmp_path: Pa
     done = _run("", "audit", str(tmp_path / "cards.db"))
     assert 2 == done.returncode
     assert "needs" not in done.stderr and "drawledger audit: error: no ledger at" in done.stderr
+
+
+def test_guard_without_numpy_names_the_replay_extra(tmp_path: Path) -> None:
+    done = _run("numpy", "guard", str(tmp_path / "cards.db"), "--once")
+    assert (2, f"drawledger: guard {REPLAY.format('numpy')}\n") == (done.returncode, done.stderr)
+
+
+def test_guard_metrics_without_prometheus_client_names_the_guard_extra(tmp_path: Path) -> None:
+    done = _run("prometheus_client", "guard", str(tmp_path / "cards.db"), "--once",
+                "--metrics-port", "9464")  # fmt: skip
+    assert 2 == done.returncode
+    assert ("drawledger: guard needs the guard extras (prometheus_client is missing): "
+            "pip install 'drawledger[guard]'\n") == done.stderr  # fmt: skip

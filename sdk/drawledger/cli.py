@@ -24,19 +24,26 @@ Handler = Callable[[argparse.Namespace], int]
 _EXTRAS = {
     "numpy": "replay", "pandas": "replay", "scipy": "replay", "pyarrow": "replay",
     "rich": "replay", "matplotlib": "replay", "pydantic": "replay",
-    "dask": "dask", "distributed": "dask",
+    "dask": "dask", "distributed": "dask", "prometheus_client": "guard",
 }  # fmt: skip
 
 _EXTRA_NAMES = {
     "replay": "the analysis extras",
     "dask": "the Dask extras",
     "parquet": "the Parquet extras",
+    "guard": "the guard extras",
 }
+
+
+def _missing_name(exc: ImportError) -> str:
+    """The module an import missed; pandas re-raises a missing numpy without a name, so the
+    name of the error's cause."""
+    return exc.name or getattr(exc.__cause__, "name", None) or ""
 
 
 def _missing_extra(exc: ImportError, command: str) -> str | None:
     """The extra that provides the module ``exc`` misses (None: not an optional module)."""
-    module = (exc.name or "").split(".")[0]
+    module = _missing_name(exc).split(".")[0]
     if module == "pyarrow" and command == "ingest":  # the SDK writes Parquet with pyarrow alone
         return "parquet"
     return _EXTRAS.get(module)
@@ -339,6 +346,63 @@ def _report(args: argparse.Namespace) -> int:
     return EXIT_OK if report.ok else EXIT_FOUND
 
 
+def _guard(args: argparse.Namespace) -> int:
+    """Follow a ledger; with --once exit 1 when an alarm stands, 0 when none does."""
+    import os
+    import shlex
+
+    import orjson
+
+    from drawledger.replay.guard import alarm_line, guard
+
+    command = shlex.split(args.on_alarm) if args.on_alarm else None
+    if args.on_alarm is not None and not command:
+        raise ValueError("--on-alarm: give a command, for example 'notify-qa --channel ops'")
+    if args.metrics_port is not None:
+        import prometheus_client  # noqa: F401  (missing: the one line naming the extra)
+
+    def on_alarm(alarm: dict[str, Any]) -> None:
+        print(alarm_line(alarm), file=sys.stderr, flush=True)
+        if command is not None:
+            _run_on_alarm(command, alarm)
+
+    report = guard(
+        args.ledger, path=args.path, allow=args.allow, state=args.state, once=args.once,
+        interval=args.interval, alpha=args.alpha, window=args.window, gap_wait=args.gap_wait,
+        integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None, on_alarm=on_alarm,
+        metrics_port=args.metrics_port,
+    )  # fmt: skip
+    data = orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n"
+    if args.json == "-":
+        sys.stdout.buffer.write(data)
+        sys.stdout.flush()
+    else:
+        if args.json:
+            with open(args.json, "wb") as out:
+                out.write(data)
+        from rich.console import Console
+
+        Console(highlight=False).print(report)
+    return EXIT_OK if report.ok else EXIT_FOUND
+
+
+def _run_on_alarm(command: list[str], alarm: dict[str, Any]) -> None:
+    """Run the operator's command with the alarm as JSON on stdin (an argument list: nothing
+    from the ledger reaches a shell); a failure is reported in one line, the guard goes on."""
+    import subprocess
+
+    import orjson
+
+    body = orjson.dumps({k: v for k, v in alarm.items() if k != "key"})
+    try:
+        done = subprocess.run(command, input=body, capture_output=True, timeout=60, check=False)
+    except (OSError, subprocess.TimeoutExpired) as exc:
+        print(f"drawledger guard: --on-alarm command failed: {exc}", file=sys.stderr)
+        return
+    if done.returncode != 0:
+        print(f"drawledger guard: --on-alarm command exited {done.returncode}", file=sys.stderr)
+
+
 def _engine_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--engine", choices=("local", "dask"), default="local",
                    help="where the work runs (default: local)")  # fmt: skip
@@ -449,6 +513,39 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--stream", metavar="S", help="decision stream of the estimate")
     _accept_options(p)
 
+    p = add("guard", "follow a growing ledger: verify, check and audit new records",
+            "drawledger guard decisions.db --path . --state guard.json --once",
+            _guard)  # fmt: skip
+    p.description = (
+        "Follow a ledger as it grows: replay each new decision, continue each writer's hash\n"
+        "chain, and update anytime-valid evidence that randomization is as declared (an alarm\n"
+        "per draw fires falsely with probability at most --alpha however long it watches).\n"
+        "One line per alarm on stderr. With --once: take in what is new since --state, then\n"
+        "exit 0 when no alarm stands, 1 when one does (docs/guard.md)."
+    )
+    p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
+    _replay_options(p)
+    p.add_argument("--state", metavar="FILE",
+                   help="JSON file keeping where the guard stands, to resume after a "
+                   "restart")  # fmt: skip
+    p.add_argument("--once", action="store_true", help="take in what is new, report and exit")
+    p.add_argument("--interval", type=float, default=5.0, metavar="SECONDS",
+                   help="seconds between looks at the ledger (default 5)")  # fmt: skip
+    p.add_argument("--json", metavar="FILE", help="write the summary as JSON ('-': stdout)")
+    p.add_argument("--on-alarm", metavar="COMMAND",
+                   help="run COMMAND (split like a shell line, never run by one) with each "
+                   "new alarm as JSON on stdin")  # fmt: skip
+    p.add_argument("--metrics-port", type=int, metavar="N",
+                   help="serve Prometheus metrics on 127.0.0.1:N")  # fmt: skip
+    p.add_argument("--alpha", type=float, default=0.01,
+                   help="false-alarm probability per draw over the whole run "
+                   "(default 0.01)")  # fmt: skip
+    p.add_argument("--window", type=int, default=10_000, metavar="N",
+                   help="draws in the windowed drift view (default 10000)")  # fmt: skip
+    p.add_argument("--gap-wait", type=float, default=30.0, metavar="SECONDS",
+                   help="how long a hole in a writer's chain is waited for before it is "
+                   "reported as a gap (default 30)")  # fmt: skip
+
     p = add("ingest", "load declared draws or spill files into a ledger",
             "drawledger ingest legacy-draws.jsonl decisions.db", _ingest)  # fmt: skip
     p.add_argument("file", metavar="FILE", help="JSON Lines: declared draws or a spill file")
@@ -473,7 +570,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         extra = _missing_extra(exc, args.command)
         if extra is None or args.debug:
             raise
-        print(f"drawledger: {args.command} needs {_EXTRA_NAMES[extra]} ({exc.name} is missing): "
+        print(f"drawledger: {args.command} needs {_EXTRA_NAMES[extra]} ({_missing_name(exc)} is "
+              f"missing): "
               f"pip install 'drawledger[{extra}]'", file=sys.stderr)  # fmt: skip
         return EXIT_USAGE
     except EstimateRefusedError as exc:  # a verdict about the data, not bad usage

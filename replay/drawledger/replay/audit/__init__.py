@@ -1,5 +1,6 @@
 """The randomization audit: do the recorded draws follow their declared distributions?"""
 
+from drawledger.replay.audit._collect import AuditState, chunk_state
 from drawledger.replay.audit._limits import (
     AS_DECLARED,
     NOT_AS_DECLARED,
@@ -16,7 +17,9 @@ __all__ = [
     "TEST_LABELS",
     "AuditFigure",
     "AuditReport",
+    "AuditState",
     "AuditTest",
     "audit",
     "audit_tables",
+    "chunk_state",
 ]

@@ -171,9 +171,16 @@ def chain_key(rec: Rec) -> tuple[int, int]:
     return (rec.seq if rec.seq.__class__ is int else 1 << 63, rec.order)
 
 
-def walk(report: IntegrityReport, records: Iterable[Rec], dup_ids: set[str]) -> None:
-    """Check records of writer chains, given in (seq, order) order within each writer."""
-    state: dict[str, tuple[int, str | None]] = {}  # writer -> (next expected seq, last hash)
+def walk(
+    report: IntegrityReport, records: Iterable[Rec], dup_ids: set[str],
+    start: dict[str, tuple[int, str | None]] | None = None,
+) -> dict[str, tuple[int, str | None]]:  # fmt: skip
+    """Check records of writer chains, given in (seq, order) order within each writer.
+
+    ``start`` continues chains checked before: writer -> (next expected seq, last hash).
+    Returns where each chain stands after the records.
+    """
+    state: dict[str, tuple[int, str | None]] = dict(start or {})  # writer -> (next seq, hash)
     for rec in records:
         if rec.order == 0:
             report.decisions += 1
@@ -199,6 +206,7 @@ def walk(report: IntegrityReport, records: Iterable[Rec], dup_ids: set[str]) -> 
             report.note("broken_links", rec.decision_id)
         state[rec.writer] = (rec.seq + 1, rec.hash)
     report.writers += len(state)
+    return state
 
 
 # What hashing a record whose fields have the wrong types raises (a NULL or text float, ...).

@@ -1,6 +1,7 @@
 """The one way to read a ledger: cut any ledger (SQLite, PostgreSQL, Parquet) into pieces and read
 them, whole tables or chunks of decisions with their draws."""
 
+from drawledger.replay.sources._follow import Follower, Head, WriterPiece
 from drawledger.replay.sources._outcomes import (
     outcome_totals,
     outcome_values,
@@ -38,10 +39,13 @@ from drawledger.replay.sources._tables import (
 __all__ = [
     "CHUNK_SIZE",
     "PARALLEL_CHUNK_SIZE",
+    "Follower",
+    "Head",
     "LedgerTables",
     "Piece",
     "Registry",
     "Task",
+    "WriterPiece",
     "is_parquet",
     "iter_chunks",
     "iter_decision_chunks",

@@ -1,0 +1,74 @@
+"""Can the guard keep up with the SDK? Its take-in rate against the SDK's write rate.
+
+Run: python -m pytest tests/benchmarks/test_guard_benchmark.py -m benchmark -s
+Results: docs/guard.md, "Cost".
+
+The decision is ``feature_card`` of tests/support/shop_decisions.py (a softmax over six cards,
+a pydantic input), recorded through the SDK into SQLite. Reported, on one core each:
+
+- ``write``: decisions per second the SDK records (calls, then ``close``: every record
+  written);
+- ``guard``: decisions per second the guard takes in from that ledger (reading, chain, replay,
+  the audit's statistics, the evidence, a state file saved after each piece), and the ratio
+  write / guard (above 1: the guard is the faster);
+- peak memory (``VmHWM`` of a fresh process; Linux) of the guard on two ledger sizes, to show
+  that it does not grow with the ledger.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import pytest
+import shop_decisions as sd
+from conftest import SUPPORT
+
+import drawledger as dl
+from drawledger.replay.guard import guard
+
+pytestmark = pytest.mark.benchmark
+
+N = 20_000
+MEMORY_SIZES = (20_000, 80_000)
+
+PEAK = """
+import sys
+sys.path.insert(0, sys.argv[2])
+from drawledger.replay.guard import guard
+guard(sys.argv[1], path=[sys.argv[2]], once=True)
+for line in open("/proc/self/status"):
+    if line.startswith("VmHWM"):
+        print(int(line.split()[1]) // 1024)
+"""
+
+
+def _record(path: Path, n: int) -> float:
+    led = dl.Ledger(path)
+    sd.use(led)
+    contexts = [sd.context(i) for i in range(64)]
+    start = time.perf_counter()
+    for i in range(n):
+        sd.feature_card(contexts[i % 64])
+    led.close()
+    return n / (time.perf_counter() - start)
+
+
+def test_guard_keeps_up_with_the_sdk() -> None:
+    with tempfile.TemporaryDirectory() as tmp:
+        db = Path(tmp) / "cards.db"
+        write = _record(db, N)
+        start = time.perf_counter()
+        report = guard(db, path=[SUPPORT], state=Path(tmp) / "state.json", once=True)
+        rate = N / (time.perf_counter() - start)
+        assert N == report.state.verify["verified"]
+        print(f"\nwrite {write:,.0f}/s, guard {rate:,.0f}/s, guard / write {rate / write:.2f}")
+        for n in MEMORY_SIZES:
+            big = Path(tmp) / f"cards-{n}.db"
+            _record(big, n)
+            done = subprocess.run([sys.executable, "-c", PEAK, str(big), str(SUPPORT)],
+                                  capture_output=True, text=True, check=True)  # fmt: skip
+            print(f"guard peak memory, {n:,} decisions: {done.stdout.strip()} MiB")
