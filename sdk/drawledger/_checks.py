@@ -1,16 +1,26 @@
-"""Checks of the values a recording call is given, and the memory of recent decision ids."""
+"""Checks of the values a recording call is given, their redaction, and the memory of recent
+decision ids."""
 
 from __future__ import annotations
 
+import hashlib
 import math
 import numbers
 from collections import deque
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from drawledger.exceptions import DrawArgumentError
+from drawledger import _records
+from drawledger.exceptions import DrawArgumentError, NotSerializableError
 
-__all__ = ["RecentIds", "declared_uniforms", "finite_number"]
+__all__ = [
+    "RecentIds",
+    "declared_uniforms",
+    "finite_number",
+    "plain_text",
+    "redact",
+    "timestamp",
+]
 
 
 def finite_number(x: Any) -> float | None:
@@ -69,3 +79,44 @@ class RecentIds:
         self._order.append(decision_id)
         if len(self._order) > self.size:
             self._ids.discard(self._order.popleft())
+
+
+def timestamp(ts: Any) -> float:
+    """A given ``ts`` as a float; a bad one is refused here rather than failing a whole batch."""
+    if isinstance(ts, bool) or not isinstance(ts, (int, float)) or not math.isfinite(ts):
+        raise NotSerializableError(f"ts must be a finite number of seconds, got {ts!r}")
+    return float(ts) + 0.0  # + 0.0: -0.0 becomes 0.0 (docs/ledger.md)
+
+
+def plain_text(*texts: str | None) -> None:
+    """Refuse NUL characters (PostgreSQL text cannot hold them) and lone surrogates (no UTF-8)."""
+    for text in texts:
+        if text is None:
+            continue
+        if "\x00" in text:
+            raise NotSerializableError(f"{text!r} contains a NUL character, which cannot be stored")
+        if not text.isascii():
+            try:
+                text.encode()
+            except UnicodeEncodeError:
+                raise NotSerializableError(
+                    f"{text!r} contains a lone surrogate, which is not text and cannot be stored"
+                ) from None
+
+
+def redact_value(value: Any, key: bytes) -> str:
+    digest = hashlib.blake2b(_records.to_json(value, "redacted field").encode(), digest_size=16,
+                             key=key, person=b"drawledger.r1")  # fmt: skip
+    return "redacted:" + digest.hexdigest()
+
+
+def redact(obj: Any, path: list[str], key: bytes) -> None:
+    head, rest = path[0], path[1:]
+    if isinstance(obj, dict) and head in obj:
+        if rest:
+            redact(obj[head], rest, key)
+        else:
+            obj[head] = redact_value(obj[head], key)
+    elif isinstance(obj, list):
+        for item in obj:
+            redact(item, path, key)

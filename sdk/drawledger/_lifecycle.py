@@ -18,12 +18,13 @@ from __future__ import annotations
 
 import logging
 import os
+import socket
 import sys
 import threading
 from collections.abc import Callable
 from typing import Any
 
-__all__ = ["EXIT_TIMEOUT", "at_exit", "guard_exit"]
+__all__ = ["EXIT_TIMEOUT", "at_exit", "guard_exit", "writer_id"]
 
 log = logging.getLogger("drawledger")
 
@@ -86,3 +87,9 @@ def _close_on_sigterm(close_all: Callable[[float | None], None]) -> None:
         os.kill(os.getpid(), signal.SIGTERM)
 
     signal.signal(signal.SIGTERM, close_then_die)
+
+
+def writer_id() -> str:
+    """A new writer id: host, process id and random bytes (docs/ledger.md)."""
+    host = socket.gethostname().split(".")[0] or "host"
+    return f"{host}-{os.getpid()}-{os.urandom(3).hex()}"

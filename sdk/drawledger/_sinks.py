@@ -274,3 +274,14 @@ def open_sink(
 
         return ParquetSink(os.fspath(target), durability=durability)
     raise LedgerError(f"unknown ledger format {format!r}; use 'parquet' or leave it out")
+
+
+def default_spill_dir(target: str, format: str | None) -> Path:
+    """Where a ledger spills by default: beside an SQLite file, ``<dir>.spill`` for Parquet."""
+    if format == "parquet":
+        return Path(target + ".spill")
+    if is_url(target):
+        if target.startswith("sqlite:///") and len(target) > 10:
+            return Path(target[10:]).parent
+        return Path("drawledger-spill")
+    return Path(target).expanduser().parent

@@ -9,10 +9,8 @@ import hashlib
 import inspect
 import itertools
 import logging
-import math
 import operator
 import os
-import socket
 import textwrap
 import threading
 import time
@@ -24,9 +22,17 @@ from pathlib import Path
 from typing import Any, Generic, ParamSpec, TypeVar
 
 from drawledger import _lifecycle, _records, _sinks, _stream
-from drawledger._checks import RecentIds, declared_uniforms, finite_number
+from drawledger._checks import (
+    RecentIds,
+    declared_uniforms,
+    finite_number,
+    plain_text,
+    redact,
+    timestamp,
+)
 from drawledger._probability import decision_propensity
-from drawledger._writer import FORK_WAIT, Chain, SpillFile, Stats, Writer
+from drawledger._spill import SpillFile
+from drawledger._writer import FORK_WAIT, Chain, Stats, Writer
 from drawledger.draw import Draw, DrawRecord, bucket_assign
 from drawledger.exceptions import (
     DecisionDefinitionError,
@@ -56,11 +62,6 @@ DRAW_KINDS = frozenset(
 REGISTRY: dict[str, Decision[Any]] = {}
 
 _LEDGERS: weakref.WeakSet[Ledger] = weakref.WeakSet()
-
-
-def _writer_id() -> str:
-    host = socket.gethostname().split(".")[0] or "host"
-    return f"{host}-{os.getpid()}-{os.urandom(3).hex()}"
 
 
 def code_hash(fn: Callable[..., Any]) -> str:
@@ -193,47 +194,6 @@ def _json_or_none(obj: Any) -> str | None:
         return None
 
 
-def _timestamp(ts: Any) -> float:
-    """A given ``ts`` as a float; a bad one is refused here rather than failing a whole batch."""
-    if isinstance(ts, bool) or not isinstance(ts, (int, float)) or not math.isfinite(ts):
-        raise NotSerializableError(f"ts must be a finite number of seconds, got {ts!r}")
-    return float(ts) + 0.0  # + 0.0: -0.0 becomes 0.0 (docs/ledger.md)
-
-
-def _plain_text(*texts: str | None) -> None:
-    """Refuse NUL characters (PostgreSQL text cannot hold them) and lone surrogates (no UTF-8)."""
-    for text in texts:
-        if text is None:
-            continue
-        if "\x00" in text:
-            raise NotSerializableError(f"{text!r} contains a NUL character, which cannot be stored")
-        if not text.isascii():
-            try:
-                text.encode()
-            except UnicodeEncodeError:
-                raise NotSerializableError(
-                    f"{text!r} contains a lone surrogate, which is not text and cannot be stored"
-                ) from None
-
-
-def _redact_value(value: Any, key: bytes) -> str:
-    digest = hashlib.blake2b(_records.to_json(value, "redacted field").encode(), digest_size=16,
-                             key=key, person=b"drawledger.r1")  # fmt: skip
-    return "redacted:" + digest.hexdigest()
-
-
-def _redact(obj: Any, path: list[str], key: bytes) -> None:
-    head, rest = path[0], path[1:]
-    if isinstance(obj, dict) and head in obj:
-        if rest:
-            _redact(obj[head], rest, key)
-        else:
-            obj[head] = _redact_value(obj[head], key)
-    elif isinstance(obj, list):
-        for item in obj:
-            _redact(item, path, key)
-
-
 class Ledger:
     """Where decisions, draws and outcomes are recorded.
 
@@ -290,7 +250,11 @@ class Ledger:
         self._redact_paths = [field.split(".") for field in redact]
         self.queue_size = queue_size
         self.block_timeout = block_timeout
-        self._spill_dir = Path(spill_dir) if spill_dir is not None else self._default_spill_dir()
+        self._spill_dir = (
+            Path(spill_dir)
+            if spill_dir is not None
+            else _sinks.default_spill_dir(self.target, format)
+        )
         self._seed_source: Callable[[], bytes] = _stream.new_seed
         self._taps: list[Callable[[Any], bool]] = []
         self._batch_size = batch_size
@@ -301,18 +265,9 @@ class Ledger:
         self._init_process()
         _LEDGERS.add(self)
 
-    def _default_spill_dir(self) -> Path:
-        if self.format == "parquet":
-            return Path(self.target + ".spill")
-        if _sinks.is_url(self.target):
-            if self.target.startswith("sqlite:///") and len(self.target) > 10:
-                return Path(self.target[10:]).parent
-            return Path("drawledger-spill")
-        return Path(self.target).expanduser().parent
-
     def _init_process(self) -> None:
         """State that belongs to one process: writer id, chain, queue, thread."""
-        self.writer = _writer_id()
+        self.writer = _lifecycle.writer_id()
         self._lock = threading.Lock()
         self._ids = itertools.count()
         self._stats = Stats()
@@ -394,7 +349,7 @@ class Ledger:
         if self._redact_paths:
             plain = _records.from_json(_records.to_json(inputs, what))
             for path in self._redact_paths:
-                _redact(plain, path, self._redact_key)
+                redact(plain, path, self._redact_key)
             return _records.to_json(plain, what)
         return _records.to_json(inputs, what)
 
@@ -430,7 +385,7 @@ class Ledger:
         to_json = _records.to_json
         for idx, name, kind, args, u, value, prob, is_density in draws:
             if name is not None and ("\x00" in name or not name.isascii()):
-                _plain_text(name)  # raises when it is not plain text
+                plain_text(name)  # raises when it is not plain text
             try:
                 value_json = encoded[1] if encoded is not None and value is encoded[0] else \
                     to_json(value, "its value")  # fmt: skip
@@ -455,9 +410,9 @@ class Ledger:
         did = self._next_id() if decision_id is None else decision_id
         if not isinstance(did, str) or not did:
             raise NotSerializableError("decision_id must be a non-empty string")
-        _plain_text(did, stream, unit)  # draw names: in _draw_rows
+        plain_text(did, stream, unit)  # draw names: in _draw_rows
         draw_rows = self._draw_rows(did, draws, encoded)
-        stamp = time.time() if ts is None else _timestamp(ts)
+        stamp = time.time() if ts is None else timestamp(ts)
         row = (did, stream, unit, stamp, fn, chash, inputs, params, action, prop + 0.0, kind,
                seed, self.writer)  # fmt: skip
         self._enqueue(("d-", row, draw_rows), decision_id)
@@ -499,7 +454,7 @@ class Ledger:
             raise NotSerializableError("outcome: decision_id must be a non-empty string")
         if not isinstance(name, str) or not name:
             raise NotSerializableError("outcome: name must be a non-empty string")
-        _plain_text(decision_id, name)
+        plain_text(decision_id, name)
         number = finite_number(value)
         if number is None:
             raise NotSerializableError(
@@ -507,7 +462,7 @@ class Ledger:
             )
         if self._closed:
             raise LedgerClosedError(f"ledger {self.target!r} is closed")
-        stamp = time.time() if ts is None else _timestamp(ts)
+        stamp = time.time() if ts is None else timestamp(ts)
         self._enqueue(("o-", (decision_id, name, number + 0.0, stamp, self.writer)))
 
     def bucket(
