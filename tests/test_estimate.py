@@ -409,9 +409,10 @@ def _changed_code(root: Path, edited: str) -> tuple[Path, Path]:
 
 
 def test_accepted_code_changes_that_replay_as_recorded_are_used(tmp_path):
-    """A comment changes the code hash, not the draws: refused by default; with code-changed
+    """An edit that changes the code, not the draws: refused by default; with code-changed
     accepted every decision is used (nothing dropped, nothing biased)."""
-    ledger, code = _changed_code(tmp_path, "    # a comment changes the hash\n" + SOFTMAX)
+    edited = SOFTMAX.replace("temperature=temperature", "temperature=temperature * 1.0")
+    ledger, code = _changed_code(tmp_path, edited)
     with pytest.raises(EstimateRefusedError, match=r"40 of 40 .*\(code-changed: 40\)"):
         estimate(ledger, reward="checkout", path=[code])
     report = estimate(ledger, reward="checkout", path=[code],

@@ -20,6 +20,7 @@ from hypothesis import HealthCheck, given, settings
 from strategies import decision_specs
 
 import drawledger as dl
+from drawledger._code import legacy_code_hash
 from drawledger._records import to_json
 from drawledger.draw import bucket_assign
 from drawledger.exceptions import LedgerError, ReplayError
@@ -197,12 +198,43 @@ def test_code_edited_after_logging(service: Callable[..., Service]) -> None:
     assert 12 == report.by_reason["code-changed"]
 
 
-def test_cosmetic_edit_is_only_code_changed(service: Callable[..., Service]) -> None:
+def test_comment_docstring_and_formatting_edits_keep_the_code_identity(
+    service: Callable[..., Service],
+) -> None:
+    """Comments, blank lines and reformatting cannot change behaviour: verified."""
     s = service()
-    s.edit("    # a comment changes the hash, not the draws\n" + PLAIN)
+    s.edit("\n    # a comment changes nothing\n"
+           "    return draw.softmax(\n        cards, scores,  temperature=temperature,\n"
+           "        name='card',\n    )")  # fmt: skip
+    report = s.verify()
+    assert {} == report.by_reason
+    assert (12, 12) == (report.decisions, report.verified)
+
+
+def test_a_draw_preserving_logic_edit_is_only_code_changed(
+    service: Callable[..., Service],
+) -> None:
+    s = service()
+    s.edit(PLAIN.replace("temperature=temperature", "temperature=temperature * 1.0"))
     report = s.verify()
     assert {"code-changed": 12} == report.by_reason
     assert report.rows["propensity"].equals(report.rows["logged_propensity"])
+
+
+def test_identities_recorded_before_v2_are_compared_with_the_old_hash(tmp_path: Path) -> None:
+    """A ledger written before the versioned identity holds the hash of the source text: it
+    still verifies against unchanged code, and a comment still counts as a change for it."""
+    s = Service(tmp_path)
+    try:
+        pick = s.module.pick
+        pick.code_hash = legacy_code_hash(pick.fn)  # what a writer before v2 recorded
+        s.record(12)
+        s.forget()
+        assert {} == s.verify().by_reason
+        s.edit("    # a comment\n" + PLAIN)
+        assert {"code-changed": 12} == s.verify().by_reason
+    finally:
+        s.forget()
 
 
 def test_hidden_global_counter_is_nondeterministic(service: Callable[..., Service]) -> None:

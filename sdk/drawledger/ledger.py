@@ -12,16 +12,15 @@ import math
 import operator
 import os
 import socket
-import textwrap
 import threading
 import time
-import tokenize
 import weakref
 from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any, Generic, ParamSpec, TypeVar
 
 from drawledger import _records, _sinks, _stream
+from drawledger._code import code_hash
 from drawledger._probability import decision_propensity
 from drawledger._writer import Chain, SpillFile, Stats, Writer
 from drawledger.draw import Draw, DrawRecord, bucket_assign
@@ -55,17 +54,6 @@ _LEDGERS: weakref.WeakSet[Ledger] = weakref.WeakSet()
 def _writer_id() -> str:
     host = socket.gethostname().split(".")[0] or "host"
     return f"{host}-{os.getpid()}-{os.urandom(3).hex()}"
-
-
-def code_hash(fn: Callable[..., Any]) -> str:
-    """Hash of a function's source text (or of its bytecode when the source is not available)."""
-    try:
-        data = textwrap.dedent(inspect.getsource(fn)).encode()
-    except (OSError, TypeError, SyntaxError, tokenize.TokenError):
-        # No readable source (REPL, exec'd code, a file changed on disk): hash the bytecode.
-        code = fn.__code__
-        data = code.co_code + repr(code.co_consts).encode()
-    return hashlib.blake2b(data, digest_size=16).hexdigest()
 
 
 class Decision(Generic[R]):

@@ -10,6 +10,7 @@ from typing import Any
 
 import orjson
 
+from drawledger._code import same_code
 from drawledger._probability import decision_propensity
 from drawledger._records import (  # the SDK's own JSON encoding, bit for bit
     JSON_OPTIONS,
@@ -227,7 +228,7 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
     raw = parse_object(row[DEC.inputs], "inputs")
     out.inputs = raw
     decision = ctx.resolve(row[DEC.fn])
-    if decision.code_hash != row[DEC.code_hash]:
+    if not same_code(as_text(row[DEC.code_hash]), decision.fn, decision.code_hash):
         out.add(
             "code-changed", f"code hash {row[DEC.code_hash]} recorded, {decision.code_hash} now"
         )
