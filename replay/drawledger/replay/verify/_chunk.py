@@ -66,6 +66,8 @@ def verify_chunk(
         for reason, detail in reasons.items():
             result.by_reason[reason] += 1
             shown = result.examples.setdefault(reason, [])
+            if not shown and reason in checked.short:
+                result.short[reason] = checked.short[reason]
             if len(shown) < MAX_EXAMPLES:
                 shown.append((did, detail))
         prop = checked.propensity

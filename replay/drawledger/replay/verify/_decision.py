@@ -37,6 +37,7 @@ from drawledger.replay.propensity import (
     remembered,
     single_draw_probability,
 )
+from drawledger.replay.verify._diff import mismatch, same
 from drawledger.replay.verify._imports import (
     build_inputs,
     immutable,
@@ -44,24 +45,11 @@ from drawledger.replay.verify._imports import (
     parse_object,
     resolve_decision,
 )
-from drawledger.replay.verify._types import PROBES, REL_TOL, SHOW, Row, Settings
+from drawledger.replay.verify._types import PROBES, REL_TOL, Row, Settings
 
 
 def _close(a: float, b: float) -> bool:
     return a == b or abs(a - b) <= REL_TOL * max(abs(a), abs(b))
-
-
-def _same(a: Any, b: Any) -> bool:
-    """JSON values equal, numbers within 1e-12 relative."""
-    if isinstance(a, bool) or isinstance(b, bool):
-        return a is b
-    if isinstance(a, (int, float)) and isinstance(b, (int, float)):
-        return _close(float(a), float(b))
-    if isinstance(a, list) and isinstance(b, list):
-        return len(a) == len(b) and all(_same(x, y) for x, y in zip(a, b, strict=True))
-    if isinstance(a, dict) and isinstance(b, dict):
-        return a.keys() == b.keys() and all(_same(a[k], b[k]) for k in a)
-    return bool(a == b)
 
 
 def _parse(text: Any, what: str) -> Any:
@@ -77,7 +65,7 @@ def _json_same(replayed: str, recorded: Any, what: str) -> bool:
     """Replayed JSON text equals the recorded text (floats at 1e-12); corrupt text raises."""
     if replayed == recorded:
         return True
-    return _same(from_json(replayed), _parse(recorded, what))
+    return same(from_json(replayed), _parse(recorded, what))
 
 
 def as_text(x: Any) -> str | None:
@@ -88,10 +76,6 @@ def _number(x: Any, what: str) -> float:
     if isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x):
         raise BadRecordError(f"{what} is {x!r}, not a finite number")
     return float(x)
-
-
-def _short(text: str) -> str:
-    return text if len(text) <= SHOW else text[: SHOW - 3] + "..."
 
 
 def _json(obj: Any, what: str) -> str:
@@ -119,16 +103,24 @@ def _logged(encoded: Sequence[tuple[Any, ...]], action_json: str) -> tuple[float
 class _Checked:
     """Reasons found for one decision, with the first detail of each."""
 
-    __slots__ = ("inputs", "propensity", "reasons")
+    __slots__ = ("inputs", "propensity", "reasons", "short")
 
     def __init__(self) -> None:
         self.reasons: dict[str, str] = {}
+        self.short: dict[str, str] = {}  # the details cut for the terminal, where they differ
         self.propensity: Propensity | None = None
         self.inputs: Mapping[str, Any] = {}
 
     def add(self, reason: str, detail: str) -> None:
         if reason not in self.reasons:
             self.reasons[reason] = detail
+
+    def differ(self, reason: str, label: str, replayed: Any, recorded: Any) -> None:
+        """Add ``reason`` with where the two values differ (``_diff.mismatch``)."""
+        if reason not in self.reasons:
+            self.reasons[reason], short = mismatch(label, replayed, recorded)
+            if short != self.reasons[reason]:
+                self.short[reason] = short
 
 
 class Context:
@@ -208,20 +200,16 @@ def _compare_draws(out: _Checked, replayed: list[tuple[Any, ...]], recorded: lis
         if kind != r_kind or name != as_text(r_name):
             out.add("args", f"{where}: recorded as {r_kind} {as_text(r_name)!r}")
         elif not _json_same(args, r_args, f"{where} arguments"):
-            out.add(
-                "args",
-                f"{where}: arguments {_short(args)} replayed, {_short(r_args)} recorded",
-            )
+            out.differ("args", f"{where}: arguments", from_json(args), from_json(r_args))
         if not _json_same(u, r_u, f"{where} uniforms"):
-            out.add("value", f"{where}: uniforms {_short(u)} replayed, {_short(r_u)} recorded")
+            out.differ("value", f"{where}: uniforms", from_json(u), from_json(r_u))
         if not _json_same(value, r_value, f"{where} value"):
-            out.add(
-                "value",
-                f"{where}: value {_short(value)} replayed, {_short(r_value)} recorded",
-            )
+            out.differ("value", f"{where}: value", from_json(value), from_json(r_value))
         if not _close(prob, r_prob) or dens != bool(r_dens):
             what = "density" if dens else "probability"
-            out.add("probability", f"{where}: {what} {prob!r} replayed, {r_prob!r} recorded")
+            if dens != bool(r_dens):
+                what = f"{what} (recorded as {'a density' if r_dens else 'a probability'})"
+            out.differ("probability", f"{where}: {what}", prob, r_prob)
 
 
 def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> None:
@@ -253,11 +241,11 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
         action_key = action
     else:
         action_key = to_json(from_json(row[DEC.action]), "action")
-        out.add("action", f"action {_short(action)} replayed, {_short(row[DEC.action])} recorded")
+        out.differ("action", "action", from_json(action), from_json(row[DEC.action]))
     prop, kind = _logged(first, action)
     if not _close(prop, logged) or kind != row[DEC.propensity_kind]:
-        recorded = f"{logged!r} ({row[DEC.propensity_kind]})"
-        out.add("probability", f"logged propensity {recorded} recorded, {prop!r} ({kind}) replayed")
+        out.differ("probability", "logged propensity", {"value": prop, "kind": kind},
+                   {"value": logged, "kind": row[DEC.propensity_kind]})  # fmt: skip
     try:
         again = Draw(seed)
         returned = decision.run(again, inputs, params)
@@ -348,21 +336,18 @@ def _check_bucket(out: _Checked, row: Row, draw: Row, unit: str, shares: dict[st
     except DrawArgumentError as exc:
         raise BadRecordError(f"bucket arguments: {exc}") from None
     arm, u, prob, _, _ = next((f for f in found if [f[1]] == recorded_u), found[0])
-    if not isinstance(recorded_u, list) or not _same([u], recorded_u):
-        out.add("value", f"bucket uniform {u!r} recomputed, {_short(draw[DRAW.u])} recorded")
+    if not isinstance(recorded_u, list) or not same([u], recorded_u):
+        out.differ("value", "bucket uniforms", [u], recorded_u)
     if _arm(draw[DRAW.value], "bucket arm") != arm:
-        out.add("value", f"bucket arm {arm!r} recomputed, {_short(draw[DRAW.value])} recorded")
+        out.differ("value", "bucket arm", arm, _arm(draw[DRAW.value], "bucket arm"))
     if not _close(prob, _number(draw[DRAW.prob], "bucket share")):
-        out.add("probability", f"bucket share {prob!r} recomputed, {draw[DRAW.prob]!r} recorded")
+        out.differ("probability", "bucket share", prob, draw[DRAW.prob])
     if not _close(prob, _number(row[DEC.propensity], "logged propensity")):
-        out.add(
-            "probability",
-            f"logged propensity {row[DEC.propensity]!r} recorded, {prob!r} recomputed",
-        )
+        out.differ("probability", "logged propensity", prob, row[DEC.propensity])
     if as_text(row[DEC.unit]) != unit:
         out.add("args", f"bucket unit {unit!r} in the draw, {row[DEC.unit]!r} on the decision")
     if _arm(row[DEC.action], "action") != arm:
-        out.add("action", f"action {_short(row[DEC.action])} recorded, arm {arm!r} recomputed")
+        out.differ("action", "action (the arm)", arm, _arm(row[DEC.action], "action"))
     out.propensity = Propensity(prob, EXACT)
 
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import io
 import os
 from collections import Counter
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 import pandas as pd
@@ -33,6 +33,7 @@ class VerifyReport:
     methods: dict[str, int]
     integrity: IntegrityReport
     rows: pd.DataFrame
+    short: dict[str, str] = field(default_factory=dict)  # first examples cut for the terminal
 
     @property
     def ok(self) -> bool:
@@ -79,7 +80,7 @@ class VerifyReport:
             for reason in sorted(self.by_reason, key=REASONS.index):
                 shown = self.examples.get(reason, [])
                 ids = ", ".join(d for d, _ in shown)
-                first = f"{ids}\n{shown[0][1]}" if shown else ""
+                first = f"{ids}\n{self.short.get(reason, shown[0][1])}" if shown else ""
                 reasons.add_row(reason, str(self.by_reason[reason]), first)
             parts.append(reasons)
         parts.append(Text(self.integrity.render()))
@@ -139,6 +140,7 @@ def build_report(
         methods=dict(total.methods),
         integrity=integrity,
         rows=rows,
+        short=dict(total.short),
     )
 
 

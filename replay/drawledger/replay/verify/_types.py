@@ -79,8 +79,13 @@ class ChunkResult:
     examples: dict[str, list[tuple[str, str]]] = field(default_factory=dict)
     methods: Counter[str] = field(default_factory=Counter)
     rows: list[pd.DataFrame] = field(default_factory=list)
+    # The first example of each reason cut for the terminal (when its detail is long).
+    short: dict[str, str] = field(default_factory=dict)
 
     def add(self, other: ChunkResult) -> None:
+        for reason, text in other.short.items():
+            if not self.examples.get(reason):
+                self.short.setdefault(reason, text)
         for stream, found in other.stream_reasons.items():
             self.stream_reasons.setdefault(stream, Counter()).update(found)
         for stream, counts in other.streams.items():
