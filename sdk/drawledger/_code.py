@@ -99,7 +99,7 @@ def module_file(fn: Callable[..., Any]) -> str | None:
         where = inspect.getsourcefile(fn)
     except TypeError:
         where = None
-    if where is None:
+    if where is None or not Path(where).is_file():
         return None
     parts = fn.__module__.split(".")
     if Path(where).name == "__init__.py":

@@ -28,7 +28,7 @@ from urllib.parse import quote
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from drawledger._schema import DEC, OUT, SPECS, TableSpec
+from drawledger._schema import CODE_VERSIONS, DEC, OUT, SPECS, TableSpec
 from drawledger.exceptions import LedgerError
 
 if TYPE_CHECKING:
@@ -48,6 +48,8 @@ def _arrow_schema(table: TableSpec) -> pa.Schema:
 
 SCHEMAS = {table.name: _arrow_schema(table) for table in SPECS}
 TABLES = tuple(SCHEMAS)
+VERSIONS = CODE_VERSIONS.name
+SCHEMAS[VERSIONS] = _arrow_schema(CODE_VERSIONS)  # an added table: older ledgers lack it
 
 # Dictionary encoding only where values repeat, statistics only on numbers (what readers filter
 # on): unique text such as ids and hashes costs time in both and gains nothing.
@@ -278,6 +280,23 @@ class ParquetSink:
         if self.full:
             for folder in {final.parent for _, final in staged}:
                 _fsync_path(folder, directory=True)
+
+    def write_versions(self, rows: list[Row]) -> None:
+        """Store code version rows (docs/deploys.md) as one part file of ``code_versions``."""
+        if not rows:
+            return
+        folder = self.root / VERSIONS
+        folder.mkdir(parents=True, exist_ok=True)
+        n = time.time_ns()  # a sink reopened by the same writer never reuses a name
+        name = f"{n:020d}-{n:020d}-{writer_tag(str(rows[0][-1]))}{SUFFIX}"
+        tmp = folder / f".{name}.{os.getpid()}.{os.urandom(4).hex()}.tmp"
+        try:
+            pq.write_table(rows_to_table(rows, VERSIONS), tmp)
+            if self.full:
+                _fsync_path(tmp)
+            os.replace(tmp, folder / name)
+        finally:
+            tmp.unlink(missing_ok=True)
 
     def present_seqs(self, table: str, writer: str, low: int, high: int) -> set[int]:
         """The seqs of ``writer`` between ``low`` and ``high`` already in ``table``."""

@@ -162,6 +162,8 @@ class Writer:
         self.retry_delay = retry_delay
         self.cooldown = cooldown
         self.queue: deque[Item] = deque()
+        # Code version rows (docs/deploys.md) waiting for the sink; written before the next batch.
+        self.versions: list[tuple[Any, ...]] = []
         self._wake = threading.Event()
         self._stop = False
         self._thread: threading.Thread | None = None
@@ -348,6 +350,8 @@ class Writer:
             try:
                 if self._sink is None:
                     self._sink = self._open_sink()
+                if self.versions:
+                    self._write_versions(self._sink)
                 self._sink.write(decisions, draws, outcomes)
                 self.stats.written += len(items)
                 self._down_for = self.cooldown
@@ -369,6 +373,14 @@ class Writer:
             log.error("drawledger: spill to %s failed: %s", self.spill.path, exc)
             return exc
         return None
+
+    def _write_versions(self, sink: Sink) -> None:
+        """Store the code versions noted so far (kept for the next batch when this fails)."""
+        pending = self.versions[:]
+        write = getattr(sink, "write_versions", None)
+        if write is not None:
+            write(pending)
+        del self.versions[: len(pending)]
 
     def spill_items(self, items: list[Item]) -> None:
         self.spill.write(items)

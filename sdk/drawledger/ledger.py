@@ -20,7 +20,7 @@ from pathlib import Path
 from typing import Any, Generic, ParamSpec, TypeVar
 
 from drawledger import _records, _sinks, _stream
-from drawledger._code import code_hash
+from drawledger._code import code_hash, function_source, module_file
 from drawledger._probability import decision_propensity
 from drawledger._writer import Chain, SpillFile, Stats, Writer
 from drawledger.draw import Draw, DrawRecord, bucket_assign
@@ -109,6 +109,8 @@ class Decision(Generic[R]):
         self._inputs_what = f"{self.name}: inputs"
         self._action_what = f"{self.name}: action"
         self.code_hash = code_hash(fn)
+        self.source = function_source(fn)  # stored once per version (docs/deploys.md)
+        self.module_file = module_file(fn)
         functools.update_wrapper(self, fn)
         REGISTRY[self.name] = self
 
@@ -288,6 +290,7 @@ class Ledger:
         self._lock = threading.Lock()
         self._ids = itertools.count()
         self._stats = Stats()
+        self._versions: set[Decision[Any]] = set()  # decisions whose code version is noted
         spill = SpillFile(self._spill_dir / f"drawledger-spill-{self.writer}.jsonl")
         self._writer = Writer(
             self._open_sink,
@@ -356,10 +359,19 @@ class Ledger:
             draws[0].value is action or _json_or_none(draws[0].value) == action_json
         )
         prop, kind = decision_propensity(draws, single, _PROB)
+        if decision not in self._versions:
+            self._note_version(decision)
         self._append_decision(
             decision_id, decision.stream, unit, None, decision.name, decision.code_hash,
             inputs, params, action_json, prop, kind, draw.seed.hex(), draws, (action, action_json),
         )  # fmt: skip
+
+    def _note_version(self, decision: Decision[Any]) -> None:
+        """Queue the row of the decision's code version (the first use by this writer)."""
+        self._versions.add(decision)
+        row = (decision.code_hash, decision.stream, decision.name, decision.module_file,
+               decision.source, time.time(), self.writer)  # fmt: skip
+        self._writer.versions.append(row)
 
     def _draw_rows(
         self, did: str, draws: Sequence[DrawRecord], encoded: tuple[Any, str] | None = None

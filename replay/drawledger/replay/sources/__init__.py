@@ -31,13 +31,22 @@ from drawledger.replay.sources._tables import (
     open_engine,
     read_tables,
 )
+from drawledger.replay.sources._versions import (
+    VERSION_COLUMNS,
+    VersionUse,
+    decision_versions,
+    read_code_versions,
+)
 
 __all__ = [
     "CHUNK_SIZE",
     "PARALLEL_CHUNK_SIZE",
+    "VERSION_COLUMNS",
     "LedgerTables",
     "Piece",
     "Task",
+    "VersionUse",
+    "decision_versions",
     "is_parquet",
     "iter_chunks",
     "iter_decision_chunks",
@@ -48,6 +57,7 @@ __all__ = [
     "partitions",
     "pieces",
     "plan",
+    "read_code_versions",
     "read_piece",
     "read_piece_frames",
     "read_tables",
