@@ -196,8 +196,8 @@ def test_code_edited_after_logging(service: Callable[..., Service]) -> None:
     report = s.verify()
     assert not report.ok
     assert 12 == report.mismatched
-    assert {"code-changed", "args"} <= set(report.by_reason)
-    assert 12 == report.by_reason["code-changed"]
+    assert {"version-not-found", "args"} <= set(report.by_reason)
+    assert 12 == report.by_reason["version-not-found"]
 
 
 def test_comment_docstring_and_formatting_edits_keep_the_code_identity(
@@ -213,14 +213,24 @@ def test_comment_docstring_and_formatting_edits_keep_the_code_identity(
     assert (12, 12) == (report.decisions, report.verified)
 
 
-def test_a_draw_preserving_logic_edit_is_only_code_changed(
+def test_a_draw_preserving_logic_edit_is_only_version_not_found(
     service: Callable[..., Service],
 ) -> None:
     s = service()
     s.edit(PLAIN.replace("temperature=temperature", "temperature=temperature * 1.0"))
     report = s.verify()
-    assert {"code-changed": 12} == report.by_reason
+    assert {"version-not-found": 12} == report.by_reason
     assert report.rows["propensity"].equals(report.rows["logged_propensity"])
+
+
+def test_without_a_stored_source_a_changed_version_is_code_changed(
+    service: Callable[..., Service],
+) -> None:
+    """Ledgers written before sources were stored: the record's version is only a hash."""
+    s = service()
+    _sql(s.ledger, "DROP TABLE code_versions")
+    s.edit(PLAIN.replace("temperature=temperature", "temperature=temperature * 1.0"))
+    assert {"code-changed": 12} == s.verify().by_reason
 
 
 def test_identities_recorded_before_v2_are_compared_with_the_old_hash(tmp_path: Path) -> None:
@@ -234,7 +244,7 @@ def test_identities_recorded_before_v2_are_compared_with_the_old_hash(tmp_path: 
         s.forget()
         assert {} == s.verify().by_reason
         s.edit("    # a comment\n" + PLAIN)
-        assert {"code-changed": 12} == s.verify().by_reason
+        assert {"version-not-found": 12} == s.verify().by_reason
     finally:
         s.forget()
 
@@ -280,9 +290,10 @@ def test_a_long_differing_text_is_whole_in_json_and_cut_around_the_difference_in
     replayed, recorded = "pasta-" + "a" * 280 + "B" + "a" * 19, "pasta-" + "a" * 300
     assert f'draw 0 (softmax \'card\'): arguments options[0]: "{replayed}" replayed, ' \
         f'"{recorded}" recorded' == detail  # fmt: skip
-    shown = report.render()
+    shown = report.short["args"]  # what the terminal's reasons table shows
     assert "aaaB" in shown
     assert "pasta-" not in shown  # cut before the difference, never at it
+    assert "options[0]:" in report.render()
 
 
 @pytest.mark.parametrize(

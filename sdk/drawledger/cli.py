@@ -82,7 +82,7 @@ def _verify(args: argparse.Namespace) -> int:
         mc_samples=args.mc_samples, export=args.export, keep_rows=args.export is not None,
         progress=True,
         integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None, engine=args.engine,
-        scheduler=args.scheduler,
+        scheduler=args.scheduler, history=not args.no_history,
     )  # fmt: skip
     if args.json:
         with open(args.json, "wb") as out:
@@ -395,6 +395,9 @@ def build_parser() -> argparse.ArgumentParser:
                    "(default 4096)")  # fmt: skip
     p.add_argument("--mc-samples", type=int, default=2000, metavar="N",
                    help="Monte Carlo runs per decision past the budget (default 2000)")  # fmt: skip
+    p.add_argument("--no-history", action="store_true",
+                   help="do not search the git history of --path directories for the code "
+                   "versions that logged older records (docs/deploys.md)")  # fmt: skip
     _engine_options(p)
 
     p = add("versions", "list the code versions that made a ledger's decisions, or diff two",

@@ -13,6 +13,7 @@ from drawledger.replay.verify._imports import (
 from drawledger.replay.verify._report import VerifyReport
 from drawledger.replay.verify._run import verify
 from drawledger.replay.verify._types import NOT_FAILING, REASONS, Settings, absolute_paths
+from drawledger.replay.verify._versioned import plan_versions
 from drawledger.replay.verify._versions import (
     CodeVersion,
     VersionsReport,
@@ -37,6 +38,7 @@ __all__ = [
     "load_inputs",
     "load_params",
     "lookup_qualname",
+    "plan_versions",
     "resolve_decision",
     "source_matches",
     "unified_diff",

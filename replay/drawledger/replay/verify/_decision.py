@@ -37,7 +37,7 @@ from drawledger.replay.propensity import (
     remembered,
     single_draw_probability,
 )
-from drawledger.replay.verify._diff import mismatch, same
+from drawledger.replay.verify._diff import mismatch, same, version_detail
 from drawledger.replay.verify._imports import (
     build_inputs,
     immutable,
@@ -133,6 +133,20 @@ class Context:
         self.memo = Memo()
         self.probed: Counter[str] = Counter()  # decisions fully enumerated, by function
         self.multi: set[str] = set()  # functions seen making several draws (never trusted)
+        self.sources = dict(settings.sources)  # stored source by code identity
+        self.missing: dict[tuple[str, str], tuple[str, str]] = {}  # version-not-found details
+
+    def version_not_found(self, recorded: str, decision: Decision[Any]) -> tuple[str, str]:
+        """The detail of a record whose code version was not found: the diff from its stored
+        source to the current code (whole, and its first changed lines for the terminal)."""
+        key = (decision.name, recorded)
+        found = self.missing.get(key)
+        if found is None:
+            found = self.missing[key] = version_detail(
+                decision.name, recorded, self.sources[recorded], decision.code_hash,
+                decision.source,
+            )  # fmt: skip
+        return found
 
     def resolve(self, fn: str) -> Decision[Any]:
         found = self.resolved.get(fn)
@@ -216,10 +230,17 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
     raw = parse_object(row[DEC.inputs], "inputs")
     out.inputs = raw
     decision = ctx.resolve(row[DEC.fn])
-    if not same_code(as_text(row[DEC.code_hash]), decision.fn, decision.code_hash):
-        out.add(
-            "code-changed", f"code hash {row[DEC.code_hash]} recorded, {decision.code_hash} now"
-        )
+    recorded = as_text(row[DEC.code_hash])
+    if not same_code(recorded, decision.fn, decision.code_hash):
+        if recorded is not None and recorded in ctx.sources:
+            detail, short = ctx.version_not_found(recorded, decision)
+            out.add("version-not-found", detail)
+            out.short.setdefault("version-not-found", short)
+        else:
+            out.add(
+                "code-changed",
+                f"code hash {row[DEC.code_hash]} recorded, {decision.code_hash} now",
+            )
     seed = _seed(row[DEC.seed])
     inputs = build_inputs(decision, raw)
     params = ctx.load_params(decision, row[DEC.params])

@@ -7,6 +7,7 @@ differing element (a key path and list indexes, ``scores[3]``) with both values 
 
 from __future__ import annotations
 
+import difflib
 import math
 import re
 from typing import Any
@@ -102,3 +103,19 @@ def mismatch(label: str, replayed: Any, recorded: Any) -> tuple[str, str]:
     head = _cut(head, len(head), SHOW)
     short = f"{head} {_cut(ta, at, SHOW)} replayed, {_cut(tb, at, SHOW)} recorded"
     return full, short
+
+
+def version_detail(fn: str, recorded: str, stored: str, current: str,
+                   source: str | None) -> tuple[str, str]:  # fmt: skip
+    """Why a record's code version was not found, with the unified diff from its stored
+    source to the current source (whole), and its first changed lines (the terminal)."""
+    head = (f"code version {recorded} of {fn} was not found; replayed under the current code "
+            f"{current}")  # fmt: skip
+    if source is None:
+        text = f"{head} (its source cannot be read, so no diff)"
+        return text, text
+    lines = list(difflib.unified_diff(stored.splitlines(), source.splitlines(),
+                                      fromfile=recorded, tofile=current, lineterm=""))  # fmt: skip
+    changed = [line for line in lines[2:] if line[:1] in "+-"]
+    short = f"{head}; first changes: " + " | ".join(_cut(c, 0, SHOW) for c in changed[:4])
+    return f"{head}; diff to the current code:\n" + "\n".join(lines), short

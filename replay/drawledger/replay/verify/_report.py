@@ -34,6 +34,8 @@ class VerifyReport:
     integrity: IntegrityReport
     rows: pd.DataFrame
     short: dict[str, str] = field(default_factory=dict)  # first examples cut for the terminal
+    # Each code version recorded: stream, fn, identity, decisions, replayed_under.
+    versions: list[dict[str, Any]] = field(default_factory=list)
 
     @property
     def ok(self) -> bool:
@@ -56,6 +58,7 @@ class VerifyReport:
             },
             "by_stream": self.by_stream,
             "propensity_methods": dict(self.methods),
+            "versions": self.versions,
         }
 
     def __rich__(self) -> Any:
@@ -83,6 +86,16 @@ class VerifyReport:
                 first = f"{ids}\n{self.short.get(reason, shown[0][1])}" if shown else ""
                 reasons.add_row(reason, str(self.by_reason[reason]), first)
             parts.append(reasons)
+        if len(self.versions) > 1 or any(
+            v["replayed_under"] != "current code" for v in self.versions
+        ):
+            versions = Table(title="code versions", title_justify="left")
+            for name in ("stream", "function", "identity", "decisions", "replayed under"):
+                versions.add_column(name, justify="right" if name == "decisions" else "left")
+            for v in self.versions:
+                versions.add_row(v["stream"], v["fn"], v["identity"], str(v["decisions"]),
+                                 v["replayed_under"])  # fmt: skip
+            parts.append(versions)
         parts.append(Text(self.integrity.render()))
         verdict = "verify passed" if self.ok else "verify FAILED"
         parts.append(Text(verdict, style="bold green" if self.ok else "bold red"))

@@ -22,6 +22,7 @@ REASONS = (
     "action",
     "nondeterministic",
     "code-changed",
+    "version-not-found",
     "integrity",
     "missing-function",
     "not-a-decision",
@@ -67,6 +68,11 @@ class Settings:
     budget: int = DEFAULT_BUDGET
     mc_samples: int = DEFAULT_MC_SAMPLES
     keep_rows: bool = True
+    # Code versions (docs/deploys.md): stored source by identity; the (fn, identity) pairs
+    # replayed in a process of their own (left out here); or only these pairs (that process).
+    sources: tuple[tuple[str, str], ...] = ()
+    elsewhere: frozenset[tuple[str, str]] = frozenset()
+    only: frozenset[tuple[str, str]] | None = None
 
 
 @dataclass
