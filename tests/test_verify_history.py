@@ -152,3 +152,12 @@ def test_outside_a_git_work_tree_nothing_is_searched(tmp_path: Path) -> None:
     (plain / f"{shop.name}.py").write_text((shop.repo / f"{shop.name}.py").read_text())
     report = verify(shop.ledger, path=[plain])
     assert 40 == report.by_reason["version-not-found"]
+
+
+def test_the_deploys_page_runs_as_written(run_markdown) -> None:  # type: ignore[no-untyped-def]
+    """docs/deploys.md: its worked example (three deploys after the first) runs and verifies."""
+    done = run_markdown("docs/deploys.md", timeout=300)
+    assert 0 == done.returncode, done.stderr
+    assert "verified 600 of 600 | ok: True" in done.stdout
+    assert '+    return draw.softmax(cards, scores, temperature=temperature * 0.8, name="card")' \
+        in done.stdout  # fmt: skip

@@ -5,7 +5,7 @@ and a combine step, so that chunks can run in other processes (``jobs``) or on a
 cluster. Reasons a decision is not verified (docs/replay.md):
 
 - mismatched (it replayed, something differs): value, probability, args, draw-count, action,
-  nondeterministic, code-changed, integrity;
+  nondeterministic, code-changed, version-not-found, integrity;
 - unreplayable (it could not be replayed): missing-function, not-a-decision, bad-record,
   replay-error, declared (a draw recorded by other code; ``drawledger audit`` checks those).
 """

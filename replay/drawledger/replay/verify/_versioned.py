@@ -8,16 +8,19 @@ process of its own, on the tree of that revision.
 
 from __future__ import annotations
 
-import multiprocessing
 import os
+import pickle
 import shutil
+import subprocess
+import sys
+import tempfile
 from collections.abc import Set as AbstractSet
-from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
 from drawledger._schema import DEC, DRAW
+from drawledger.exceptions import ReplayError
 from drawledger.replay.sources import decision_versions, plan, read_code_versions
 from drawledger.replay.verify import _history
 from drawledger.replay.verify._chunk import verify_chunk
@@ -104,7 +107,6 @@ def replay_revisions(plan_: Plan, ledger: str | os.PathLike[str], format: str | 
     they are reported as ``version-not-found``)."""
     results: list[ChunkResult] = []
     leftover: set[tuple[str, str]] = set()
-    context = multiprocessing.get_context("spawn")  # never a copy of this process's modules
     for revision in plan_.revisions:
         tree = _history.temporary_tree(revision.top, revision.rev)
         if tree is None:
@@ -114,12 +116,40 @@ def replay_revisions(plan_: Plan, ledger: str | os.PathLike[str], format: str | 
             moved = _history.moved_path(revision.base, revision.top, tree)
             settings = replace(plan_.settings, path=(moved,), elsewhere=frozenset(),
                                only=revision.pairs)  # fmt: skip
-            with ProcessPoolExecutor(max_workers=1, mp_context=context) as pool:
-                results.append(pool.submit(_replay_revision, os.fspath(ledger), format, size,
-                                           settings, frozenset(flagged)).result())  # fmt: skip
+            args = (os.fspath(ledger), format, size, settings, frozenset(flagged))
+            results.append(_in_fresh_process(revision.rev, args))
         finally:
             shutil.rmtree(tree, ignore_errors=True)
     if leftover:
         settings = replace(plan_.settings, elsewhere=frozenset(), only=frozenset(leftover))
         results.append(_replay_revision(os.fspath(ledger), format, size, settings, flagged))
     return results
+
+
+def _in_fresh_process(rev: str, args: tuple[Any, ...]) -> ChunkResult:
+    """``_replay_revision(*args)`` in a new interpreter: nothing of this process's modules (the
+    current code version) and nothing of the calling script runs there."""
+    with tempfile.TemporaryDirectory(prefix="drawledger-replay-") as work:
+        out = Path(work) / "result.pickle"
+        payload = pickle.dumps((list(sys.path), args, os.fspath(out)))
+        command = [sys.executable, "-c", f"from {__name__} import worker_main; worker_main()"]
+        done = subprocess.run(command, input=payload, capture_output=True, check=False)
+        if not out.is_file():
+            last = done.stderr.decode(errors="replace").strip().splitlines()[-1:] or ["no output"]
+            raise ReplayError(f"replaying the code version of git {rev[:12]} failed: {last[0]}")
+        status, value = pickle.loads(out.read_bytes())
+    if status != "ok":
+        raise ReplayError(f"replaying the code version of git {rev[:12]} failed: {value}")
+    result: ChunkResult = value
+    return result
+
+
+def worker_main() -> None:
+    """The fresh process of ``_in_fresh_process``: arguments on stdin, result to a file."""
+    path, args, out = pickle.loads(sys.stdin.buffer.read())
+    sys.path[:] = path
+    try:
+        outcome: tuple[str, Any] = ("ok", _replay_revision(*args))
+    except Exception as exc:  # reported to the parent in one line
+        outcome = ("error", f"{type(exc).__name__}: {exc}")
+    Path(out).write_bytes(pickle.dumps(outcome))
