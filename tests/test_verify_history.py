@@ -19,7 +19,7 @@ from drawledger.replay import verify
 
 MODULE = """import drawledger as dl
 
-ledger = dl.Ledger({target!r})
+ledger = dl.Ledger({target!r}, format={format!r})
 
 
 @ledger.decision("recipe-card")
@@ -44,17 +44,20 @@ def git(repo: Path, *args: str) -> str:
 class Shop:
     """A git repository holding one decision module, deployed three times."""
 
-    def __init__(self, root: Path) -> None:
+    def __init__(self, root: Path, format: str | None = None, url: str | None = None) -> None:
         self.repo = root / "shop"
         self.repo.mkdir()
-        self.ledger = root / "decisions.db"
+        self.format = format
+        self.ledger: Path | str = url or root / (
+            "ledger" if format == "parquet" else "decisions.db"
+        )
         self.name = f"cards_{uuid.uuid4().hex[:8]}"
         git(self.repo, "init", "-q")
 
     def deploy(self, body: str, n: int, message: str) -> str:
         """Commit the module with ``body``, then log ``n`` decisions with it; its identity."""
         file = self.repo / f"{self.name}.py"
-        file.write_text(MODULE.format(target=str(self.ledger), body=body))
+        file.write_text(MODULE.format(target=str(self.ledger), format=self.format, body=body))
         git(self.repo, "add", file.name)
         git(self.repo, "commit", "-q", "-m", message)
         sys.path.insert(0, str(self.repo))
@@ -74,8 +77,9 @@ class Shop:
             del REGISTRY[key]
 
 
-def _three_deploys(tmp_path: Path, n: int) -> tuple[Shop, list[str]]:
-    shop = Shop(tmp_path)
+def _three_deploys(tmp_path: Path, n: int, format: str | None = None,
+                   url: str | None = None) -> tuple[Shop, list[str]]:  # fmt: skip
+    shop = Shop(tmp_path, format, url)
     ids = [
         shop.deploy(FIRST, n, "Feature a recipe card by softmax"),
         shop.deploy(COMMENTED, n, "Explain the temperature"),
@@ -126,6 +130,20 @@ def test_without_history_an_earlier_version_is_version_not_found_with_a_diff(
     assert detail.startswith(f"code version {ids[0]} of {shop.name}:feature_card was not found")
     assert f"\n-{FIRST}\n+{HOTTER}" in detail
     assert 50 == int(report.rows["verified"].sum())  # the records of the current version
+
+
+def test_parquet_ledgers_replay_under_their_versions_with_several_jobs(tmp_path: Path) -> None:
+    shop, ids = _three_deploys(tmp_path, 40, "parquet")
+    report = verify(shop.ledger, path=[shop.repo], jobs=2)
+    assert (120, 120, {}) == (report.decisions, report.verified, report.by_reason)
+    assert [ids[0], ids[2]] == [v["identity"] for v in report.versions]
+
+
+def test_postgresql_ledgers_replay_under_their_versions(tmp_path: Path, postgres_url: str) -> None:
+    shop, ids = _three_deploys(tmp_path, 40, url=postgres_url)
+    report = verify(shop.ledger, path=[shop.repo])
+    assert (120, 120, {}) == (report.decisions, report.verified, report.by_reason)
+    assert [ids[0], ids[2]] == [v["identity"] for v in report.versions]
 
 
 def test_a_version_missing_from_the_history_does_not_fail_the_others(tmp_path: Path) -> None:

@@ -10,6 +10,8 @@ import uuid
 from pathlib import Path
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from drawledger.cli import main
 from drawledger.exceptions import ReplayError
@@ -172,3 +174,25 @@ def test_postgresql_ledgers_store_code_versions(tmp_path: Path, postgres_url: st
     assert [(first, 50), (second, 10)] == [(v.identity, v.decisions) for v in report.versions]
     assert all(v.source_ok for v in report.versions)
     assert "+" + HOTTER in (version_diff(postgres_url, first, second).diff or "")
+
+
+@pytest.fixture(scope="module")
+def two_versions(tmp_path_factory: pytest.TempPathFactory) -> tuple[str, str, str]:
+    root = tmp_path_factory.mktemp("versions")
+    ledger = str(root / "decisions.db")
+    first, second = _two_versions(root, ledger)
+    return ledger, first, second
+
+
+@given(st.text(max_size=40))
+@settings(max_examples=60, deadline=None)
+def test_any_identity_text_is_found_or_refused_in_one_line(
+    two_versions: tuple[str, str, str], wanted: str
+) -> None:
+    ledger, _, second = two_versions
+    try:
+        report = version_diff(ledger, wanted, second)
+    except ReplayError as exc:
+        assert 1 == len(str(exc).splitlines())
+    else:
+        assert report.compared is not None and second == report.compared[1]
