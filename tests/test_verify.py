@@ -28,7 +28,7 @@ from drawledger.exceptions import LedgerError, ReplayError
 from drawledger.ledger import REGISTRY
 from drawledger.replay import verify
 from drawledger.replay.verify import Settings, verify_chunk
-from drawledger.replay.verify._diff import first_difference, mismatch, same
+from drawledger.replay.verify._diff import first_difference, mismatch, same, version_detail
 
 SERVICE = """
 import drawledger as dl
@@ -319,6 +319,18 @@ def test_mismatch_of_long_text_is_cut_around_the_difference_for_the_terminal() -
     assert f'action "{a}" replayed, "{b}" recorded' == full
     assert len(short) < 200
     assert "ab" in short and "aB" in short
+
+
+def test_a_version_not_found_shows_the_diff_whole_and_its_changes_cut_around_them() -> None:
+    cards = ", ".join(f'"card-{i}"' for i in range(30))
+    old = f"def pick(draw):\n    cards = [{cards}]\n    return draw.softmax(cards, s)\n"
+    new = old.replace('"card-29"', '"card-29b"')
+    full, short = version_detail("m:pick", "v2:aa", old, "v2:bb", new)
+    assert full.startswith("code version v2:aa of m:pick was not found; replayed under the current")
+    assert f"\n-    cards = [{cards}]\n+" in full
+    assert '"card-28", "card-29"] | +...' in short
+    assert short.endswith('"card-28", "card-29b"]')
+    assert '"card-2", ' not in short  # cut before the change, not after it
 
 
 json_values = st.recursive(

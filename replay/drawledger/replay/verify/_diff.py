@@ -116,6 +116,12 @@ def version_detail(fn: str, recorded: str, stored: str, current: str,
         return text, text
     lines = list(difflib.unified_diff(stored.splitlines(), source.splitlines(),
                                       fromfile=recorded, tofile=current, lineterm=""))  # fmt: skip
-    changed = [line for line in lines[2:] if line[:1] in "+-"]
-    short = f"{head}; first changes: " + " | ".join(_cut(c, 0, SHOW) for c in changed[:4])
+    removed = [line for line in lines[2:] if line[:1] == "-"]
+    added = [line for line in lines[2:] if line[:1] == "+"]
+    shown = []
+    for i in range(max(len(removed), len(added))):  # each pair cut around where it differs
+        old, new = (removed[i] if i < len(removed) else ""), (added[i] if i < len(added) else "")
+        at = _common(old[1:], new[1:])
+        shown += [line[0] + _cut(line[1:], at, SHOW) for line in (old, new) if line]
+    short = f"{head}; first changes: " + " | ".join(shown[:4])
     return f"{head}; diff to the current code:\n" + "\n".join(lines), short

@@ -91,10 +91,11 @@ class VerifyReport:
         ):
             versions = Table(title="code versions", title_justify="left")
             for name in ("stream", "function", "identity", "decisions", "replayed under"):
-                versions.add_column(name, justify="right" if name == "decisions" else "left")
-            for v in self.versions:
-                versions.add_row(v["stream"], v["fn"], v["identity"], str(v["decisions"]),
-                                 v["replayed_under"])  # fmt: skip
+                versions.add_column(name, justify="right" if name == "decisions" else "left",
+                                    overflow="fold")  # fmt: skip
+            for v in self.versions:  # Text: what a ledger holds is never read as markup
+                versions.add_row(*(Text(str(v[k])) for k in ("stream", "fn", "identity",
+                                   "decisions", "replayed_under")))  # fmt: skip
             parts.append(versions)
         parts.append(Text(self.integrity.render()))
         verdict = "verify passed" if self.ok else "verify FAILED"
