@@ -67,6 +67,8 @@ def spill_line(item: Item) -> bytes:
     """One record as a line of the spill file (docs/ledger.md, "Spill files")."""
     if item[0] == "d":
         return orjson.dumps({"decision": list(item[1]), "draws": item[2]})
+    if item[0] == "v":  # a code version row (docs/deploys.md); not a record of the chain
+        return orjson.dumps({"code_version": list(item[1])})
     return orjson.dumps({"outcome": list(item[1])})
 
 
@@ -368,6 +370,7 @@ class Writer:
                         self.spill.path)  # fmt: skip
         try:
             self.spill_items(items)
+            self._spill_versions()
         except Exception as exc:  # disk full, directory gone: keep the thread alive
             self.last_error = exc
             log.error("drawledger: spill to %s failed: %s", self.spill.path, exc)
@@ -381,6 +384,13 @@ class Writer:
         if write is not None:
             write(pending)
         del self.versions[: len(pending)]
+
+    def _spill_versions(self) -> None:
+        """Spill the code versions noted so far with the records (``drawledger ingest``)."""
+        pending = self.versions[:]
+        if pending:
+            self.spill.write([("v", row) for row in pending])
+            del self.versions[: len(pending)]
 
     def spill_items(self, items: list[Item]) -> None:
         self.spill.write(items)
