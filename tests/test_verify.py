@@ -28,6 +28,7 @@ from drawledger.exceptions import LedgerError, ReplayError
 from drawledger.ledger import REGISTRY
 from drawledger.replay import verify
 from drawledger.replay.verify import Settings, verify_chunk
+from drawledger.replay.verify._decision import _Checked, _compare_draws
 from drawledger.replay.verify._diff import first_difference, mismatch, same, version_detail
 
 SERVICE = """
@@ -319,6 +320,19 @@ def test_mismatch_of_long_text_is_cut_around_the_difference_for_the_terminal() -
     assert f'action "{a}" replayed, "{b}" recorded' == full
     assert len(short) < 200
     assert "ab" in short and "aB" in short
+
+
+def test_a_deleted_draw_and_a_renamed_draw_are_worded_like_every_mismatch() -> None:
+    replayed = [("bernoulli", "coin", "{}", "[0.5]", "true", 0.5, False)]
+    checked = _Checked()
+    _compare_draws(checked, replayed, [])
+    assert "draws 1 replayed, 0 recorded" == checked.reasons["draw-count"]
+    checked = _Checked()
+    _compare_draws(
+        checked, replayed, [("d", 0, "toss", "bernoulli", "{}", "[0.5]", "true", 0.5, 0)]
+    )
+    assert "draw 0 (bernoulli 'coin'): kind and name name: \"coin\" replayed, \"toss\" recorded" \
+        == checked.reasons["args"]  # fmt: skip
 
 
 def test_a_version_not_found_shows_the_diff_whole_and_its_changes_cut_around_them() -> None:

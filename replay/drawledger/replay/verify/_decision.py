@@ -204,7 +204,7 @@ def _draw_rows(rows: list[Row]) -> list[Row]:
 
 def _compare_draws(out: _Checked, replayed: list[tuple[Any, ...]], recorded: list[Row]) -> None:
     if len(replayed) != len(recorded):
-        out.add("draw-count", f"{len(recorded)} draws recorded, {len(replayed)} replayed")
+        out.differ("draw-count", "draws", len(replayed), len(recorded))
     for (kind, name, args, u, value, prob, dens), d in zip(replayed, recorded, strict=False):
         _, idx, r_name, r_kind, r_args, r_u, r_value, r_prob, r_dens = d  # DRAW_COLUMNS
         if (kind == r_kind and args == r_args and u == r_u and value == r_value and prob == r_prob
@@ -212,7 +212,8 @@ def _compare_draws(out: _Checked, replayed: list[tuple[Any, ...]], recorded: lis
             continue  # the usual case: identical to the record
         where = f"draw {idx} ({kind}{'' if name is None else ' ' + repr(name)})"
         if kind != r_kind or name != as_text(r_name):
-            out.add("args", f"{where}: recorded as {r_kind} {as_text(r_name)!r}")
+            out.differ("args", f"{where}: kind and name", {"kind": kind, "name": name},
+                       {"kind": r_kind, "name": as_text(r_name)})  # fmt: skip
         elif not _json_same(args, r_args, f"{where} arguments"):
             out.differ("args", f"{where}: arguments", from_json(args), from_json(r_args))
         if not _json_same(u, r_u, f"{where} uniforms"):
