@@ -210,7 +210,7 @@ def _excluded_warnings(p: Pass) -> list[str]:
     if p.failures.code_changed:
         out.append(f"{p.failures.code_changed} decisions ran under decision code that has "
                    "changed since; they replayed every draw as recorded and are used "
-                   "(code-changed accepted)")  # fmt: skip
+                   "(code-changed or version-not-found accepted)")  # fmt: skip
     if not p.excluded:
         return out
     parts = ", ".join(f"{k}: {v}" for k, v in sorted(p.excluded.items()))
