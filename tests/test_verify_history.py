@@ -91,6 +91,10 @@ def _three_deploys(tmp_path: Path, n: int, format: str | None = None,
 def _check_three_deploys(tmp_path: Path, n: int, capsys: pytest.CaptureFixture[str]) -> None:
     shop, ids = _three_deploys(tmp_path, n)
     assert ids[0] == ids[1] != ids[2]  # the comment edit keeps the identity
+    assert 0 == main(["verify", str(shop.ledger), "--path", str(shop.repo)])  # no other option
+    shown = capsys.readouterr().out
+    assert "code versions" in shown and "verify passed" in shown
+    assert ids[0][:12] in shown and ids[2][:12] in shown
     out = tmp_path / "verify.json"
     assert 0 == main(["verify", str(shop.ledger), "--path", str(shop.repo), "--json", str(out)])
     data = json.loads(out.read_text())
@@ -100,7 +104,6 @@ def _check_three_deploys(tmp_path: Path, n: int, capsys: pytest.CaptureFixture[s
     assert [2 * n, n] == [v["decisions"] for v in versions]
     assert versions[0]["replayed_under"].startswith("git ")
     assert "current code" == versions[1]["replayed_under"]
-    assert "code versions" in capsys.readouterr().out
 
 
 def test_verify_replays_each_record_under_the_version_that_logged_it(
