@@ -99,6 +99,18 @@ def test_code_identity_ignores_comments_blank_lines_formatting_and_docstrings() 
     assert source_identity(plain).startswith("v2:")
 
 
+def test_code_identity_of_a_fixed_text_never_changes() -> None:
+    """A stored identity must mean the same code in every later release and Python version:
+    this value was computed once (CPython 3.11) and is pinned, so that a change of the
+    normalized form, or of what a Python version's parser yields, fails here first."""
+    text = (
+        '@ledger.decision("recipe-card")\n'
+        "def feature_card(ctx, draw, *, temperature=0.7):\n"
+        '    return draw.softmax(ctx.cards, ctx.scores, temperature=temperature, name="card")\n'
+    )
+    assert "v2:194607abbce9d42e692f6dc86c48f658" == source_identity(text)
+
+
 @pytest.mark.parametrize(
     "edit",
     [
