@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import inspect
 import math
 import threading
 import warnings
@@ -16,6 +17,7 @@ from recipe_card import CARDS, SCORES, make_decision
 from strategies import json_values
 
 import drawledger as dl
+from drawledger._code import module_file, source_identity
 from drawledger._records import to_json
 from drawledger.exceptions import (
     DecisionDefinitionError,
@@ -90,6 +92,70 @@ def test_code_hash_follows_the_source(ledger: dl.Ledger) -> None:
 
     assert one.code_hash != two.code_hash
     assert dl.ledger.code_hash(one.fn) == one.code_hash
+
+
+def test_code_identity_ignores_comments_blank_lines_formatting_and_docstrings() -> None:
+    plain = "def pick(draw):\n    return draw.bernoulli(0.5)\n"
+    dressed = (
+        "    def pick(  draw ):\n"
+        '        """Flip a coin.\n\n        Docstrings do not run."""\n'
+        "\n        # the probability of a reminder\n"
+        "        return draw.bernoulli(\n            0.5,\n        )  # half\n"
+    )
+    assert source_identity(plain) == source_identity(dressed)
+    assert source_identity(plain).startswith("v2:")
+
+
+def test_code_identity_of_a_fixed_text_never_changes() -> None:
+    """A stored identity must mean the same code in every later release and Python version:
+    this value was computed once (CPython 3.11) and is pinned, so that a change of the
+    normalized form, or of what a Python version's parser yields, fails here first."""
+    text = (
+        '@ledger.decision("recipe-card")\n'
+        "def feature_card(ctx, draw, *, temperature=0.7):\n"
+        '    return draw.softmax(ctx.cards, ctx.scores, temperature=temperature, name="card")\n'
+    )
+    assert "v2:194607abbce9d42e692f6dc86c48f658" == source_identity(text)
+
+
+@pytest.mark.parametrize(
+    "edit",
+    [
+        "def pick(draw):\n    return draw.bernoulli(0.25)\n",
+        "def pick(draw):\n    return draw.bernoulli(0.5, name='coin')\n",
+        "def pick(draw):\n    x = 'not a docstring'\n    return draw.bernoulli(0.5)\n",
+        "def pick(draw, *, p=0.5):\n    return draw.bernoulli(p)\n",
+    ],
+)
+def test_code_identity_changes_with_behaviour(edit: str) -> None:
+    plain = "def pick(draw):\n    return draw.bernoulli(0.5)\n"
+    assert source_identity(plain) != source_identity(edit)
+
+
+def test_a_string_after_the_first_statement_is_code_not_a_docstring() -> None:
+    plain = "def pick(draw):\n    return draw.bernoulli(0.5)\n"
+    late = "def pick(draw):\n    draw.bernoulli(0.5)\n    'late'\n    return None\n"
+    also = "def pick(draw):\n    draw.bernoulli(0.5)\n    return None\n"
+    assert source_identity(also) != source_identity(late)
+    assert source_identity(plain) != source_identity(also)
+
+
+def test_code_identity_is_computed_once_at_decoration(ledger: dl.Ledger, monkeypatch) -> None:
+    @ledger.decision("coin")
+    def coin(draw: dl.Draw) -> bool:
+        return draw.bernoulli(0.5)
+
+    def fail(*_args: object) -> None:
+        raise AssertionError("source read on the serving path")
+
+    monkeypatch.setattr(inspect, "getsource", fail)
+    with capture(ledger) as cap:
+        coin()
+    assert coin.code_hash == cap.decisions[0].code_hash
+
+
+def test_module_file_is_relative_to_the_import_root() -> None:
+    assert "drawledger/ledger.py" == module_file(dl.ledger.Ledger.flush)
 
 
 def test_draw_found_by_annotation(ledger: dl.Ledger) -> None:

@@ -409,13 +409,14 @@ def _changed_code(root: Path, edited: str) -> tuple[Path, Path]:
 
 
 def test_accepted_code_changes_that_replay_as_recorded_are_used(tmp_path):
-    """A comment changes the code hash, not the draws: refused by default; with code-changed
+    """An edit that changes the code, not the draws: refused by default; with code-changed
     accepted every decision is used (nothing dropped, nothing biased)."""
-    ledger, code = _changed_code(tmp_path, "    # a comment changes the hash\n" + SOFTMAX)
-    with pytest.raises(EstimateRefusedError, match=r"40 of 40 .*\(code-changed: 40\)"):
+    edited = SOFTMAX.replace("temperature=temperature", "temperature=temperature * 1.0")
+    ledger, code = _changed_code(tmp_path, edited)
+    with pytest.raises(EstimateRefusedError, match=r"40 of 40 .*\(version-not-found: 40\)"):
         estimate(ledger, reward="checkout", path=[code])
     report = estimate(ledger, reward="checkout", path=[code],
-                      accept_verification_failures=["code-changed"])  # fmt: skip
+                      accept_verification_failures=["version-not-found"])  # fmt: skip
     assert (40, None, []) == (report.n, report.accepted_failures, report.alerts)
     assert report.warnings[0].startswith("40 decisions ran under decision code that has changed")
 
@@ -425,8 +426,8 @@ def test_accepting_code_changes_does_not_accept_what_they_changed(tmp_path):
     ledger, code = _changed_code(tmp_path, edited)
     with pytest.raises(EstimateRefusedError, match="args") as refused:
         estimate(ledger, reward="checkout", path=[code],
-                 accept_verification_failures=["code-changed"])  # fmt: skip
-    assert "code-changed" not in refused.value.problems
+                 accept_verification_failures=["version-not-found"])  # fmt: skip
+    assert "version-not-found" not in refused.value.problems
 
 
 def test_unknown_reasons_to_accept_are_refused(small):

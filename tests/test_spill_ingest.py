@@ -26,6 +26,7 @@ from hypothesis import strategies as st
 import drawledger as dl
 from drawledger import _parquet
 from drawledger.cli import main
+from drawledger.replay import code_versions
 from drawledger.replay.integrity import check_integrity
 from drawledger.replay.sources import read_tables
 
@@ -62,7 +63,8 @@ def test_unreachable_postgres_spills_everything_and_ingest_restores_it_once(
     assert {"recorded": 60, "written": 0, "spilled": 60, "dropped": 0} == {
         k: stats[k] for k in ("recorded", "written", "spilled", "dropped")
     }
-    assert 60 == len(_lines(led.spill_path))
+    records = [x for x in _lines(led.spill_path) if not x.startswith(b'{"code_version"')]
+    assert 60 == len(records)
 
     target = tmp_path / "restored.db"
     first = dl.ingest(led.spill_path, target)
@@ -74,6 +76,20 @@ def test_unreachable_postgres_spills_everything_and_ingest_restores_it_once(
     assert 40 == len(tables.draws)
     report = check_integrity(target)
     assert (True, 40, 20) == (report.ok, report.decisions, report.outcomes)
+
+
+def test_a_spilled_code_version_is_restored_by_ingest(tmp_path: Path) -> None:
+    """The source of the version that made spilled decisions travels in the spill file too."""
+    led = dl.Ledger(CLOSED_PORT_URL, spill_dir=tmp_path / "spill")
+    _decide(led, 5, outcomes=False)
+    led.close()
+    lines = [orjson.loads(x) for x in _lines(led.spill_path)]
+    (version,) = [x["code_version"] for x in lines if "code_version" in x]
+    assert "reminder_delay" in version[2] and "draw.lognormal" in version[4]
+    target = tmp_path / "restored.db"
+    assert dl.ingest(led.spill_path, target).ok
+    (stored,) = code_versions(target).versions
+    assert (5, True) == (stored.decisions, stored.source_ok)
 
 
 @contextlib.contextmanager
@@ -490,8 +506,9 @@ def test_full_disk_spill_counts_only_whole_lines_and_leaves_no_torn_line(
     assert data.endswith(b"\n")
     lines = data.splitlines()
     assert all(isinstance(orjson.loads(line), dict) for line in lines)
+    records = [line for line in lines if "code_version" not in orjson.loads(line)]
     stats = led.stats()
-    assert len(lines) == stats["spilled"]
+    assert len(records) == stats["spilled"]  # code version lines are not records
     assert stats["spill_errors"] >= 1
     assert 40 == stats["spilled"] + stats["queued"]
     disk.room = 10**9  # space freed

@@ -18,16 +18,20 @@ import pandas as pd
 import pytest
 import shop_decisions as sd
 from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from strategies import decision_specs
 
 import drawledger as dl
 import drawledger.testing
+from drawledger._code import legacy_code_hash
 from drawledger._records import to_json
 from drawledger.draw import bucket_assign
 from drawledger.exceptions import LedgerError, ReplayError
 from drawledger.ledger import REGISTRY
 from drawledger.replay import verify
 from drawledger.replay.verify import Settings, verify_chunk
+from drawledger.replay.verify._decision import _Checked, _compare_draws
+from drawledger.replay.verify._diff import first_difference, mismatch, same, version_detail
 
 SERVICE = """
 import drawledger as dl
@@ -196,16 +200,172 @@ def test_code_edited_after_logging(service: Callable[..., Service]) -> None:
     report = s.verify()
     assert not report.ok
     assert 12 == report.mismatched
-    assert {"code-changed", "args"} <= set(report.by_reason)
-    assert 12 == report.by_reason["code-changed"]
+    assert {"version-not-found", "args"} <= set(report.by_reason)
+    assert 12 == report.by_reason["version-not-found"]
 
 
-def test_cosmetic_edit_is_only_code_changed(service: Callable[..., Service]) -> None:
+def test_comment_docstring_and_formatting_edits_keep_the_code_identity(
+    service: Callable[..., Service],
+) -> None:
+    """Comments, blank lines and reformatting cannot change behaviour: verified."""
     s = service()
-    s.edit("    # a comment changes the hash, not the draws\n" + PLAIN)
+    s.edit("\n    # a comment changes nothing\n"
+           "    return draw.softmax(\n        cards, scores,  temperature=temperature,\n"
+           "        name='card',\n    )")  # fmt: skip
     report = s.verify()
-    assert {"code-changed": 12} == report.by_reason
+    assert {} == report.by_reason
+    assert (12, 12) == (report.decisions, report.verified)
+
+
+def test_a_draw_preserving_logic_edit_is_only_version_not_found(
+    service: Callable[..., Service],
+) -> None:
+    s = service()
+    s.edit(PLAIN.replace("temperature=temperature", "temperature=temperature * 1.0"))
+    report = s.verify()
+    assert {"version-not-found": 12} == report.by_reason
     assert report.rows["propensity"].equals(report.rows["logged_propensity"])
+
+
+def test_without_a_stored_source_a_changed_version_is_code_changed(
+    service: Callable[..., Service],
+) -> None:
+    """Ledgers written before sources were stored: the record's version is only a hash."""
+    s = service()
+    _sql(s.ledger, "DROP TABLE code_versions")
+    s.edit(PLAIN.replace("temperature=temperature", "temperature=temperature * 1.0"))
+    assert {"code-changed": 12} == s.verify().by_reason
+
+
+def test_identities_recorded_before_v2_are_compared_with_the_old_hash(tmp_path: Path) -> None:
+    """A ledger written before the versioned identity holds the hash of the source text: it
+    still verifies against unchanged code, and a comment still counts as a change for it."""
+    s = Service(tmp_path)
+    try:
+        pick = s.module.pick
+        pick.code_hash = legacy_code_hash(pick.fn)  # what a writer before v2 recorded
+        s.record(12)
+        s.forget()
+        assert {} == s.verify().by_reason
+        s.edit("    # a comment\n" + PLAIN)
+        assert {"version-not-found": 12} == s.verify().by_reason
+    finally:
+        s.forget()
+
+
+def test_a_mismatch_names_the_differing_index_with_both_values(
+    service: Callable[..., Service],
+) -> None:
+    """The detail points at the element that differs, not at the start of a long JSON text."""
+    s = service()
+    s.edit(PLAIN.replace("scores,", "[*scores[:2], scores[2] + 0.05],"))
+    report = s.verify()
+    detail = report.to_dict()["examples"]["args"][0]["detail"]
+    assert "draw 0 (softmax 'card'): arguments scores[2]: 0.55 replayed, 0.5 recorded" == detail
+    assert "scores[2]: 0.55 replayed, 0.5 recorded" in report.render()
+
+
+def test_a_difference_deep_in_long_arguments_is_shown_in_json_and_the_terminal(
+    service: Callable[..., Service],
+) -> None:
+    many = "    cards = [f'card-{i:03d}' for i in range(200)]\n    scores = [1.0] * 200\n"
+    s = service(many + PLAIN)
+    s.edit(many.replace("[1.0] * 200", "[1.0] * 199 + [1.5]") + PLAIN)
+    report = s.verify()
+    detail = report.to_dict()["examples"]["args"][0]["detail"]
+    assert "draw 0 (softmax 'card'): arguments scores[199]: 1.5 replayed, 1.0 recorded" == detail
+    s.edit(many.replace("f'card-{i:03d}'", "f'card-{i:03d}' + ('x' if i == 150 else '')") + PLAIN)
+    report = s.verify()
+    detail = report.to_dict()["examples"]["args"][0]["detail"]
+    expected = "draw 0 (softmax 'card'): arguments options[150]: \"card-150x\" replayed, "
+    assert expected + '"card-150" recorded' == detail
+    shown = report.render()  # the table wraps the detail: its parts are there
+    assert "options[150]:" in shown and '"card-150x" replayed' in shown
+
+
+def test_a_long_differing_text_is_whole_in_json_and_cut_around_the_difference_in_the_terminal(
+    service: Callable[..., Service],
+) -> None:
+    long = "    cards = ['pasta-' + 'a' * 300, 'curry', 'tacos']\n"
+    s = service(long + PLAIN)
+    s.edit(long.replace("'a' * 300", "'a' * 280 + 'B' + 'a' * 19") + PLAIN)
+    report = s.verify()
+    detail = report.to_dict()["examples"]["args"][0]["detail"]
+    replayed, recorded = "pasta-" + "a" * 280 + "B" + "a" * 19, "pasta-" + "a" * 300
+    assert f'draw 0 (softmax \'card\'): arguments options[0]: "{replayed}" replayed, ' \
+        f'"{recorded}" recorded' == detail  # fmt: skip
+    shown = report.short["args"]  # what the terminal's reasons table shows
+    assert "aaaB" in shown
+    assert "pasta-" not in shown  # cut before the difference, never at it
+    assert "options[0]:" in report.render()
+
+
+@pytest.mark.parametrize(
+    ("replayed", "recorded", "expected"),
+    [
+        ({"scores": [1, 2, 1.2]}, {"scores": [1, 2, 1.25]},
+         "x scores[2]: 1.2 replayed, 1.25 recorded"),
+        ([1, 2], [1, 2, 3], "x [2]: (absent) replayed, 3 recorded"),
+        ({"a": 1}, {"a": 1, "b-c": 2}, 'x ["b-c"]: (absent) replayed, 2 recorded'),
+        ({"ctx": {"tier": "plus"}}, {"ctx": {"tier": "basic"}},
+         'x ctx.tier: "plus" replayed, "basic" recorded'),
+        (0.3, 0.2, "x 0.3 replayed, 0.2 recorded"),
+        (1, True, "x 1 replayed, true recorded"),
+    ],
+)  # fmt: skip
+def test_mismatch_words_the_first_difference(replayed, recorded, expected) -> None:
+    assert expected == mismatch("x", replayed, recorded)[0]
+
+
+def test_mismatch_of_long_text_is_cut_around_the_difference_for_the_terminal() -> None:
+    a, b = "a" * 500 + "b" + "c" * 500, "a" * 500 + "B" + "c" * 500
+    full, short = mismatch("action", a, b)
+    assert f'action "{a}" replayed, "{b}" recorded' == full
+    assert len(short) < 200
+    assert "ab" in short and "aB" in short
+
+
+def test_a_deleted_draw_and_a_renamed_draw_are_worded_like_every_mismatch() -> None:
+    replayed = [("bernoulli", "coin", "{}", "[0.5]", "true", 0.5, False)]
+    checked = _Checked()
+    _compare_draws(checked, replayed, [])
+    assert "draws 1 replayed, 0 recorded" == checked.reasons["draw-count"]
+    checked = _Checked()
+    _compare_draws(
+        checked, replayed, [("d", 0, "toss", "bernoulli", "{}", "[0.5]", "true", 0.5, 0)]
+    )
+    assert "draw 0 (bernoulli 'coin'): kind and name name: \"coin\" replayed, \"toss\" recorded" \
+        == checked.reasons["args"]  # fmt: skip
+
+
+def test_a_version_not_found_shows_the_diff_whole_and_its_changes_cut_around_them() -> None:
+    cards = ", ".join(f'"card-{i}"' for i in range(30))
+    old = f"def pick(draw):\n    cards = [{cards}]\n    return draw.softmax(cards, s)\n"
+    new = old.replace('"card-29"', '"card-29b"')
+    full, short = version_detail("m:pick", "v2:aa", old, "v2:bb", new)
+    assert full.startswith("code version v2:aa of m:pick was not found; replayed under the current")
+    assert f"\n-    cards = [{cards}]\n+" in full
+    assert '"card-28", "card-29"] | +...' in short
+    assert short.endswith('"card-28", "card-29b"]')
+    assert '"card-2", ' not in short  # cut before the change, not after it
+
+
+json_values = st.recursive(
+    st.none() | st.booleans() | st.integers(-5, 5) | st.floats(allow_nan=False)
+    | st.text(max_size=5),
+    lambda inner: st.lists(inner, max_size=4)
+    | st.dictionaries(st.text(max_size=3), inner, max_size=4),
+    max_leaves=12,
+)  # fmt: skip
+
+
+@given(json_values, json_values)
+@settings(max_examples=200, deadline=None)
+def test_mismatch_finds_a_difference_exactly_when_values_differ(a, b) -> None:
+    assert (first_difference(a, b) is None) == same(a, b)
+    full, _ = mismatch("x", a, b)
+    assert full.endswith(" recorded") and " replayed, " in full
+    assert "\n" not in full
 
 
 def test_hidden_global_counter_is_nondeterministic(service: Callable[..., Service]) -> None:

@@ -36,6 +36,7 @@ import orjson
 
 from drawledger import _records, _sinks
 from drawledger._schema import (
+    CODE_VERSIONS,
     DEC,
     DECISIONS,
     DRAW,
@@ -199,9 +200,12 @@ class _Loader:
     def run(self) -> IngestReport:
         spilled: list[Spilled] = []
         declared: list[tuple[int, dict[str, Any]]] = []
+        versions: list[Row] = []
         for number, obj in self._objects():
             try:
-                if "decision" in obj or "outcome" in obj:
+                if "code_version" in obj:  # docs/deploys.md: stored as it was spilled
+                    versions.append(_code_version(obj))
+                elif "decision" in obj or "outcome" in obj:
                     spilled.append((number, *_spill_record(obj, self.key)))
                 else:
                     declared.append((number, _declared(obj)))
@@ -215,6 +219,9 @@ class _Loader:
                 declared = []
         self._load_spilled(spilled)
         self._load_declared(declared)
+        write_versions = getattr(self.sink, "write_versions", None)
+        if versions and write_versions is not None:
+            write_versions(versions)
         self.ledger.flush()
         after = self.ledger.stats()
         self.report.spilled = after["spilled"] - self.spilled_before
@@ -411,6 +418,13 @@ def _row(values: Any, table: TableSpec, what: str) -> Row:
     if not isinstance(values, list) or len(values) != len(columns):
         raise _Bad(f"{what} must be a list of {len(columns)} values")
     return tuple(_field(c, x, f"{what} {c.name}") for c, x in zip(columns, values, strict=True))
+
+
+def _code_version(obj: dict[str, Any]) -> Row:
+    """A spilled code version row, checked field by field."""
+    if set(obj) != {"code_version"}:
+        raise _Bad('a spilled code version has exactly the key "code_version"')
+    return _row(obj["code_version"], CODE_VERSIONS, "code version")
 
 
 def _spill_record(obj: dict[str, Any], key: bytes) -> tuple[str, Row, list[Row]]:

@@ -30,7 +30,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from drawledger import _registry
-from drawledger._schema import DEC, OUT, REGISTRY, SPECS, TableSpec, damaged
+from drawledger._schema import CODE_VERSIONS, DEC, OUT, REGISTRY, SPECS, TableSpec, damaged
 from drawledger.exceptions import LedgerError
 
 if TYPE_CHECKING:
@@ -53,6 +53,8 @@ REGISTRY_SCHEMAS = {table.name: _arrow_schema(table) for table in REGISTRY}
 IDENTITY = "ledger_meta/ledger.parquet"  # the one part file of the ledger's identity
 _REQUIRED = {table.name: [c.name for c in table.columns if not c.nullable] for table in SPECS}
 TABLES = tuple(SCHEMAS)
+VERSIONS = CODE_VERSIONS.name
+SCHEMAS[VERSIONS] = _arrow_schema(CODE_VERSIONS)  # an added table: older ledgers lack it
 
 # Dictionary encoding only where values repeat, statistics only on numbers (what readers filter
 # on): unique text such as ids and hashes costs time in both and gains nothing.
@@ -332,6 +334,23 @@ class ParquetSink:
         if self.full:
             for folder in {final.parent for _, final in staged}:
                 _fsync_path(folder, directory=True)
+
+    def write_versions(self, rows: list[Row]) -> None:
+        """Store code version rows (docs/deploys.md) as one part file of ``code_versions``."""
+        if not rows:
+            return
+        folder = self.root / VERSIONS
+        folder.mkdir(parents=True, exist_ok=True)
+        n = time.time_ns()  # a sink reopened by the same writer never reuses a name
+        name = f"{n:020d}-{n:020d}-{writer_tag(str(rows[0][-1]))}{SUFFIX}"
+        tmp = folder / f".{name}.{os.getpid()}.{os.urandom(4).hex()}.tmp"
+        try:
+            pq.write_table(rows_to_table(rows, VERSIONS), tmp)
+            if self.full:
+                _fsync_path(tmp)
+            os.replace(tmp, folder / name)
+        finally:
+            tmp.unlink(missing_ok=True)
 
     def present_hashes(self, table: str, writer: str, low: int, high: int) -> dict[int, str]:
         """The hash of each record of ``writer`` with a seq from ``low`` to ``high``, by seq."""

@@ -145,6 +145,23 @@ WRITERS = TableSpec(
 
 REGISTRY = (LEDGER_META, WRITERS)
 
+# The source of each decision function's code version, one row per version and writer
+# (docs/deploys.md). Not a record of the hash chain: a row is bound to the decisions by its
+# identity, which the decisions' hashes cover and which the source must hash to.
+CODE_VERSIONS = TableSpec(
+    "code_versions",
+    (
+        _text("identity"),
+        _text("stream"),
+        _text("fn"),
+        _text("module_file", nullable=True),
+        _text("source", nullable=True),
+        _float("first_ts"),
+        _text("writer"),
+    ),
+    (Index("code_versions_identity", ("identity",)),),
+)
+
 
 class Positions:
     """The position of each column in a table's row tuples, by name: ``DEC.hash == 15``.
@@ -192,6 +209,8 @@ outcomes = _sql_table(OUTCOMES)
 TABLES = (decisions, draws, outcomes)
 ledger_meta = _sql_table(LEDGER_META)
 writers = _sql_table(WRITERS)
+
+code_versions = _sql_table(CODE_VERSIONS)
 
 # -- stored rows that do not fit their table ---------------------------------------------------
 _WANTED = {"text": "text", "float": "a number", "integer": "an integer"}

@@ -167,6 +167,8 @@ class SqlSink:
         self._copy = self.engine.dialect.name == "postgresql" and \
             self.engine.dialect.driver == "psycopg"  # fmt: skip
         self._sql = {t.name: _insert_sql(self.engine, t.name, t.names) for t in _schema.SPECS}
+        spec = _schema.CODE_VERSIONS
+        self._versions_sql = _insert_sql(self.engine, spec.name, spec.names)
 
     def write(self, decisions: list[Row], draws: list[list[Row]], outcomes: list[Row]) -> None:
         flat = [d for rows in draws for d in rows]
@@ -178,6 +180,12 @@ class SqlSink:
                     self._copy_rows(conn, table, rows)
                 else:
                     conn.exec_driver_sql(self._sql[table], rows)
+
+    def write_versions(self, rows: list[Row]) -> None:
+        """Store code version rows (docs/deploys.md) in one transaction."""
+        if rows:
+            with self.engine.begin() as conn:
+                conn.exec_driver_sql(self._versions_sql, rows)
 
     @staticmethod
     def _copy_rows(conn: sa.Connection, table: str, rows: list[Row]) -> None:

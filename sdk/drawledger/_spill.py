@@ -17,6 +17,8 @@ def spill_line(item: Any) -> bytes:
     """One record as a line of the spill file (docs/ledger.md, "Spill files")."""
     if item[0] == "d":
         return orjson.dumps({"decision": list(item[1]), "draws": item[2]})
+    if item[0] == "v":  # a code version row (docs/deploys.md); not a record of the chain
+        return orjson.dumps({"code_version": list(item[1])})
     return orjson.dumps({"outcome": list(item[1])})
 
 

@@ -193,6 +193,8 @@ class Writer:
         self.retry_delay = retry_delay
         self.cooldown = cooldown
         self.queue: deque[Item] = deque()
+        # Code version rows (docs/deploys.md) waiting for the sink; written before the next batch.
+        self.versions: list[tuple[Any, ...]] = []
         self._wake = threading.Event()
         self._stop = False
         self._thread: threading.Thread | None = None
@@ -521,6 +523,8 @@ class Writer:
                 with self.io_lock:
                     if self._sink is None:
                         self._sink = self._open_sink()
+                    if self.versions:
+                        self._write_versions(self._sink)
                     self._sink.write(decisions, draws, outcomes)
                     if self.chain.late:  # unregistered: the ledger was out of reach at the start
                         self.chain.late = not self._register_late()
@@ -539,6 +543,7 @@ class Writer:
             self.throttle.log(logging.WARNING, "sink", why)
         try:
             self.spill_items(items)
+            self._spill_versions()
         except Exception as exc:  # disk full, directory gone: keep the thread alive
             self.last_error = exc
             self.throttle.log(logging.ERROR, "spill", f"spill to {self.spill.path} failed: {exc} "
@@ -555,6 +560,21 @@ class Writer:
             log.warning("drawledger: writer registration failed: %s", exc)
             return False
         return True
+
+    def _write_versions(self, sink: Sink) -> None:
+        """Store the code versions noted so far (kept for the next batch when this fails)."""
+        pending = self.versions[:]
+        write = getattr(sink, "write_versions", None)
+        if write is not None:
+            write(pending)
+        del self.versions[: len(pending)]
+
+    def _spill_versions(self) -> None:
+        """Spill the code versions noted so far with the records (``drawledger ingest``)."""
+        pending = self.versions[:]
+        if pending:
+            self.spill.write([("v", row) for row in pending])
+            del self.versions[: len(pending)]
 
     def spill_items(self, items: list[Item]) -> None:
         """Append records to the spill file and count them; count a failure and raise it."""

@@ -127,11 +127,33 @@ def _verify(args: argparse.Namespace) -> int:
         mc_samples=args.mc_samples, export=args.export, keep_rows=args.export is not None,
         progress=True,
         integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None, engine=args.engine,
-        scheduler=args.scheduler,
+        scheduler=args.scheduler, history=not args.no_history,
     )  # fmt: skip
     if args.json:
         _write_json(args.json, report.to_dict())
     Console(highlight=False).print(report)
+    return EXIT_OK if report.ok else EXIT_FOUND
+
+
+def _versions(args: argparse.Namespace) -> int:
+    """List the code versions of a ledger, or diff two; exit 1 when a stored source does not
+    hash to its identity."""
+    import orjson
+
+    from drawledger.replay import code_versions, version_diff
+
+    if args.diff:
+        report = version_diff(args.ledger, *args.diff, stream=args.stream)
+    else:
+        report = code_versions(args.ledger, stream=args.stream)
+    data = orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n"
+    if args.json == "-":
+        sys.stdout.buffer.write(data)
+    else:
+        if args.json:
+            with open(args.json, "wb") as out:
+                out.write(data)
+        print(report.render())
     return EXIT_OK if report.ok else EXIT_FOUND
 
 
@@ -471,7 +493,25 @@ def build_parser() -> argparse.ArgumentParser:
                    "(default 4096)")  # fmt: skip
     p.add_argument("--mc-samples", type=int, default=2000, metavar="N",
                    help="Monte Carlo runs per decision past the budget (default 2000)")  # fmt: skip
+    p.add_argument("--no-history", action="store_true",
+                   help="do not search the git history of --path directories for the code "
+                   "versions that logged older records (docs/deploys.md)")  # fmt: skip
     _engine_options(p)
+
+    p = add("versions", "list the code versions that made a ledger's decisions, or diff two",
+            "drawledger versions decisions.db --diff v2:1f0c v2:9a7e", _versions)  # fmt: skip
+    p.description = (
+        "List each code version of each decision function in the ledger: its identity, stream,\n"
+        "function, first and last decision and number of decisions; with --diff A B, a unified\n"
+        "diff between the source texts stored for two versions (identities, or unique\n"
+        "beginnings of them). Read from the ledger alone; stored source is never executed.\n"
+        "Exit 1 when a stored source does not hash to the identity its decisions recorded."
+    )
+    p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
+    p.add_argument("--stream", metavar="S", help="only this decision stream")
+    p.add_argument("--diff", nargs=2, metavar=("A", "B"),
+                   help="show a unified diff from version A to version B")  # fmt: skip
+    p.add_argument("--json", metavar="FILE", help="write the result as JSON ('-': stdout)")
 
     p = add("audit", "test statistically that randomization happened as declared",
             "drawledger audit decisions.db --json audit.json", _audit)  # fmt: skip

@@ -5,16 +5,13 @@ from __future__ import annotations
 import atexit
 import contextlib
 import functools
-import hashlib
 import inspect
 import itertools
 import logging
 import operator
 import os
-import textwrap
 import threading
 import time
-import tokenize
 import warnings
 import weakref
 from collections.abc import Callable, Mapping, Sequence
@@ -30,6 +27,7 @@ from drawledger._checks import (
     redact,
     timestamp,
 )
+from drawledger._code import code_hash, function_source, module_file
 from drawledger._probability import decision_propensity
 from drawledger._spill import SpillFile
 from drawledger._writer import FORK_WAIT, Chain, Stats, Writer
@@ -62,17 +60,6 @@ DRAW_KINDS = frozenset(
 REGISTRY: dict[str, Decision[Any]] = {}
 
 _LEDGERS: weakref.WeakSet[Ledger] = weakref.WeakSet()
-
-
-def code_hash(fn: Callable[..., Any]) -> str:
-    """Hash of a function's source text (or of its bytecode when the source is not available)."""
-    try:
-        data = textwrap.dedent(inspect.getsource(fn)).encode()
-    except (OSError, TypeError, SyntaxError, tokenize.TokenError):
-        # No readable source (REPL, exec'd code, a file changed on disk): hash the bytecode.
-        code = fn.__code__
-        data = code.co_code + repr(code.co_consts).encode()
-    return hashlib.blake2b(data, digest_size=16).hexdigest()
 
 
 class Decision(Generic[R]):
@@ -128,6 +115,8 @@ class Decision(Generic[R]):
         self._inputs_what = f"{self.name}: inputs"
         self._action_what = f"{self.name}: action"
         self.code_hash = code_hash(fn)
+        self.source = function_source(fn)  # stored once per version (docs/deploys.md)
+        self.module_file = module_file(fn)
         functools.update_wrapper(self, fn)
         REGISTRY[self.name] = self
 
@@ -271,6 +260,7 @@ class Ledger:
         self._lock = threading.Lock()
         self._ids = itertools.count()
         self._stats = Stats()
+        self._versions: set[Decision[Any]] = set()  # decisions whose code version is noted
         spill = SpillFile(self._spill_dir / f"drawledger-spill-{self.writer}.jsonl")
         self._writer = Writer(
             self._open_sink,
@@ -372,10 +362,19 @@ class Ledger:
             draws[0].value is action or _json_or_none(draws[0].value) == action_json
         )
         prop, kind = decision_propensity(draws, single, _PROB)
+        if decision not in self._versions:
+            self._note_version(decision)
         self._append_decision(
             decision_id, decision.stream, unit, None, decision.name, decision.code_hash,
             inputs, params, action_json, prop, kind, draw.seed.hex(), draws, (action, action_json),
         )  # fmt: skip
+
+    def _note_version(self, decision: Decision[Any]) -> None:
+        """Queue the row of the decision's code version (the first use by this writer)."""
+        self._versions.add(decision)
+        row = (decision.code_hash, decision.stream, decision.name, decision.module_file,
+               decision.source, time.time(), self.writer)  # fmt: skip
+        self._writer.versions.append(row)
 
     def _draw_rows(
         self, did: str, draws: Sequence[DrawRecord], encoded: tuple[Any, str] | None = None

@@ -9,7 +9,13 @@ from drawledger.replay.integrity import IntegrityReport, check_integrity
 from drawledger.replay.propensity import Propensity, action_distribution, propensity
 from drawledger.replay.report import HtmlReport, WhatIf, write_report
 from drawledger.replay.sources import LedgerTables, iter_decision_chunks, read_tables
-from drawledger.replay.verify import VerifyReport, verify
+from drawledger.replay.verify import (
+    VerifyReport,
+    VersionsReport,
+    code_versions,
+    verify,
+    version_diff,
+)
 
 __all__: list[str] = [
     "AuditFigure",
@@ -27,11 +33,13 @@ __all__: list[str] = [
     "Report",
     "SweepReport",
     "VerifyReport",
+    "VersionsReport",
     "WhatIf",
     "action_distribution",
     "audit",
     "audit_tables",
     "check_integrity",
+    "code_versions",
     "estimate",
     "iter_decision_chunks",
     "open",
@@ -40,5 +48,6 @@ __all__: list[str] = [
     "run_demo",
     "sweep",
     "verify",
+    "version_diff",
     "write_report",
 ]

@@ -41,7 +41,7 @@ from drawledger.replay.sources import (
     sql_streams,
     stream_partitions,
 )
-from drawledger.replay.verify import Settings, absolute_paths
+from drawledger.replay.verify import Settings, absolute_paths, plan_versions
 
 if TYPE_CHECKING:
     pass
@@ -125,6 +125,9 @@ def _pass(
         raise ReplayError(f"jobs must be a positive integer, got {q.jobs!r}")
     settings = Settings(path=q.path, allow=q.allow, budget=DEFAULT_BUDGET,
                         mc_samples=DEFAULT_MC_SAMPLES, keep_rows=True)  # fmt: skip
+    # Stored sources, so that a record of another code version is version-not-found as in
+    # verify (estimates do not replay earlier versions from the git history yet).
+    settings = plan_versions(text, q.format, settings, False).settings
     if q.engine == "dask" or is_parquet(text, q.format):
         root = parquet_root(text, q.format if q.engine == "dask" else "parquet", "estimate")
         by_stream = stream_partitions(root)
@@ -207,7 +210,7 @@ def _excluded_warnings(p: Pass) -> list[str]:
     if p.failures.code_changed:
         out.append(f"{p.failures.code_changed} decisions ran under decision code that has "
                    "changed since; they replayed every draw as recorded and are used "
-                   "(code-changed accepted)")  # fmt: skip
+                   "(code-changed or version-not-found accepted)")  # fmt: skip
     if not p.excluded:
         return out
     parts = ", ".join(f"{k}: {v}" for k, v in sorted(p.excluded.items()))

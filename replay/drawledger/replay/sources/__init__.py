@@ -35,17 +35,26 @@ from drawledger.replay.sources._tables import (
     reading,
     rows_frame,
 )
+from drawledger.replay.sources._versions import (
+    VERSION_COLUMNS,
+    VersionUse,
+    decision_versions,
+    read_code_versions,
+)
 
 __all__ = [
     "CHUNK_SIZE",
     "PARALLEL_CHUNK_SIZE",
+    "VERSION_COLUMNS",
     "Follower",
     "Head",
     "LedgerTables",
     "Piece",
     "Registry",
     "Task",
+    "VersionUse",
     "WriterPiece",
+    "decision_versions",
     "is_parquet",
     "iter_chunks",
     "iter_decision_chunks",
@@ -56,6 +65,7 @@ __all__ = [
     "partitions",
     "pieces",
     "plan",
+    "read_code_versions",
     "read_piece",
     "read_piece_frames",
     "read_registry",

@@ -13,20 +13,36 @@ from drawledger.replay.verify._imports import (
 from drawledger.replay.verify._report import VerifyReport
 from drawledger.replay.verify._run import verify
 from drawledger.replay.verify._types import NOT_FAILING, REASONS, Settings, absolute_paths
+from drawledger.replay.verify._versioned import plan_versions
+from drawledger.replay.verify._versions import (
+    CodeVersion,
+    VersionsReport,
+    code_versions,
+    source_matches,
+    unified_diff,
+    version_diff,
+)
 
 __all__ = [
     "BASE_COLUMNS",
     "NOT_FAILING",
     "REASONS",
+    "CodeVersion",
     "Settings",
     "VerifyReport",
+    "VersionsReport",
     "absolute_paths",
+    "code_versions",
     "immutable",
     "import_allowed",
     "load_inputs",
     "load_params",
     "lookup_qualname",
+    "plan_versions",
     "resolve_decision",
+    "source_matches",
+    "unified_diff",
     "verify",
     "verify_chunk",
+    "version_diff",
 ]

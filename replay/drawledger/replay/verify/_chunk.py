@@ -34,6 +34,14 @@ def _category(reasons: Mapping[str, str]) -> int:
     return MISMATCHED if found else VERIFIED
 
 
+def _here(row: Row, settings: Settings) -> bool:
+    """Whether this run replays the row (the others run under their own code version)."""
+    key = (row[DEC.fn], row[DEC.code_hash])
+    if settings.only is not None:
+        return key in settings.only
+    return key not in settings.elsewhere
+
+
 def verify_chunk(
     decisions: Sequence[Row],
     draws: Iterable[Row],
@@ -45,6 +53,8 @@ def verify_chunk(
     ``flagged`` holds the ids among them that the integrity check found in a problem. Pure:
     the result depends only on the arguments (and the decision code they name).
     """
+    if settings.elsewhere or settings.only is not None:
+        decisions = [r for r in decisions if _here(r, settings)]
     by_id: dict[str, list[Row]] = {}
     for d in draws:
         by_id.setdefault(d[DRAW.decision_id], []).append(d)
@@ -68,6 +78,8 @@ def verify_chunk(
         for reason, detail in reasons.items():
             result.by_reason[reason] += 1
             shown = result.examples.setdefault(reason, [])
+            if not shown and reason in checked.short:
+                result.short[reason] = checked.short[reason]
             if len(shown) < MAX_EXAMPLES:
                 shown.append((did, detail))
         prop = checked.propensity

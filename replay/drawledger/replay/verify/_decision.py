@@ -10,6 +10,7 @@ from typing import Any
 
 import orjson
 
+from drawledger._code import same_code
 from drawledger._probability import decision_propensity
 from drawledger._records import (  # the SDK's own JSON encoding, bit for bit
     JSON_OPTIONS,
@@ -35,6 +36,7 @@ from drawledger.replay.propensity import (
     read,
     remembered,
 )
+from drawledger.replay.verify._diff import mismatch, same, version_detail
 from drawledger.replay.verify._imports import (
     build_inputs,
     immutable,
@@ -42,7 +44,7 @@ from drawledger.replay.verify._imports import (
     parse_object,
     resolve_decision,
 )
-from drawledger.replay.verify._types import PROBES, REL_TOL, SHOW, Row, Settings
+from drawledger.replay.verify._types import PROBES, REL_TOL, Row, Settings
 
 OUTSIDE_DRAW = ("likely randomness outside `draw` (the `random` module, a global numpy "
                 "generator), a clock, or state kept between calls")  # fmt: skip
@@ -50,19 +52,6 @@ OUTSIDE_DRAW = ("likely randomness outside `draw` (the `random` module, a global
 
 def _close(a: float, b: float) -> bool:
     return a == b or abs(a - b) <= REL_TOL * max(abs(a), abs(b))
-
-
-def _same(a: Any, b: Any) -> bool:
-    """JSON values equal, numbers within 1e-12 relative."""
-    if isinstance(a, bool) or isinstance(b, bool):
-        return a is b
-    if isinstance(a, (int, float)) and isinstance(b, (int, float)):
-        return _close(float(a), float(b))
-    if isinstance(a, list) and isinstance(b, list):
-        return len(a) == len(b) and all(_same(x, y) for x, y in zip(a, b, strict=True))
-    if isinstance(a, dict) and isinstance(b, dict):
-        return a.keys() == b.keys() and all(_same(a[k], b[k]) for k in a)
-    return bool(a == b)
 
 
 def _parse(text: Any, what: str) -> Any:
@@ -78,7 +67,7 @@ def _json_same(replayed: str, recorded: Any, what: str) -> bool:
     """Replayed JSON text equals the recorded text (floats at 1e-12); corrupt text raises."""
     if replayed == recorded:
         return True
-    return _same(from_json(replayed), _parse(recorded, what))
+    return same(from_json(replayed), _parse(recorded, what))
 
 
 def as_text(x: Any) -> str | None:
@@ -89,10 +78,6 @@ def _number(x: Any, what: str) -> float:
     if isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x):
         raise BadRecordError(f"{what} is {x!r}, not a finite number")
     return float(x)
-
-
-def _short(text: str) -> str:
-    return text if len(text) <= SHOW else text[: SHOW - 3] + "..."
 
 
 def _json(obj: Any, what: str) -> str:
@@ -120,16 +105,24 @@ def _logged(encoded: Sequence[tuple[Any, ...]], action_json: str) -> tuple[float
 class _Checked:
     """Reasons found for one decision, with the first detail of each."""
 
-    __slots__ = ("inputs", "propensity", "reasons")
+    __slots__ = ("inputs", "propensity", "reasons", "short")
 
     def __init__(self) -> None:
         self.reasons: dict[str, str] = {}
+        self.short: dict[str, str] = {}  # the details cut for the terminal, where they differ
         self.propensity: Propensity | None = None
         self.inputs: Mapping[str, Any] = {}
 
     def add(self, reason: str, detail: str) -> None:
         if reason not in self.reasons:
             self.reasons[reason] = detail
+
+    def differ(self, reason: str, label: str, replayed: Any, recorded: Any) -> None:
+        """Add ``reason`` with where the two values differ (``_diff.mismatch``)."""
+        if reason not in self.reasons:
+            self.reasons[reason], short = mismatch(label, replayed, recorded)
+            if short != self.reasons[reason]:
+                self.short[reason] = short
 
 
 class Context:
@@ -142,6 +135,20 @@ class Context:
         self.memo = Memo()
         self.probed: Counter[str] = Counter()  # decisions fully enumerated, by function
         self.multi: set[str] = set()  # functions seen making several draws (never trusted)
+        self.sources = dict(settings.sources)  # stored source by code identity
+        self.missing: dict[tuple[str, str], tuple[str, str]] = {}  # version-not-found details
+
+    def version_not_found(self, recorded: str, decision: Decision[Any]) -> tuple[str, str]:
+        """The detail of a record whose code version was not found: the diff from its stored
+        source to the current code (whole, and its first changed lines for the terminal)."""
+        key = (decision.name, recorded)
+        found = self.missing.get(key)
+        if found is None:
+            found = self.missing[key] = version_detail(
+                decision.name, recorded, self.sources[recorded], decision.code_hash,
+                decision.source,
+            )  # fmt: skip
+        return found
 
     def resolve(self, fn: str) -> Decision[Any]:
         found = self.resolved.get(fn)
@@ -199,7 +206,7 @@ def _draw_rows(rows: list[Row]) -> list[Row]:
 
 def _compare_draws(out: _Checked, replayed: list[tuple[Any, ...]], recorded: list[Row]) -> None:
     if len(replayed) != len(recorded):
-        out.add("draw-count", f"{len(recorded)} draws recorded, {len(replayed)} replayed")
+        out.differ("draw-count", "draws", len(replayed), len(recorded))
     for (kind, name, args, u, value, prob, dens), d in zip(replayed, recorded, strict=False):
         _, idx, r_name, r_kind, r_args, r_u, r_value, r_prob, r_dens = d  # DRAW_COLUMNS
         if (kind == r_kind and args == r_args and u == r_u and value == r_value and prob == r_prob
@@ -207,32 +214,36 @@ def _compare_draws(out: _Checked, replayed: list[tuple[Any, ...]], recorded: lis
             continue  # the usual case: identical to the record
         where = f"draw {idx} ({kind}{'' if name is None else ' ' + repr(name)})"
         if kind != r_kind or name != as_text(r_name):
-            out.add("args", f"{where}: recorded as {r_kind} {as_text(r_name)!r}")
+            out.differ("args", f"{where}: kind and name", {"kind": kind, "name": name},
+                       {"kind": r_kind, "name": as_text(r_name)})  # fmt: skip
         elif not _json_same(args, r_args, f"{where} arguments"):
-            out.add(
-                "args",
-                f"{where}: arguments {_short(args)} replayed, {_short(r_args)} recorded",
-            )
+            out.differ("args", f"{where}: arguments", from_json(args), from_json(r_args))
         if not _json_same(u, r_u, f"{where} uniforms"):
-            out.add("value", f"{where}: uniforms {_short(u)} replayed, {_short(r_u)} recorded")
+            out.differ("value", f"{where}: uniforms", from_json(u), from_json(r_u))
         if not _json_same(value, r_value, f"{where} value"):
-            out.add(
-                "value",
-                f"{where}: value {_short(value)} replayed, {_short(r_value)} recorded",
-            )
+            out.differ("value", f"{where}: value", from_json(value), from_json(r_value))
         if not _close(prob, r_prob) or dens != bool(r_dens):
             what = "density" if dens else "probability"
-            out.add("probability", f"{where}: {what} {prob!r} replayed, {r_prob!r} recorded")
+            if dens != bool(r_dens):
+                what = f"{what} (recorded as {'a density' if r_dens else 'a probability'})"
+            out.differ("probability", f"{where}: {what}", prob, r_prob)
 
 
 def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> None:
     raw = parse_object(row[DEC.inputs], "inputs")
     out.inputs = raw
     decision = ctx.resolve(row[DEC.fn])
-    if decision.code_hash != row[DEC.code_hash]:
-        out.add(
-            "code-changed", f"code hash {row[DEC.code_hash]} recorded, {decision.code_hash} now"
-        )
+    recorded = as_text(row[DEC.code_hash])
+    if not same_code(recorded, decision.fn, decision.code_hash):
+        if recorded is not None and recorded in ctx.sources:
+            detail, short = ctx.version_not_found(recorded, decision)
+            out.add("version-not-found", detail)
+            out.short.setdefault("version-not-found", short)
+        else:
+            out.add(
+                "code-changed",
+                f"code hash {row[DEC.code_hash]} recorded, {decision.code_hash} now",
+            )
     seed = _seed(row[DEC.seed])
     inputs = build_inputs(decision, raw)
     params = ctx.load_params(decision, row[DEC.params])
@@ -254,14 +265,16 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
         action_key = action
     else:
         action_key = to_json(from_json(row[DEC.action]), "action")
-        detail = f"action {_short(action)} replayed, {_short(row[DEC.action])} recorded"
+        out.differ("action", "action", from_json(action), from_json(row[DEC.action]))
         if not records and not draws:
-            detail += f" although no draw was made: {OUTSIDE_DRAW}"
-        out.add("action", detail)
+            note = f" although no draw was made: {OUTSIDE_DRAW}"
+            out.reasons["action"] += note
+            if "action" in out.short:
+                out.short["action"] += note
     prop, kind = _logged(first, action)
     if not _close(prop, logged) or kind != row[DEC.propensity_kind]:
-        recorded = f"{logged!r} ({row[DEC.propensity_kind]})"
-        out.add("probability", f"logged propensity {recorded} recorded, {prop!r} ({kind}) replayed")
+        out.differ("probability", "logged propensity", {"value": prop, "kind": kind},
+                   {"value": logged, "kind": row[DEC.propensity_kind]})  # fmt: skip
     try:
         again = Draw(seed)
         returned = decision.run(again, inputs, params)
@@ -351,21 +364,18 @@ def _check_bucket(out: _Checked, row: Row, draw: Row, unit: str, shares: dict[st
     except DrawArgumentError as exc:
         raise BadRecordError(f"bucket arguments: {exc}") from None
     arm, u, prob, _, _ = next((f for f in found if [f[1]] == recorded_u), found[0])
-    if not isinstance(recorded_u, list) or not _same([u], recorded_u):
-        out.add("value", f"bucket uniform {u!r} recomputed, {_short(draw[DRAW.u])} recorded")
+    if not isinstance(recorded_u, list) or not same([u], recorded_u):
+        out.differ("value", "bucket uniforms", [u], recorded_u)
     if _arm(draw[DRAW.value], "bucket arm") != arm:
-        out.add("value", f"bucket arm {arm!r} recomputed, {_short(draw[DRAW.value])} recorded")
+        out.differ("value", "bucket arm", arm, _arm(draw[DRAW.value], "bucket arm"))
     if not _close(prob, _number(draw[DRAW.prob], "bucket share")):
-        out.add("probability", f"bucket share {prob!r} recomputed, {draw[DRAW.prob]!r} recorded")
+        out.differ("probability", "bucket share", prob, draw[DRAW.prob])
     if not _close(prob, _number(row[DEC.propensity], "logged propensity")):
-        out.add(
-            "probability",
-            f"logged propensity {row[DEC.propensity]!r} recorded, {prob!r} recomputed",
-        )
+        out.differ("probability", "logged propensity", prob, row[DEC.propensity])
     if as_text(row[DEC.unit]) != unit:
         out.add("args", f"bucket unit {unit!r} in the draw, {row[DEC.unit]!r} on the decision")
     if _arm(row[DEC.action], "action") != arm:
-        out.add("action", f"action {_short(row[DEC.action])} recorded, arm {arm!r} recomputed")
+        out.differ("action", "action (the arm)", arm, _arm(row[DEC.action], "action"))
     out.propensity = Propensity(prob, EXACT)
 
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import io
 import os
 from collections import Counter
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 import pandas as pd
@@ -34,6 +34,9 @@ class VerifyReport:
     methods: dict[str, int]
     integrity: IntegrityReport
     rows: pd.DataFrame
+    short: dict[str, str] = field(default_factory=dict)  # first examples cut for the terminal
+    # Each code version recorded: stream, fn, identity, decisions, replayed_under.
+    versions: list[dict[str, Any]] = field(default_factory=list)
 
     @property
     def ok(self) -> bool:
@@ -56,6 +59,7 @@ class VerifyReport:
             },
             "by_stream": self.by_stream,
             "propensity_methods": dict(self.methods),
+            "versions": self.versions,
         }
 
     def __rich__(self) -> Any:
@@ -80,9 +84,24 @@ class VerifyReport:
             for reason in sorted(self.by_reason, key=REASONS.index):
                 examples = self.examples.get(reason, [])
                 ids = ", ".join(d for d, _ in examples)
-                first = Text("\n").join([shown(ids), shown(examples[0][1])]) if examples else ""
+                first = (
+                    Text("\n").join([shown(ids), shown(self.short.get(reason, examples[0][1]))])
+                    if examples
+                    else ""
+                )
                 reasons.add_row(reason, str(self.by_reason[reason]), first)
             parts.append(reasons)
+        if len(self.versions) > 1 or any(
+            v["replayed_under"] != "current code" for v in self.versions
+        ):
+            versions = Table(title="code versions", title_justify="left")
+            for name in ("stream", "function", "identity", "decisions", "replayed under"):
+                versions.add_column(name, justify="right" if name == "decisions" else "left",
+                                    overflow="fold")  # fmt: skip
+            for v in self.versions:  # Text: what a ledger holds is never read as markup
+                versions.add_row(*(Text(str(v[k])) for k in ("stream", "fn", "identity",
+                                   "decisions", "replayed_under")))  # fmt: skip
+            parts.append(versions)
         parts.append(Text(self.integrity.render()))
         verdict = "verify passed" if self.ok else "verify FAILED"
         parts.append(Text(verdict, style="bold green" if self.ok else "bold red"))
@@ -140,6 +159,7 @@ def build_report(
         methods=dict(total.methods),
         integrity=integrity,
         rows=rows,
+        short=dict(total.short),
     )
 
 

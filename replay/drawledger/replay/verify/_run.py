@@ -5,7 +5,7 @@ and a combine step, so that chunks can run in other processes (``jobs``) or on a
 cluster. Reasons a decision is not verified (docs/replay.md):
 
 - mismatched (it replayed, something differs): value, probability, args, draw-count, action,
-  nondeterministic, code-changed, integrity;
+  nondeterministic, code-changed, version-not-found, integrity;
 - unreplayable (it could not be replayed): missing-function, not-a-decision, bad-record,
   replay-error, declared (a draw recorded by other code; ``drawledger audit`` checks those).
 """
@@ -30,6 +30,7 @@ from drawledger.replay.verify import _export
 from drawledger.replay.verify._chunk import verify_chunk
 from drawledger.replay.verify._report import VerifyReport, build_report, rows_with_outcomes
 from drawledger.replay.verify._types import ChunkResult, Settings, absolute_paths
+from drawledger.replay.verify._versioned import plan_versions, replay_revisions
 
 
 def _verify_task(task: Task, flagged: AbstractSet[str], settings: Settings) -> ChunkResult | None:
@@ -86,6 +87,7 @@ def verify(
     engine: str = "local",
     scheduler: str | None = None,
     chunk_size: int = CHUNK_SIZE,
+    history: bool = True,
 ) -> VerifyReport:
     """Replay every decision of a ledger and check its integrity.
 
@@ -97,7 +99,11 @@ def verify(
     enumeration, else ``mc_samples`` Monte Carlo runs). ``jobs`` > 1 replays chunks in that
     many processes. ``export`` writes one row per decision (``.csv`` or ``.parquet``);
     ``keep_rows=False`` (without ``export``) keeps memory bounded on huge ledgers.
-    ``progress`` shows a progress bar when stderr is a terminal.
+    ``progress`` shows a progress bar when stderr is a terminal. Records of another code
+    version than the current one are replayed under their own version when ``history`` is on,
+    a ``path`` directory lies in a git work tree, and its history holds that version (local
+    engine; docs/deploys.md); else they are ``version-not-found`` (with the diff from the
+    stored source) or, without a stored source, ``code-changed``.
     """
     if engine not in ("local", "dask"):
         raise ValueError(f"engine must be 'local' or 'dask', got {engine!r}")
@@ -120,12 +126,17 @@ def verify(
     if engine == "dask":  # the workers may run elsewhere: absolute paths, a Parquet ledger
         ledger, format, size = parquet_root(ledger, format, "verify"), "parquet", chunk_size
         settings = absolute_paths(settings)
+    versions = plan_versions(ledger, format, settings, history and engine == "local")
     with open_engine(engine, jobs=jobs, scheduler=scheduler, progress=progress,
                      command="verify") as runner:  # fmt: skip
         total, integrity = verify_on(runner, ledger, format=format, integrity_key=integrity_key,
-                                     settings=settings, size=size)  # fmt: skip
+                                     settings=versions.settings, size=size)  # fmt: skip
+    flagged = frozenset(integrity.decision_ids)
+    for part in replay_revisions(versions, ledger, format, size, flagged):
+        total.add(part)
     rows = rows_with_outcomes(total.rows, ledger, format) if settings.keep_rows else pd.DataFrame()
     report = build_report(total, integrity, rows)
+    report.versions = versions.versions
     if export is not None:
         _export.write_export(rows, export)
     return report

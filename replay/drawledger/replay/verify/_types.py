@@ -22,6 +22,7 @@ REASONS = (
     "action",
     "nondeterministic",
     "code-changed",
+    "version-not-found",
     "integrity",
     "missing-function",
     "not-a-decision",
@@ -67,6 +68,11 @@ class Settings:
     budget: int = DEFAULT_BUDGET
     mc_samples: int = DEFAULT_MC_SAMPLES
     keep_rows: bool = True
+    # Code versions (docs/deploys.md): stored source by identity; the (fn, identity) pairs
+    # replayed in a process of their own (left out here); or only these pairs (that process).
+    sources: tuple[tuple[str, str], ...] = ()
+    elsewhere: frozenset[tuple[str, str]] = frozenset()
+    only: frozenset[tuple[str, str]] | None = None
 
 
 @dataclass
@@ -79,8 +85,13 @@ class ChunkResult:
     examples: dict[str, list[tuple[str, str]]] = field(default_factory=dict)
     methods: Counter[str] = field(default_factory=Counter)
     rows: list[pd.DataFrame] = field(default_factory=list)
+    # The first example of each reason cut for the terminal (when its detail is long).
+    short: dict[str, str] = field(default_factory=dict)
 
     def add(self, other: ChunkResult) -> None:
+        for reason, text in other.short.items():
+            if not self.examples.get(reason):
+                self.short.setdefault(reason, text)
         for stream, found in other.stream_reasons.items():
             self.stream_reasons.setdefault(stream, Counter()).update(found)
         for stream, counts in other.streams.items():
