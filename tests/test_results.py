@@ -146,6 +146,21 @@ def test_every_report_satisfies_the_protocol(reports, name):
     assert report._repr_html_().startswith("<table><caption>")
 
 
+def test_estimate_on_an_80_column_terminal_shows_every_digit_and_plain_names(reports):
+    """The estimate's tables fit an 80-column terminal: no value cut to an ellipsis; the
+    difference is named as target minus the logging policy and the intervals in plain words."""
+    report = reports["estimate"]
+    console = Console(file=io.StringIO(), width=80, color_system=None)
+    console.print(report)
+    out = console.file.getvalue()
+    assert "…" not in out
+    snips = report.results["snips"]
+    assert f"[{snips.low:.4f}, {snips.high:.4f}]" in out
+    assert f"{report.differences['snips'].value:.4f}" in out
+    assert "difference: target minus logging policy" in out
+    assert "normal-approximation (CLT) 95% intervals" in " ".join(out.split())
+
+
 def test_the_protocol_check_can_fail():
     assert not isinstance(object(), Report)
 

@@ -43,10 +43,16 @@ def _span(e: Mapping[str, float | None]) -> str:
     return f"[{_fmt(e['low'])}, {_fmt(e['high'])}]"
 
 
+INTERVAL_NAMES = {"clt": "normal-approximation (CLT)", "bootstrap": "bootstrap",
+                  "bernstein": "empirical Bernstein"}  # fmt: skip
+
+
 def _intervals(settings: Mapping[str, Any]) -> str:
-    """The intervals' label ("95% clt intervals"). A Bernstein interval's guarantee needs a
-    reward range fixed in advance (Maurer & Pontil 2009): the label says which range it used."""
-    text = f"{settings['level']:.0%} {settings['interval']} intervals"
+    """The intervals' label ("normal-approximation (CLT) 95% intervals"). A Bernstein interval's
+    guarantee needs a reward range fixed in advance (Maurer & Pontil 2009): the label says which
+    range it used."""
+    kind = settings["interval"]
+    text = f"{INTERVAL_NAMES.get(kind, kind)} {settings['level']:.0%} intervals"
     if settings["interval"] != "bernstein":
         return text
     if settings.get("reward_range_source") == "given":
@@ -176,15 +182,16 @@ class EstimateReport:
     def _repr_html_(self) -> str:
         """The estimates and differences as an HTML table, then the warnings (notebooks)."""
         s = self.settings
-        caption = (f"{_policy_text(self.target)} on {self.target.get('stream')} (diff: minus "
-                   f"{_policy_text(self.baseline)}), {self.n} verified records, "
-                   f"{_intervals(s)}")  # fmt: skip
+        base = _policy_text(self.baseline)
+        caption = (f"{_policy_text(self.target)} on {self.target.get('stream')}, {self.n} "
+                   f"verified records, {_intervals(s)}; "
+                   f"difference: target minus {base}")  # fmt: skip
         diffs = self.differences
         rows = [(name, e.value, e.low, e.high, e.outer_low, e.outer_high, diffs[name].value,
                  diffs[name].low, diffs[name].high)
                 for name, e in self.results.items()]  # fmt: skip
-        head = ("estimator", "value", "low", "high", "outer low", "outer high", "diff",
-                "diff low", "diff high")  # fmt: skip
+        head = ("estimator", "value", "low", "high", "outer low", "outer high",
+                f"difference vs {base}", "difference low", "difference high")  # fmt: skip
         table = html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
         return _html_alerts(self.alerts) + table
 
@@ -192,16 +199,22 @@ class EstimateReport:
         from rich.box import SIMPLE
         from rich.table import Table
 
-        t = Table(title=shown(f"{_policy_text(self.target)} (diff: minus "
-                  f"{_policy_text(self.baseline)}), {self.n} verified records, "
+        # Two narrow tables rather than one wide one: an 80-column terminal shows every digit.
+        t = Table(title=shown(f"{_policy_text(self.target)}: {self.n} verified records, "
                   f"{_intervals(self.settings)}"), title_justify="left", box=SIMPLE)  # fmt: skip
-        for col in ("estimator", "value", "interval", "outer band", "diff", "interval"):
+        for col in ("estimator", "value", "interval", "outer band"):
             t.add_column(col, justify="left" if col == "estimator" else "right", no_wrap=True)
+        base = _policy_text(self.baseline)
+        d = Table(title=shown(f"difference: target minus {base}"),
+                  title_justify="left", box=SIMPLE)  # fmt: skip
+        for col in ("estimator", "difference", "difference interval"):
+            d.add_column(col, justify="left" if col == "estimator" else "right", no_wrap=True)
         for name, e in self.estimates.items():
-            d = self.difference[name]
+            diff = self.difference[name]
             outer = _span({"low": e.get("outer_low"), "high": e.get("outer_high")}) \
                 if name == "clipped" else ""  # fmt: skip
-            t.add_row(name, _fmt(e["value"]), _span(e), outer, _fmt(d["value"]), _span(d))
+            t.add_row(name, _fmt(e["value"]), _span(e), outer)
+            d.add_row(name, _fmt(diff["value"]), _span(diff))
         g = Table(title="diagnostics", title_justify="left", box=SIMPLE)
         g.add_column("measure")
         g.add_column("value", justify="right")
@@ -218,7 +231,7 @@ class EstimateReport:
         filled = _filled(self.missing_rewards)
         if filled:
             g.add_row(*filled)
-        out: list[Any] = [t, g]
+        out: list[Any] = [t, d, g]
         if self.segments is not None:
             s = Table(title=shown(f"segments by {self.segments['by']}"), title_justify="left",
                       box=SIMPLE)  # fmt: skip
