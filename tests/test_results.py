@@ -127,6 +127,19 @@ def test_audit_frame_has_one_row_per_test(reports):
     assert {ODD} == set(frame["stream"])
 
 
+def test_integrity_frame_has_one_row_per_kind_of_problem(reports):
+    frame = reports["integrity"].to_frame()
+    assert ["gaps", "broken_links", "duplicates", "bad_hashes", "orphan_draws",
+            "orphan_outcomes"] == list(frame.index)  # fmt: skip
+    assert [0] * 6 == list(frame["count"])
+    assert [True] * 5 + [False] == list(frame["fails_check"])
+
+
+@pytest.mark.parametrize("name", ["verify", "audit", "estimate", "sweep", "integrity"])
+def test_every_report_has_a_frame(reports, name):
+    assert isinstance(reports[name].to_frame(), pd.DataFrame)
+
+
 def test_verify_frame_is_one_row_per_decision(reports):
     frame = reports["verify"].to_frame()
     assert isinstance(frame, pd.DataFrame)
