@@ -207,6 +207,9 @@ def test_report_replaces_an_existing_file_whole(demo_run: Any, tmp_path: Path) -
     assert {"ok", "html", "verify", "audit", "whatifs", "refused"} == set(d)
     assert str(html) == d["html"]
     assert result.render().startswith(f"wrote {html}:")
+    table = result._repr_html_()  # what a notebook shows
+    assert table.startswith(f"<table><caption>wrote {html} (passed)</caption>")
+    assert f"{demo_run.verification.verified} of {demo_run.verification.decisions}" in table
 
 
 def test_report_refuses_a_target_without_a_reward(demo_run: Any, tmp_path: Path) -> None:
