@@ -257,3 +257,26 @@ def test_terminal_output_writes_markup_and_escapes_as_text(
     report = _hostile(reports, name, "[/]price[eur]\x1b[2J\u202e[link=x]y")
     out = report.render()
     assert r"[/]price[eur]\x1b[2J\u202e[link=x]y" in out
+
+
+def test_sweep_figure_keeps_ips_visible_and_names_the_reward(reports):
+    """IPS and clipped IPS coincide when clipping cuts nothing: they get different line styles
+    and markers and IPS is drawn last (on top); the y axis names the reward; the legend sits
+    outside the curves."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    fig = reports["sweep"].figure()
+    (ax,) = fig.axes
+    curves = {line.get_label(): line for line in ax.lines}
+    ips, clipped = curves["ips"], curves["clipped"]
+    assert (ips.get_linestyle(), ips.get_marker()) != (clipped.get_linestyle(),
+                                                       clipped.get_marker())  # fmt: skip
+    estimators = [line.get_label() for line in ax.lines if line.get_label() in curves
+                  and line.get_label() != "logging policy"]  # fmt: skip
+    assert "ips" == estimators[-1]
+    assert "estimated mean checkout" == ax.get_ylabel()
+    FigureCanvasAgg(fig)
+    fig.canvas.draw()
+    renderer = fig.canvas.get_renderer()
+    legend = ax.get_legend().get_window_extent(renderer)
+    assert not legend.overlaps(ax.get_window_extent(renderer))
