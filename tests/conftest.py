@@ -76,16 +76,25 @@ def demo_run(tmp_path_factory: pytest.TempPathFactory) -> Any:
 ROOT = TESTS.parent
 
 
+def file_blocks(text: str) -> list[tuple[str, str]]:
+    """The file blocks of a Markdown page: (file name, content) of each ```python title="..."."""
+    found = re.findall(r'^```python title="([^"/\\]+)"\n(.*?)^```$', text, flags=re.S | re.M)
+    return [(name, body) for name, body in found]
+
+
 @pytest.fixture
 def run_markdown(tmp_path: Path) -> Callable[..., subprocess.CompletedProcess[str]]:
     """Run the ```python blocks of a Markdown page, in order, as one script in a new interpreter.
 
-    The script runs in ``tmp_path`` (so files it writes land there); returns the finished
-    process, whose exit code and output the test checks.
+    A file block, ```python title="name.py"```, is not run: it is saved as ``name.py`` first,
+    for the other blocks to import. The script runs in ``tmp_path`` (so files it writes land
+    there); returns the finished process, whose exit code and output the test checks.
     """
 
     def run(page: str | Path, timeout: float = 120) -> subprocess.CompletedProcess[str]:
         text = (ROOT / page).read_text(encoding="utf-8")
+        for name, body in file_blocks(text):
+            (tmp_path / name).write_text(body, encoding="utf-8")
         blocks = re.findall(r"^```python\n(.*?)^```$", text, flags=re.S | re.M)
         assert blocks, f"{page} has no python blocks"
         script = tmp_path / (Path(page).stem + "_blocks.py")

@@ -438,6 +438,13 @@ def test_terminal_rendering_names_streams_tests_and_verdicts() -> None:
     assert "No draws to audit" in str(empty)
 
 
+def test_terminal_rendering_spells_out_pit() -> None:
+    """Plain text that lists PIT tests says once what PIT stands for."""
+    report = audit_tables(*synth.categorical(rng(13), 3000, [0.6, 0.3, 0.1], [0.6, 0.3, 0.1]))
+    assert any(t.test.startswith("pit") for t in report.tests)
+    assert 1 == " ".join(str(report).split()).count("probability integral transform (PIT)")
+
+
 # -- bad input ---------------------------------------------------------------------------------
 def test_unreadable_ledgers_raise_ledger_error(tmp_path: Path) -> None:
     """A missing file or a file that is not a ledger gives a LedgerError naming it."""

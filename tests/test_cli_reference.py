@@ -27,3 +27,25 @@ def test_every_command_is_documented() -> None:
     text = gen_cli_reference.DOC.read_text(encoding="utf-8")
     for name in gen_cli_reference.subcommands(build_parser()):
         assert f"## drawledger {name}\n" in text
+
+
+def test_replay_page_maps_every_option_to_its_python_keyword() -> None:
+    """docs/replay.md's table of command-line options and Python keywords names every option of
+    verify, estimate and report, and every keyword it names is a parameter of those functions."""
+    import inspect
+    import re
+
+    import drawledger.replay as replay
+
+    page = (gen_cli_reference.DOC.parent / "replay.md").read_text(encoding="utf-8")
+    section = page.split("## Command line and Python", 1)[1].split("\n## ", 1)[0]
+    subs = gen_cli_reference.subcommands(build_parser())
+    for name in ("verify", "estimate", "report"):
+        for action in subs[name]._actions:
+            for option in action.option_strings:
+                if option.startswith("--") and option != "--help":
+                    assert f"`{option}" in section, f"{name} {option}"
+    functions = (replay.verify, replay.estimate, replay.sweep, replay.write_report, replay.open)
+    keywords = {p for f in functions for p in inspect.signature(f).parameters}
+    named = set(re.findall(r"`(?:[a-z_]+\([^`]*?)?\b([a-z_]+)=", section))
+    assert set() == named - keywords

@@ -157,6 +157,16 @@ def test_demo_result_carries_every_report(demo_run: object) -> None:
     assert {"simulate", "verify", "audit", "estimate", "sweep", "report"} == set(d["seconds"])
 
 
+def test_demo_result_shows_in_a_notebook_with_the_true_value(demo_run: object) -> None:
+    """A notebook shows the demo as a table of the temperature estimates, the true value in its
+    caption."""
+    table = demo_run._repr_html_()  # type: ignore[attr-defined]
+    truth = demo_run.truth["temperature"]  # type: ignore[attr-defined]
+    assert table.startswith("<table><caption>drawledger demo, 300 sessions")
+    assert f"true checkout rate {truth:.3f}" in table
+    assert 4 == table.count("<tr><td>")
+
+
 def test_demo_replaces_its_previous_ledger(tmp_path: Path) -> None:
     """A demo into a directory that holds a previous demo ledger starts a fresh one."""
     _simulate(tmp_path / "decisions.db", 60, seed=1, progress=False)

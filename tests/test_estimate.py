@@ -53,7 +53,7 @@ def cards_rows(cards: Path) -> Any:
 def _numpy_weights(rows: Any, temperature: float) -> tuple[np.ndarray, np.ndarray]:
     """Target / logging probability of each logged card, from scipy.special.softmax."""
     seg = rows["input.ctx.segment"].map(shop.SEGMENTS.index).to_numpy()
-    card = rows["action"].map(lambda a: shop.CARDS.index(orjson.loads(a))).to_numpy()
+    card = rows["action"].map(shop.CARDS.index).to_numpy()
     target = scipy.special.softmax(shop.SCORES / temperature, axis=1)[seg, card]
     logging = scipy.special.softmax(shop.SCORES / 0.7, axis=1)[seg, card]
     return target / logging, rows["checkout"].to_numpy(dtype=float)
@@ -131,7 +131,7 @@ def test_callable_target_gives_the_probability_of_each_logged_action(cards, card
     """best_card puts probability 1 on the best-scored card: weight 1 / mu(best) there."""
     report = estimate(cards, reward="checkout", target="estimate_shop:best_card")
     seg = cards_rows["input.ctx.segment"].map(shop.SEGMENTS.index).to_numpy()
-    card = cards_rows["action"].map(lambda a: shop.CARDS.index(orjson.loads(a))).to_numpy()
+    card = cards_rows["action"].map(shop.CARDS.index).to_numpy()
     mu = scipy.special.softmax(shop.SCORES / 0.7, axis=1)
     best = shop.SCORES.argmax(axis=1)
     expected = np.where(card == best[seg], 1.0 / mu[seg, best[seg]], 0.0)
@@ -703,7 +703,7 @@ def test_several_draws_are_enumerated_for_the_target(tmp_path):
     report = estimate(path, reward="checkout", overrides={"explore": 0.5})
     rows = verify(path).rows
     seg = rows["input.ctx.segment"].map(shop.SEGMENTS.index).to_numpy()
-    card = rows["action"].map(lambda a: shop.CARDS.index(orjson.loads(a))).to_numpy()
+    card = rows["action"].map(shop.CARDS.index).to_numpy()
     best = shop.SCORES.argmax(axis=1)[seg] == card
     expected = (0.5 / 6 + 0.5 * best) / (0.2 / 6 + 0.8 * best)
     np.testing.assert_allclose(report.weights, expected, rtol=1e-12)

@@ -141,3 +141,36 @@ def test_faulty_legacy_draws_fail_the_audit(tmp_path: Path) -> None:
     result = json.loads((tmp_path / "audit.json").read_text())
     alarmed = {t["stream"] for t in result["tests"] if t["alarm"]}
     assert {"slot-discount"} == alarmed
+
+
+NOTEBOOK = EXAMPLES / "analyst.ipynb"
+
+
+def test_analyst_notebook_is_what_its_generator_writes(tmp_path: Path) -> None:
+    """examples/analyst.ipynb is reproducible from examples/make_analyst_notebook.py (no
+    outputs stored)."""
+    out = tmp_path / "analyst.ipynb"
+    done = run(sys.executable, EXAMPLES / "make_analyst_notebook.py", out)
+    assert 0 == done.returncode, done.stderr
+    assert NOTEBOOK.read_text(encoding="utf-8") == out.read_text(encoding="utf-8")
+
+
+def test_analyst_notebook_runs_in_a_kernel(tmp_path: Path) -> None:
+    """Every cell of the notebook runs in a Jupyter kernel without network: the reports show
+    as HTML tables, the sweep as a picture, and the true value is printed."""
+    nbformat = pytest.importorskip("nbformat")
+    nbclient = pytest.importorskip("nbclient")
+    nb = nbformat.read(NOTEBOOK, as_version=4)
+    client = nbclient.NotebookClient(nb, timeout=600, kernel_name="python3",
+                                     resources={"metadata": {"path": str(tmp_path)}})  # fmt: skip
+    client.execute()
+    outputs = [o for c in nb.cells if c.cell_type == "code" for o in c.outputs]
+    assert [] == [o for o in outputs if o.output_type == "error"]
+    shown = [o.get("data", {}) for o in outputs if o.output_type == "execute_result"]
+    tables = [d["text/html"] for d in shown if "text/html" in d]
+    assert any("verify passed" in t for t in tables)
+    assert any("difference vs logging policy" in t for t in tables)
+    assert any("image/png" in d for d in shown)
+    printed = "".join(o.get("text", "") for o in outputs if o.output_type == "stream")
+    assert "true checkout rate at temperature 0.3 (the simulator): " in printed
+    assert (tmp_path / "analyst-demo" / "decisions.db").is_file()

@@ -207,6 +207,9 @@ def test_report_replaces_an_existing_file_whole(demo_run: Any, tmp_path: Path) -
     assert {"ok", "html", "verify", "audit", "whatifs", "refused"} == set(d)
     assert str(html) == d["html"]
     assert result.render().startswith(f"wrote {html}:")
+    table = result._repr_html_()  # what a notebook shows
+    assert table.startswith(f"<table><caption>wrote {html} (passed)</caption>")
+    assert f"{demo_run.verification.verified} of {demo_run.verification.decisions}" in table
 
 
 def test_report_refuses_a_target_without_a_reward(demo_run: Any, tmp_path: Path) -> None:
@@ -400,3 +403,69 @@ def test_names_and_text_on_the_page_hold_no_control_characters_or_markup(text: s
     for out in (str(_format.name(text)), str(escape(_format.plain(text)))):
         assert [] == [c for c in out if unicodedata.category(c) in {"Cc", "Cf", "Cs", "Zl", "Zp"}]
         assert "<script>" not in out
+
+
+# -- figures and words a reader sees ---------------------------------------------------------------
+def _boxes(fig: Any) -> list[tuple[Any, Any, list[Any]]]:
+    """For each axes with a legend: the axes' box, the legend's box and the boxes of what the
+    axes draw (bars, lines, bands), in display pixels from the figure's own renderer."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    FigureCanvasAgg(fig)
+    fig.canvas.draw()
+    renderer = fig.canvas.get_renderer()
+    out = []
+    for ax in fig.axes:
+        legend = ax.get_legend()
+        if legend is None:
+            continue
+        drawn = [a.get_window_extent(renderer) for a in (*ax.patches, *ax.lines, *ax.collections)]
+        out.append((ax.get_window_extent(renderer), legend.get_window_extent(renderer), drawn))
+    return out
+
+
+def test_legends_never_cover_bars_or_curves_and_stay_beside_their_axes(demo_run: Any) -> None:
+    """In every "observed vs declared" chart, the forest plot and the sweep of the demo, the
+    legend's box (from matplotlib's renderer) overlaps nothing the axes draw, and lies within
+    30 pixels of its axes (not floating far below)."""
+    from drawledger.replay.audit import AuditFigure
+    from drawledger.replay.report._figures import audit_chart, estimate_chart, sweep_chart
+
+    edges = demo_run.audit.bin_edges
+    figures = [audit_chart(f, edges) for f in demo_run.audit.figures if f.options]
+    assert figures, "the demo has draws with options"
+    # Even options: every bar as tall as the others, no free corner for a legend inside.
+    even = AuditFigure("tip-prompt", "tip", "categorical", 400, (20,) * 20, (), ('"no"', '"yes"'),
+                       (200.0, 200.0), (200.0, 200.0))  # fmt: skip
+    figures.append(audit_chart(even, edges))
+    figures += [estimate_chart(demo_run.temperature, demo_run.truth["temperature"]),
+                sweep_chart(demo_run.delay, demo_run.truth["delay"])]  # fmt: skip
+    checked = 0
+    for fig in figures:
+        for axes, legend, drawn in _boxes(fig):
+            assert [] == [box for box in drawn if legend.overlaps(box)]
+            assert legend.overlaps(axes.padded(30))
+            checked += 1
+    assert len(figures) == checked
+
+
+def test_forest_plot_has_a_title_naming_reward_and_target(demo_run: Any) -> None:
+    from drawledger.replay.report._figures import estimate_chart
+
+    (ax,) = estimate_chart(demo_run.temperature, None).axes
+    assert "estimated mean checkout under recipe-card with temperature = 0.3" == ax.get_title(
+        loc="left"
+    )
+
+
+def test_report_words_stand_alone(demo_html: str) -> None:
+    """Differences and intervals are named in plain words, PIT is spelled out, and the page
+    explains when not to trust an estimate instead of pointing at files it does not ship."""
+    text = " ".join(re.sub(r"<[^>]+>", " ", demo_html).split())
+    assert "difference vs logging" in text and "difference interval" in text
+    assert "minus logging" not in text
+    assert "normal-approximation (CLT) 95% intervals" in text
+    assert "clt intervals" not in text
+    assert "PIT is the probability integral transform" in text
+    assert "docs/" not in text
+    assert "effective sample size is small" in text

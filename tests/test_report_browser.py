@@ -128,11 +128,24 @@ def test_report_prints(browser: Any, demo_run: Any) -> None:
     assert [] == [e for e in browser.get_log("browser") if e["level"] == "SEVERE"]
 
 
-def test_screenshot(browser: Any, demo_run: Any, tmp_path: Path) -> None:
-    """A full-page screenshot at laptop width; docs/report-screenshot.png is refreshed on demand."""
-    _open(browser, Path(demo_run.report), 1280, 900)
+@pytest.mark.parametrize("width", [1280, 800])
+def test_screenshot(browser: Any, demo_run: Any, tmp_path: Path, width: int) -> None:
+    """A full-page screenshot at laptop width and at 800 px; at both, no figure reaches past
+    the page's width and nothing scrolls sideways. docs/report-screenshot.png (1280 px) is
+    refreshed on demand."""
+    _open(browser, Path(demo_run.report), width, 900)
     height = browser.execute_script("return document.documentElement.scrollHeight")
-    browser.set_window_size(1280, height + 120)
-    target = SCREENSHOT if os.environ.get("DRAWLEDGER_UPDATE_SCREENSHOT") else tmp_path / "shot.png"
+    browser.set_window_size(width, height + 120)
+    page = browser.execute_script("return document.documentElement.clientWidth")
+    rights = browser.execute_script(
+        "return Array.from(document.images).map(i => [i.alt, i.getBoundingClientRect().right])"
+    )
+    assert [] == [alt for alt, right in rights if right > page + 0.5]
+    overflow = browser.execute_script(
+        "return document.documentElement.scrollWidth - document.documentElement.clientWidth"
+    )
+    assert 0 >= overflow
+    update = os.environ.get("DRAWLEDGER_UPDATE_SCREENSHOT") and width == 1280
+    target = SCREENSHOT if update else tmp_path / f"shot-{width}.png"
     assert browser.save_screenshot(str(target))
     assert target.stat().st_size > 10_000

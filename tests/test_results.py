@@ -127,6 +127,20 @@ def test_audit_frame_has_one_row_per_test(reports):
     assert {ODD} == set(frame["stream"])
 
 
+def test_integrity_frame_has_one_row_per_kind_of_problem(reports):
+    frame = reports["integrity"].to_frame()
+    assert ["gaps", "broken_links", "duplicates", "bad_hashes", "orphan_draws",
+            "orphan_outcomes", "bad_records", "missing_writers", "unregistered_writers",
+            "foreign_chains", "bad_registry"] == list(frame.index)  # fmt: skip
+    assert [0] * 11 == list(frame["count"])
+    assert [True] * 5 + [False] + [True] * 5 == list(frame["fails_check"])
+
+
+@pytest.mark.parametrize("name", ["verify", "audit", "estimate", "sweep", "integrity"])
+def test_every_report_has_a_frame(reports, name):
+    assert isinstance(reports[name].to_frame(), pd.DataFrame)
+
+
 def test_verify_frame_is_one_row_per_decision(reports):
     frame = reports["verify"].to_frame()
     assert isinstance(frame, pd.DataFrame)
@@ -144,6 +158,21 @@ def test_every_report_satisfies_the_protocol(reports, name):
     console.print(report)
     assert console.file.getvalue().strip()
     assert report._repr_html_().startswith("<table><caption>")
+
+
+def test_estimate_on_an_80_column_terminal_shows_every_digit_and_plain_names(reports):
+    """The estimate's tables fit an 80-column terminal: no value cut to an ellipsis; the
+    difference is named as target minus the logging policy and the intervals in plain words."""
+    report = reports["estimate"]
+    console = Console(file=io.StringIO(), width=80, color_system=None)
+    console.print(report)
+    out = console.file.getvalue()
+    assert "…" not in out
+    snips = report.results["snips"]
+    assert f"[{snips.low:.4f}, {snips.high:.4f}]" in out
+    assert f"{report.differences['snips'].value:.4f}" in out
+    assert "difference: target minus logging policy" in out
+    assert "normal-approximation (CLT) 95% intervals" in " ".join(out.split())
 
 
 def test_the_protocol_check_can_fail():
@@ -229,3 +258,26 @@ def test_terminal_output_writes_markup_and_escapes_as_text(
     report = _hostile(reports, name, "[/]price[eur]\x1b[2J\u202e[link=x]y")
     out = report.render()
     assert r"[/]price[eur]\x1b[2J\u202e[link=x]y" in out
+
+
+def test_sweep_figure_keeps_ips_visible_and_names_the_reward(reports):
+    """IPS and clipped IPS coincide when clipping cuts nothing: they get different line styles
+    and markers and IPS is drawn last (on top); the y axis names the reward; the legend sits
+    outside the curves."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    fig = reports["sweep"].figure()
+    (ax,) = fig.axes
+    curves = {line.get_label(): line for line in ax.lines}
+    ips, clipped = curves["ips"], curves["clipped"]
+    assert (ips.get_linestyle(), ips.get_marker()) != (clipped.get_linestyle(),
+                                                       clipped.get_marker())  # fmt: skip
+    estimators = [line.get_label() for line in ax.lines if line.get_label() in curves
+                  and line.get_label() != "logging policy"]  # fmt: skip
+    assert "ips" == estimators[-1]
+    assert "estimated mean checkout" == ax.get_ylabel()
+    FigureCanvasAgg(fig)
+    fig.canvas.draw()
+    renderer = fig.canvas.get_renderer()
+    legend = ax.get_legend().get_window_extent(renderer)
+    assert not legend.overlaps(ax.get_window_extent(renderer))

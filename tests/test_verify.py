@@ -167,7 +167,7 @@ def test_epsilon_greedy_exported_propensity_is_analytic(ledger_path: Path) -> No
     eps, k = 0.25, 6
     for i in range(30):
         ctx = sd.context(i)
-        greedy = to_json(ctx.cards[ctx.scores.index(max(ctx.scores))], "card")
+        greedy = ctx.cards[ctx.scores.index(max(ctx.scores))]
         row = rows[rows["decision_id"] == f"explore-{i}"].iloc[0]
         expected = (1 - eps) + eps / k if row["action"] == greedy else eps / k
         assert pytest.approx(expected, rel=1e-12) == row["propensity"]
@@ -186,7 +186,7 @@ def test_plackett_luce_slate_exported_propensity(ledger_path: Path) -> None:
         ctx = sd.context(i)
         w = dict(zip(ctx.cards, ctx.scores, strict=True))
         total, expected = sum(ctx.scores), 1.0
-        for card in pd.io.json.ujson_loads(row["action"]):
+        for card in row["action"]:  # the slate, a list
             expected *= w[card] / total
             total -= w[card]
         assert pytest.approx(expected, rel=1e-12) == row["propensity"]
@@ -564,8 +564,9 @@ def test_export_columns_outcomes_and_inputs(ledger_path: Path, suffix: str) -> N
     target = ledger_path.with_name("props" + suffix)
     report = verify(ledger_path, export=target)
     data = pd.read_csv(target) if suffix == ".csv" else pd.read_parquet(target)
-    assert ["decision_id", "stream", "unit", "ts", "action", "propensity", "propensity_method",
-            "propensity_stderr", "logged_propensity", "logged_kind", "verified", "reason",
+    assert ["decision_id", "stream", "unit", "ts", "action", "action_json", "propensity",
+            "propensity_type", "propensity_method", "propensity_stderr", "logged_propensity",
+            "logged_kind", "verified", "reason",
             "detail", "basket_value", "checkout", "input.basket.items", "input.basket.value",
             "input.ctx.user_tier"] == list(data.columns)  # fmt: skip
     assert len(report.rows) == len(data) == report.decisions
@@ -574,6 +575,90 @@ def test_export_columns_outcomes_and_inputs(ledger_path: Path, suffix: str) -> N
                                     card0["input.ctx.user_tier"])  # fmt: skip
     assert math.isnan(data[data["decision_id"] == "card-1"].iloc[0]["basket_value"])
     assert not (ledger_path.parent / f".props{suffix}.partial").exists()
+
+
+def test_rows_type_each_column(ledger_path: Path) -> None:
+    """In Python the action is its value (a card name, a delay, a slate), its JSON is kept in
+    action_json, ts is a UTC timestamp of the recorded seconds, and propensity_type says
+    whether the propensity is a probability or a density."""
+    _shop_ledger(ledger_path, n=2)
+    rows = verify(ledger_path).rows.set_index("decision_id")
+    with sqlite3.connect(ledger_path) as conn:
+        recorded = dict(conn.execute("SELECT decision_id, ts FROM decisions").fetchall())
+    card, delay, slate = (rows.loc[d, "action"] for d in ("card-0", "delay-0", "row-0"))
+    assert (str, float, list) == (type(card), type(delay), type(slate))
+    assert to_json(card, "card") == rows.loc["card-0", "action_json"]
+    assert to_json(slate, "slate") == rows.loc["row-0", "action_json"]
+    assert "datetime64[us, UTC]" == str(rows["ts"].dtype)
+    assert pytest.approx(recorded["card-0"], abs=1e-6) == rows.loc["card-0", "ts"].timestamp()
+    assert ("density", "probability") == (rows.loc["delay-0", "propensity_type"],
+                                          rows.loc["card-0", "propensity_type"])  # fmt: skip
+
+
+def test_parquet_export_of_mixed_actions_holds_text_and_json(ledger_path: Path) -> None:
+    """Card names, delays and slates in one export: no Arrow type holds them all, so the
+    Parquet action is text (a name as it is, other values as JSON); the CSV action is a name
+    unquoted, a number as a number, a slate as JSON."""
+    _shop_ledger(ledger_path, n=2)
+    parquet, csv = ledger_path.with_name("x.parquet"), ledger_path.with_name("x.csv")
+    rows = verify(ledger_path, export=parquet).rows.set_index("decision_id")
+    verify(ledger_path, export=csv)
+    for data in (pd.read_parquet(parquet), pd.read_csv(csv)):
+        data = data.set_index("decision_id")
+        assert rows.loc["card-0", "action"] == data.loc["card-0", "action"]
+        assert rows.loc["delay-0", "action"] == float(data.loc["delay-0", "action"])
+        assert rows.loc["row-0", "action_json"] == data.loc["row-0", "action"]
+        assert {"probability", "density"} == set(data["propensity_type"])
+
+
+@pytest.mark.parametrize(
+    ("decision", "dtype"), [("reminder_delay", "float64"), ("card_row", "object")]
+)
+def test_parquet_export_of_one_kind_of_action_is_native(
+    ledger_path: Path, decision: str, dtype: str
+) -> None:
+    """Delays alone export as a float column, slates alone as lists of names, timestamps as
+    UTC timestamps; the file says its export version (2) in its metadata."""
+    import pyarrow.parquet as pq
+
+    led = dl.Ledger(ledger_path)
+    sd.use(led)
+    for i in range(3):
+        arg = sd.Basket(items=2, value=10.0) if decision == "reminder_delay" else sd.context(i)
+        getattr(sd, decision)(arg, decision_id=f"d-{i}")
+    led.close()
+    target = ledger_path.with_name("one.parquet")
+    rows = verify(ledger_path, export=target).rows
+    data = pd.read_parquet(target)
+    assert dtype == str(data["action"].dtype)
+    assert [list(v) if dtype == "object" else v for v in data["action"]] == list(rows["action"])
+    assert "timestamp[us, tz=UTC]" == str(pq.read_schema(target).field("ts").type)
+    assert b"2" == pq.read_schema(target).metadata[b"drawledger.export"]
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    actions=st.lists(st.one_of(st.none(), st.text(max_size=8), st.from_regex(r"[\[{\"0-9tfn]"
+                                                                             r".{0,6}")),
+                     min_size=1, max_size=6),
+    stamps=st.lists(st.one_of(st.none(), st.floats(allow_nan=True), st.text(max_size=4)),
+                    min_size=6, max_size=6),
+)  # fmt: skip
+def test_typed_rows_of_damaged_records_still_export(actions: list, stamps: list) -> None:
+    """Actions that are not JSON and timestamps that are not numbers or out of range (a
+    damaged ledger) become missing values; CSV and Parquet exports are still written."""
+    from drawledger.replay.verify._export import BASE_COLUMNS, typed_rows, write_export
+
+    n = len(actions)
+    base = {c: [None] * n for c in BASE_COLUMNS}
+    base.update(decision_id=[f"d-{i}" for i in range(n)], action=actions, ts=stamps[:n],
+                propensity_method=["exact"] * n)  # fmt: skip
+    rows = typed_rows(pd.DataFrame(base))
+    assert "datetime64[us, UTC]" == str(rows["ts"].dtype)
+    with tempfile.TemporaryDirectory() as folder:
+        for suffix in (".csv", ".parquet"):
+            written = write_export(rows, Path(folder) / f"x{suffix}")
+            assert n == len(pd.read_csv(written) if suffix == ".csv" else pd.read_parquet(written))
 
 
 def test_rows_can_be_left_out(ledger_path: Path) -> None:
@@ -625,12 +710,12 @@ def test_nested_choices_export_the_marginal_not_the_first_draw(ledger_path: Path
         sd.card_swap(sd.context(i), decision_id=f"swap-{i}")
     led.close()
     rows = verify(ledger_path).rows
-    first = rows["action"] == to_json(sd.CARDS[0], "card")
+    first = rows["action"] == sd.CARDS[0]
     assert rows["verified"].all()
     assert 0 < first.sum() < 40
     assert list(rows.loc[first, "logged_propensity"].unique()) != [0.7]  # paths: 0.5 or 0.2
     for action, expected in ((sd.CARDS[0], 0.7), (sd.CARDS[2], 0.3)):
-        chosen = rows[rows["action"] == to_json(action, "card")]
+        chosen = rows[rows["action"] == action]
         assert pytest.approx([expected] * len(chosen), rel=1e-12) == list(chosen["propensity"])
     assert {"enumerated"} == set(rows["propensity_method"])
 
@@ -677,7 +762,7 @@ def test_one_draw_returning_its_value_is_not_exact_when_two_cards_share_the_acti
             card_group({} if i < 12 else {"card-1": "card-0"}, decision_id=f"g{i}")
     led.close()
     rows = verify(ledger_path).rows
-    folded = rows[(rows["action"] == '"card-0"') & (rows["decision_id"].str[1:].astype(int) >= 12)]
+    folded = rows[(rows["action"] == "card-0") & (rows["decision_id"].str[1:].astype(int) >= 12)]
     assert len(folded) > 0
     assert [0.2] * len(folded) == pytest.approx(list(folded["propensity"]), rel=1e-12)
     assert {"enumerated"} == set(folded["propensity_method"])

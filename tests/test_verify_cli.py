@@ -122,7 +122,7 @@ def test_replay_doc_examples_run(tmp_path: Path) -> None:
                           text=True, timeout=300)  # fmt: skip
     assert 0 == done.returncode, done.stderr
     assert "True 300 of 300 verified" in done.stdout
-    assert "{'\"green-curry\"': 0.85, " in done.stdout
+    assert "{'green-curry': 0.85, " in done.stdout
     assert "Propensity(value=0.625, method='enumerated', stderr=0.0)" in done.stdout
     (command,) = re.findall(r"^```bash\n(drawledger verify .*?)\n```$", text, flags=re.M)
     args = shlex.split(command)[1:]
@@ -264,3 +264,19 @@ def test_csv_export_writes_formulas_as_text_and_numbers_as_numbers(tmp_path: Pat
     assert ["'" + formula, "-7"] == list(data["unit"])
     assert -1.0 == data["checkout"][1]
     assert -2.5 == data["'@refund"][0]
+
+
+def test_csv_export_keeps_a_carriage_return_inside_its_cell(tmp_path: Path) -> None:
+    """A unit holding a carriage return stays in its cell (quoted, CRLF line ends as in RFC
+    4180) instead of splitting its row in two; an action that reads as a formula is text."""
+    led = dl.Ledger(tmp_path / "x.db")
+    args = {"options": ["=1+1", "b"], "probs": [0.5, 0.5]}
+    led.record_draw("card", "categorical", args, "=1+1", 0.5, unit="north\rsouth",
+                    decision_id="d-0")  # fmt: skip
+    led.record_draw("card", "categorical", args, "b", 0.5, unit="west", decision_id="d-1")
+    led.close()
+    target = tmp_path / "props.csv"
+    assert 0 == main(["verify", str(tmp_path / "x.db"), "--export", str(target)])
+    data = pd.read_csv(target)
+    assert ["north\rsouth", "west"] == list(data["unit"])
+    assert ["'=1+1", "b"] == list(data["action"])

@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import TYPE_CHECKING, Any, Protocol, runtime_checkable
 
 if TYPE_CHECKING:
+    import pandas as pd
     from rich.console import Console, ConsoleOptions, RenderResult
 
     from drawledger.replay.audit import AuditReport
@@ -17,11 +18,14 @@ if TYPE_CHECKING:
 class Report(Protocol):
     """A result of verify, audit, estimate, sweep or check_integrity.
 
-    ``to_dict()`` is its JSON (what ``--json`` writes), ``render()`` its plain text, rich
-    prints it as tables and a notebook shows ``_repr_html_()``, a small HTML table.
+    ``to_dict()`` is its JSON (what ``--json`` writes), ``to_frame()`` its rows as a pandas
+    DataFrame, ``render()`` its plain text, rich prints it as tables and a notebook shows
+    ``_repr_html_()``, a small HTML table.
     """
 
     def to_dict(self) -> dict[str, Any]: ...
+
+    def to_frame(self) -> pd.DataFrame: ...
 
     def render(self) -> str: ...
 

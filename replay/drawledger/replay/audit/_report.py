@@ -149,6 +149,11 @@ class AuditReport:
                 )
             yield table
         yield f"p: after Holm's correction across a stream's tests; alarm when p < {self.alpha:g}."
+        if any(t.test.startswith("pit") for t in self.tests):
+            yield (
+                "PIT: the probability integral transform (PIT) of each draw under the "
+                "distribution it declares, uniform on (0, 1) when draws are as declared."
+            )
         if self.ok:
             yield "[green]No alarm: every testable draw looks as declared.[/]"
         else:

@@ -26,6 +26,7 @@ import sqlalchemy as sa
 
 import drawledger as dl
 from drawledger.exceptions import LedgerError, ReplayError
+from drawledger.replay._html import html_table
 from drawledger.replay.audit import AuditReport, audit
 from drawledger.replay.demo import grocery
 from drawledger.replay.demo.grocery import LOGGING_POLICY as log
@@ -88,6 +89,16 @@ class DemoResult:
             "truth": self.truth,
             "seconds": self.seconds,
         }
+
+    def _repr_html_(self) -> str:
+        """The temperature estimates beside the simulator's true value (notebooks)."""
+        t, truth = self.temperature, self.truth["temperature"]
+        caption = (f"drawledger demo, {self.sessions} sessions: temperature "
+                   f"{TARGET_TEMPERATURE:g} instead of {log['temperature']:g}, true checkout "
+                   f"rate {_f(truth)}; verify {'passed' if self.verification.ok else 'FAILED'}, "
+                   f"audit {'no alarm' if self.audit.ok else 'ALARM'}")  # fmt: skip
+        rows = [(name, e.value, e.low, e.high) for name, e in t.results.items()]
+        return html_table(caption, ("estimator", "estimate", "low", "high"), rows)
 
     def render(self) -> str:
         """The short summary printed by ``drawledger demo``."""

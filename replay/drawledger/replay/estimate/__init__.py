@@ -1,6 +1,11 @@
 """Off-policy estimates (IPS, SNIPS, clipped IPS, doubly robust) from verified records."""
 
-from drawledger.replay.estimate._report import Estimate, EstimateReport, SweepReport
+from drawledger.replay.estimate._report import (
+    Estimate,
+    EstimateReport,
+    SweepReport,
+    interval_label,
+)
 from drawledger.replay.estimate._run import estimate, sweep
 
 __all__ = [
@@ -8,5 +13,6 @@ __all__ = [
     "EstimateReport",
     "SweepReport",
     "estimate",
+    "interval_label",
     "sweep",
 ]

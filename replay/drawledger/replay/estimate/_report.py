@@ -31,6 +31,10 @@ DEFAULT_CAP = 10.0
 DEFAULT_BOOTSTRAP = 1000
 
 
+# Line style and marker of each estimator's curve in a sweep figure.
+CURVE_STYLES = {"ips": (":", "o"), "snips": ("-", "s"), "clipped": ("--", "^"), "dr": ("-.", "D")}
+
+
 DR_NOTE = ("dr needs the policy's full action distribution (continuous actions, or more "
            "branches than the enumeration budget)")  # fmt: skip
 
@@ -43,10 +47,16 @@ def _span(e: Mapping[str, float | None]) -> str:
     return f"[{_fmt(e['low'])}, {_fmt(e['high'])}]"
 
 
-def _intervals(settings: Mapping[str, Any]) -> str:
-    """The intervals' label ("95% clt intervals"). A Bernstein interval's guarantee needs a
-    reward range fixed in advance (Maurer & Pontil 2009): the label says which range it used."""
-    text = f"{settings['level']:.0%} {settings['interval']} intervals"
+INTERVAL_NAMES = {"clt": "normal-approximation (CLT)", "bootstrap": "bootstrap",
+                  "bernstein": "empirical Bernstein"}  # fmt: skip
+
+
+def interval_label(settings: Mapping[str, Any]) -> str:
+    """The intervals' label ("normal-approximation (CLT) 95% intervals"). A Bernstein interval's
+    guarantee needs a reward range fixed in advance (Maurer & Pontil 2009): the label says which
+    range it used."""
+    kind = settings["interval"]
+    text = f"{INTERVAL_NAMES.get(kind, kind)} {settings['level']:.0%} intervals"
     if settings["interval"] != "bernstein":
         return text
     if settings.get("reward_range_source") == "given":
@@ -176,15 +186,16 @@ class EstimateReport:
     def _repr_html_(self) -> str:
         """The estimates and differences as an HTML table, then the warnings (notebooks)."""
         s = self.settings
-        caption = (f"{_policy_text(self.target)} on {self.target.get('stream')} (diff: minus "
-                   f"{_policy_text(self.baseline)}), {self.n} verified records, "
-                   f"{_intervals(s)}")  # fmt: skip
+        base = _policy_text(self.baseline)
+        caption = (f"{_policy_text(self.target)} on {self.target.get('stream')}, {self.n} "
+                   f"verified records, {interval_label(s)}; "
+                   f"difference: target minus {base}")  # fmt: skip
         diffs = self.differences
         rows = [(name, e.value, e.low, e.high, e.outer_low, e.outer_high, diffs[name].value,
                  diffs[name].low, diffs[name].high)
                 for name, e in self.results.items()]  # fmt: skip
-        head = ("estimator", "value", "low", "high", "outer low", "outer high", "diff",
-                "diff low", "diff high")  # fmt: skip
+        head = ("estimator", "value", "low", "high", "outer low", "outer high",
+                f"difference vs {base}", "difference low", "difference high")  # fmt: skip
         table = html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
         return _html_alerts(self.alerts) + table
 
@@ -192,16 +203,23 @@ class EstimateReport:
         from rich.box import SIMPLE
         from rich.table import Table
 
-        t = Table(title=shown(f"{_policy_text(self.target)} (diff: minus "
-                  f"{_policy_text(self.baseline)}), {self.n} verified records, "
-                  f"{_intervals(self.settings)}"), title_justify="left", box=SIMPLE)  # fmt: skip
-        for col in ("estimator", "value", "interval", "outer band", "diff", "interval"):
+        # Two narrow tables rather than one wide one: an 80-column terminal shows every digit.
+        title = f"{_policy_text(self.target)}: {self.n} verified records, "
+        t = Table(title=shown(title + interval_label(self.settings)), title_justify="left",
+                  box=SIMPLE)  # fmt: skip
+        for col in ("estimator", "value", "interval", "outer band"):
             t.add_column(col, justify="left" if col == "estimator" else "right", no_wrap=True)
+        base = _policy_text(self.baseline)
+        d = Table(title=shown(f"difference: target minus {base}"),
+                  title_justify="left", box=SIMPLE)  # fmt: skip
+        for col in ("estimator", "difference", "difference interval"):
+            d.add_column(col, justify="left" if col == "estimator" else "right", no_wrap=True)
         for name, e in self.estimates.items():
-            d = self.difference[name]
+            diff = self.difference[name]
             outer = _span({"low": e.get("outer_low"), "high": e.get("outer_high")}) \
                 if name == "clipped" else ""  # fmt: skip
-            t.add_row(name, _fmt(e["value"]), _span(e), outer, _fmt(d["value"]), _span(d))
+            t.add_row(name, _fmt(e["value"]), _span(e), outer)
+            d.add_row(name, _fmt(diff["value"]), _span(diff))
         g = Table(title="diagnostics", title_justify="left", box=SIMPLE)
         g.add_column("measure")
         g.add_column("value", justify="right")
@@ -218,7 +236,7 @@ class EstimateReport:
         filled = _filled(self.missing_rewards)
         if filled:
             g.add_row(*filled)
-        out: list[Any] = [t, g]
+        out: list[Any] = [t, d, g]
         if self.segments is not None:
             s = Table(title=shown(f"segments by {self.segments['by']}"), title_justify="left",
                       box=SIMPLE)  # fmt: skip
@@ -304,15 +322,22 @@ class SweepReport:
         return pd.DataFrame(rows)
 
     def figure(self) -> Figure:
-        """The curve of each estimator, with interval bands for SNIPS and DR (no display)."""
+        """The curve of each estimator, with interval bands for SNIPS and DR (no display).
+
+        Each estimator has its own line style and marker, and IPS is drawn last: where clipping
+        cuts nothing, clipped IPS equals IPS and would otherwise hide it."""
         from matplotlib.figure import Figure
 
         fig = Figure(figsize=(7.0, 4.2))
         ax = fig.add_subplot()
         table = self.table
-        for name, part in table.groupby("estimator", sort=False):
+        parts = dict(list(table.groupby("estimator", sort=False)))
+        for name in sorted(parts, key=lambda n: n == "ips"):  # IPS last, on top
+            part = parts[name]
             x = part[self.param].to_numpy(dtype=float)
-            line = ax.plot(x, part["estimate"].to_numpy(dtype=float), marker="o", ms=3,
+            ls, marker = CURVE_STYLES.get(str(name), ("-", "o"))
+            line = ax.plot(x, part["estimate"].to_numpy(dtype=float), ls=ls, marker=marker,
+                           ms=5 if name == "ips" else 4, mfc="none" if name == "ips" else None,
                            label=str(name))[0]  # fmt: skip
             if name in ("snips", "dr"):
                 ax.fill_between(x, part["low"].to_numpy(dtype=float),
@@ -321,11 +346,12 @@ class SweepReport:
         logging_value = self.baseline.get("estimates", {}).get("ips", {}).get("value")
         if self.baseline.get("policy") == "logging" and logging_value is not None:
             ax.axhline(logging_value, color="grey", ls="--", lw=1, label="logging policy")
-        ax.set_xlabel(self.param)
-        ax.set_ylabel("estimated mean reward")
-        level = self.settings["level"]
-        ax.set_title(f"{self.param} sweep ({level:.0%} {self.settings['interval']} intervals)")
-        ax.legend(fontsize="small")
+        param = self.param.replace("$", r"\$")  # shown as written, never as math text
+        reward = str(self.settings.get("reward", "reward")).replace("$", r"\$")
+        ax.set_xlabel(param)
+        ax.set_ylabel(f"estimated mean {reward}")
+        ax.set_title(f"{param} sweep ({interval_label(self.settings)})", fontsize="medium")
+        ax.legend(fontsize="small", frameon=False, loc="upper left", bbox_to_anchor=(1.01, 1.0))
         fig.tight_layout()
         return fig
 
@@ -344,7 +370,7 @@ class SweepReport:
         """Every point and estimator as a row of an HTML table, then the warnings (notebooks)."""
         s = self.settings
         caption = (f"{self.param} sweep on {s.get('stream')}: {self.n} verified records, "
-                   f"{_intervals(s)}")  # fmt: skip
+                   f"{interval_label(s)}")  # fmt: skip
         rows = [(p["value"], name, e["value"], e["low"], e["high"], p["diagnostics"]["ess"])
                 for p in self.points for name, e in p["estimates"].items()]  # fmt: skip
         head = (self.param, "estimator", "value", "low", "high", "ess")
@@ -364,8 +390,9 @@ class SweepReport:
         from rich.text import Text
 
         yield from _alerts(self.alerts)
-        t = Table(title=shown(f"{self.param} sweep: {self.n} verified records, "
-                  f"{_intervals(self.settings)}"), title_justify="left", box=SIMPLE)  # fmt: skip
+        title = f"{self.param} sweep: {self.n} verified records, "
+        t = Table(title=shown(title + interval_label(self.settings)), title_justify="left",
+                  box=SIMPLE)  # fmt: skip
         names = [n for n in ("snips", "dr") if self.points and n in self.points[0]["estimates"]]
         t.add_column(shown(self.param), justify="right")
         for name in names:

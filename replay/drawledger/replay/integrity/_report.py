@@ -13,6 +13,7 @@ from drawledger._text import visible
 from drawledger.replay._html import html_table
 
 if TYPE_CHECKING:
+    import pandas as pd
     from rich.console import Console, ConsoleOptions, RenderResult
 
 PROBLEMS = (
@@ -144,6 +145,16 @@ class IntegrityReport:
         from rich.text import Text
 
         yield Text(self.render())
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per kind of problem (the index): its count, whether it fails the check
+        (orphan outcomes do not), and the first decision ids involved."""
+        import pandas as pd
+
+        rows = [(p, getattr(self, p), p != "orphan_outcomes", list(self.examples.get(p, [])))
+                for p in PROBLEMS]  # fmt: skip
+        frame = pd.DataFrame(rows, columns=["problem", "count", "fails_check", "examples"])
+        return frame.set_index("problem")
 
     def _repr_html_(self) -> str:
         """Each problem with its count and first examples, as an HTML table (notebooks)."""

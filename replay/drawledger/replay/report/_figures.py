@@ -28,8 +28,11 @@ if TYPE_CHECKING:
 
 __all__ = [
     "Image",
+    "audit_chart",
     "audit_figure",
+    "estimate_chart",
     "estimate_figure",
+    "sweep_chart",
     "sweep_estimators",
     "sweep_figure",
     "verify_figure",
@@ -147,8 +150,28 @@ def verify_figure(v: VerifyReport, limit: int) -> Image:
     return _embed(fig, f"decisions by {shown}: verified, mismatched and unreplayable")
 
 
+def _legend_above(ax: Axes, columns: int) -> None:
+    """The axes' legend above its top right corner, outside the data (never over a bar)."""
+    ax.legend(fontsize=7, frameon=False, loc="lower right", bbox_to_anchor=(1.0, 1.0),
+              ncols=columns, borderaxespad=0.2)  # fmt: skip
+
+
+def _legend_top_left(ax: Axes, columns: int) -> None:
+    """The axes' legend above its top left corner, outside the data; a title goes above it
+    (``pad=``) so that the two never meet."""
+    ax.legend(fontsize=7, frameon=False, loc="lower left", bbox_to_anchor=(0.0, 1.0),
+              ncols=columns, borderaxespad=0.2)  # fmt: skip
+
+
 def audit_figure(f: AuditFigure, edges: Sequence[float]) -> Image:
     """The PIT histogram of one draw, and observed against declared counts of its options."""
+    name = f" {f.draw!r}" if f.draw else ""
+    return _embed(audit_chart(f, edges), _alt(f"audit of {f.stream} {f.kind}{name}"))
+
+
+def audit_chart(f: AuditFigure, edges: Sequence[float]) -> Figure:
+    """The figure of ``audit_figure``: the probability integral transform (PIT) histogram and,
+    for draws with options, observed against declared counts, the legend above the bars."""
     with_options = bool(f.options)
     fig = _figure(10.0 if with_options else 5.0, 2.7)
     ax = fig.add_subplot(1, 2 if with_options else 1, 1)
@@ -185,7 +208,7 @@ def audit_figure(f: AuditFigure, edges: Sequence[float]) -> Image:
     ax.set_xlim(e[0], e[-1])
     ax.set_xlabel("probability integral transform")
     ax.set_ylabel("draws")
-    ax.set_title("PIT histogram (flat if as declared)")
+    ax.set_title("PIT histogram (flat if as declared)", loc="left", fontsize=10)
     _style(ax)
     if with_options:
         bx = fig.add_subplot(1, 2, 2)
@@ -200,16 +223,20 @@ def audit_figure(f: AuditFigure, edges: Sequence[float]) -> Image:
             ha="right" if len(labels) > 3 else "center",
         )
         bx.set_ylabel("count")
-        bx.set_title("observed vs declared")
-        bx.legend(fontsize=7, frameon=False)
+        bx.set_title("observed vs declared", loc="left", fontsize=10)
+        _legend_above(bx, 2)
         _style(bx)
     fig.tight_layout()
-    name = f" {f.draw!r}" if f.draw else ""
-    return _embed(fig, _alt(f"audit of {f.stream} {f.kind}{name}"))
+    return fig
 
 
 def estimate_figure(r: EstimateReport, truth: float | None) -> Image:
     """Each estimator's value and interval, with the logging policy and the true value."""
+    return _embed(estimate_chart(r, truth), _alt(f"estimates of {policy(r.target)}"))
+
+
+def estimate_chart(r: EstimateReport, truth: float | None) -> Figure:
+    """The forest plot of ``estimate_figure``: titled, its legend between title and axes."""
     names = list(r.estimates)
     fig = _figure(6.4, 0.5 * len(names) + 1.2)
     ax = fig.add_subplot()
@@ -240,9 +267,11 @@ def estimate_figure(r: EstimateReport, truth: float | None) -> Image:
     level = r.settings.get("level", 0.95)
     reward = _plain(str(r.target.get("reward", "reward")))
     ax.set_xlabel(f"mean {reward} with {level:.0%} intervals")
-    ax.legend(fontsize=7, frameon=False, loc="upper center", bbox_to_anchor=(0.5, -0.35), ncols=3)
+    ax.set_title(_plain(f"estimated mean {reward} under {policy(r.target)}", 80), loc="left",
+                 fontsize=10, pad=18)  # fmt: skip
+    _legend_top_left(ax, 3)
     _style(ax)
-    return _embed(fig, _alt(f"estimates of {policy(r.target)}"))
+    return fig
 
 
 def weights_figure(r: EstimateReport) -> Image:
@@ -274,6 +303,11 @@ def weights_figure(r: EstimateReport) -> Image:
 
 def sweep_figure(s: SweepReport, truth: Sequence[float] | None) -> Image:
     """Each shown estimator across the swept values, with its interval band."""
+    return _embed(sweep_chart(s, truth), _alt(f"sweep of {s.param}"))
+
+
+def sweep_chart(s: SweepReport, truth: Sequence[float] | None) -> Figure:
+    """The figure of ``sweep_figure``, its legend above the axes."""
     fig = _figure(6.4, 3.4)
     ax = fig.add_subplot()
     x = np.array([float(p["value"]) for p in s.points])
@@ -294,6 +328,6 @@ def sweep_figure(s: SweepReport, truth: Sequence[float] | None) -> Image:
         ax.plot(x, list(truth), color=TRUTH_COLOUR, ls="--", lw=1.2, label="true value (simulator)")
     ax.set_xlabel(_plain(s.param))
     ax.set_ylabel(f"mean {_plain(str(s.settings.get('reward', 'reward')))}")
-    ax.legend(fontsize=7, frameon=False)
+    _legend_top_left(ax, 2)
     _style(ax)
-    return _embed(fig, _alt(f"sweep of {s.param}"))
+    return fig

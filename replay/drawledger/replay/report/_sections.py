@@ -19,7 +19,7 @@ from drawledger.replay.audit import (
     AuditReport,
     AuditTest,
 )
-from drawledger.replay.estimate import EstimateReport, SweepReport
+from drawledger.replay.estimate import EstimateReport, SweepReport, interval_label
 from drawledger.replay.integrity import PROBLEMS
 from drawledger.replay.report._figures import (
     Image,
@@ -341,8 +341,10 @@ def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> Estim
         "estimate",
         f"{level:.0%} interval",
         "outer band",
-        "minus logging",
-        "interval",
+        "difference vs logging"
+        if r.baseline.get("policy") == "logging"
+        else "difference vs baseline",
+        "difference interval",
     ] + (["true value", "covered"] if truth is not None else [])
     d = r.diagnostics
     diagnostics = Table(
@@ -363,7 +365,7 @@ def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> Estim
         ok=r.ok,
         target=policy(r.target),
         reward=str(r.target.get("reward", "")),
-        interval=str(r.settings.get("interval", "")),
+        interval=interval_label(r.settings),
         clip=f"{r.settings.get('clip', 0):g}",
         table=Table(head, rows),
         figure=estimate_figure(r, truth),

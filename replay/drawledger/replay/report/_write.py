@@ -29,6 +29,7 @@ from jinja2 import Environment, PackageLoader, StrictUndefined
 from drawledger import __version__
 from drawledger._files import check_output, replacing
 from drawledger.exceptions import EstimateRefusedError, ReplayError
+from drawledger.replay._html import html_table
 from drawledger.replay.audit import AuditReport, audit
 from drawledger.replay.estimate import EstimateReport, SweepReport, estimate
 from drawledger.replay.report._format import name, num, plain, policy
@@ -104,6 +105,20 @@ class HtmlReport:
 
     def __str__(self) -> str:
         return self.render()
+
+    def _repr_html_(self) -> str:
+        """What was written and each verdict, as an HTML table (notebooks)."""
+        v, a = self.verification, self.audit
+        rows: list[tuple[str, str]] = [
+            ("verification", f"{v.verified} of {v.decisions} decisions verified, "
+                             f"{v.mismatched} mismatched, {v.unreplayable} unreplayable"),
+            ("integrity", "ok" if v.integrity.ok else "FAILED"),
+            ("audit", "no alarm" if a.ok else f"{len(a.alarms)} alarm(s)"),
+        ]  # fmt: skip
+        rows += [("estimate refused", r) for r in self.refused]
+        rows += [(f"ALERT: {w.title}", line) for w in self.whatifs for line in w.result.alerts]
+        verdict = "passed" if self.ok else "FAILED"
+        return html_table(f"wrote {self.path} ({verdict})", ("check", "result"), rows)
 
 
 def write_report(

@@ -1,11 +1,13 @@
 """The export of verify: one row per decision, outcomes as columns, scalar inputs flattened.
 
-Columns: decision_id, stream, unit, ts, action (canonical JSON), propensity (the replayed
-probability or density of the action), propensity_method, propensity_stderr (Monte Carlo
-only), logged_propensity, logged_kind, verified, reason (reasons joined by ";"), detail (what
-differed first), then one column per outcome name (the sum of that outcome's values for the
-decision; empty when none was recorded) and one ``input.<path>`` column per scalar input field
-(``input.ctx.user_tier``; lists are left out).
+Columns (export version 2, docs/replay.md): decision_id, stream, unit, ts (a UTC timestamp),
+action (the action as a native value), action_json (its canonical JSON), propensity (the
+replayed probability or density of the action), propensity_type ("probability" or "density"),
+propensity_method, propensity_stderr (Monte Carlo only), logged_propensity, logged_kind,
+verified, reason (reasons joined by ";"), detail (what differed first), then one column per
+outcome name (the sum of that outcome's values for the decision; empty when none was recorded)
+and one ``input.<path>`` column per scalar input field (``input.ctx.user_tier``; lists are left
+out).
 """
 
 from __future__ import annotations
@@ -16,6 +18,7 @@ from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any
 
+import orjson
 import pandas as pd
 
 from drawledger._files import check_output, replacing
@@ -24,10 +27,13 @@ from drawledger.replay.sources import outcome_totals
 
 __all__ = [
     "BASE_COLUMNS",
+    "EXPORT_COLUMNS",
+    "EXPORT_VERSION",
     "csv_ready",
     "flatten_inputs",
     "join_outcomes",
     "read_outcomes",
+    "typed_rows",
     "write_export",
 ]
 
@@ -46,6 +52,9 @@ BASE_COLUMNS = (
     "reason",
     "detail",
 )
+EXPORT_VERSION = 2  # docs/replay.md lists the columns of each version
+EXPORT_COLUMNS = (*BASE_COLUMNS[:5], "action_json", "propensity", "propensity_type",
+                  *BASE_COLUMNS[6:])  # fmt: skip
 SUFFIXES = (".csv", ".parquet")
 FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
 
@@ -94,12 +103,72 @@ def join_outcomes(rows: pd.DataFrame, outcomes: pd.DataFrame) -> pd.DataFrame:
     return joined[[*base, *renamed.values(), *inputs]]
 
 
+def _decoded(text: Any) -> Any:
+    """A recorded action's value (None when it is missing or not JSON)."""
+    if not isinstance(text, (str, bytes)):
+        return None
+    try:
+        return orjson.loads(text)
+    except orjson.JSONDecodeError:
+        return None
+
+
+def _native(values: pd.Series) -> pd.Series:
+    """Decoded actions as one column: text, integers, floats or booleans when every action has
+    that type (integers and floats together are floats), the values themselves otherwise."""
+    found = [v for v in values if v is not None]
+    kinds = {bool if isinstance(v, bool) else float if isinstance(v, int) else type(v)
+             for v in found}  # fmt: skip
+    ints = all(isinstance(v, int) and not isinstance(v, bool) for v in found)
+    if found and kinds == {float} and len(found) == len(values):
+        return values.astype("int64" if ints else "float64")
+    if found and kinds <= {float}:
+        return values.astype("Int64" if ints else "Float64")
+    if found and kinds == {bool}:
+        return values.astype("boolean")
+    return values
+
+
+def typed_rows(rows: pd.DataFrame) -> pd.DataFrame:
+    """The rows of the export with typed columns: ``ts`` a UTC timestamp, ``action`` the
+    action's value (its JSON kept as ``action_json``), ``propensity_type`` probability or
+    density."""
+    out = rows.copy()
+    micros = (pd.to_numeric(out["ts"], errors="coerce") * 1e6).round()  # float seconds: to µs
+    stamps = pd.to_datetime(micros, unit="us", utc=True, errors="coerce")
+    out["ts"] = stamps.astype("datetime64[us, UTC]")
+    out["action_json"] = out["action"]
+    out["action"] = _native(out["action"].map(_decoded).astype(object))
+    method = out["propensity_method"]
+    out["propensity_type"] = method.map(
+        lambda m: None if m is None else "density" if m == "density" else "probability"
+    ).astype(object)
+    return out[[*EXPORT_COLUMNS, *(c for c in out.columns if c not in EXPORT_COLUMNS)]]
+
+
+def _as_text(value: Any) -> Any:
+    """Text as it is, other values as canonical JSON (None stays missing)."""
+    if value is None or isinstance(value, str):
+        return value
+    return orjson.dumps(value, option=orjson.OPT_SORT_KEYS).decode()
+
+
 def _parquet_ready(rows: pd.DataFrame) -> pd.DataFrame:
-    """Input columns holding mixed types (a number here, text there) become text."""
+    """Input columns holding mixed types (a number here, text there) become text; so do
+    actions that no single Arrow type holds (card names in one stream, delays in another)."""
+    import pyarrow as pa
+
     out = rows.copy()
     for col in out.columns:
-        if not col.startswith("input.") or out[col].dtype != object:
+        if not (col.startswith("input.") or col == "action") or out[col].dtype != object:
             continue
+        if col == "action":
+            try:
+                pa.array(out[col].tolist(), from_pandas=True)
+                continue
+            except (pa.ArrowInvalid, pa.ArrowTypeError, TypeError, OverflowError):
+                out[col] = out[col].map(_as_text).astype(object)
+                continue
         kinds = {type(v) for v in out[col].dropna()}
         if len(kinds) > 1:
             out[col] = out[col].map(lambda v: v if v is None else str(v))
@@ -123,10 +192,24 @@ def csv_ready(rows: pd.DataFrame) -> pd.DataFrame:
     it as text instead of running it as a formula (the OWASP guidance on CSV injection).
     Numbers, and text that is a plain number such as ``-0.5``, are left as they are."""
     out = rows.rename(columns=_inert)
+    if "action" in out.columns and out["action"].dtype == object:  # lists, objects: JSON text
+        out["action"] = out["action"].map(
+            lambda v: _as_text(v) if isinstance(v, (list, dict)) else v
+        )
     for col in out.columns:
         if pd.api.types.is_object_dtype(out[col]) or pd.api.types.is_string_dtype(out[col]):
             out[col] = out[col].map(_inert)
     return out
+
+
+def _write_parquet(rows: pd.DataFrame, out: Any) -> None:
+    """The rows as Parquet, the export's version in the schema's metadata."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    table = pa.Table.from_pandas(rows, preserve_index=False)
+    meta = {**(table.schema.metadata or {}), b"drawledger.export": str(EXPORT_VERSION).encode()}
+    pq.write_table(table.replace_schema_metadata(meta), out)
 
 
 def write_export(rows: pd.DataFrame, path: str | os.PathLike[str]) -> Path:
@@ -134,7 +217,9 @@ def write_export(rows: pd.DataFrame, path: str | os.PathLike[str]) -> Path:
     target = check_export_path(path)
     with replacing(target) as out:
         if target.suffix.lower() == ".csv":
-            csv_ready(rows).to_csv(out, index=False, encoding="utf-8")
+            # CRLF line ends (RFC 4180): a carriage return inside a cell is then quoted too,
+            # so that it cannot split a row in two
+            csv_ready(rows).to_csv(out, index=False, encoding="utf-8", lineterminator="\r\n")
         else:
-            _parquet_ready(rows).to_parquet(out, index=False)
+            _write_parquet(_parquet_ready(rows), out)
     return target

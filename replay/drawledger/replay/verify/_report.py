@@ -167,4 +167,5 @@ def rows_with_outcomes(frames: list[pd.DataFrame], ledger: str | os.PathLike[str
           format: str | None) -> pd.DataFrame:  # fmt: skip
     rows = (pd.concat(frames, ignore_index=True) if frames
             else pd.DataFrame(columns=list(_export.BASE_COLUMNS)))  # fmt: skip
-    return _export.join_outcomes(rows, _export.read_outcomes(ledger, format=format))
+    rows = _export.join_outcomes(rows, _export.read_outcomes(ledger, format=format))
+    return _export.typed_rows(rows)
