@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import math
 import re
 import shutil
@@ -283,3 +284,70 @@ def test_an_unwritable_output_is_refused_before_any_work(tmp_path, capsys, argv,
     assert 2 == code
     assert message.replace("{tmp}", str(tmp_path)) in err
     assert 1 == len(err.strip().splitlines())
+
+
+def _four(x: float | None) -> str:
+    return "-" if x is None else f"{x:.4f}"
+
+
+def test_a_piped_estimate_prints_every_number_in_full_at_80_columns(cards, tmp_path, cli_pipe):
+    """In a CI log (stdout a pipe, COLUMNS=80) no column or interval is cut: every value,
+    bound and difference of the JSON appears in the text, and each estimator's row whole."""
+    out_json = tmp_path / "estimate.json"
+    done = cli_pipe("estimate", cards, "--reward", "checkout", "--set", "temperature=0.3",
+                    "--path", SUPPORT, "--by", "ctx.segment", "--json", str(out_json))  # fmt: skip
+    assert 0 == done.returncode, done.stderr
+    data = orjson.loads(out_json.read_bytes())
+    for name, e in data["estimates"].items():
+        d = data["difference"][name]
+        row = (rf"^\s*{name}\s+{_four(e['value'])}\s+\[{_four(e['low'])}, {_four(e['high'])}\]"
+               rf".*{_four(d['value'])}\s+\[{_four(d['low'])}, {_four(d['high'])}\]")  # fmt: skip
+        assert re.search(row, done.stdout, re.M), (name, done.stdout)
+    clipped = data["estimates"]["clipped"]
+    assert f"[{_four(clipped['outer_low'])}, {_four(clipped['outer_high'])}]" in done.stdout
+    assert f"{data['diagnostics']['ess']:.1f}" in done.stdout
+    for seg in data["segments"]["groups"]:
+        e = seg["estimates"]["snips"]
+        assert f"{_four(e['value'])}   [{_four(e['low'])}, {_four(e['high'])}]" in done.stdout
+
+
+def test_a_piped_sweep_prints_every_point_in_full_at_80_columns(cards, tmp_path, cli_pipe):
+    out_json = tmp_path / "sweep.json"
+    done = cli_pipe("estimate", cards, "--reward", "checkout", "--path", SUPPORT, "--sweep",
+                    "temperature=0.3:1.1:5", "--json", str(out_json))  # fmt: skip
+    assert 0 == done.returncode, done.stderr
+    data = orjson.loads(out_json.read_bytes())
+    for p in data["points"]:
+        s, r = p["estimates"]["snips"], p["estimates"]["dr"]
+        row = (rf"^\s*{p['value']:g}\s+{_four(s['value'])}\s+\[{_four(s['low'])}, "
+               rf"{_four(s['high'])}\]\s+{_four(r['value'])}\s+\[{_four(r['low'])}, "
+               rf"{_four(r['high'])}\]\s+{p['diagnostics']['ess']:.1f}")  # fmt: skip
+        assert re.search(row, done.stdout, re.M), (p["value"], done.stdout)
+
+
+def test_json_dash_writes_the_json_alone_on_stdout(cards, cli_pipe):
+    """`--json -`: stdout is the JSON and nothing else; the tables go to stderr."""
+    done = cli_pipe("estimate", cards, "--reward", "checkout", "--set", "temperature=0.3",
+                    "--path", SUPPORT, "--json", "-")  # fmt: skip
+    assert 0 == done.returncode, done.stderr
+    assert 400 == json.loads(done.stdout)["n"]
+    assert "effective sample size" in done.stderr
+
+
+def test_a_refused_estimate_with_json_dash_writes_the_refusal_on_stdout(tmp_path, cli_pipe):
+    path = tmp_path / "cards.db"
+    with dl.Ledger(path) as led:
+        shop.simulate_cards(led, 60, seed=3)
+    sqlite3.connect(path).execute("DELETE FROM decisions WHERE seq = 5").connection.commit()
+    done = cli_pipe("estimate", str(path), "--reward", "checkout", "--set", "temperature=0.3",
+                    "--path", SUPPORT, "--json", "-")  # fmt: skip
+    assert 1 == done.returncode
+    assert {"ok": False} == {"ok": json.loads(done.stdout)["ok"]}
+
+
+def test_quiet_prints_nothing_and_keeps_the_exit_code_and_files(cards, tmp_path, capsys):
+    out_json = tmp_path / "estimate.json"
+    code, out, err = _run(capsys, cards, "--reward", "checkout", "--set", "temperature=0.3",
+                          "--path", SUPPORT, "--json", str(out_json), "--quiet")  # fmt: skip
+    assert (0, "", "") == (code, out, err)
+    assert 400 == orjson.loads(out_json.read_bytes())["n"]

@@ -10,6 +10,7 @@ import sqlite3
 import subprocess
 import sys
 from pathlib import Path
+from typing import Any
 
 import pandas as pd
 import pytest
@@ -142,6 +143,7 @@ def _point(ledger: Path, decision_id: str, fn: str) -> None:
 
 EXITS = """
 from pathlib import Path
+from typing import Any
 Path({canary!r}).write_text("ran")
 raise SystemExit(0)
 """
@@ -264,3 +266,31 @@ def test_csv_export_writes_formulas_as_text_and_numbers_as_numbers(tmp_path: Pat
     assert ["'" + formula, "-7"] == list(data["unit"])
     assert -1.0 == data["checkout"][1]
     assert -2.5 == data["'@refund"][0]
+
+
+def test_a_piped_verify_prints_every_count_in_full_at_80_columns(
+    shop: Path, tmp_path: Path, cli_pipe: Any
+) -> None:
+    """In a CI log (stdout a pipe, COLUMNS=80) each stream's row holds its four counts."""
+    out = tmp_path / "verify.json"
+    done = cli_pipe("verify", str(shop), "--path", SUPPORT, "--json", str(out))
+    assert 0 == done.returncode, done.stderr
+    data = json.loads(out.read_text())
+    for stream, c in {**data["by_stream"], "all": data}.items():
+        counts = r"\s+│\s+".join(str(c[k]) for k in ("decisions", "verified", "mismatched",
+                                                          "unreplayable"))  # fmt: skip
+        assert re.search(rf"│ {re.escape(stream)}\s+│\s+{counts}\s+│", done.stdout), stream
+
+
+def test_json_dash_writes_the_verify_json_alone_on_stdout(shop: Path, cli_pipe: Any) -> None:
+    done = cli_pipe("verify", str(shop), "--path", SUPPORT, "--json", "-")
+    assert 0 == done.returncode, done.stderr
+    assert 16 == json.loads(done.stdout)["verified"]
+    assert "verify passed" in done.stderr
+
+
+def test_other_outputs_refuse_a_dash(shop: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """Only --json writes to stdout; `--export -` is refused rather than writing a file '-'."""
+    assert 2 == main(["verify", str(shop), "--export", "-"])
+    assert "--export -: only --json can write to stdout" in capsys.readouterr().err
+    assert not Path("-").exists()

@@ -9,10 +9,13 @@ from __future__ import annotations
 
 import argparse
 import math
+import os
 import sys
 from collections.abc import Callable, Sequence
-from typing import Any
+from contextlib import nullcontext, redirect_stdout
+from typing import IO, Any, NoReturn
 
+from drawledger import __version__
 from drawledger._text import visible
 from drawledger.exceptions import DrawledgerError, EstimateRefusedError
 
@@ -53,13 +56,33 @@ def _not_yet(command: str) -> Handler:
 PLOT_SUFFIXES = (".png", ".svg", ".pdf")
 
 
+# Where ``--json -`` writes: the standard output the command started with (human output is
+# sent to stderr meanwhile, or nowhere with --quiet).
+_machine_out: list[IO[str]] = []
+
+# Tables printed to a pipe or a file (CI logs, scripts) are laid out this wide: never cut to
+# the 80 columns rich assumes when the output is not a terminal.
+PIPE_WIDTH = 400
+
+
+def _console() -> Any:
+    """A rich console on stdout: the terminal's width, or ``PIPE_WIDTH`` when not a terminal."""
+    from rich.console import Console
+
+    out = sys.stdout
+    tty = hasattr(out, "isatty") and out.isatty()
+    return Console(file=out, highlight=False, width=None if tty else PIPE_WIDTH)
+
+
 def _check_outputs(args: argparse.Namespace) -> None:
     """Every output file of the command can be written, checked before any work starts."""
     from drawledger._files import check_output
 
     for flag in ("json", "export", "plot", "html"):
         path = getattr(args, flag, None)
-        if path is not None:
+        if path == "-" and flag != "json":
+            raise ValueError(f"--{flag} -: only --json can write to stdout; give a file name")
+        if path is not None and not (flag == "json" and path == "-"):
             check_output(path, f"--{flag}")
     plot = getattr(args, "plot", None)
     if plot is not None and not plot.lower().endswith(PLOT_SUFFIXES):
@@ -67,13 +90,19 @@ def _check_outputs(args: argparse.Namespace) -> None:
 
 
 def _write_json(path: str, data: dict[str, Any]) -> None:
-    """The result as indented JSON, written whole or not at all."""
+    """The result as indented JSON, written whole or not at all (``-``: alone on stdout)."""
     import orjson
 
     from drawledger._files import replacing
 
+    text = orjson.dumps(data, option=orjson.OPT_INDENT_2) + b"\n"
+    if path == "-":
+        stdout = _machine_out[-1] if _machine_out else sys.stdout
+        stdout.write(text.decode())
+        stdout.flush()
+        return
     with replacing(path) as out:
-        out.write(orjson.dumps(data, option=orjson.OPT_INDENT_2) + b"\n")
+        out.write(text)
 
 
 def _ingest(args: argparse.Namespace) -> int:
@@ -84,6 +113,8 @@ def _ingest(args: argparse.Namespace) -> int:
 
     key = os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None
     report = ingest(args.file, args.ledger, integrity_key=key)
+    if args.json:
+        _write_json(args.json, report.to_dict())
     print(report.render())
     if report.malformed:
         n, reason = report.malformed[0]
@@ -99,8 +130,6 @@ def _verify(args: argparse.Namespace) -> int:
     """Replay every decision; exit 1 when one is not verified or the integrity check fails."""
     import os
 
-    from rich.console import Console
-
     from drawledger.replay import verify
 
     report = verify(
@@ -112,20 +141,18 @@ def _verify(args: argparse.Namespace) -> int:
     )  # fmt: skip
     if args.json:
         _write_json(args.json, report.to_dict())
-    Console(highlight=False).print(report)
+    _console().print(report)
     return EXIT_OK if report.ok else EXIT_FOUND
 
 
 def _audit(args: argparse.Namespace) -> int:
     """Test the randomization of every stream; exit 1 when an alarm fires."""
-    from rich.console import Console
-
     from drawledger.replay import audit
 
     report = audit(args.ledger, progress=True, engine=args.engine, scheduler=args.scheduler)
     if args.json:
         _write_json(args.json, report.to_dict())
-    Console(highlight=False).print(report)
+    _console().print(report)
     return EXIT_OK if report.ok else EXIT_FOUND
 
 
@@ -180,8 +207,6 @@ def _estimate(args: argparse.Namespace) -> int:
     """Estimate a target policy; exit 1 when the data cannot answer (support deficit, tiny ESS)."""
     import os
 
-    from rich.console import Console
-
     from drawledger.replay import estimate, sweep
 
     if args.sweep is None and args.plot:
@@ -232,7 +257,7 @@ def _estimate(args: argparse.Namespace) -> int:
             report.figure().savefig(out, format=args.plot.rsplit(".", 1)[-1].lower())
     if args.json:
         _write_json(args.json, report.to_dict())
-    Console(highlight=False).print(report)
+    _console().print(report)
     return EXIT_OK if report.ok else EXIT_FOUND
 
 
@@ -306,7 +331,9 @@ def _demo(args: argparse.Namespace) -> int:
     """Run the grocery-delivery demo; exit 1 when verification or the audit found a problem."""
     from drawledger.replay import run_demo
 
-    result = run_demo(args.decisions, args.out, progress=True)
+    result = run_demo(args.decisions, args.out, progress=not args.quiet)
+    if args.json:
+        _write_json(args.json, result.to_dict())
     print(result.render())
     return EXIT_OK if result.ok else EXIT_FOUND
 
@@ -323,6 +350,8 @@ def _report(args: argparse.Namespace) -> int:
         progress=True, integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None,
         **_accepted(args),
     )  # fmt: skip
+    if args.json:
+        _write_json(args.json, report.to_dict())
     print(report.render())
     return EXIT_OK if report.ok else EXIT_FOUND
 
@@ -341,19 +370,33 @@ def _replay_options(p: argparse.ArgumentParser) -> None:
                    help="module prefix decision code may come from (repeatable)")  # fmt: skip
 
 
+class _Parser(argparse.ArgumentParser):
+    """Usage errors in one line on stderr, exit 2 (the usage itself is in --help)."""
+
+    def error(self, message: str) -> NoReturn:
+        self.exit(EXIT_USAGE, f"{self.prog}: error: {visible(message)} (see {self.prog} --help)\n")
+
+
+def _json_option(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--json", metavar="FILE",
+                   help="write the result as JSON to FILE; '-' writes it alone to stdout "
+                   "(the human-readable output then goes to stderr)")  # fmt: skip
+
+
 class _Formatter(argparse.RawDescriptionHelpFormatter):
     def __init__(self, prog: str) -> None:
         super().__init__(prog, max_help_position=32, width=100)
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="drawledger",
         formatter_class=_Formatter,
         description="Record randomized decisions with their true probabilities, replay and "
         "audit them, and estimate what other policies would have achieved.",
         epilog="Exit codes: 0 passed, 1 a check found a problem, 2 bad usage or unreadable input.",
     )
+    parser.add_argument("--version", action="version", version=f"drawledger {__version__}")
     parser.add_argument("--debug", action="store_true", help="show tracebacks of errors")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
@@ -361,7 +404,9 @@ def build_parser() -> argparse.ArgumentParser:
     def add(name: str, help: str, example: str, handler: Handler) -> argparse.ArgumentParser:
         p = sub.add_parser(name, help=help, description=help, formatter_class=_Formatter,
                            epilog=f"example:\n  {example}")  # fmt: skip
-        p.set_defaults(handler=handler)
+        p.set_defaults(handler=handler, subparser=p)
+        p.add_argument("-q", "--quiet", action="store_true",
+                       help="no human-readable output: the exit code and the files only")  # fmt: skip
         return p
 
     p = add("demo", "run the grocery-delivery demo end to end",
@@ -379,13 +424,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default="drawledger-demo", metavar="DIR",
                    help="output directory for decisions.db and report.html; a previous demo "
                    "ledger there is replaced (default drawledger-demo)")  # fmt: skip
+    _json_option(p)
 
     p = add("verify", "replay every decision and check the ledger's integrity",
             "drawledger verify decisions.db --path . --json verify.json --export props.parquet",
             _verify)  # fmt: skip
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     _replay_options(p)
-    p.add_argument("--json", metavar="FILE", help="write the result as JSON")
+    _json_option(p)
     p.add_argument("--export", metavar="FILE",
                    help="write one row per decision (.csv or .parquet)")  # fmt: skip
     p.add_argument("--jobs", type=int, default=1, metavar="N",
@@ -400,7 +446,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = add("audit", "test statistically that randomization happened as declared",
             "drawledger audit decisions.db --json audit.json", _audit)  # fmt: skip
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
-    p.add_argument("--json", metavar="FILE", help="write the result as JSON")
+    _json_option(p)
     _engine_options(p)
 
     p = add("estimate", "estimate the reward of a changed policy from verified records",
@@ -412,7 +458,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="policy parameter of the target policy (repeatable)")  # fmt: skip
     p.add_argument("--stream", metavar="S", help="only this decision stream")
     _replay_options(p)
-    p.add_argument("--json", metavar="FILE", help="write the result as JSON")
+    _json_option(p)
     _estimate_options(p)
     _engine_options(p)
 
@@ -429,6 +475,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     p.add_argument("--html", required=True, metavar="FILE", help="where to write the report")
+    _json_option(p)
     _replay_options(p)
     p.add_argument("--reward", metavar="NAME",
                    help="outcome name: add the estimate of the --set target policy")  # fmt: skip
@@ -441,19 +488,39 @@ def build_parser() -> argparse.ArgumentParser:
             "drawledger ingest legacy-draws.jsonl decisions.db", _ingest)  # fmt: skip
     p.add_argument("file", metavar="FILE", help="JSON Lines: declared draws or a spill file")
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
+    _json_option(p)
     return parser
+
+
+def _run_handler(handler: Handler, args: argparse.Namespace) -> int:
+    """Run a command; with --quiet its human output goes nowhere, with ``--json -`` to stderr
+    (stdout then holds the JSON alone)."""
+    quiet = getattr(args, "quiet", False)
+    if not quiet and getattr(args, "json", None) != "-":
+        return handler(args)
+    _machine_out.append(sys.stdout)
+    try:
+        with (
+            open(os.devnull, "w") if quiet else nullcontext(sys.stderr) as human,
+            redirect_stdout(human),
+        ):
+            return handler(args)
+    finally:
+        _machine_out.pop()
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    args, unknown = parser.parse_known_args(argv)
+    if unknown:  # named by the command's own parser: "drawledger verify: error: ..."
+        args.subparser.error(f"unrecognized arguments: {' '.join(unknown)}")
     handler: Handler = args.handler
     try:
         if getattr(args, "engine", "local") == "dask":
             import dask  # noqa: F401  (missing: the one line below, before any work starts)
             import distributed  # noqa: F401
         _check_outputs(args)
-        return handler(args)
+        return _run_handler(handler, args)
     except KeyboardInterrupt:
         print(f"drawledger {args.command}: interrupted", file=sys.stderr)
         return 130

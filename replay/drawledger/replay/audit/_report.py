@@ -125,8 +125,8 @@ class AuditReport:
         for stream in dict.fromkeys(t.stream for t in self.tests):
             table = Table(title=shown(stream), title_justify="left", title_style="bold")
             table.add_column("draw / test", no_wrap=True)
-            for name in ("n", "statistic", "p"):
-                table.add_column(name, justify="right", no_wrap=True)
+            for name in ("n", "statistic", "p"):  # numbers fold, never cut
+                table.add_column(name, justify="right", overflow="fold")
             table.add_column("verdict", no_wrap=True)
             previous = None
             for t in self.tests:

@@ -196,7 +196,8 @@ class EstimateReport:
                   f"{_policy_text(self.baseline)}), {self.n} verified records, "
                   f"{_intervals(self.settings)}"), title_justify="left", box=SIMPLE)  # fmt: skip
         for col in ("estimator", "value", "interval", "outer band", "diff", "interval"):
-            t.add_column(col, justify="left" if col == "estimator" else "right", no_wrap=True)
+            t.add_column(col, justify="left" if col == "estimator" else "right",
+                         overflow="fold")  # numbers fold, never cut  # fmt: skip
         for name, e in self.estimates.items():
             d = self.difference[name]
             outer = _span({"low": e.get("outer_low"), "high": e.get("outer_high")}) \
@@ -204,7 +205,7 @@ class EstimateReport:
             t.add_row(name, _fmt(e["value"]), _span(e), outer, _fmt(d["value"]), _span(d))
         g = Table(title="diagnostics", title_justify="left", box=SIMPLE)
         g.add_column("measure")
-        g.add_column("value", justify="right")
+        g.add_column("value", justify="right", overflow="fold")
         diag = self.diagnostics
         g.add_row("effective sample size (Kish)", f"{diag['ess']:.1f}")
         g.add_row("max weight", f"{diag['max_weight']:.4g}")
@@ -223,7 +224,8 @@ class EstimateReport:
             s = Table(title=shown(f"segments by {self.segments['by']}"), title_justify="left",
                       box=SIMPLE)  # fmt: skip
             for col in ("segment", "n", "snips", "interval", "ess", "deficit"):
-                s.add_column(col, justify="left" if col == "segment" else "right", no_wrap=True)
+                s.add_column(col, justify="left" if col == "segment" else "right",
+                             overflow="fold")  # fmt: skip
             for seg in self.segments["groups"]:
                 e = seg["estimates"]["snips"]
                 s.add_row(shown(seg["value"]), str(seg["n"]), _fmt(e["value"]), _span(e),
@@ -367,11 +369,11 @@ class SweepReport:
         t = Table(title=shown(f"{self.param} sweep: {self.n} verified records, "
                   f"{_intervals(self.settings)}"), title_justify="left", box=SIMPLE)  # fmt: skip
         names = [n for n in ("snips", "dr") if self.points and n in self.points[0]["estimates"]]
-        t.add_column(shown(self.param), justify="right")
-        for name in names:
-            t.add_column(name, justify="right")
-            t.add_column("interval", justify="right", no_wrap=True)
-        t.add_column("ess", justify="right")
+        t.add_column(shown(self.param), justify="right", overflow="fold")
+        for name in names:  # numbers fold, never cut
+            t.add_column(name, justify="right", overflow="fold")
+            t.add_column("interval", justify="right", overflow="fold")
+        t.add_column("ess", justify="right", overflow="fold")
         for p in self.points:
             cells = []
             for name in names:

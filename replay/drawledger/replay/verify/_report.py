@@ -65,7 +65,8 @@ class VerifyReport:
 
         streams = Table(title="decisions by stream", title_justify="left")
         for name in ("stream", "decisions", "verified", "mismatched", "unreplayable", "reasons"):
-            streams.add_column(name, justify="right" if name in COUNTS else "left")
+            streams.add_column(name, justify="right" if name in COUNTS else "left",
+                               overflow="fold")  # numbers fold, never cut  # fmt: skip
         for stream, c in sorted(self.by_stream.items()):
             found = ", ".join(f"{r} {n}" for r, n in c["by_reason"].items())
             streams.add_row(shown(stream), *(str(c[k]) for k in COUNTS), found)
@@ -75,7 +76,7 @@ class VerifyReport:
         if self.by_reason:
             reasons = Table(title="reasons", title_justify="left")
             reasons.add_column("reason")
-            reasons.add_column("decisions", justify="right")
+            reasons.add_column("decisions", justify="right", overflow="fold")
             reasons.add_column("first examples")
             for reason in sorted(self.by_reason, key=REASONS.index):
                 examples = self.examples.get(reason, [])
