@@ -406,7 +406,7 @@ def build_parser() -> argparse.ArgumentParser:
                            epilog=f"example:\n  {example}")  # fmt: skip
         p.set_defaults(handler=handler, subparser=p)
         p.add_argument("-q", "--quiet", action="store_true",
-                       help="no human-readable output: the exit code and the files only")  # fmt: skip
+                       help="print nothing but errors (exit code and files only)")  # fmt: skip
         return p
 
     p = add("demo", "run the grocery-delivery demo end to end",
