@@ -14,6 +14,7 @@
 from __future__ import annotations
 
 import os
+import shlex
 import sys
 import time
 from collections.abc import Iterator, Sequence
@@ -147,6 +148,8 @@ class DemoResult:
         )
         if missed:
             lines.append("  * the interval misses the true value (expected about 1 time in 20)")
+        lines += ["", "Re-run the checks on this ledger:"]
+        lines += [f"  {command}" for command in self.commands()]
         lines += [
             "",
             f"report   {self.report}",
@@ -157,6 +160,19 @@ class DemoResult:
 
     def __str__(self) -> str:
         return self.render()
+
+    def commands(self) -> list[str]:
+        """The commands that re-run the demo's checks (verify, audit, estimate, report), as a
+        shell runs them: the decision code is allowed by its public module's name."""
+        db, allow = shlex.quote(str(self.ledger)), f"--allow {DEMO_MODULE}"
+        what_if = f"--reward {REWARD} --stream recipe-card --set temperature={TARGET_TEMPERATURE:g}"
+        html = shlex.quote(str(self.report))
+        return [
+            f"drawledger verify {db} {allow}",
+            f"drawledger audit {db}",
+            f"drawledger estimate {db} {what_if} {allow}",
+            f"drawledger report {db} --html {html} {what_if} {allow}",
+        ]
 
 
 def _f(x: float | None) -> str:
