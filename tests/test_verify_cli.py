@@ -294,3 +294,10 @@ def test_other_outputs_refuse_a_dash(shop: Path, capsys: pytest.CaptureFixture[s
     assert 2 == main(["verify", str(shop), "--export", "-"])
     assert "--export -: only --json can write to stdout" in capsys.readouterr().err
     assert not Path("-").exists()
+
+
+def test_counts_of_one_take_the_singular(shop: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """A ledger of one writer says "1 writer", never "1 writers"."""
+    assert 0 == main(["verify", str(shop), "--allow", "shop_decisions"])
+    out = capsys.readouterr().out
+    assert "16 decisions, 8 outcomes, 1 writer (unkeyed hashes)" in out

@@ -37,7 +37,7 @@ from drawledger._schema import (
     Positions,
     TableSpec,
 )
-from drawledger._text import visible
+from drawledger._text import counted, visible
 from drawledger.exceptions import DrawledgerError, LedgerError
 from drawledger.ledger import Ledger
 
@@ -86,15 +86,18 @@ class IngestReport:
     def render(self) -> str:
         """Plain-text summary for the terminal."""
         out = [
-            f"{self.file}: {self.lines} lines; loaded {self.decisions} spilled decisions, "
-            f"{self.outcomes} spilled outcomes, {self.declared} declared draws; "
+            f"{self.file}: {counted(self.lines, 'line')}; loaded "
+            f"{counted(self.decisions, 'spilled decision')}, "
+            f"{counted(self.outcomes, 'spilled outcome')}, "
+            f"{counted(self.declared, 'declared draw')}; "
             f"{self.already_present} already in the ledger; {len(self.malformed)} malformed"
         ]
         out += [f"  line {n}: {visible(reason)}" for n, reason in self.malformed[:MAX_SHOWN]]
         if len(self.malformed) > MAX_SHOWN:
             out.append(f"  ... and {len(self.malformed) - MAX_SHOWN} more malformed lines")
         if self.spilled:
-            out.append(f"  {self.spilled} declared draws could not be written and were spilled")
+            out.append(f"  {counted(self.spilled, 'declared draw')} could not be written and "
+                       "were spilled")  # fmt: skip
         return "\n".join(out)
 
     def __str__(self) -> str:

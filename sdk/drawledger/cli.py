@@ -16,7 +16,7 @@ from contextlib import nullcontext, redirect_stdout
 from typing import IO, Any, NoReturn
 
 from drawledger import __version__
-from drawledger._text import visible
+from drawledger._text import counted, visible
 from drawledger.exceptions import DrawledgerError, EstimateRefusedError
 
 EXIT_OK, EXIT_FOUND, EXIT_USAGE = 0, 1, 2
@@ -118,11 +118,12 @@ def _ingest(args: argparse.Namespace) -> int:
     print(report.render())
     if report.malformed:
         n, reason = report.malformed[0]
-        print(f"drawledger ingest: error: {len(report.malformed)} malformed lines skipped "
-              f"(first: line {n}: {visible(reason)})", file=sys.stderr)  # fmt: skip
+        print(f"drawledger ingest: error: {counted(len(report.malformed), 'malformed line')} "
+              f"skipped (first: line {n}: {visible(reason)})", file=sys.stderr)  # fmt: skip
     elif report.spilled:
-        print(f"drawledger ingest: error: {report.spilled} declared draws could not be written "
-              "and were spilled; ingest that spill file again", file=sys.stderr)  # fmt: skip
+        draws = counted(report.spilled, "declared draw")
+        print(f"drawledger ingest: error: {draws} could not be written and were spilled; "
+              "ingest that spill file again", file=sys.stderr)  # fmt: skip
     return EXIT_OK if report.ok else EXIT_USAGE
 
 

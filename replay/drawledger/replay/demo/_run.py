@@ -26,6 +26,7 @@ from typing import Any
 import sqlalchemy as sa
 
 import drawledger as dl
+from drawledger._text import counted
 from drawledger.exceptions import LedgerError, ReplayError
 from drawledger.replay.audit import AuditReport, audit
 from drawledger.replay.demo import grocery
@@ -102,8 +103,9 @@ class DemoResult:
             f"  verify   {v.verified:,} of {v.decisions:,} decisions verified, "
             f"{v.mismatched:,} mismatched, {v.unreplayable:,} unreplayable; integrity "
             f"{'intact' if v.integrity.ok else 'FAILED'}",
-            f"  audit    {len(a.tests)} tests on {len({t.stream for t in a.tests})} streams: "
-            + ("no alarm" if a.ok else f"{len(a.alarms)} ALARM(S)")
+            f"  audit    {counted(len(a.tests), 'test')} on "
+            f"{counted(len({t.stream for t in a.tests}), 'stream')}: "
+            + ("no alarm" if a.ok else counted(len(a.alarms), "ALARM"))
             + f" (Holm-corrected p < {a.alpha:g})",
             "",
             f"What if the recipe card used temperature {TARGET_TEMPERATURE:g} instead of "

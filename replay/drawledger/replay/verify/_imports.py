@@ -217,12 +217,15 @@ def build_inputs(decision: Decision[Any], raw: Mapping[str, Any]) -> dict[str, A
     return out
 
 
-def load_params(decision: Decision[Any], params_json: str | Mapping[str, Any]) -> dict[str, Any]:
+def load_params(
+    decision: Decision[Any], params_json: str | Mapping[str, Any], *, given: bool = False
+) -> dict[str, Any]:
     """Policy parameters from their recorded JSON (or a mapping), by the function's type hints.
 
     Raises ``BadRecordError`` on corrupt JSON or a value of the wrong type, ``ReplayError``
     for a parameter the function no longer has. Parameters not given keep the function's
-    defaults when it runs.
+    defaults when it runs. ``given=True``: the values are a target policy's (``--set``), and
+    a value of the wrong type is a ``ReplayError`` naming the expected type and the text given.
     """
     raw = (
         dict(params_json)
@@ -236,7 +239,18 @@ def load_params(decision: Decision[Any], params_json: str | Mapping[str, Any]) -
             raise ReplayError(f"{decision.name} has no policy parameter {name!r} any more")
         if isinstance(value, float) and not math.isfinite(value):
             raise BadRecordError(f"params: {name!r} is {value!r}")
-        out[name] = _build(adapters[name], value, f"param {name}")
+        try:
+            out[name] = _build(adapters[name], value, f"param {name}")
+        except BadRecordError:
+            if not given:
+                raise
+            hint = typing.get_type_hints(decision.fn).get(name)
+            expected = getattr(hint, "__name__", None) or str(hint).replace("typing.", "")
+            got = f"the text {value!r:.60}" if isinstance(value, str) else f"{value!r:.60}"
+            raise ReplayError(
+                f"policy parameter {name}={value!r:.60} (given with --set or --baseline-set): "
+                f"expected {expected}, got {got}"
+            ) from None
     return out
 
 

@@ -10,6 +10,7 @@ from typing import TYPE_CHECKING, Any
 
 import pandas as pd
 
+from drawledger._text import counted
 from drawledger.replay._html import html_table
 from drawledger.replay._terminal import shown
 from drawledger.replay.integrity import IntegrityReport
@@ -110,7 +111,7 @@ class VerifyReport:
     def _repr_html_(self) -> str:
         """The decisions by stream as an HTML table (notebooks)."""
         verdict = "verify passed" if self.ok else "verify FAILED"
-        caption = (f"{verdict}: {self.verified} of {self.decisions} decisions verified; "
+        caption = (f"{verdict}: {self.verified} of {counted(self.decisions, 'decision')} verified; "
                    f"{'integrity ok' if self.integrity.ok else 'integrity FAILED'}")  # fmt: skip
         rows = [(stream, *(c[k] for k in COUNTS),
                  ", ".join(f"{r} {n}" for r, n in c["by_reason"].items()))
