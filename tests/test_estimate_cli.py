@@ -351,3 +351,32 @@ def test_quiet_prints_nothing_and_keeps_the_exit_code_and_files(cards, tmp_path,
                           "--path", SUPPORT, "--json", str(out_json), "--quiet")  # fmt: skip
     assert (0, "", "") == (code, out, err)
     assert 400 == orjson.loads(out_json.read_bytes())["n"]
+
+
+def test_a_bucket_stream_is_refused_in_readable_text(tmp_path, capsys):
+    """Hashed bucket assignments have no decision function: the one-line error says so in
+    words and counts, never as a printed Python dict."""
+    path = tmp_path / "slots.db"
+    with dl.Ledger(path) as led:
+        for i in range(40):
+            led.bucket(f"shopper-{i}", {"control": 0.5, "free-delivery": 0.5}, salt="fee-test")
+    ids = [r[0] for r in sqlite3.connect(path).execute("SELECT decision_id FROM decisions")]
+    with dl.Ledger(path) as led:
+        for i, did in enumerate(ids):
+            led.outcome(did, "checkout", float(i % 2))
+    code, out, err = _run(capsys, str(path), "--reward", "checkout")
+    assert (2, "") == (code, out)
+    assert "excluded: 40 decisions (no decision function (bucket assignment))" in err
+    assert "{" not in err
+
+
+def test_code_replay_may_not_import_is_refused_as_not_allowed_and_can_be_accepted(cards, cli_pipe):
+    """In a fresh process without --path or --allow the decision module is not imported: the
+    refusal names the reason not-allowed, which --accept-verification-failures knows."""
+    done = cli_pipe("estimate", cards, "--reward", "checkout")
+    assert (1, "") == (done.returncode, done.stdout)
+    assert "(not-allowed: 400" in done.stderr
+    done = cli_pipe("estimate", cards, "--reward", "checkout",
+                    "--accept-verification-failures", "not-allowed")  # fmt: skip
+    assert "unknown verification reason" not in done.stderr
+    assert "excluded: 400 decisions (not-allowed)" in done.stderr

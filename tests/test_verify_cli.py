@@ -62,14 +62,14 @@ def test_found_problem_exits_one(shop: Path, tmp_path: Path, capsys: pytest.Capt
 
 def test_fresh_process_imports_nothing_without_path_or_allow(shop: Path, tmp_path: Path) -> None:
     """In a new process (the module importable through PYTHONPATH, but not named by --path or
-    --allow) nothing is imported: every decision is missing-function, exit 1."""
+    --allow) nothing is imported: every decision is not-allowed, exit 1."""
     env = {**os.environ, "PYTHONPATH": SUPPORT}
     out = tmp_path / "v.json"
     command = [sys.executable, "-m", "drawledger.cli", "verify", str(shop), "--json", str(out)]
     done = subprocess.run(command, env=env, capture_output=True, text=True, timeout=120)
     assert 1 == done.returncode, done.stderr
-    assert {"missing-function": 16} == json.loads(out.read_text())["by_reason"]
-    assert "missing-function" in done.stdout
+    assert {"not-allowed": 16} == json.loads(out.read_text())["by_reason"]
+    assert "not-allowed" in done.stdout
 
 
 @pytest.mark.parametrize("suffix", [".csv", ".parquet"])
@@ -207,7 +207,7 @@ def test_entry_points_and_folders_without_init_are_never_imported(
     assert 1 == main(["verify", str(shop), "--path", SUPPORT, "--path", str(code),
                       "--json", str(out)])  # fmt: skip
     assert not canary.exists()
-    assert 1 == json.loads(out.read_text())["by_reason"].get("missing-function")
+    assert 1 == json.loads(out.read_text())["by_reason"].get("not-allowed")
 
 
 def test_ledger_text_reaches_the_terminal_as_text_never_as_markup_or_escapes(

@@ -24,6 +24,7 @@ from drawledger.exceptions import (
     DrawArgumentError,
     MissingFunctionError,
     NotADecisionError,
+    NotAllowedError,
     ReplayError,
 )
 from drawledger.ledger import Decision
@@ -164,6 +165,8 @@ class Context:
 
 
 def _failure_reason(exc: ReplayError) -> str:
+    if isinstance(exc, NotAllowedError):
+        return "not-allowed"
     if isinstance(exc, MissingFunctionError):
         return "missing-function"
     if isinstance(exc, NotADecisionError):

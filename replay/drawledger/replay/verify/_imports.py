@@ -27,6 +27,7 @@ from drawledger.exceptions import (
     BadRecordError,
     MissingFunctionError,
     NotADecisionError,
+    NotAllowedError,
     ReplayError,
 )
 from drawledger.ledger import REGISTRY, Decision
@@ -81,16 +82,16 @@ def lookup_qualname(obj: Any, qualname: str) -> Any:
 def import_allowed(
     module: str, path: Iterable[str | os.PathLike[str]], allow: Iterable[str]
 ) -> Any:
-    """Import ``module`` if it is allowed, else raise ``MissingFunctionError`` (nothing runs)."""
+    """Import ``module`` if it is allowed, else raise ``NotAllowedError`` (nothing runs)."""
     if "__main__" in module.split("."):
-        raise MissingFunctionError(
+        raise NotAllowedError(
             f"module {module!r} is a script's entry point; replay never imports one "
             "(define decisions in an importable module)"
         )
     dirs = [Path(p).expanduser().resolve() for p in path]
     by_prefix = _allowed_prefix(module, allow)
     if not by_prefix and not any(_package_module(d, module) for d in dirs):
-        raise MissingFunctionError(
+        raise NotAllowedError(
             f"module {module!r} is not under a --path directory or an --allow prefix (replay "
             "imports nothing else; under --path, every folder on its way needs an __init__.py)"
         )
@@ -109,7 +110,7 @@ def import_allowed(
             if d in sys.path:
                 sys.path.remove(d)
     if not by_prefix and not _under(getattr(loaded, "__file__", None), dirs):
-        raise MissingFunctionError(f"module {module!r} was not found under the --path directories")
+        raise NotAllowedError(f"module {module!r} was not found under the --path directories")
     return loaded
 
 
@@ -121,8 +122,9 @@ def resolve_decision(
 ) -> Decision[Any]:
     """The registered decision a ledger row names as ``module:qualname``.
 
-    Raises ``BadRecordError`` for a malformed name, ``MissingFunctionError`` when the module
-    is not allowed (never imported), cannot be imported or lacks the function,
+    Raises ``BadRecordError`` for a malformed name, ``NotAllowedError`` when the module is not
+    allowed (never imported), ``MissingFunctionError`` when it cannot be imported or lacks
+    the function,
     ``NotADecisionError`` when the object is not a registered decision (never called), and
     ``ReplayError`` when importing the module raised.
     """

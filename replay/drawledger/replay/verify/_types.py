@@ -23,6 +23,7 @@ REASONS = (
     "nondeterministic",
     "code-changed",
     "integrity",
+    "not-allowed",
     "missing-function",
     "not-a-decision",
     "bad-record",
@@ -31,8 +32,8 @@ REASONS = (
 )
 
 
-UNREPLAYABLE = frozenset({"missing-function", "not-a-decision", "bad-record", "replay-error",
-                          "declared"})  # fmt: skip
+UNREPLAYABLE = frozenset({"not-allowed", "missing-function", "not-a-decision", "bad-record",
+                          "replay-error", "declared"})  # fmt: skip
 
 
 # "declared" draws are counted as unreplayable but do not fail the check: they were made by
