@@ -115,9 +115,9 @@ def test_what_if_options_reach_the_library(cards, tmp_path, capsys, extra):
     [
         (["--set", "temperature"], "expected NAME=VALUE"),
         (["--set", "temprature=0.3"], "temprature is not a policy parameter"),
-        (["--set", "temperature=warm"], "param temperature"),
-        (["--sweep", "temperature=0.1:1"], "expected NAME=START:STOP:STEPS"),
-        (["--sweep", "temperature=0.1:1:1"], "STEPS must be at least 2"),
+        (["--set", "temperature=warm"], "temperature='warm' (given with --set"),
+        (["--sweep", "temperature=0.1:1"], "expected NAME=START:STOP:POINTS"),
+        (["--sweep", "temperature=0.1:1:1"], "POINTS must be at least 2"),
         (["--plot", "x.png"], "--plot draws the curve of --sweep"),
         (["--sweep", "temperature=0.1:1:3", "--by", "unit"], "cannot be combined"),
         (["--set", "temperature=0.3", "--target", "estimate_shop:best_card"], "either --set"),

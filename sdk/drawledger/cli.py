@@ -174,7 +174,7 @@ def _assignments(items: Sequence[str], flag: str) -> dict[str, Any]:
 
 
 def _sweep_grid(text: str) -> tuple[str, list[float]]:
-    """``K=START:STOP:STEPS`` as the parameter name and STEPS evenly spaced values."""
+    """``K=START:STOP:POINTS`` as the parameter name and POINTS evenly spaced values."""
     key, sep, spec = text.partition("=")
     parts = spec.split(":")
     try:
@@ -182,10 +182,10 @@ def _sweep_grid(text: str) -> tuple[str, list[float]]:
             raise ValueError
         start, stop, steps = float(parts[0]), float(parts[1]), int(parts[2])
     except ValueError:
-        raise ValueError(f"--sweep {text!r}: expected NAME=START:STOP:STEPS, for example "
+        raise ValueError(f"--sweep {text!r}: expected NAME=START:STOP:POINTS, for example "
                          "temperature=0.2:1.0:9") from None  # fmt: skip
     if steps < 2:
-        raise ValueError(f"--sweep {text!r}: STEPS must be at least 2")
+        raise ValueError(f"--sweep {text!r}: POINTS must be at least 2")
     return key, [round(start + (stop - start) * i / (steps - 1), 12) for i in range(steps)]
 
 
@@ -211,7 +211,7 @@ def _estimate(args: argparse.Namespace) -> int:
     from drawledger.replay import estimate, sweep
 
     if args.sweep is None and args.plot:
-        raise ValueError("--plot draws the curve of --sweep; add --sweep NAME=START:STOP:STEPS")
+        raise ValueError("--plot draws the curve of --sweep; add --sweep NAME=START:STOP:POINTS")
     if args.sweep is not None and (args.by or args.target):
         raise ValueError("--sweep varies --set parameters; it cannot be combined with --by "
                          "or --target")  # fmt: skip
@@ -296,11 +296,13 @@ def _estimate_options(p: argparse.ArgumentParser) -> None:
                    help="target policy as a callable f(inputs, action) -> probability, "
                    "imported under the --path/--allow rules")  # fmt: skip
     p.add_argument("--baseline-set", action="append", default=[], metavar="K=V",
-                   help="compare with these parameters, not logging (repeatable)")  # fmt: skip
+                   help="compare with the logged code under these parameters instead of "
+                   "the logging policy (repeatable)")  # fmt: skip
     p.add_argument("--baseline-target", metavar="MODULE:FUNCTION",
                    help="compare with this callable, not the logging policy")  # fmt: skip
-    p.add_argument("--sweep", metavar="K=START:STOP:STEPS",
-                   help="a curve of estimates over STEPS values of policy parameter K")  # fmt: skip
+    p.add_argument("--sweep", metavar="K=START:STOP:POINTS",
+                   help="a curve of estimates at POINTS evenly spaced values of policy "
+                   "parameter K from START to STOP, for example temperature=0.2:1.0:9")  # fmt: skip
     p.add_argument("--plot", metavar="FILE", help="with --sweep: save the curve (.png, .svg, .pdf)")
     p.add_argument("--by", metavar="FIELD",
                    help="estimates per segment: a column of verify's export or an input "
@@ -366,9 +368,11 @@ def _engine_options(p: argparse.ArgumentParser) -> None:
 
 def _replay_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--path", action="append", default=[], metavar="DIR",
-                   help="directory decision code may be imported from (repeatable)")  # fmt: skip
+                   help="directory decision code may be imported from (repeatable); replay "
+                   "imports nothing that --path or --allow does not name")  # fmt: skip
     p.add_argument("--allow", action="append", default=[], metavar="PREFIX",
-                   help="module prefix decision code may come from (repeatable)")  # fmt: skip
+                   help="module name prefix decision code may be imported from, for example "
+                   "shop.decisions (repeatable)")  # fmt: skip
 
 
 class _Parser(argparse.ArgumentParser):
@@ -397,7 +401,8 @@ def build_parser() -> argparse.ArgumentParser:
         "audit them, and estimate what other policies would have achieved.",
         epilog="Exit codes: 0 passed, 1 a check found a problem, 2 bad usage or unreadable input.",
     )
-    parser.add_argument("--version", action="version", version=f"drawledger {__version__}")
+    parser.add_argument("--version", action="version", version=f"drawledger {__version__}",
+                        help="print the version and exit")  # fmt: skip
     parser.add_argument("--debug", action="store_true", help="show tracebacks of errors")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
@@ -430,6 +435,15 @@ def build_parser() -> argparse.ArgumentParser:
     p = add("verify", "replay every decision and check the ledger's integrity",
             "drawledger verify decisions.db --path . --json verify.json --export props.parquet",
             _verify)  # fmt: skip
+    p.description = (
+        "Re-run every recorded decision from its inputs, parameters and seed, compare each\n"
+        "draw, probability and the action with the record, compute the exact propensity of\n"
+        "the action, and check the ledger's integrity (hash chains, gaps, duplicates).\n"
+        "Decision code is imported only from --path directories and --allow module prefixes:\n"
+        "a decision whose module neither names fails as not-allowed (docs/replay.md lists\n"
+        "the reasons). Exit 0 when every decision verified and the integrity holds, 1 when\n"
+        "not."
+    )
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     _replay_options(p)
     _json_option(p)
@@ -437,15 +451,22 @@ def build_parser() -> argparse.ArgumentParser:
                    help="write one row per decision (.csv or .parquet)")  # fmt: skip
     p.add_argument("--jobs", type=int, default=1, metavar="N",
                    help="replay in N processes (default 1)")  # fmt: skip
-    p.add_argument("--budget", type=int, default=4096, metavar="PATHS",
-                   help="most branches enumerated per decision before Monte Carlo "
-                   "(default 4096)")  # fmt: skip
+    p.add_argument("--budget", type=int, default=4096, metavar="N",
+                   help="enumerate at most N branches of a decision's draws for its exact "
+                   "propensity; past that, Monte Carlo (default 4096)")  # fmt: skip
     p.add_argument("--mc-samples", type=int, default=2000, metavar="N",
-                   help="Monte Carlo runs per decision past the budget (default 2000)")  # fmt: skip
+                   help="Monte Carlo runs per decision past --budget (default 2000)")  # fmt: skip
     _engine_options(p)
 
     p = add("audit", "test statistically that randomization happened as declared",
             "drawledger audit decisions.db --json audit.json", _audit)  # fmt: skip
+    p.description = (
+        "Test, stream by stream, that the recorded draws follow the distributions they\n"
+        "declare: uniforms, probability integral transforms, assignment ratios, repeated\n"
+        "seeds (docs/audit.md). No decision code runs, so declared draws are tested too.\n"
+        "p-values are Holm-corrected across a stream's tests. Exit 0 when no alarm fires,\n"
+        "1 when one does."
+    )
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     _json_option(p)
     _engine_options(p)
@@ -456,8 +477,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     p.add_argument("--reward", required=True, metavar="NAME", help="outcome name to estimate")
     p.add_argument("--set", action="append", default=[], metavar="K=V", dest="overrides",
-                   help="policy parameter of the target policy (repeatable)")  # fmt: skip
-    p.add_argument("--stream", metavar="S", help="only this decision stream")
+                   help="the target policy: the logged code with policy parameter K set to V "
+                   "(V is read as JSON when it parses, else as text; repeatable)")  # fmt: skip
+    p.add_argument(
+        "--stream",
+        metavar="STREAM",
+        help="the decision stream to estimate (needed when there are several)",
+    )
     _replay_options(p)
     _json_option(p)
     _estimate_options(p)
@@ -482,11 +508,19 @@ def build_parser() -> argparse.ArgumentParser:
                    help="outcome name: add the estimate of the --set target policy")  # fmt: skip
     p.add_argument("--set", action="append", default=[], metavar="K=V", dest="overrides",
                    help="policy parameter of the target policy (repeatable)")  # fmt: skip
-    p.add_argument("--stream", metavar="S", help="decision stream of the estimate")
+    p.add_argument("--stream", metavar="STREAM",
+                   help="decision stream of the estimate (with --reward)")  # fmt: skip
     _accept_options(p)
 
     p = add("ingest", "load declared draws or spill files into a ledger",
             "drawledger ingest legacy-draws.jsonl decisions.db", _ingest)  # fmt: skip
+    p.description = (
+        "Load a JSON Lines file into LEDGER: declared draws of other systems (one a line:\n"
+        "decision_id, stream, unit, ts, kind, args, value, prob and optionally u), or a spill\n"
+        "file the SDK wrote when its ledger was unreachable. Records already in the ledger\n"
+        "are skipped, so a file can be ingested again. Exit 0 when every line was loaded, 2\n"
+        "when a line is malformed or a record could not be written."
+    )
     p.add_argument("file", metavar="FILE", help="JSON Lines: declared draws or a spill file")
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     _json_option(p)
