@@ -12,10 +12,13 @@ import math
 import os
 import sys
 from collections.abc import Callable, Sequence
-from contextlib import nullcontext, redirect_stdout
-from typing import IO, Any, NoReturn
+from typing import Any
 
 from drawledger import __version__
+from drawledger._cli_output import OneLineParser, run_quietly
+from drawledger._cli_output import console as _console
+from drawledger._cli_output import json_option as _json_option
+from drawledger._cli_output import write_json as _write_json
 from drawledger._text import counted, visible
 from drawledger.exceptions import DrawledgerError, EstimateRefusedError
 
@@ -56,24 +59,6 @@ def _not_yet(command: str) -> Handler:
 PLOT_SUFFIXES = (".png", ".svg", ".pdf")
 
 
-# Where ``--json -`` writes: the standard output the command started with (human output is
-# sent to stderr meanwhile, or nowhere with --quiet).
-_machine_out: list[IO[str]] = []
-
-# Tables printed to a pipe or a file (CI logs, scripts) are laid out this wide: never cut to
-# the 80 columns rich assumes when the output is not a terminal.
-PIPE_WIDTH = 400
-
-
-def _console() -> Any:
-    """A rich console on stdout: the terminal's width, or ``PIPE_WIDTH`` when not a terminal."""
-    from rich.console import Console
-
-    out = sys.stdout
-    tty = hasattr(out, "isatty") and out.isatty()
-    return Console(file=out, highlight=False, width=None if tty else PIPE_WIDTH)
-
-
 def _check_outputs(args: argparse.Namespace) -> None:
     """Every output file of the command can be written, checked before any work starts."""
     from drawledger._files import check_output
@@ -87,22 +72,6 @@ def _check_outputs(args: argparse.Namespace) -> None:
     plot = getattr(args, "plot", None)
     if plot is not None and not plot.lower().endswith(PLOT_SUFFIXES):
         raise ValueError(f"--plot {visible(plot)}: give a name ending in .png, .svg or .pdf")
-
-
-def _write_json(path: str, data: dict[str, Any]) -> None:
-    """The result as indented JSON, written whole or not at all (``-``: alone on stdout)."""
-    import orjson
-
-    from drawledger._files import replacing
-
-    text = orjson.dumps(data, option=orjson.OPT_INDENT_2) + b"\n"
-    if path == "-":
-        stdout = _machine_out[-1] if _machine_out else sys.stdout
-        stdout.write(text.decode())
-        stdout.flush()
-        return
-    with replacing(path) as out:
-        out.write(text)
 
 
 def _ingest(args: argparse.Namespace) -> int:
@@ -144,6 +113,18 @@ def _verify(args: argparse.Namespace) -> int:
         _write_json(args.json, report.to_dict())
     _console().print(report)
     return EXIT_OK if report.ok else EXIT_FOUND
+
+
+def _show(args: argparse.Namespace) -> int:
+    """One decision in full, replayed; exit 1 when its replay does not verify it."""
+    from drawledger.replay import verify_one
+
+    view = verify_one(args.ledger, args.decision_id, path=args.path, allow=args.allow,
+                      integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None)  # fmt: skip
+    if args.json:
+        _write_json(args.json, view.to_dict())
+    _console().print(view)
+    return EXIT_OK if view.ok else EXIT_FOUND
 
 
 def _audit(args: argparse.Namespace) -> int:
@@ -375,26 +356,13 @@ def _replay_options(p: argparse.ArgumentParser) -> None:
                    "shop.decisions (repeatable)")  # fmt: skip
 
 
-class _Parser(argparse.ArgumentParser):
-    """Usage errors in one line on stderr, exit 2 (the usage itself is in --help)."""
-
-    def error(self, message: str) -> NoReturn:
-        self.exit(EXIT_USAGE, f"{self.prog}: error: {visible(message)} (see {self.prog} --help)\n")
-
-
-def _json_option(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--json", metavar="FILE",
-                   help="write the result as JSON to FILE; '-' writes it alone to stdout "
-                   "(the human-readable output then goes to stderr)")  # fmt: skip
-
-
 class _Formatter(argparse.RawDescriptionHelpFormatter):
     def __init__(self, prog: str) -> None:
         super().__init__(prog, max_help_position=32, width=100)
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = _Parser(
+    parser = OneLineParser(
         prog="drawledger",
         formatter_class=_Formatter,
         description="Record randomized decisions with their true probabilities, replay and "
@@ -457,6 +425,22 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--mc-samples", type=int, default=2000, metavar="N",
                    help="Monte Carlo runs per decision past --budget (default 2000)")  # fmt: skip
     _engine_options(p)
+
+    p = add("show", "print one decision in full, beside its replay",
+            "drawledger show decisions.db card-000012 --allow drawledger.replay.demo.grocery",
+            _show)  # fmt: skip
+    p.description = (
+        "Print one decision: its inputs, policy parameters, seed and code identity, every\n"
+        "draw (kind, name, arguments, uniforms, value, probability) beside its replayed value\n"
+        "and probability, its outcomes, and the verdict verify gives it, with the reasons.\n"
+        "The hashes of its records are checked; links between records (gaps) are verify's.\n"
+        "Exit 0 when the replay verifies the decision (or it is a declared draw), 1 when it\n"
+        "does not, 2 for an unknown decision id."
+    )
+    p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
+    p.add_argument("decision_id", metavar="DECISION_ID", help="the decision's id")
+    _replay_options(p)
+    _json_option(p)
 
     p = add("audit", "test statistically that randomization happened as declared",
             "drawledger audit decisions.db --json audit.json", _audit)  # fmt: skip
@@ -527,23 +511,6 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def _run_handler(handler: Handler, args: argparse.Namespace) -> int:
-    """Run a command; with --quiet its human output goes nowhere, with ``--json -`` to stderr
-    (stdout then holds the JSON alone)."""
-    quiet = getattr(args, "quiet", False)
-    if not quiet and getattr(args, "json", None) != "-":
-        return handler(args)
-    _machine_out.append(sys.stdout)
-    try:
-        with (
-            open(os.devnull, "w") if quiet else nullcontext(sys.stderr) as human,
-            redirect_stdout(human),
-        ):
-            return handler(args)
-    finally:
-        _machine_out.pop()
-
-
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args, unknown = parser.parse_known_args(argv)
@@ -555,7 +522,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             import dask  # noqa: F401  (missing: the one line below, before any work starts)
             import distributed  # noqa: F401
         _check_outputs(args)
-        return _run_handler(handler, args)
+        return run_quietly(handler, args)
     except KeyboardInterrupt:
         print(f"drawledger {args.command}: interrupted", file=sys.stderr)
         return 130

@@ -9,12 +9,13 @@ from drawledger.replay.integrity import IntegrityReport, check_integrity
 from drawledger.replay.propensity import Propensity, action_distribution, propensity
 from drawledger.replay.report import HtmlReport, WhatIf, write_report
 from drawledger.replay.sources import LedgerTables, iter_decision_chunks, read_tables
-from drawledger.replay.verify import VerifyReport, verify
+from drawledger.replay.verify import DecisionView, VerifyReport, verify, verify_one
 
 __all__: list[str] = [
     "AuditFigure",
     "AuditReport",
     "AuditTest",
+    "DecisionView",
     "DemoResult",
     "Estimate",
     "EstimateReport",
@@ -40,5 +41,6 @@ __all__: list[str] = [
     "run_demo",
     "sweep",
     "verify",
+    "verify_one",
     "write_report",
 ]

@@ -1,6 +1,7 @@
 """The one way to read a ledger: cut any ledger (SQLite, PostgreSQL, Parquet) into pieces and read
 them, whole tables or chunks of decisions with their draws."""
 
+from drawledger.replay.sources._one import DecisionRows, read_decision
 from drawledger.replay.sources._outcomes import (
     outcome_totals,
     outcome_values,
@@ -35,6 +36,7 @@ from drawledger.replay.sources._tables import (
 __all__ = [
     "CHUNK_SIZE",
     "PARALLEL_CHUNK_SIZE",
+    "DecisionRows",
     "LedgerTables",
     "Piece",
     "Task",
@@ -48,6 +50,7 @@ __all__ = [
     "partitions",
     "pieces",
     "plan",
+    "read_decision",
     "read_piece",
     "read_piece_frames",
     "read_tables",

@@ -10,6 +10,7 @@ from drawledger.replay.verify._imports import (
     lookup_qualname,
     resolve_decision,
 )
+from drawledger.replay.verify._one import DecisionView, verify_one
 from drawledger.replay.verify._report import VerifyReport
 from drawledger.replay.verify._run import verify
 from drawledger.replay.verify._types import NOT_FAILING, REASONS, Settings, absolute_paths
@@ -18,6 +19,7 @@ __all__ = [
     "BASE_COLUMNS",
     "NOT_FAILING",
     "REASONS",
+    "DecisionView",
     "Settings",
     "VerifyReport",
     "absolute_paths",
@@ -29,4 +31,5 @@ __all__ = [
     "resolve_decision",
     "verify",
     "verify_chunk",
+    "verify_one",
 ]
