@@ -166,3 +166,12 @@ def test_json_dash_writes_the_audit_json_alone_on_stdout(
     assert 0 == done.returncode, done.stderr
     assert json.loads(done.stdout)["ok"] is True
     assert "as declared" in done.stderr
+
+
+def test_docs_map_every_json_test_key_to_its_table_label() -> None:
+    """docs/audit.md's table of `test` keys and labels is the one the tables use."""
+    from drawledger.replay.audit import TEST_LABELS
+
+    doc = (Path(__file__).resolve().parent.parent / "docs" / "audit.md").read_text()
+    found = dict(re.findall(r"^\| `(\w+)` \| ([^|`]+?) \|$", doc, flags=re.M))
+    assert TEST_LABELS == found
