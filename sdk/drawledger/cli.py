@@ -105,7 +105,7 @@ def _verify(args: argparse.Namespace) -> int:
     report = verify(
         args.ledger, path=args.path, allow=args.allow, jobs=args.jobs, budget=args.budget,
         mc_samples=args.mc_samples, export=args.export, keep_rows=args.export is not None,
-        progress=True,
+        progress=not args.quiet,
         integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None, engine=args.engine,
         scheduler=args.scheduler,
     )  # fmt: skip
@@ -131,7 +131,9 @@ def _audit(args: argparse.Namespace) -> int:
     """Test the randomization of every stream; exit 1 when an alarm fires."""
     from drawledger.replay import audit
 
-    report = audit(args.ledger, progress=True, engine=args.engine, scheduler=args.scheduler)
+    report = audit(
+        args.ledger, progress=not args.quiet, engine=args.engine, scheduler=args.scheduler
+    )
     if args.json:
         _write_json(args.json, report.to_dict())
     _console().print(report)
@@ -214,7 +216,7 @@ def _estimate(args: argparse.Namespace) -> int:
         reward=args.reward, stream=args.stream, path=args.path, allow=args.allow,
         baseline=baseline or None, clip=args.clip, interval=args.interval,
         bootstrap=args.bootstrap, level=args.level, seed=args.seed, reward_range=reward_range,
-        missing_reward=missing, progress=sys.stderr.isatty(), jobs=args.jobs,
+        missing_reward=missing, progress=sys.stderr.isatty() and not args.quiet, jobs=args.jobs,
         integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None,
         engine=args.engine, scheduler=args.scheduler, **_accepted(args),
     )  # fmt: skip
@@ -331,7 +333,7 @@ def _report(args: argparse.Namespace) -> int:
     report = write_report(
         args.ledger, args.html, path=args.path, allow=args.allow, reward=args.reward,
         overrides=_assignments(args.overrides, "--set") or None, stream=args.stream,
-        progress=True, integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None,
+        progress=not args.quiet, integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None,
         **_accepted(args),
     )  # fmt: skip
     if args.json:
