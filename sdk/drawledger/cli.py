@@ -369,11 +369,14 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=_Formatter,
         description="Record randomized decisions with their true probabilities, replay and "
         "audit them, and estimate what other policies would have achieved.",
-        epilog="Exit codes: 0 passed, 1 a check found a problem, 2 bad usage or unreadable input.",
+        epilog="Exit codes: 0 passed, 1 a check found a problem, 2 bad usage or unreadable input.\n"
+        "New here? Run drawledger demo; drawledger COMMAND --help describes each command.",
     )
     parser.add_argument("--version", action="version", version=f"drawledger {__version__}",
                         help="print the version and exit")  # fmt: skip
-    parser.add_argument("--debug", action="store_true", help="show tracebacks of errors")
+    parser.add_argument("--debug", action="store_true",
+                        help="show tracebacks of errors (before the command: drawledger --debug "
+                        "verify ...)")  # fmt: skip
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
