@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import math
 import re
 import shlex
@@ -234,3 +235,12 @@ def test_the_printed_commands_re_run_the_checks_as_printed(demo_run: object) -> 
                           text=True, timeout=300)  # fmt: skip
     assert (0, "") == (done.returncode, done.stderr)
     assert "verify passed" in done.stdout
+
+
+def test_demo_json_dash_writes_the_result_alone_on_stdout(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    assert 0 == main(["demo", "--decisions", "60", "--out", str(tmp_path / "d"), "--json", "-"])
+    out, err = capsys.readouterr()
+    assert 60 == json.loads(out)["sessions"]
+    assert "Re-run the checks on this ledger:" in err

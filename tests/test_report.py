@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import base64
+import json
 import re
 import shutil
 import sqlite3
@@ -400,3 +401,16 @@ def test_names_and_text_on_the_page_hold_no_control_characters_or_markup(text: s
     for out in (str(_format.name(text)), str(escape(_format.plain(text)))):
         assert [] == [c for c in out if unicodedata.category(c) in {"Cc", "Cf", "Cs", "Zl", "Zp"}]
         assert "<script>" not in out
+
+
+def test_report_command_json_dash_writes_the_json_alone_on_stdout(
+    demo_run: Any, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    html = tmp_path / "r.html"
+    code = main(["report", str(demo_run.ledger), "--html", str(html), "--json", "-",
+                 "--allow", "drawledger.replay.demo.grocery"])  # fmt: skip
+    out, err = capsys.readouterr()
+    assert 0 == code, err
+    data = json.loads(out)
+    assert (True, str(html)) == (data["ok"], data["html"])
+    assert f"wrote {html}" in err

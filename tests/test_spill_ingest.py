@@ -433,3 +433,13 @@ def test_lone_surrogates_are_refused_at_the_call_and_the_rest_is_written(tmp_pat
     led.close()
     assert (2, 0, 0) == (led.stats()["written"], led.stats()["spilled"], led.stats()["dropped"])
     assert check_integrity(target).ok
+
+
+def test_cli_ingest_json_dash_writes_the_report_alone_on_stdout(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    spill = _spill_of(tmp_path, 3)
+    assert 0 == main(["ingest", str(spill), str(tmp_path / "x.db"), "--json", "-"])
+    out, err = capsys.readouterr()
+    assert 3 == orjson.loads(out)["decisions"]
+    assert "loaded 3 spilled decisions" in err
