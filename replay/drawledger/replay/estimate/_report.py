@@ -196,8 +196,9 @@ class EstimateReport:
                   f"{_policy_text(self.baseline)}), {self.n} verified records, "
                   f"{_intervals(self.settings)}"), title_justify="left", box=SIMPLE)  # fmt: skip
         for col in ("estimator", "value", "interval", "outer band", "diff", "interval"):
-            t.add_column(col, justify="left" if col == "estimator" else "right",
-                         overflow="fold")  # numbers fold, never cut  # fmt: skip
+            name_column = col == "estimator"  # numbers fold, never cut
+            t.add_column(col, justify="left" if name_column else "right", no_wrap=name_column,
+                         overflow="fold")  # fmt: skip
         for name, e in self.estimates.items():
             d = self.difference[name]
             outer = _span({"low": e.get("outer_low"), "high": e.get("outer_high")}) \

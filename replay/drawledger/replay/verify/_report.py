@@ -66,8 +66,9 @@ class VerifyReport:
 
         streams = Table(title="decisions by stream", title_justify="left")
         for name in ("stream", "decisions", "verified", "mismatched", "unreplayable", "reasons"):
+            # numbers fold onto a second line when the table is squeezed, never cut
             streams.add_column(name, justify="right" if name in COUNTS else "left",
-                               overflow="fold")  # numbers fold, never cut  # fmt: skip
+                               overflow="fold")  # fmt: skip
         for stream, c in sorted(self.by_stream.items()):
             found = ", ".join(f"{r} {n}" for r, n in c["by_reason"].items())
             streams.add_row(shown(stream), *(str(c[k]) for k in COUNTS), found)
