@@ -117,7 +117,8 @@ def test_what_if_options_reach_the_library(cards, tmp_path, capsys, extra):
         (["--set", "temprature=0.3"], "temprature is not a policy parameter"),
         (["--set", "temperature=warm"], "temperature='warm' (given with --set"),
         (["--sweep", "temperature=0.1:1"], "expected NAME=START:STOP:POINTS"),
-        (["--sweep", "temperature=0.1:1:1"], "POINTS must be at least 2"),
+        (["--sweep", "temperature=0.1:1:1"], "POINTS must be between 2 and 1000"),
+        (["--sweep", "temperature=0.1:nan:3"], "START and STOP must be finite"),
         (["--plot", "x.png"], "--plot draws the curve of --sweep"),
         (["--sweep", "temperature=0.1:1:3", "--by", "unit"], "cannot be combined"),
         (["--set", "temperature=0.3", "--target", "estimate_shop:best_card"], "either --set"),
@@ -170,6 +171,30 @@ def test_reward_range_text_is_two_ordered_numbers_or_one_line_error(text):
         assert 1 == len(str(e).splitlines())
     else:
         assert math.isfinite(lo) and math.isfinite(hi) and lo < hi
+
+
+@given(
+    st.one_of(
+        st.text(max_size=20),
+        st.builds(
+            "t={}:{}:{}".format,
+            st.sampled_from(["0.2", "nan", "inf", "-inf", "1e400", "-1e308", "x", ""]),
+            st.sampled_from(["1", "NaN", "Infinity", "1e308"]),
+            st.sampled_from(["2", "5", "0", "-3", "1.5"]),
+        ),
+    )
+)
+@settings(max_examples=300, deadline=None)
+def test_sweep_text_is_a_finite_grid_or_one_line_error(text):
+    """Any --sweep text gives at least two finite values, or a one-line error naming it."""
+    try:
+        name, values = _sweep_grid(text)
+    except ValueError as e:
+        assert str(e).startswith(f"--sweep {text!r}: ")
+        assert 1 == len(str(e).splitlines())
+    else:
+        assert name and len(values) >= 2
+        assert all(math.isfinite(v) for v in values), values
 
 
 def test_bernstein_note_and_given_range_reach_the_json(cards, tmp_path, capsys):

@@ -156,6 +156,9 @@ def _assignments(items: Sequence[str], flag: str) -> dict[str, Any]:
     return out
 
 
+MAX_SWEEP_POINTS = 1000  # each point is a whole estimate
+
+
 def _sweep_grid(text: str) -> tuple[str, list[float]]:
     """``K=START:STOP:POINTS`` as the parameter name and POINTS evenly spaced values."""
     key, sep, spec = text.partition("=")
@@ -167,8 +170,10 @@ def _sweep_grid(text: str) -> tuple[str, list[float]]:
     except ValueError:
         raise ValueError(f"--sweep {text!r}: expected NAME=START:STOP:POINTS, for example "
                          "temperature=0.2:1.0:9") from None  # fmt: skip
-    if steps < 2:
-        raise ValueError(f"--sweep {text!r}: POINTS must be at least 2")
+    if not (math.isfinite(start) and math.isfinite(stop) and math.isfinite(stop - start)):
+        raise ValueError(f"--sweep {text!r}: START and STOP must be finite numbers")
+    if not 2 <= steps <= MAX_SWEEP_POINTS:
+        raise ValueError(f"--sweep {text!r}: POINTS must be between 2 and {MAX_SWEEP_POINTS}")
     return key, [round(start + (stop - start) * i / (steps - 1), 12) for i in range(steps)]
 
 
