@@ -174,7 +174,7 @@ def _sweep_grid(text: str) -> tuple[str, list[float]]:
         raise ValueError(f"--sweep {text!r}: START and STOP must be finite numbers")
     if not 2 <= steps <= MAX_SWEEP_POINTS:
         raise ValueError(f"--sweep {text!r}: POINTS must be between 2 and {MAX_SWEEP_POINTS}")
-    return key, [round(start + (stop - start) * i / (steps - 1), 12) for i in range(steps)]
+    return key, [round(start + (stop - start) * (i / (steps - 1)), 12) for i in range(steps)]
 
 
 def _reward_range(text: str) -> tuple[float, float]:
