@@ -83,6 +83,19 @@ def file_blocks(text: str) -> list[tuple[str, str]]:
 
 
 @pytest.fixture
+def cli_pipe() -> Callable[..., subprocess.CompletedProcess[str]]:
+    """Runs ``drawledger ARGS`` in a fresh process as a CI job does: stdout and stderr are
+    pipes, ``COLUMNS`` is 80 (the width rich assumes for output that is not a terminal)."""
+
+    def run(*argv: str, columns: int = 80) -> subprocess.CompletedProcess[str]:
+        env = {**os.environ, "COLUMNS": str(columns)}
+        return subprocess.run([sys.executable, "-m", "drawledger.cli", *argv],
+                              capture_output=True, text=True, env=env, timeout=300)  # fmt: skip
+
+    return run
+
+
+@pytest.fixture
 def run_markdown(tmp_path: Path) -> Callable[..., subprocess.CompletedProcess[str]]:
     """Run the ```python blocks of a Markdown page, in order, as one script in a new interpreter.
 

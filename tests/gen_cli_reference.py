@@ -28,6 +28,11 @@ Every command exits with 0 when the check passed, 1 when it ran and found a prob
 bad usage or unreadable input (one line on stderr; `drawledger --debug COMMAND ...` shows the
 traceback). LEDGER is an SQLite file path, a SQLAlchemy URL (`postgresql+psycopg://...`) or a
 Parquet ledger directory, as for `dl.Ledger`.
+
+In scripts and CI jobs: `--json -` writes the result as JSON alone on stdout (the tables then go
+to stderr), `--quiet` prints nothing but errors (the exit code and the files only), and output
+to a pipe or a file is never cut to the terminal's width. `drawledger --version` prints the
+version.
 """
 
 

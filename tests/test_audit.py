@@ -430,7 +430,7 @@ def test_terminal_rendering_names_streams_tests_and_verdicts() -> None:
     assert "slot-discount" in text
     assert "assignment ratios" in text
     assert "not as declared" in text
-    assert "alarm(s)" in text
+    assert "4 alarms: randomization not as declared." in text
     empty = audit_tables(
         pd.DataFrame(columns=list(DECISION_COLUMNS)), pd.DataFrame(columns=list(DRAW_COLUMNS))
     )

@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+import json
+import re
+import subprocess
+from collections.abc import Callable
 from pathlib import Path
 
 import orjson
@@ -125,3 +129,49 @@ def test_an_unwritable_json_is_refused_before_any_work(
     json_path = tmp_path / "missing" / "audit.json"
     assert 2 == main(["audit", str(tmp_path / "nope.db"), "--json", str(json_path)])
     assert f"--json {json_path}: no folder" in capsys.readouterr().err
+
+
+def test_a_piped_audit_prints_every_test_in_full_at_80_columns(
+    tmp_path: Path, cli_pipe: Callable[..., subprocess.CompletedProcess[str]]
+) -> None:
+    """In a CI log (stdout a pipe, COLUMNS=80) the p column is there: each test's n, statistic
+    and Holm-adjusted p of the JSON appear together on its row, as the table formats them."""
+    ledger = tmp_path / "slots.db"
+    with dl.Ledger(ledger) as led:
+
+        @led.decision("slot-discount")
+        def discount(slot: str, draw: dl.Draw) -> int:
+            name = "discount-in-percent-for-the-evening-delivery-slot"  # a wide first column
+            return int(draw.categorical([0, 5, 10], [0.6, 0.3, 0.1], name=name))
+
+        for i in range(400):
+            discount(f"slot-{i % 7}")
+    out = tmp_path / "audit.json"
+    done = cli_pipe("audit", str(ledger), "--json", str(out))
+    assert 0 == done.returncode, done.stderr
+    for t in orjson.loads(out.read_bytes())["tests"]:
+        stat, p = t["statistic"], t["p_adjusted"]
+        shown_stat = "-" if stat is None else (
+            str(int(stat)) if float(stat).is_integer() else f"{stat:.4g}")  # fmt: skip
+        shown_p = "-" if p is None else f"{p:.3g}"
+        row = rf"│\s+{t['n']} │\s+{re.escape(shown_stat)} │\s+{re.escape(shown_p)} │ {t['verdict']}"
+        assert re.search(row, done.stdout), (t, done.stdout)
+
+
+def test_json_dash_writes_the_audit_json_alone_on_stdout(
+    tmp_path: Path, cli_pipe: Callable[..., subprocess.CompletedProcess[str]]
+) -> None:
+    ledger = legacy_ledger(tmp_path / "ok.db", [0.6, 0.3, 0.1], n=500)
+    done = cli_pipe("audit", str(ledger), "--json", "-")
+    assert 0 == done.returncode, done.stderr
+    assert json.loads(done.stdout)["ok"] is True
+    assert "as declared" in done.stderr
+
+
+def test_docs_map_every_json_test_key_to_its_table_label() -> None:
+    """docs/audit.md's table of `test` keys and labels is the one the tables use."""
+    from drawledger.replay.audit import TEST_LABELS
+
+    doc = (Path(__file__).resolve().parent.parent / "docs" / "audit.md").read_text()
+    found = dict(re.findall(r"^\| `(\w+)` \| ([^|`]+?) \|$", doc, flags=re.M))
+    assert TEST_LABELS == found

@@ -2,9 +2,13 @@
 
 from __future__ import annotations
 
+import json
 import math
 import re
+import shlex
 import sqlite3
+import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -226,3 +230,27 @@ def test_demo_command_bad_usage_is_one_line_exit_2(
     a_file.write_text("x")
     assert 2 == main(["demo", "--decisions", "100", "--out", str(a_file)])
     assert "is a file, not a directory" in capsys.readouterr().err
+
+
+def test_the_printed_commands_re_run_the_checks_as_printed(demo_run: object) -> None:
+    """The demo prints verify, audit, estimate and report commands naming the public demo
+    module; the verify command, run as printed in a fresh process, passes (exit 0)."""
+    text = demo_run.render()  # type: ignore[attr-defined]
+    printed = [line.strip() for line in text.splitlines() if line.startswith("  drawledger ")]
+    assert ["verify", "audit", "estimate", "report"] == [c.split()[1] for c in printed]
+    verify_line = printed[0]
+    assert "--allow drawledger.replay.demo.grocery" in verify_line
+    argv = shlex.split(verify_line)[1:]
+    done = subprocess.run([sys.executable, "-m", "drawledger.cli", *argv], capture_output=True,
+                          text=True, timeout=300)  # fmt: skip
+    assert (0, "") == (done.returncode, done.stderr)
+    assert "verify passed" in done.stdout
+
+
+def test_demo_json_dash_writes_the_result_alone_on_stdout(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    assert 0 == main(["demo", "--decisions", "60", "--out", str(tmp_path / "d"), "--json", "-"])
+    out, err = capsys.readouterr()
+    assert 60 == json.loads(out)["sessions"]
+    assert "Re-run the checks on this ledger:" in err

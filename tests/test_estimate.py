@@ -543,7 +543,7 @@ def small(tmp_path_factory: pytest.TempPathFactory) -> Path:
          "temprature is not a policy parameter of estimate_shop:feature_card"),
         ({"overrides": {"temperature": -1.0}}, ReplayError,
          "decision card-3-0 under the target: softmax draw 'card'"),
-        ({"overrides": {"temperature": "warm"}}, ReplayError, "param temperature"),
+        ({"overrides": {"temperature": "warm"}}, ReplayError, "temperature='warm' (given"),
         ({"overrides": {"temperature": 0.3}, "target": "estimate_shop:best_card"}, ReplayError,
          "either overrides"),
         ({"engine": "spark"}, ReplayError, "unknown engine"),

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import math
 import re
 import shutil
@@ -16,7 +17,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import drawledger as dl
-from drawledger.cli import _assignments, _reward_range, _sweep_grid, main
+from drawledger._cli_estimate import assignments, reward_range, sweep_grid
+from drawledger.cli import main
 
 SUPPORT = str(Path(__file__).parent / "support")
 
@@ -114,9 +116,10 @@ def test_what_if_options_reach_the_library(cards, tmp_path, capsys, extra):
     [
         (["--set", "temperature"], "expected NAME=VALUE"),
         (["--set", "temprature=0.3"], "temprature is not a policy parameter"),
-        (["--set", "temperature=warm"], "param temperature"),
-        (["--sweep", "temperature=0.1:1"], "expected NAME=START:STOP:STEPS"),
-        (["--sweep", "temperature=0.1:1:1"], "STEPS must be at least 2"),
+        (["--set", "temperature=warm"], "temperature='warm' (given with --set"),
+        (["--sweep", "temperature=0.1:1"], "expected NAME=START:STOP:POINTS"),
+        (["--sweep", "temperature=0.1:1:1"], "POINTS must be between 2 and 1000"),
+        (["--sweep", "temperature=0.1:nan:3"], "START and STOP must be finite"),
         (["--plot", "x.png"], "--plot draws the curve of --sweep"),
         (["--sweep", "temperature=0.1:1:3", "--by", "unit"], "cannot be combined"),
         (["--set", "temperature=0.3", "--target", "estimate_shop:best_card"], "either --set"),
@@ -145,30 +148,54 @@ def test_unknown_reward_and_missing_ledger_exit_2(cards, tmp_path, capsys):
 
 
 def test_set_values_are_json_when_they_parse_else_text():
-    got = _assignments(["t=0.3", "on=true", "name=warm", "xs=[1, 2]", 'q="0.3"', "e="], "--set")
+    got = assignments(["t=0.3", "on=true", "name=warm", "xs=[1, 2]", 'q="0.3"', "e="], "--set")
     assert {"t": 0.3, "on": True, "name": "warm", "xs": [1, 2], "q": "0.3", "e": ""} == got
 
 
 def test_sweep_grid_is_evenly_spaced_and_inclusive():
-    assert ("temperature", [0.2, 0.4, 0.6, 0.8, 1.0]) == _sweep_grid("temperature=0.2:1.0:5")
+    assert ("temperature", [0.2, 0.4, 0.6, 0.8, 1.0]) == sweep_grid("temperature=0.2:1.0:5")
 
 
 def test_reward_range_reads_low_comma_high_or_low_colon_high():
-    assert (0.0, 1.0) == _reward_range("0,1")
-    assert (0.0, 1.0) == _reward_range("0:1")
-    assert (-1.5, 2.0) == _reward_range("-1.5,2")
+    assert (0.0, 1.0) == reward_range("0,1")
+    assert (0.0, 1.0) == reward_range("0:1")
+    assert (-1.5, 2.0) == reward_range("-1.5,2")
 
 
 @given(st.text(max_size=12))
 @settings(max_examples=200, deadline=None)
 def test_reward_range_text_is_two_ordered_numbers_or_one_line_error(text):
     try:
-        lo, hi = _reward_range(text)
+        lo, hi = reward_range(text)
     except ValueError as e:
         assert str(e).startswith(f"--reward-range {text!r}: ")
         assert 1 == len(str(e).splitlines())
     else:
         assert math.isfinite(lo) and math.isfinite(hi) and lo < hi
+
+
+@given(
+    st.one_of(
+        st.text(max_size=20),
+        st.builds(
+            "t={}:{}:{}".format,
+            st.sampled_from(["0.2", "nan", "inf", "-inf", "1e400", "-1e308", "x", ""]),
+            st.sampled_from(["1", "NaN", "Infinity", "1e308"]),
+            st.sampled_from(["2", "5", "0", "-3", "1.5"]),
+        ),
+    )
+)
+@settings(max_examples=300, deadline=None)
+def test_sweep_text_is_a_finite_grid_or_one_line_error(text):
+    """Any --sweep text gives at least two finite values, or a one-line error naming it."""
+    try:
+        name, values = sweep_grid(text)
+    except ValueError as e:
+        assert str(e).startswith(f"--sweep {text!r}: ")
+        assert 1 == len(str(e).splitlines())
+    else:
+        assert name and len(values) >= 2
+        assert all(math.isfinite(v) for v in values), values
 
 
 def test_bernstein_note_and_given_range_reach_the_json(cards, tmp_path, capsys):
@@ -283,3 +310,100 @@ def test_an_unwritable_output_is_refused_before_any_work(tmp_path, capsys, argv,
     assert 2 == code
     assert message.replace("{tmp}", str(tmp_path)) in err
     assert 1 == len(err.strip().splitlines())
+
+
+def _four(x: float | None) -> str:
+    return "-" if x is None else f"{x:.4f}"
+
+
+def test_a_piped_estimate_prints_every_number_in_full_at_80_columns(cards, tmp_path, cli_pipe):
+    """In a CI log (stdout a pipe, COLUMNS=80) no column or interval is cut: every value,
+    bound and difference of the JSON appears in the text, and each estimator's row whole."""
+    out_json = tmp_path / "estimate.json"
+    done = cli_pipe("estimate", cards, "--reward", "checkout", "--set", "temperature=0.3",
+                    "--path", SUPPORT, "--by", "ctx.segment", "--json", str(out_json))  # fmt: skip
+    assert 0 == done.returncode, done.stderr
+    data = orjson.loads(out_json.read_bytes())
+    for name, e in data["estimates"].items():
+        d = data["difference"][name]
+        row = rf"^\s*{name}\s+{_four(e['value'])}\s+\[{_four(e['low'])}, {_four(e['high'])}\]"
+        diff = rf"^\s*{name}\s+{_four(d['value'])}\s+\[{_four(d['low'])}, {_four(d['high'])}\]"
+        assert re.search(row, done.stdout, re.M), (name, done.stdout)
+        assert re.search(diff, done.stdout, re.M), (name, done.stdout)  # the difference table
+    clipped = data["estimates"]["clipped"]
+    assert f"[{_four(clipped['outer_low'])}, {_four(clipped['outer_high'])}]" in done.stdout
+    assert f"{data['diagnostics']['ess']:.1f}" in done.stdout
+    for seg in data["segments"]["groups"]:
+        e = seg["estimates"]["snips"]
+        assert f"{_four(e['value'])}   [{_four(e['low'])}, {_four(e['high'])}]" in done.stdout
+
+
+def test_a_piped_sweep_prints_every_point_in_full_at_80_columns(cards, tmp_path, cli_pipe):
+    out_json = tmp_path / "sweep.json"
+    done = cli_pipe("estimate", cards, "--reward", "checkout", "--path", SUPPORT, "--sweep",
+                    "temperature=0.3:1.1:5", "--json", str(out_json))  # fmt: skip
+    assert 0 == done.returncode, done.stderr
+    data = orjson.loads(out_json.read_bytes())
+    for p in data["points"]:
+        s, r = p["estimates"]["snips"], p["estimates"]["dr"]
+        row = (rf"^\s*{p['value']:g}\s+{_four(s['value'])}\s+\[{_four(s['low'])}, "
+               rf"{_four(s['high'])}\]\s+{_four(r['value'])}\s+\[{_four(r['low'])}, "
+               rf"{_four(r['high'])}\]\s+{p['diagnostics']['ess']:.1f}")  # fmt: skip
+        assert re.search(row, done.stdout, re.M), (p["value"], done.stdout)
+
+
+def test_json_dash_writes_the_json_alone_on_stdout(cards, cli_pipe):
+    """`--json -`: stdout is the JSON and nothing else; the tables go to stderr."""
+    done = cli_pipe("estimate", cards, "--reward", "checkout", "--set", "temperature=0.3",
+                    "--path", SUPPORT, "--json", "-")  # fmt: skip
+    assert 0 == done.returncode, done.stderr
+    assert 400 == json.loads(done.stdout)["n"]
+    assert "effective sample size" in done.stderr
+
+
+def test_a_refused_estimate_with_json_dash_writes_the_refusal_on_stdout(tmp_path, cli_pipe):
+    path = tmp_path / "cards.db"
+    with dl.Ledger(path) as led:
+        shop.simulate_cards(led, 60, seed=3)
+    sqlite3.connect(path).execute("DELETE FROM decisions WHERE seq = 5").connection.commit()
+    done = cli_pipe("estimate", str(path), "--reward", "checkout", "--set", "temperature=0.3",
+                    "--path", SUPPORT, "--json", "-")  # fmt: skip
+    assert 1 == done.returncode
+    assert {"ok": False} == {"ok": json.loads(done.stdout)["ok"]}
+
+
+def test_quiet_prints_nothing_and_keeps_the_exit_code_and_files(cards, tmp_path, capsys):
+    out_json = tmp_path / "estimate.json"
+    code, out, err = _run(capsys, cards, "--reward", "checkout", "--set", "temperature=0.3",
+                          "--path", SUPPORT, "--json", str(out_json), "--quiet")  # fmt: skip
+    assert (0, "", "") == (code, out, err)
+    assert 400 == orjson.loads(out_json.read_bytes())["n"]
+
+
+def test_a_bucket_stream_is_refused_in_readable_text(tmp_path, capsys):
+    """Hashed bucket assignments have no decision function: the one-line error says so in
+    words and counts, never as a printed Python dict."""
+    path = tmp_path / "slots.db"
+    with dl.Ledger(path) as led:
+        for i in range(40):
+            led.bucket(f"shopper-{i}", {"control": 0.5, "free-delivery": 0.5}, salt="fee-test")
+    ids = [r[0] for r in sqlite3.connect(path).execute("SELECT decision_id FROM decisions")]
+    with dl.Ledger(path) as led:
+        for i, did in enumerate(ids):
+            led.outcome(did, "checkout", float(i % 2))
+    code, out, err = _run(capsys, str(path), "--reward", "checkout")
+    assert (2, "") == (code, out)
+    assert "excluded: 40 decisions (no decision function (bucket assignment))" in err
+    assert "{" not in err
+
+
+def test_code_replay_may_not_import_is_refused_as_not_allowed_and_can_be_accepted(cards, cli_pipe):
+    """In a fresh process without --path or --allow the decision module is not imported: the
+    refusal names the reason not-allowed, which --accept-verification-failures knows."""
+    done = cli_pipe("estimate", cards, "--reward", "checkout")
+    assert (1, "") == (done.returncode, done.stdout)
+    assert "(not-allowed: 400" in done.stderr
+    done = cli_pipe("estimate", cards, "--reward", "checkout",
+                    "--accept-verification-failures", "not-allowed")  # fmt: skip
+    assert "unknown verification reason" not in done.stderr
+    assert "excluded: 400 decisions (not-allowed)" in done.stderr

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import base64
+import json
 import re
 import shutil
 import sqlite3
@@ -469,3 +470,16 @@ def test_report_words_stand_alone(demo_html: str) -> None:
     assert "PIT is the probability integral transform" in text
     assert "docs/" not in text
     assert "effective sample size is small" in text
+
+
+def test_report_command_json_dash_writes_the_json_alone_on_stdout(
+    demo_run: Any, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    html = tmp_path / "r.html"
+    code = main(["report", str(demo_run.ledger), "--html", str(html), "--json", "-",
+                 "--allow", "drawledger.replay.demo.grocery"])  # fmt: skip
+    out, err = capsys.readouterr()
+    assert 0 == code, err
+    data = json.loads(out)
+    assert (True, str(html)) == (data["ok"], data["html"])
+    assert f"wrote {html}" in err

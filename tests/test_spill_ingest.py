@@ -933,5 +933,15 @@ def test_a_declared_draw_the_writer_rejects_during_ingest_is_not_counted_as_load
     report = dl.ingest(path, led)
     led.close()
     assert (0, 1, False) == (report.declared, report.rejected, report.ok)
-    assert "1 declared draws were refused by the writer" in report.render()
+    assert "1 declared draw refused by the writer" in report.render()
     assert 1 == int((read_tables(target).decisions["decision_id"] == "legacy-1").sum())
+
+
+def test_cli_ingest_json_dash_writes_the_report_alone_on_stdout(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    spill = _spill_of(tmp_path, 3)
+    assert 0 == main(["ingest", str(spill), str(tmp_path / "x.db"), "--json", "-"])
+    out, err = capsys.readouterr()
+    assert 3 == orjson.loads(out)["decisions"]
+    assert "loaded 3 spilled decisions" in err

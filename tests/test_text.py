@@ -9,7 +9,7 @@ from hypothesis import strategies as st
 from strategies import hostile_text
 
 from drawledger._ingest import IngestReport
-from drawledger._text import clipped, visible
+from drawledger._text import clipped, counted, visible
 
 
 def test_controls_and_bidirectional_overrides_become_their_escapes() -> None:
@@ -40,3 +40,11 @@ def test_clipped_text_ends_with_an_ellipsis_within_the_limit() -> None:
 def test_ingest_summary_shows_reasons_escaped() -> None:
     report = IngestReport("draws.jsonl", lines=1, malformed=[(1, "bad \x1b[2J\u202e")])
     assert r"  line 1: bad \x1b[2J\u202e" == report.render().splitlines()[1]
+
+
+def test_counted_agrees_the_noun_with_the_number() -> None:
+    assert ["0 writers", "1 writer", "2 writers", "1 draws part", "3 draws parts"] == [
+        counted(0, "writer"), counted(1, "writer"), counted(2, "writer"),
+        counted(1, "draws part"), counted(3, "draws part"),
+    ]  # fmt: skip
+    assert "2 analyses" == counted(2, "analysis", "analyses")

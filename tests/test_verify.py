@@ -425,7 +425,7 @@ def test_foreign_function_name_is_refused_and_not_run(
     monkeypatch.syspath_prepend(str(outside))  # importable, but not under --path
     report = s.verify(allow=["os"])
     assert {"not-a-decision", "integrity"} == _reasons(report, "d1")
-    assert {"missing-function", "integrity"} == _reasons(report, "d2")
+    assert {"not-allowed", "integrity"} == _reasons(report, "d2")
     assert [] == calls
     assert canary not in sys.modules
     assert not (tmp_path / "ran").exists()

@@ -10,6 +10,7 @@ import sqlite3
 import subprocess
 import sys
 from pathlib import Path
+from typing import Any
 
 import pandas as pd
 import pytest
@@ -61,14 +62,14 @@ def test_found_problem_exits_one(shop: Path, tmp_path: Path, capsys: pytest.Capt
 
 def test_fresh_process_imports_nothing_without_path_or_allow(shop: Path, tmp_path: Path) -> None:
     """In a new process (the module importable through PYTHONPATH, but not named by --path or
-    --allow) nothing is imported: every decision is missing-function, exit 1."""
+    --allow) nothing is imported: every decision is not-allowed, exit 1."""
     env = {**os.environ, "PYTHONPATH": SUPPORT}
     out = tmp_path / "v.json"
     command = [sys.executable, "-m", "drawledger.cli", "verify", str(shop), "--json", str(out)]
     done = subprocess.run(command, env=env, capture_output=True, text=True, timeout=120)
     assert 1 == done.returncode, done.stderr
-    assert {"missing-function": 16} == json.loads(out.read_text())["by_reason"]
-    assert "missing-function" in done.stdout
+    assert {"not-allowed": 16} == json.loads(out.read_text())["by_reason"]
+    assert "not-allowed" in done.stdout
 
 
 @pytest.mark.parametrize("suffix", [".csv", ".parquet"])
@@ -142,6 +143,7 @@ def _point(ledger: Path, decision_id: str, fn: str) -> None:
 
 EXITS = """
 from pathlib import Path
+from typing import Any
 Path({canary!r}).write_text("ran")
 raise SystemExit(0)
 """
@@ -205,7 +207,7 @@ def test_entry_points_and_folders_without_init_are_never_imported(
     assert 1 == main(["verify", str(shop), "--path", SUPPORT, "--path", str(code),
                       "--json", str(out)])  # fmt: skip
     assert not canary.exists()
-    assert 1 == json.loads(out.read_text())["by_reason"].get("missing-function")
+    assert 1 == json.loads(out.read_text())["by_reason"].get("not-allowed")
 
 
 def test_ledger_text_reaches_the_terminal_as_text_never_as_markup_or_escapes(
@@ -280,3 +282,38 @@ def test_csv_export_keeps_a_carriage_return_inside_its_cell(tmp_path: Path) -> N
     data = pd.read_csv(target)
     assert ["north\rsouth", "west"] == list(data["unit"])
     assert ["'=1+1", "b"] == list(data["action"])
+
+
+def test_a_piped_verify_prints_every_count_in_full_at_80_columns(
+    shop: Path, tmp_path: Path, cli_pipe: Any
+) -> None:
+    """In a CI log (stdout a pipe, COLUMNS=80) each stream's row holds its four counts."""
+    out = tmp_path / "verify.json"
+    done = cli_pipe("verify", str(shop), "--path", SUPPORT, "--json", str(out))
+    assert 0 == done.returncode, done.stderr
+    data = json.loads(out.read_text())
+    for stream, c in {**data["by_stream"], "all": data}.items():
+        counts = r"\s+│\s+".join(str(c[k]) for k in ("decisions", "verified", "mismatched",
+                                                          "unreplayable"))  # fmt: skip
+        assert re.search(rf"│ {re.escape(stream)}\s+│\s+{counts}\s+│", done.stdout), stream
+
+
+def test_json_dash_writes_the_verify_json_alone_on_stdout(shop: Path, cli_pipe: Any) -> None:
+    done = cli_pipe("verify", str(shop), "--path", SUPPORT, "--json", "-")
+    assert 0 == done.returncode, done.stderr
+    assert 16 == json.loads(done.stdout)["verified"]
+    assert "verify passed" in done.stderr
+
+
+def test_other_outputs_refuse_a_dash(shop: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """Only --json writes to stdout; `--export -` is refused rather than writing a file '-'."""
+    assert 2 == main(["verify", str(shop), "--export", "-"])
+    assert "--export -: only --json can write to stdout" in capsys.readouterr().err
+    assert not Path("-").exists()
+
+
+def test_counts_of_one_take_the_singular(shop: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """A ledger of one writer says "1 writer", never "1 writers"."""
+    assert 0 == main(["verify", str(shop), "--allow", "shop_decisions"])
+    out = capsys.readouterr().out
+    assert "16 decisions, 8 outcomes, 1 writer (unkeyed hashes)" in out

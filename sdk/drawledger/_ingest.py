@@ -47,7 +47,7 @@ from drawledger._schema import (
     Positions,
     TableSpec,
 )
-from drawledger._text import visible
+from drawledger._text import counted, visible
 from drawledger.exceptions import DrawledgerError, LedgerError
 from drawledger.ledger import Ledger
 
@@ -107,12 +107,14 @@ class IngestReport:
         out = []
         if self.conflicting:
             out.append(
-                f"CONFLICT: {len(self.conflicting)} records differ from the stored records with "
-                "the same writer and seq (tampering or a bug); they were not loaded"
+                f"CONFLICT: {counted(len(self.conflicting), 'record')} differ from the stored "
+                "records with the same writer and seq (tampering or a bug); not loaded"
             )
         out.append(
-            f"{self.file}: {self.lines} lines; loaded {self.decisions} spilled decisions, "
-            f"{self.outcomes} spilled outcomes, {self.declared} declared draws; "
+            f"{self.file}: {counted(self.lines, 'line')}; loaded "
+            f"{counted(self.decisions, 'spilled decision')}, "
+            f"{counted(self.outcomes, 'spilled outcome')}, "
+            f"{counted(self.declared, 'declared draw')}; "
             f"{self.already_present} already in the ledger; {len(self.conflicting)} conflicting; "
             f"{len(self.duplicate_ids)} refused for a decision id already in the ledger; "
             f"{len(self.malformed)} malformed"
@@ -127,10 +129,11 @@ class IngestReport:
             if len(found) > MAX_SHOWN:
                 out.append(f"  ... and {len(found) - MAX_SHOWN} more {label} lines")
         if self.spilled:
-            out.append(f"  {self.spilled} declared draws could not be written and were spilled")
+            out.append(f"  {counted(self.spilled, 'declared draw')} could not be written and "
+                       "were spilled")  # fmt: skip
         if self.rejected:
-            out.append(f"  {self.rejected} declared draws were refused by the writer: their "
-                       "decision id reached the ledger during the ingest")  # fmt: skip
+            out.append(f"  {counted(self.rejected, 'declared draw')} refused by the writer: "
+                       "their decision id reached the ledger during the ingest")  # fmt: skip
         return "\n".join(out)
 
     def __str__(self) -> str:

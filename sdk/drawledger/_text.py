@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import re
 
-__all__ = ["clipped", "visible"]
+__all__ = ["clipped", "counted", "visible"]
 
 # C0 and C1 controls with DEL; the bidirectional marks, embeddings, overrides and isolates
 # (Unicode Standard Annex #9); line and paragraph separators; invisible format characters
@@ -41,3 +41,8 @@ def clipped(text: object, limit: int) -> str:
     """``visible(text)`` cut to at most ``limit`` characters, the last an ellipsis if cut."""
     shown = visible(text)
     return shown if len(shown) <= limit else shown[: max(limit - 1, 0)] + "…"
+
+
+def counted(n: int, noun: str, plural: str | None = None) -> str:
+    """``n`` and the noun agreeing with it: "1 writer", "3 writers", "0 decisions"."""
+    return f"{n} {noun if n == 1 else (plural or noun + 's')}"

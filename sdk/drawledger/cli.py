@@ -8,15 +8,25 @@ A command whose optional extra is not installed says which one, in one line, and
 from __future__ import annotations
 
 import argparse
-import math
+import os
 import sys
 from collections.abc import Callable, Sequence
 from typing import Any
 
-from drawledger._text import visible
+from drawledger import __version__
+from drawledger._cli_estimate import (
+    accept_options,
+    accepted,
+    assignments,
+    estimate_command,
+    estimate_options,
+)
+from drawledger._cli_output import EXIT_FOUND, EXIT_OK, EXIT_USAGE, OneLineParser, run_quietly
+from drawledger._cli_output import console as _console
+from drawledger._cli_output import json_option as _json_option
+from drawledger._cli_output import write_json as _write_json
+from drawledger._text import counted, visible
 from drawledger.exceptions import DrawledgerError, EstimateRefusedError
-
-EXIT_OK, EXIT_FOUND, EXIT_USAGE = 0, 1, 2
 
 Handler = Callable[[argparse.Namespace], int]
 
@@ -66,21 +76,13 @@ def _check_outputs(args: argparse.Namespace) -> None:
 
     for flag in ("json", "export", "plot", "html"):
         path = getattr(args, flag, None)
-        if path is not None:
+        if path == "-" and flag != "json":
+            raise ValueError(f"--{flag} -: only --json can write to stdout; give a file name")
+        if path is not None and not (flag == "json" and path == "-"):
             check_output(path, f"--{flag}")
     plot = getattr(args, "plot", None)
     if plot is not None and not plot.lower().endswith(PLOT_SUFFIXES):
         raise ValueError(f"--plot {visible(plot)}: give a name ending in .png, .svg or .pdf")
-
-
-def _write_json(path: str, data: dict[str, Any]) -> None:
-    """The result as indented JSON, written whole or not at all."""
-    import orjson
-
-    from drawledger._files import replacing
-
-    with replacing(path) as out:
-        out.write(orjson.dumps(data, option=orjson.OPT_INDENT_2) + b"\n")
 
 
 def _ingest(args: argparse.Namespace) -> int:
@@ -92,6 +94,8 @@ def _ingest(args: argparse.Namespace) -> int:
 
     key = os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None
     report = ingest(args.file, args.ledger, integrity_key=key)
+    if args.json:
+        _write_json(args.json, report.to_dict())
     print(report.render())
     problems = []
     for label, found in (("conflicting records not loaded", report.conflicting),
@@ -102,11 +106,11 @@ def _ingest(args: argparse.Namespace) -> int:
             n, reason = found[0]
             problems.append(f"{len(found)} {label} (first: line {n}: {visible(reason)})")
     if report.spilled:
-        problems.append(f"{report.spilled} declared draws could not be written and were "
-                        "spilled; ingest that spill file again")  # fmt: skip
+        problems.append(f"{counted(report.spilled, 'declared draw')} could not be written and "
+                        "were spilled; ingest that spill file again")  # fmt: skip
     if report.rejected:
-        problems.append(f"{report.rejected} declared draws were refused by the writer: their "
-                        "decision id reached the ledger during the ingest")  # fmt: skip
+        problems.append(f"{counted(report.rejected, 'declared draw')} refused by the writer: "
+                        "their decision id reached the ledger during the ingest")  # fmt: skip
     if problems:
         print(f"drawledger ingest: error: {'; '.join(problems)}", file=sys.stderr)
     if report.malformed or report.spilled:
@@ -118,228 +122,61 @@ def _verify(args: argparse.Namespace) -> int:
     """Replay every decision; exit 1 when one is not verified or the integrity check fails."""
     import os
 
-    from rich.console import Console
-
     from drawledger.replay import verify
 
     report = verify(
         args.ledger, path=args.path, allow=args.allow, jobs=args.jobs, budget=args.budget,
         mc_samples=args.mc_samples, export=args.export, keep_rows=args.export is not None,
-        progress=True,
+        progress=not args.quiet,
         integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None, engine=args.engine,
         scheduler=args.scheduler, history=not args.no_history,
     )  # fmt: skip
     if args.json:
         _write_json(args.json, report.to_dict())
-    Console(highlight=False).print(report)
+    _console().print(report)
     return EXIT_OK if report.ok else EXIT_FOUND
 
 
 def _versions(args: argparse.Namespace) -> int:
     """List the code versions of a ledger, or diff two; exit 1 when a stored source does not
     hash to its identity."""
-    import orjson
-
     from drawledger.replay import code_versions, version_diff
 
     if args.diff:
         report = version_diff(args.ledger, *args.diff, stream=args.stream)
     else:
         report = code_versions(args.ledger, stream=args.stream)
-    data = orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n"
-    if args.json == "-":
-        sys.stdout.buffer.write(data)
-    else:
-        if args.json:
-            with open(args.json, "wb") as out:
-                out.write(data)
-        print(report.render())
+    if args.json:
+        _write_json(args.json, report.to_dict())
+    print(report.render())
     return EXIT_OK if report.ok else EXIT_FOUND
+
+
+def _show(args: argparse.Namespace) -> int:
+    """One decision in full, replayed; exit 1 when its replay does not verify it."""
+    from drawledger.replay import verify_one
+
+    view = verify_one(args.ledger, args.decision_id, path=args.path, allow=args.allow,
+                      integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None)  # fmt: skip
+    if args.json:
+        _write_json(args.json, view.to_dict())
+    _console().print(view)
+    return EXIT_OK if view.ok else EXIT_FOUND
 
 
 def _audit(args: argparse.Namespace) -> int:
     """Test the randomization of every stream; exit 1 when an alarm fires."""
-    from rich.console import Console
-
     from drawledger.replay import audit
 
-    report = audit(args.ledger, progress=True, engine=args.engine, scheduler=args.scheduler)
-    if args.json:
-        _write_json(args.json, report.to_dict())
-    Console(highlight=False).print(report)
-    return EXIT_OK if report.ok else EXIT_FOUND
-
-
-def _assignments(items: Sequence[str], flag: str) -> dict[str, Any]:
-    """``K=V`` pairs; V is read as JSON when it parses (0.3, true, "x", [1, 2]), else as text."""
-    import orjson
-
-    out: dict[str, Any] = {}
-    for item in items:
-        key, sep, text = item.partition("=")
-        if not sep or not key:
-            raise ValueError(f"{flag} {item!r}: expected NAME=VALUE, for example temperature=0.3")
-        try:
-            out[key] = orjson.loads(text)
-        except orjson.JSONDecodeError:
-            out[key] = text
-    return out
-
-
-def _sweep_grid(text: str) -> tuple[str, list[float]]:
-    """``K=START:STOP:STEPS`` as the parameter name and STEPS evenly spaced values."""
-    key, sep, spec = text.partition("=")
-    parts = spec.split(":")
-    try:
-        if not sep or not key or len(parts) != 3:
-            raise ValueError
-        start, stop, steps = float(parts[0]), float(parts[1]), int(parts[2])
-    except ValueError:
-        raise ValueError(f"--sweep {text!r}: expected NAME=START:STOP:STEPS, for example "
-                         "temperature=0.2:1.0:9") from None  # fmt: skip
-    if steps < 2:
-        raise ValueError(f"--sweep {text!r}: STEPS must be at least 2")
-    return key, [round(start + (stop - start) * i / (steps - 1), 12) for i in range(steps)]
-
-
-def _reward_range(text: str) -> tuple[float, float]:
-    """``LOW,HIGH`` (or ``LOW:HIGH``) as two finite numbers with LOW < HIGH."""
-    parts = text.replace(":", ",").split(",")
-    try:
-        if len(parts) != 2:
-            raise ValueError
-        lo, hi = float(parts[0]), float(parts[1])
-    except ValueError:
-        raise ValueError(f"--reward-range {text!r}: expected LOW,HIGH, for example "
-                         "0,1") from None  # fmt: skip
-    if not (math.isfinite(lo) and math.isfinite(hi) and lo < hi):
-        raise ValueError(f"--reward-range {text!r}: LOW and HIGH must be finite with LOW < HIGH")
-    return lo, hi
-
-
-def _estimate(args: argparse.Namespace) -> int:
-    """Estimate a target policy; exit 1 when the data cannot answer (support deficit, tiny ESS)."""
-    import os
-
-    from rich.console import Console
-
-    from drawledger.replay import estimate, sweep
-
-    if args.sweep is None and args.plot:
-        raise ValueError("--plot draws the curve of --sweep; add --sweep NAME=START:STOP:STEPS")
-    if args.sweep is not None and (args.by or args.target):
-        raise ValueError("--sweep varies --set parameters; it cannot be combined with --by "
-                         "or --target")  # fmt: skip
-    if args.baseline_set and args.baseline_target:
-        raise ValueError("give either --baseline-set or --baseline-target, not both")
-    overrides = _assignments(args.overrides, "--set")
-    if overrides and args.target:
-        raise ValueError("give either --set (changed parameters) or --target (a callable)")
-    baseline = _assignments(args.baseline_set, "--baseline-set") or args.baseline_target
-    reward_range = None if args.reward_range is None else _reward_range(args.reward_range)
-    missing: float | None = None
-    if args.missing_reward != "exclude":
-        try:
-            missing = float(args.missing_reward)
-        except ValueError:
-            raise ValueError(f"--missing-reward {args.missing_reward!r}: a number or "
-                             "'exclude'") from None  # fmt: skip
-    common: dict[str, Any] = dict(
-        reward=args.reward, stream=args.stream, path=args.path, allow=args.allow,
-        baseline=baseline or None, clip=args.clip, interval=args.interval,
-        bootstrap=args.bootstrap, level=args.level, seed=args.seed, reward_range=reward_range,
-        missing_reward=missing, progress=sys.stderr.isatty(), jobs=args.jobs,
-        integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None,
-        engine=args.engine, scheduler=args.scheduler, **_accepted(args),
-    )  # fmt: skip
-    report: Any
-    try:
-        if args.sweep is not None:
-            param, values = _sweep_grid(args.sweep)
-            report = sweep(args.ledger, param=param, values=values, overrides=overrides or None,
-                           **common)  # fmt: skip
-        else:
-            report = estimate(args.ledger, overrides=overrides or None, target=args.target,
-                              by=args.by, **common)  # fmt: skip
-    except EstimateRefusedError as exc:
-        if args.json:  # never leave an earlier run's estimate in the file
-            refused = {"check": exc.check, "problems": exc.problems, "message": str(exc)}
-            _write_json(args.json, {"ok": False, "refused": refused})
-        raise
-    if args.sweep is not None and args.plot:
-        from drawledger._files import replacing
-
-        with replacing(args.plot) as out:
-            report.figure().savefig(out, format=args.plot.rsplit(".", 1)[-1].lower())
-    if args.json:
-        _write_json(args.json, report.to_dict())
-    Console(highlight=False).print(report)
-    return EXIT_OK if report.ok else EXIT_FOUND
-
-
-def _accepted(args: argparse.Namespace) -> dict[str, Any]:
-    """The failures the user accepts (``--accept-verification-failures a,b`` or repeated)."""
-    reasons = [r.strip() for item in args.accept_verification_failures for r in item.split(",")]
-    return {"accept_integrity_failures": args.accept_integrity_failures,
-            "accept_verification_failures": [r for r in reasons if r]}  # fmt: skip
-
-
-def _accept_options(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--accept-integrity-failures", action="store_true",
-                   help="estimate even though the ledger fails its integrity check: the "
-                   "flagged decisions are dropped, the output says so first, exit 1")  # fmt: skip
-    p.add_argument("--accept-verification-failures", action="append", default=[],
-                   metavar="REASON",
-                   help="estimate even though decisions failed verification for REASON "
-                   "(repeatable or comma-separated; 'all': any reason): they are dropped, "
-                   "the output says so first, exit 1")  # fmt: skip
-
-
-def _estimate_options(p: argparse.ArgumentParser) -> None:
-    p.description = (
-        "Verify the ledger, then estimate the mean reward of a target policy (the logged\n"
-        "decision function with --set parameters, or a --target callable) from the verified\n"
-        "records: IPS, SNIPS, clipped IPS and doubly robust, each with an interval, the paired\n"
-        "difference to a baseline (default: the logging policy), and overlap diagnostics.\n"
-        "Exit 0 when the data can answer; 1 when the target has a support deficit or uneven\n"
-        "weights (a small effective sample size or one dominant weight), when the estimate is\n"
-        "refused because the ledger fails its integrity check or decisions of the stream failed\n"
-        "verification, or when such failures were accepted (docs/estimators.md); 2 for bad\n"
-        "usage, such as a reward that no decision of the stream has."
+    report = audit(
+        args.ledger, progress=not args.quiet, engine=args.engine, scheduler=args.scheduler
     )
-    p.add_argument("--target", metavar="MODULE:FUNCTION",
-                   help="target policy as a callable f(inputs, action) -> probability, "
-                   "imported under the --path/--allow rules")  # fmt: skip
-    p.add_argument("--baseline-set", action="append", default=[], metavar="K=V",
-                   help="compare with these parameters, not logging (repeatable)")  # fmt: skip
-    p.add_argument("--baseline-target", metavar="MODULE:FUNCTION",
-                   help="compare with this callable, not the logging policy")  # fmt: skip
-    p.add_argument("--sweep", metavar="K=START:STOP:STEPS",
-                   help="a curve of estimates over STEPS values of policy parameter K")  # fmt: skip
-    p.add_argument("--plot", metavar="FILE", help="with --sweep: save the curve (.png, .svg, .pdf)")
-    p.add_argument("--by", metavar="FIELD",
-                   help="estimates per segment: a column of verify's export or an input "
-                   "field such as ctx.segment")  # fmt: skip
-    p.add_argument("--clip", type=float, metavar="R",
-                   help="cap of clipped IPS: weights >= R count as 0 (default 10)")  # fmt: skip
-    p.add_argument("--interval", choices=("clt", "bootstrap", "bernstein"), default="clt",
-                   help="interval method (default clt: normal / delta method)")  # fmt: skip
-    p.add_argument("--bootstrap", type=int, default=0, metavar="B",
-                   help="bootstrap resamples with --interval bootstrap (default 1000)")  # fmt: skip
-    p.add_argument("--level", type=float, default=0.95, help="confidence level (default 0.95)")
-    p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap and sampled checks")
-    p.add_argument("--reward-range", metavar="LOW,HIGH",
-                   help="reward bounds fixed in advance: used by the bernstein bound, clip the "
-                   "intervals, refuse rewards outside (default: the observed range, widened "
-                   "to include 0; for a negative LOW write --reward-range=-1,1)")  # fmt: skip
-    p.add_argument("--missing-reward", default="0", metavar="VALUE",
-                   help="reward when the outcome is missing, or 'exclude' (default 0)")  # fmt: skip
-    p.add_argument("--jobs", type=int, default=1, metavar="N",
-                   help="verify in N processes (default 1)")  # fmt: skip
-    _accept_options(p)
+    if args.json:
+        _write_json(args.json, report.to_dict())
+    _console().print(report)
+    return EXIT_OK if report.ok else EXIT_FOUND
 
 
-# The default demo size: the whole demo finishes in well under a minute on a laptop.
 DEMO_SESSIONS = 4_000
 
 
@@ -347,7 +184,9 @@ def _demo(args: argparse.Namespace) -> int:
     """Run the grocery-delivery demo; exit 1 when verification or the audit found a problem."""
     from drawledger.replay import run_demo
 
-    result = run_demo(args.decisions, args.out, progress=True)
+    result = run_demo(args.decisions, args.out, progress=not args.quiet)
+    if args.json:
+        _write_json(args.json, result.to_dict())
     print(result.render())
     return EXIT_OK if result.ok else EXIT_FOUND
 
@@ -360,10 +199,12 @@ def _report(args: argparse.Namespace) -> int:
 
     report = write_report(
         args.ledger, args.html, path=args.path, allow=args.allow, reward=args.reward,
-        overrides=_assignments(args.overrides, "--set") or None, stream=args.stream,
-        progress=True, integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None,
-        **_accepted(args),
+        overrides=assignments(args.overrides, "--set") or None, stream=args.stream,
+        progress=not args.quiet, integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None,
+        **accepted(args),
     )  # fmt: skip
+    if args.json:
+        _write_json(args.json, report.to_dict())
     print(report.render())
     return EXIT_OK if report.ok else EXIT_FOUND
 
@@ -372,8 +213,6 @@ def _guard(args: argparse.Namespace) -> int:
     """Follow a ledger; with --once exit 1 when an alarm stands, 0 when none does."""
     import os
     import shlex
-
-    import orjson
 
     from drawledger.replay.guard import alarm_line, guard
 
@@ -394,17 +233,9 @@ def _guard(args: argparse.Namespace) -> int:
         integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None, on_alarm=on_alarm,
         metrics_port=args.metrics_port,
     )  # fmt: skip
-    data = orjson.dumps(report.to_dict(), option=orjson.OPT_INDENT_2) + b"\n"
-    if args.json == "-":
-        sys.stdout.buffer.write(data)
-        sys.stdout.flush()
-    else:
-        if args.json:
-            with open(args.json, "wb") as out:
-                out.write(data)
-        from rich.console import Console
-
-        Console(highlight=False).print(report)
+    if args.json:
+        _write_json(args.json, report.to_dict())
+    _console().print(report)
     return EXIT_OK if report.ok else EXIT_FOUND
 
 
@@ -434,9 +265,11 @@ def _engine_options(p: argparse.ArgumentParser) -> None:
 
 def _replay_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--path", action="append", default=[], metavar="DIR",
-                   help="directory decision code may be imported from (repeatable)")  # fmt: skip
+                   help="directory decision code may be imported from (repeatable); replay "
+                   "imports nothing that --path or --allow does not name")  # fmt: skip
     p.add_argument("--allow", action="append", default=[], metavar="PREFIX",
-                   help="module prefix decision code may come from (repeatable)")  # fmt: skip
+                   help="module name prefix decision code may be imported from, for example "
+                   "shop.decisions (repeatable)")  # fmt: skip
 
 
 class _Formatter(argparse.RawDescriptionHelpFormatter):
@@ -445,21 +278,28 @@ class _Formatter(argparse.RawDescriptionHelpFormatter):
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = OneLineParser(
         prog="drawledger",
         formatter_class=_Formatter,
         description="Record randomized decisions with their true probabilities, replay and "
         "audit them, and estimate what other policies would have achieved.",
-        epilog="Exit codes: 0 passed, 1 a check found a problem, 2 bad usage or unreadable input.",
+        epilog="Exit codes: 0 passed, 1 a check found a problem, 2 bad usage or unreadable input.\n"
+        "New here? Run drawledger demo; drawledger COMMAND --help describes each command.",
     )
-    parser.add_argument("--debug", action="store_true", help="show tracebacks of errors")
+    parser.add_argument("--version", action="version", version=f"drawledger {__version__}",
+                        help="print the version and exit")  # fmt: skip
+    parser.add_argument("--debug", action="store_true",
+                        help="show tracebacks of errors (before the command: drawledger --debug "
+                        "verify ...)")  # fmt: skip
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
     def add(name: str, help: str, example: str, handler: Handler) -> argparse.ArgumentParser:
         p = sub.add_parser(name, help=help, description=help, formatter_class=_Formatter,
                            epilog=f"example:\n  {example}")  # fmt: skip
-        p.set_defaults(handler=handler)
+        p.set_defaults(handler=handler, subparser=p)
+        p.add_argument("-q", "--quiet", action="store_true",
+                       help="print nothing but errors (exit code and files only)")  # fmt: skip
         return p
 
     p = add("demo", "run the grocery-delivery demo end to end",
@@ -477,22 +317,32 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default="drawledger-demo", metavar="DIR",
                    help="output directory for decisions.db and report.html; a previous demo "
                    "ledger there is replaced (default drawledger-demo)")  # fmt: skip
+    _json_option(p)
 
     p = add("verify", "replay every decision and check the ledger's integrity",
             "drawledger verify decisions.db --path . --json verify.json --export props.parquet",
             _verify)  # fmt: skip
+    p.description = (
+        "Re-run every recorded decision from its inputs, parameters and seed, compare each\n"
+        "draw, probability and the action with the record, compute the exact propensity of\n"
+        "the action, and check the ledger's integrity (hash chains, gaps, duplicates).\n"
+        "Decision code is imported only from --path directories and --allow module prefixes:\n"
+        "a decision whose module neither names fails as not-allowed (docs/replay.md lists\n"
+        "the reasons). Exit 0 when every decision verified and the integrity holds, 1 when\n"
+        "not."
+    )
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     _replay_options(p)
-    p.add_argument("--json", metavar="FILE", help="write the result as JSON")
+    _json_option(p)
     p.add_argument("--export", metavar="FILE",
                    help="write one row per decision (.csv or .parquet)")  # fmt: skip
     p.add_argument("--jobs", type=int, default=1, metavar="N",
                    help="replay in N processes (default 1)")  # fmt: skip
-    p.add_argument("--budget", type=int, default=4096, metavar="PATHS",
-                   help="most branches enumerated per decision before Monte Carlo "
-                   "(default 4096)")  # fmt: skip
+    p.add_argument("--budget", type=int, default=4096, metavar="N",
+                   help="enumerate at most N branches of a decision's draws for its exact "
+                   "propensity; past that, Monte Carlo (default 4096)")  # fmt: skip
     p.add_argument("--mc-samples", type=int, default=2000, metavar="N",
-                   help="Monte Carlo runs per decision past the budget (default 2000)")  # fmt: skip
+                   help="Monte Carlo runs per decision past --budget (default 2000)")  # fmt: skip
     p.add_argument("--no-history", action="store_true",
                    help="do not search the git history of --path directories for the code "
                    "versions that logged older records (docs/deploys.md)")  # fmt: skip
@@ -508,28 +358,56 @@ def build_parser() -> argparse.ArgumentParser:
         "Exit 1 when a stored source does not hash to the identity its decisions recorded."
     )
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
-    p.add_argument("--stream", metavar="S", help="only this decision stream")
+    p.add_argument("--stream", metavar="STREAM", help="only this decision stream")
     p.add_argument("--diff", nargs=2, metavar=("A", "B"),
                    help="show a unified diff from version A to version B")  # fmt: skip
-    p.add_argument("--json", metavar="FILE", help="write the result as JSON ('-': stdout)")
+    _json_option(p)
+
+    p = add("show", "print one decision in full, beside its replay",
+            "drawledger show decisions.db card-000012 --allow drawledger.replay.demo.grocery",
+            _show)  # fmt: skip
+    p.description = (
+        "Print one decision: its inputs, policy parameters, seed and code identity, every\n"
+        "draw (kind, name, arguments, uniforms, value, probability) beside its replayed value\n"
+        "and probability, its outcomes, and the verdict verify gives it, with the reasons.\n"
+        "The hashes of its records are checked; links between records (gaps) are verify's.\n"
+        "Exit 0 when the replay verifies the decision (or it is a declared draw), 1 when it\n"
+        "does not, 2 for an unknown decision id."
+    )
+    p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
+    p.add_argument("decision_id", metavar="DECISION_ID", help="the decision's id")
+    _replay_options(p)
+    _json_option(p)
 
     p = add("audit", "test statistically that randomization happened as declared",
             "drawledger audit decisions.db --json audit.json", _audit)  # fmt: skip
+    p.description = (
+        "Test, stream by stream, that the recorded draws follow the distributions they\n"
+        "declare: uniforms, probability integral transforms, assignment ratios, repeated\n"
+        "seeds (docs/audit.md). No decision code runs, so declared draws are tested too.\n"
+        "p-values are Holm-corrected across a stream's tests. Exit 0 when no alarm fires,\n"
+        "1 when one does."
+    )
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
-    p.add_argument("--json", metavar="FILE", help="write the result as JSON")
+    _json_option(p)
     _engine_options(p)
 
     p = add("estimate", "estimate the reward of a changed policy from verified records",
             "drawledger estimate decisions.db --reward checkout --set temperature=0.3 --path .",
-            _estimate)  # fmt: skip
+            estimate_command)  # fmt: skip
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     p.add_argument("--reward", required=True, metavar="NAME", help="outcome name to estimate")
     p.add_argument("--set", action="append", default=[], metavar="K=V", dest="overrides",
-                   help="policy parameter of the target policy (repeatable)")  # fmt: skip
-    p.add_argument("--stream", metavar="S", help="only this decision stream")
+                   help="the target policy: the logged code with policy parameter K set to V "
+                   "(V is read as JSON when it parses, else as text; repeatable)")  # fmt: skip
+    p.add_argument(
+        "--stream",
+        metavar="STREAM",
+        help="the decision stream to estimate (needed when there are several)",
+    )
     _replay_options(p)
-    p.add_argument("--json", metavar="FILE", help="write the result as JSON")
-    _estimate_options(p)
+    _json_option(p)
+    estimate_options(p)
     _engine_options(p)
 
     p = add("report", "write a self-contained HTML report of a ledger",
@@ -545,13 +423,15 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     p.add_argument("--html", required=True, metavar="FILE", help="where to write the report")
+    _json_option(p)
     _replay_options(p)
     p.add_argument("--reward", metavar="NAME",
                    help="outcome name: add the estimate of the --set target policy")  # fmt: skip
     p.add_argument("--set", action="append", default=[], metavar="K=V", dest="overrides",
                    help="policy parameter of the target policy (repeatable)")  # fmt: skip
-    p.add_argument("--stream", metavar="S", help="decision stream of the estimate")
-    _accept_options(p)
+    p.add_argument("--stream", metavar="STREAM",
+                   help="decision stream of the estimate (with --reward)")  # fmt: skip
+    accept_options(p)
 
     p = add("guard", "follow a growing ledger: verify, check and audit new records",
             "drawledger guard decisions.db --path . --state guard.json --once",
@@ -571,7 +451,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--once", action="store_true", help="take in what is new, report and exit")
     p.add_argument("--interval", type=float, default=5.0, metavar="SECONDS",
                    help="seconds between looks at the ledger (default 5)")  # fmt: skip
-    p.add_argument("--json", metavar="FILE", help="write the summary as JSON ('-': stdout)")
+    _json_option(p)
     p.add_argument("--on-alarm", metavar="COMMAND",
                    help="run COMMAND (split like a shell line, never run by one) with each "
                    "new alarm as JSON on stdin")  # fmt: skip
@@ -588,21 +468,31 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = add("ingest", "load declared draws or spill files into a ledger",
             "drawledger ingest legacy-draws.jsonl decisions.db", _ingest)  # fmt: skip
+    p.description = (
+        "Load a JSON Lines file into LEDGER: declared draws of other systems (one a line:\n"
+        "decision_id, stream, unit, ts, kind, args, value, prob and optionally u), or a spill\n"
+        "file the SDK wrote when its ledger was unreachable. Records already in the ledger\n"
+        "are skipped, so a file can be ingested again. Exit 0 when every line was loaded, 2\n"
+        "when a line is malformed or a record could not be written."
+    )
     p.add_argument("file", metavar="FILE", help="JSON Lines: declared draws or a spill file")
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
+    _json_option(p)
     return parser
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    args, unknown = parser.parse_known_args(argv)
+    if unknown:  # named by the command's own parser: "drawledger verify: error: ..."
+        args.subparser.error(f"unrecognized arguments: {' '.join(unknown)}")
     handler: Handler = args.handler
     try:
         if getattr(args, "engine", "local") == "dask":
             import dask  # noqa: F401  (missing: the one line below, before any work starts)
             import distributed  # noqa: F401
         _check_outputs(args)
-        return handler(args)
+        return run_quietly(handler, args)
     except KeyboardInterrupt:
         print(f"drawledger {args.command}: interrupted", file=sys.stderr)
         return 130

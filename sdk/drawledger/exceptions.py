@@ -17,6 +17,7 @@ __all__ = [
     "LedgerError",
     "MissingFunctionError",
     "NotADecisionError",
+    "NotAllowedError",
     "NotSerializableError",
     "OutputError",
     "ReplayError",
@@ -87,6 +88,12 @@ class MissingFunctionError(ReplayError):
     Its module is not under a ``--path`` directory or an ``--allow`` prefix (so it was not
     imported), does not exist, or has no such function.
     """
+
+
+class NotAllowedError(MissingFunctionError):
+    """A ledger names a decision function whose module replay may not import: it is not under
+    a ``--path`` directory or an ``--allow`` prefix, or it is a script's entry point. Nothing
+    was imported."""
 
 
 class NotADecisionError(ReplayError):

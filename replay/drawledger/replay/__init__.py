@@ -10,10 +10,12 @@ from drawledger.replay.propensity import Propensity, action_distribution, propen
 from drawledger.replay.report import HtmlReport, WhatIf, write_report
 from drawledger.replay.sources import LedgerTables, iter_decision_chunks, read_tables
 from drawledger.replay.verify import (
+    DecisionView,
     VerifyReport,
     VersionsReport,
     code_versions,
     verify,
+    verify_one,
     version_diff,
 )
 
@@ -21,6 +23,7 @@ __all__: list[str] = [
     "AuditFigure",
     "AuditReport",
     "AuditTest",
+    "DecisionView",
     "DemoResult",
     "Estimate",
     "EstimateReport",
@@ -48,6 +51,7 @@ __all__: list[str] = [
     "run_demo",
     "sweep",
     "verify",
+    "verify_one",
     "version_diff",
     "write_report",
 ]

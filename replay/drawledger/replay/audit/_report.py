@@ -8,6 +8,7 @@ from typing import TYPE_CHECKING, Any
 
 import pandas as pd
 
+from drawledger._text import counted
 from drawledger.replay._html import html_table
 from drawledger.replay._terminal import shown
 from drawledger.replay.audit import _stats
@@ -118,15 +119,15 @@ class AuditReport:
         from rich.table import Table
 
         if not self.tests:
-            yield f"No draws to audit ({self.decisions} decisions)."
+            yield f"No draws to audit ({counted(self.decisions, 'decision')})."
             return
-        yield f"[bold]Randomization audit of {self.decisions} decisions[/]"
+        yield f"[bold]Randomization audit of {counted(self.decisions, 'decision')}[/]"
         style = {AS_DECLARED: "green", NOT_AS_DECLARED: "bold red", NOT_ENOUGH_DATA: "dim"}
         for stream in dict.fromkeys(t.stream for t in self.tests):
             table = Table(title=shown(stream), title_justify="left", title_style="bold")
             table.add_column("draw / test", no_wrap=True)
-            for name in ("n", "statistic", "p"):
-                table.add_column(name, justify="right", no_wrap=True)
+            for name in ("n", "statistic", "p"):  # numbers fold, never cut
+                table.add_column(name, justify="right", overflow="fold")
             table.add_column("verdict", no_wrap=True)
             previous = None
             for t in self.tests:
@@ -157,7 +158,8 @@ class AuditReport:
         if self.ok:
             yield "[green]No alarm: every testable draw looks as declared.[/]"
         else:
-            yield f"[bold red]{len(self.alarms)} alarm(s): randomization not as declared.[/]"
+            alarms = counted(len(self.alarms), "alarm")
+            yield f"[bold red]{alarms}: randomization not as declared.[/]"
 
     def render(self) -> str:
         """The tables as plain text."""
@@ -178,8 +180,8 @@ class AuditReport:
 
     def _repr_html_(self) -> str:
         """Every test as a row of an HTML table (notebooks); p is Holm-adjusted."""
-        verdict = "no alarm" if self.ok else f"{len(self.alarms)} alarm(s)"
-        caption = f"Randomization audit of {self.decisions} decisions: {verdict}"
+        verdict = "no alarm" if self.ok else counted(len(self.alarms), "alarm")
+        caption = f"Randomization audit of {counted(self.decisions, 'decision')}: {verdict}"
         rows = [(t.stream, t.draw, t.kind, TEST_LABELS[t.test], t.n, t.statistic, t.p_adjusted,
                  t.verdict) for t in self.tests]  # fmt: skip
         head = ("stream", "draw", "kind", "test", "n", "statistic", "p", "verdict")

@@ -14,6 +14,7 @@
 from __future__ import annotations
 
 import os
+import shlex
 import sys
 import time
 from collections.abc import Iterator, Sequence
@@ -25,6 +26,7 @@ from typing import Any
 import sqlalchemy as sa
 
 import drawledger as dl
+from drawledger._text import counted
 from drawledger.exceptions import LedgerError, ReplayError
 from drawledger.replay._html import html_table
 from drawledger.replay.audit import AuditReport, audit
@@ -112,8 +114,9 @@ class DemoResult:
             f"  verify   {v.verified:,} of {v.decisions:,} decisions verified, "
             f"{v.mismatched:,} mismatched, {v.unreplayable:,} unreplayable; integrity "
             f"{'intact' if v.integrity.ok else 'FAILED'}",
-            f"  audit    {len(a.tests)} tests on {len({t.stream for t in a.tests})} streams: "
-            + ("no alarm" if a.ok else f"{len(a.alarms)} ALARM(S)")
+            f"  audit    {counted(len(a.tests), 'test')} on "
+            f"{counted(len({t.stream for t in a.tests}), 'stream')}: "
+            + ("no alarm" if a.ok else counted(len(a.alarms), "ALARM"))
             + f" (Holm-corrected p < {a.alpha:g})",
             "",
             f"What if the recipe card used temperature {TARGET_TEMPERATURE:g} instead of "
@@ -158,6 +161,8 @@ class DemoResult:
         )
         if missed:
             lines.append("  * the interval misses the true value (expected about 1 time in 20)")
+        lines += ["", "Re-run the checks on this ledger:"]
+        lines += [f"  {command}" for command in self.commands()]
         lines += [
             "",
             f"report   {self.report}",
@@ -168,6 +173,19 @@ class DemoResult:
 
     def __str__(self) -> str:
         return self.render()
+
+    def commands(self) -> list[str]:
+        """The commands that re-run the demo's checks (verify, audit, estimate, report), as a
+        shell runs them: the decision code is allowed by its public module's name."""
+        db, allow = shlex.quote(str(self.ledger)), f"--allow {DEMO_MODULE}"
+        what_if = f"--reward {REWARD} --stream recipe-card --set temperature={TARGET_TEMPERATURE:g}"
+        html = shlex.quote(str(self.report))
+        return [
+            f"drawledger verify {db} {allow}",
+            f"drawledger audit {db}",
+            f"drawledger estimate {db} {what_if} {allow}",
+            f"drawledger report {db} --html {html} {what_if} {allow}",
+        ]
 
 
 def _f(x: float | None) -> str:

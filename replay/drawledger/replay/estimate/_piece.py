@@ -141,6 +141,9 @@ class PieceData:
     label: np.ndarray | None  # codes into facts.labels
 
 
+BUCKET = "no decision function (bucket assignment)"  # a reason records are excluded
+
+
 def _empty(facts: Facts, k: int) -> PieceData:
     facts.methods = [Counter() for _ in range(k)]
     facts.dists = [True] * k
@@ -197,7 +200,7 @@ def _usable(frame: pd.DataFrame, fns: dict[str, Any], rewards: Rewards,
         excluded.update(str(reasons).split(";"))
     frame = frame[usable]
     drop(np.array([not fns[d] for d in frame["decision_id"]], dtype=bool),
-         "no decision function (bucket assignment)")  # fmt: skip
+         BUCKET)  # fmt: skip
     drop((frame["propensity_method"] == MONTE_CARLO).to_numpy(),
          "logging propensity only estimated by Monte Carlo")  # fmt: skip
     drop(~(pd.to_numeric(frame["propensity"], errors="coerce").to_numpy(dtype=float) > 0.0),

@@ -86,7 +86,7 @@ class Target:
                 known = ", ".join(sorted(decision.params)) or "none"
                 raise ReplayError(f"{', '.join(unknown)} is not a policy parameter of "
                                   f"{decision.name} (its parameters: {known})")  # fmt: skip
-            hit = load_params(decision, self.overrides)
+            hit = load_params(decision, self.overrides, given=True)
             self._checked[decision.name] = hit
         return hit
 

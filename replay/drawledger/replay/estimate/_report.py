@@ -208,12 +208,16 @@ class EstimateReport:
         t = Table(title=shown(title + interval_label(self.settings)), title_justify="left",
                   box=SIMPLE)  # fmt: skip
         for col in ("estimator", "value", "interval", "outer band"):
-            t.add_column(col, justify="left" if col == "estimator" else "right", no_wrap=True)
+            name_column = col == "estimator"  # numbers fold, never cut
+            t.add_column(col, justify="left" if name_column else "right", no_wrap=name_column,
+                         overflow="fold")  # fmt: skip
         base = _policy_text(self.baseline)
         d = Table(title=shown(f"difference: target minus {base}"),
                   title_justify="left", box=SIMPLE)  # fmt: skip
         for col in ("estimator", "difference", "difference interval"):
-            d.add_column(col, justify="left" if col == "estimator" else "right", no_wrap=True)
+            name_column = col == "estimator"
+            d.add_column(col, justify="left" if name_column else "right", no_wrap=name_column,
+                         overflow="fold")  # fmt: skip
         for name, e in self.estimates.items():
             diff = self.difference[name]
             outer = _span({"low": e.get("outer_low"), "high": e.get("outer_high")}) \
@@ -222,7 +226,7 @@ class EstimateReport:
             d.add_row(name, _fmt(diff["value"]), _span(diff))
         g = Table(title="diagnostics", title_justify="left", box=SIMPLE)
         g.add_column("measure")
-        g.add_column("value", justify="right")
+        g.add_column("value", justify="right", overflow="fold")
         diag = self.diagnostics
         g.add_row("effective sample size (Kish)", f"{diag['ess']:.1f}")
         g.add_row("max weight", f"{diag['max_weight']:.4g}")
@@ -241,7 +245,8 @@ class EstimateReport:
             s = Table(title=shown(f"segments by {self.segments['by']}"), title_justify="left",
                       box=SIMPLE)  # fmt: skip
             for col in ("segment", "n", "snips", "interval", "ess", "deficit"):
-                s.add_column(col, justify="left" if col == "segment" else "right", no_wrap=True)
+                s.add_column(col, justify="left" if col == "segment" else "right",
+                             overflow="fold")  # fmt: skip
             for seg in self.segments["groups"]:
                 e = seg["estimates"]["snips"]
                 s.add_row(shown(seg["value"]), str(seg["n"]), _fmt(e["value"]), _span(e),
@@ -394,11 +399,11 @@ class SweepReport:
         t = Table(title=shown(title + interval_label(self.settings)), title_justify="left",
                   box=SIMPLE)  # fmt: skip
         names = [n for n in ("snips", "dr") if self.points and n in self.points[0]["estimates"]]
-        t.add_column(shown(self.param), justify="right")
-        for name in names:
-            t.add_column(name, justify="right")
-            t.add_column("interval", justify="right", no_wrap=True)
-        t.add_column("ess", justify="right")
+        t.add_column(shown(self.param), justify="right", overflow="fold")
+        for name in names:  # numbers fold, never cut
+            t.add_column(name, justify="right", overflow="fold")
+            t.add_column("interval", justify="right", overflow="fold")
+        t.add_column("ess", justify="right", overflow="fold")
         for p in self.points:
             cells = []
             for name in names:

@@ -12,6 +12,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from drawledger._text import counted
 from drawledger.exceptions import ReplayError
 from drawledger.replay.engines import open_engine
 from drawledger.replay.estimate import _estimators as est
@@ -208,9 +209,10 @@ def _summary(g: Group, has_dr: bool, bounds: tuple[float, float], s: _Settings,
 def _excluded_warnings(p: Pass) -> list[str]:
     out = []
     if p.failures.code_changed:
-        out.append(f"{p.failures.code_changed} decisions ran under decision code that has "
-                   "changed since; they replayed every draw as recorded and are used "
-                   "(code-changed or version-not-found accepted)")  # fmt: skip
+        changed = counted(p.failures.code_changed, "decision")
+        out.append(f"{changed} ran under decision code that has changed since; they replayed "
+                   "every draw as recorded and are used (code-changed or version-not-found "
+                   "accepted)")  # fmt: skip
     if not p.excluded:
         return out
     parts = ", ".join(f"{k}: {v}" for k, v in sorted(p.excluded.items()))

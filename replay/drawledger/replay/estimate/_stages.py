@@ -3,16 +3,18 @@
 from __future__ import annotations
 
 from collections import Counter
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, Protocol, TypeVar
 
 import numpy as np
 import pandas as pd
 
+from drawledger._text import counted
 from drawledger.exceptions import ReplayError
 from drawledger.replay.estimate import _estimators as est
 from drawledger.replay.estimate._piece import (
+    BUCKET,
     FOLDS,
     MAX_FEATURES,
     MAX_SEGMENTS,
@@ -226,7 +228,7 @@ def run_pass(runner: Runner, job: Job, *, cap: float, bootstrap: int, weights: b
     used = [f for f in facts if f.n]
     if not used:
         raise ReplayError(f"no verified decisions with a {job.reward!r} reward to estimate from"
-                          + (f" (excluded: {dict(excluded)})" if excluded else ""))  # fmt: skip
+                          + _excluded_text(excluded))  # fmt: skip
     if job.by is not None and len({v for f in used for v in f.labels}) > MAX_SEGMENTS:
         raise too_many_segments(job.by)
     low = min(f.reward_low for f in used)
@@ -272,3 +274,15 @@ def _fit(stats: Sequence[RidgeStats]) -> RewardModel:
     for s in stats[1:]:
         total = total + s
     return total.fit(RIDGE)
+
+
+def _excluded_text(excluded: Mapping[str, int]) -> str:
+    """Why records were left out, as readable text ("" when none were)."""
+    if not excluded:
+        return ""
+    text = "; excluded: " + ", ".join(f"{counted(n, 'decision')} ({reason})"
+                                      for reason, n in sorted(excluded.items()))  # fmt: skip
+    if BUCKET in excluded:
+        text += ("; a hashed bucket assignment has no decision function to re-run under "
+                 "another policy")  # fmt: skip
+    return text

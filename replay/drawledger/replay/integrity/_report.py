@@ -9,7 +9,7 @@ from typing import TYPE_CHECKING, Any, NamedTuple
 
 from drawledger import _records
 from drawledger._schema import DEC, DECISIONS, DRAW, DRAWS, OUT, OUTCOMES, row_problem
-from drawledger._text import visible
+from drawledger._text import counted, visible
 from drawledger.replay._html import html_table
 
 if TYPE_CHECKING:
@@ -113,8 +113,9 @@ class IntegrityReport:
         """Plain-text summary for the terminal."""
         head = "integrity ok" if self.ok else "integrity FAILED"
         lines = [
-            f"{head}: {self.decisions} decisions, {self.outcomes} outcomes, "
-            f"{self.writers} writers ({'keyed' if self.keyed else 'unkeyed'} hashes)"
+            f"{head}: {counted(self.decisions, 'decision')}, "
+            f"{counted(self.outcomes, 'outcome')}, {counted(self.writers, 'writer')} "
+            f"({'keyed' if self.keyed else 'unkeyed'} hashes)"
         ]
         for p in PROBLEMS:
             n = getattr(self, p)
@@ -132,8 +133,9 @@ class IntegrityReport:
             lines.append(f"  note: {self.legacy_writers} writers from before the registry "
                          "are not protected against deletion or grafting")  # fmt: skip
         if self.uncommitted_parts:
-            lines.append(f"  {self.uncommitted_parts} draws parts of batches interrupted "
-                         "between their renames (ignored by readers; safe to delete)")  # fmt: skip
+            parts = counted(self.uncommitted_parts, "draws part")
+            lines.append(f"  {parts} of batches interrupted between their renames (ignored "
+                         "by readers; safe to delete)")  # fmt: skip
         if self.bad_hashes and self.bad_hashes == self.decisions + self.outcomes:
             lines.append("  every hash differs: was the ledger written with another integrity key?")
         return "\n".join(lines)
@@ -159,8 +161,9 @@ class IntegrityReport:
     def _repr_html_(self) -> str:
         """Each problem with its count and first examples, as an HTML table (notebooks)."""
         head = "integrity ok" if self.ok else "integrity FAILED"
-        caption = (f"{head}: {self.decisions} decisions, {self.outcomes} outcomes, "
-                   f"{self.writers} writers")  # fmt: skip
+        caption = (f"{head}: {counted(self.decisions, 'decision')}, "
+                   f"{counted(self.outcomes, 'outcome')}, "
+                   f"{counted(self.writers, 'writer')}")  # fmt: skip
         rows = [(p.replace("_", " "), getattr(self, p), ", ".join(self.examples.get(p, [])))
                 for p in PROBLEMS]  # fmt: skip
         return html_table(caption, ("problem", "count", "examples"), rows)

@@ -28,6 +28,7 @@ from jinja2 import Environment, PackageLoader, StrictUndefined
 
 from drawledger import __version__
 from drawledger._files import check_output, replacing
+from drawledger._text import counted
 from drawledger.exceptions import EstimateRefusedError, ReplayError
 from drawledger.replay._html import html_table
 from drawledger.replay.audit import AuditReport, audit
@@ -97,10 +98,10 @@ class HtmlReport:
         top = [f"estimate refused: {r}" for r in self.refused]
         top += [f"ALERT: {w.title}: {line}" for w in self.whatifs for line in w.result.alerts]
         return "".join(f"{line}\n" for line in top) + (
-            f"wrote {self.path}: {v.decisions} decisions, {v.verified} verified, "
+            f"wrote {self.path}: {counted(v.decisions, 'decision')}, {v.verified} verified, "
             f"{v.mismatched} mismatched, {v.unreplayable} unreplayable; integrity "
             f"{'ok' if v.integrity.ok else 'FAILED'}; audit "
-            f"{'no alarm' if a.ok else f'{len(a.alarms)} alarm(s)'}"
+            f"{'no alarm' if a.ok else counted(len(a.alarms), 'alarm')}"
         )
 
     def __str__(self) -> str:
@@ -158,11 +159,17 @@ def write_report(
     check_output(target, "the report")
     if overrides and reward is None:
         raise ReplayError("a target policy (--set) needs the reward to estimate (--reward)")
+    if stream is not None and reward is None:
+        raise ReplayError("a stream (--stream) chooses the stream of an estimate: give the "
+                          "reward to estimate (--reward) too")  # fmt: skip
     progress = progress and sys.stderr.isatty()
     if verification is None:
         verification = verify(
             ledger, path=path, allow=allow, progress=progress, integrity_key=integrity_key
         )
+    if stream is not None and stream not in verification.by_stream:
+        raise ReplayError(f"no decisions of stream {stream!r}; streams in the ledger: "
+                          f"{', '.join(verification.by_stream) or 'none'}")  # fmt: skip
     if audit_report is None:
         audit_report = audit(ledger, progress=progress)
     questions = list(whatifs)

@@ -2,6 +2,7 @@
 them, whole tables or chunks of decisions with their draws."""
 
 from drawledger.replay.sources._follow import Follower, Head, WriterPiece
+from drawledger.replay.sources._one import DecisionRows, read_decision
 from drawledger.replay.sources._outcomes import (
     outcome_totals,
     outcome_values,
@@ -46,6 +47,7 @@ __all__ = [
     "CHUNK_SIZE",
     "PARALLEL_CHUNK_SIZE",
     "VERSION_COLUMNS",
+    "DecisionRows",
     "Follower",
     "Head",
     "LedgerTables",
@@ -66,6 +68,7 @@ __all__ = [
     "pieces",
     "plan",
     "read_code_versions",
+    "read_decision",
     "read_piece",
     "read_piece_frames",
     "read_registry",

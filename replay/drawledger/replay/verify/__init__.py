@@ -10,6 +10,7 @@ from drawledger.replay.verify._imports import (
     lookup_qualname,
     resolve_decision,
 )
+from drawledger.replay.verify._one import DecisionView, verify_one
 from drawledger.replay.verify._report import VerifyReport
 from drawledger.replay.verify._run import verify
 from drawledger.replay.verify._types import NOT_FAILING, REASONS, Settings, absolute_paths
@@ -28,6 +29,7 @@ __all__ = [
     "NOT_FAILING",
     "REASONS",
     "CodeVersion",
+    "DecisionView",
     "Settings",
     "VerifyReport",
     "VersionsReport",
@@ -44,5 +46,6 @@ __all__ = [
     "unified_diff",
     "verify",
     "verify_chunk",
+    "verify_one",
     "version_diff",
 ]

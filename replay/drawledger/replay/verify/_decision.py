@@ -25,6 +25,7 @@ from drawledger.exceptions import (
     DrawArgumentError,
     MissingFunctionError,
     NotADecisionError,
+    NotAllowedError,
     ReplayError,
 )
 from drawledger.ledger import Decision
@@ -105,13 +106,17 @@ def _logged(encoded: Sequence[tuple[Any, ...]], action_json: str) -> tuple[float
 class _Checked:
     """Reasons found for one decision, with the first detail of each."""
 
-    __slots__ = ("inputs", "propensity", "reasons", "short")
+    __slots__ = ("action", "inputs", "propensity", "reasons", "replayed", "short")
 
     def __init__(self) -> None:
         self.reasons: dict[str, str] = {}
         self.short: dict[str, str] = {}  # the details cut for the terminal, where they differ
         self.propensity: Propensity | None = None
         self.inputs: Mapping[str, Any] = {}
+        # The first replay's draws (kind, name, args, u, value, prob, is_density; JSON as the
+        # SDK records it) and action JSON: None until the decision ran (``show`` prints them).
+        self.replayed: list[tuple[Any, ...]] | None = None
+        self.action: str | None = None
 
     def add(self, reason: str, detail: str) -> None:
         if reason not in self.reasons:
@@ -173,6 +178,8 @@ class Context:
 
 
 def _failure_reason(exc: ReplayError) -> str:
+    if isinstance(exc, NotAllowedError):
+        return "not-allowed"
     if isinstance(exc, MissingFunctionError):
         return "missing-function"
     if isinstance(exc, NotADecisionError):
@@ -255,6 +262,7 @@ def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> No
         records = draw.records
         first = _encode(records)
         action = _json(first_action, "action")
+        out.replayed, out.action = first, action
     except KeyboardInterrupt:
         raise  # Ctrl-C stops the whole run (exit 130, nothing reported)
     except BaseException as exc:  # SystemExit and the like are this decision's failure only
@@ -364,6 +372,9 @@ def _check_bucket(out: _Checked, row: Row, draw: Row, unit: str, shares: dict[st
     except DrawArgumentError as exc:
         raise BadRecordError(f"bucket arguments: {exc}") from None
     arm, u, prob, _, _ = next((f for f in found if [f[1]] == recorded_u), found[0])
+    out.action = _json(arm, "bucket arm")
+    out.replayed = [("bucket", as_text(draw[DRAW.name]), draw[DRAW.args], _json([u], "uniforms"),
+                     out.action, prob, False)]  # fmt: skip
     if not isinstance(recorded_u, list) or not same([u], recorded_u):
         out.differ("value", "bucket uniforms", [u], recorded_u)
     if _arm(draw[DRAW.value], "bucket arm") != arm:

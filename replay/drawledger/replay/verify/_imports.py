@@ -27,6 +27,7 @@ from drawledger.exceptions import (
     BadRecordError,
     MissingFunctionError,
     NotADecisionError,
+    NotAllowedError,
     ReplayError,
 )
 from drawledger.ledger import REGISTRY, Decision
@@ -81,16 +82,16 @@ def lookup_qualname(obj: Any, qualname: str) -> Any:
 def import_allowed(
     module: str, path: Iterable[str | os.PathLike[str]], allow: Iterable[str]
 ) -> Any:
-    """Import ``module`` if it is allowed, else raise ``MissingFunctionError`` (nothing runs)."""
+    """Import ``module`` if it is allowed, else raise ``NotAllowedError`` (nothing runs)."""
     if "__main__" in module.split("."):
-        raise MissingFunctionError(
+        raise NotAllowedError(
             f"module {module!r} is a script's entry point; replay never imports one "
             "(define decisions in an importable module)"
         )
     dirs = [Path(p).expanduser().resolve() for p in path]
     by_prefix = _allowed_prefix(module, allow)
     if not by_prefix and not any(_package_module(d, module) for d in dirs):
-        raise MissingFunctionError(
+        raise NotAllowedError(
             f"module {module!r} is not under a --path directory or an --allow prefix (replay "
             "imports nothing else; under --path, every folder on its way needs an __init__.py)"
         )
@@ -109,7 +110,7 @@ def import_allowed(
             if d in sys.path:
                 sys.path.remove(d)
     if not by_prefix and not _under(getattr(loaded, "__file__", None), dirs):
-        raise MissingFunctionError(f"module {module!r} was not found under the --path directories")
+        raise NotAllowedError(f"module {module!r} was not found under the --path directories")
     return loaded
 
 
@@ -121,8 +122,9 @@ def resolve_decision(
 ) -> Decision[Any]:
     """The registered decision a ledger row names as ``module:qualname``.
 
-    Raises ``BadRecordError`` for a malformed name, ``MissingFunctionError`` when the module
-    is not allowed (never imported), cannot be imported or lacks the function,
+    Raises ``BadRecordError`` for a malformed name, ``NotAllowedError`` when the module is not
+    allowed (never imported), ``MissingFunctionError`` when it cannot be imported or lacks
+    the function,
     ``NotADecisionError`` when the object is not a registered decision (never called), and
     ``ReplayError`` when importing the module raised.
     """
@@ -217,12 +219,15 @@ def build_inputs(decision: Decision[Any], raw: Mapping[str, Any]) -> dict[str, A
     return out
 
 
-def load_params(decision: Decision[Any], params_json: str | Mapping[str, Any]) -> dict[str, Any]:
+def load_params(
+    decision: Decision[Any], params_json: str | Mapping[str, Any], *, given: bool = False
+) -> dict[str, Any]:
     """Policy parameters from their recorded JSON (or a mapping), by the function's type hints.
 
     Raises ``BadRecordError`` on corrupt JSON or a value of the wrong type, ``ReplayError``
     for a parameter the function no longer has. Parameters not given keep the function's
-    defaults when it runs.
+    defaults when it runs. ``given=True``: the values are a target policy's (``--set``), and
+    a value of the wrong type is a ``ReplayError`` naming the expected type and the text given.
     """
     raw = (
         dict(params_json)
@@ -236,7 +241,18 @@ def load_params(decision: Decision[Any], params_json: str | Mapping[str, Any]) -
             raise ReplayError(f"{decision.name} has no policy parameter {name!r} any more")
         if isinstance(value, float) and not math.isfinite(value):
             raise BadRecordError(f"params: {name!r} is {value!r}")
-        out[name] = _build(adapters[name], value, f"param {name}")
+        try:
+            out[name] = _build(adapters[name], value, f"param {name}")
+        except BadRecordError:
+            if not given:
+                raise
+            hint = typing.get_type_hints(decision.fn).get(name)
+            expected = getattr(hint, "__name__", None) or str(hint).replace("typing.", "")
+            got = f"the text {value!r:.60}" if isinstance(value, str) else f"{value!r:.60}"
+            raise ReplayError(
+                f"policy parameter {name}={value!r:.60} (given with --set or --baseline-set): "
+                f"expected {expected}, got {got}"
+            ) from None
     return out
 
 

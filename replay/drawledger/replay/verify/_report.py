@@ -10,6 +10,7 @@ from typing import TYPE_CHECKING, Any
 
 import pandas as pd
 
+from drawledger._text import counted
 from drawledger.replay._html import html_table
 from drawledger.replay._terminal import shown
 from drawledger.replay.integrity import IntegrityReport
@@ -69,7 +70,9 @@ class VerifyReport:
 
         streams = Table(title="decisions by stream", title_justify="left")
         for name in ("stream", "decisions", "verified", "mismatched", "unreplayable", "reasons"):
-            streams.add_column(name, justify="right" if name in COUNTS else "left")
+            # numbers fold onto a second line when the table is squeezed, never cut
+            streams.add_column(name, justify="right" if name in COUNTS else "left",
+                               overflow="fold")  # fmt: skip
         for stream, c in sorted(self.by_stream.items()):
             found = ", ".join(f"{r} {n}" for r, n in c["by_reason"].items())
             streams.add_row(shown(stream), *(str(c[k]) for k in COUNTS), found)
@@ -79,7 +82,7 @@ class VerifyReport:
         if self.by_reason:
             reasons = Table(title="reasons", title_justify="left")
             reasons.add_column("reason")
-            reasons.add_column("decisions", justify="right")
+            reasons.add_column("decisions", justify="right", overflow="fold")
             reasons.add_column("first examples")
             for reason in sorted(self.by_reason, key=REASONS.index):
                 examples = self.examples.get(reason, [])
@@ -128,7 +131,7 @@ class VerifyReport:
     def _repr_html_(self) -> str:
         """The decisions by stream as an HTML table (notebooks)."""
         verdict = "verify passed" if self.ok else "verify FAILED"
-        caption = (f"{verdict}: {self.verified} of {self.decisions} decisions verified; "
+        caption = (f"{verdict}: {self.verified} of {counted(self.decisions, 'decision')} verified; "
                    f"{'integrity ok' if self.integrity.ok else 'integrity FAILED'}")  # fmt: skip
         rows = [(stream, *(c[k] for k in COUNTS),
                  ", ".join(f"{r} {n}" for r, n in c["by_reason"].items()))

@@ -6,8 +6,9 @@ cluster. Reasons a decision is not verified (docs/replay.md):
 
 - mismatched (it replayed, something differs): value, probability, args, draw-count, action,
   nondeterministic, code-changed, version-not-found, integrity;
-- unreplayable (it could not be replayed): missing-function, not-a-decision, bad-record,
-  replay-error, declared (a draw recorded by other code; ``drawledger audit`` checks those).
+- unreplayable (it could not be replayed): not-allowed, missing-function, not-a-decision,
+  bad-record, replay-error, declared (a draw recorded by other code; ``drawledger audit``
+  checks those).
 """
 
 from __future__ import annotations

@@ -24,6 +24,7 @@ REASONS = (
     "code-changed",
     "version-not-found",
     "integrity",
+    "not-allowed",
     "missing-function",
     "not-a-decision",
     "bad-record",
@@ -32,8 +33,8 @@ REASONS = (
 )
 
 
-UNREPLAYABLE = frozenset({"missing-function", "not-a-decision", "bad-record", "replay-error",
-                          "declared"})  # fmt: skip
+UNREPLAYABLE = frozenset({"not-allowed", "missing-function", "not-a-decision", "bad-record",
+                          "replay-error", "declared"})  # fmt: skip
 
 
 # "declared" draws are counted as unreplayable but do not fail the check: they were made by
