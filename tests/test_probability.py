@@ -247,6 +247,8 @@ def test_bad_recorded_arguments_raise_the_draw_methods_error(
     try:
         getattr(Draw(SEED), kind)(**args, name="nm")
     except DrawArgumentError as exc:
+        if "the density at the drawn value" in str(exc):
+            return  # refused for the value drawn, not for the arguments: no record holds it
         with pytest.raises(DrawArgumentError) as info:
             _recompute(kind, args, "nm")
         assert str(exc) == str(info.value)

@@ -945,3 +945,74 @@ def test_cli_ingest_json_dash_writes_the_report_alone_on_stdout(
     out, err = capsys.readouterr()
     assert 3 == orjson.loads(out)["decisions"]
     assert "loaded 3 spilled decisions" in err
+
+
+# -- async services ------------------------------------------------------------------------------
+class _StuckSink:
+    """A sink whose writes wait until ``release`` is set: a database that stalls."""
+
+    def __init__(self, inner: Any, release: threading.Event) -> None:
+        self.inner, self.release = inner, release
+
+    def write(self, *batch: Any) -> None:
+        self.release.wait()
+        self.inner.write(*batch)
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.inner, name)
+
+
+@pytest.mark.parametrize("block_timeout", [0, 0.05])
+def test_async_handlers_never_wait_for_a_stalled_sink_with_block_timeout_0(
+    tmp_path: Path, block_timeout: float
+) -> None:
+    """With block_timeout=0 a decision called from an async handler never waits for room in
+    the queue: while the database stalls, 60 requests to a FastAPI app (in the event loop, via
+    httpx's ASGI transport) all complete, the overflow is spilled, and nothing is lost. With a
+    waiting policy the first call past the full queue holds the event loop (``waited``)."""
+    import asyncio
+
+    import httpx
+    from fastapi import FastAPI
+
+    target = tmp_path / "decisions.db"
+    release = threading.Event()
+    led = dl.Ledger(target, queue_size=4, batch_size=2, block_timeout=block_timeout,
+                    spill_dir=tmp_path / "spill")  # fmt: skip
+    opener = led._writer._open_sink
+    led._writer._open_sink = lambda: _StuckSink(opener(), release)
+
+    @led.decision("reminder-delay")
+    def reminder(nominal: float, draw: dl.Draw) -> float:
+        return nominal * draw.lognormal(0.0, 0.3, name="multiplier")
+
+    app = FastAPI()
+
+    @app.get("/reminder/{order}")
+    async def handler(order: str) -> dict[str, float]:
+        return {"minutes": reminder(30.0, decision_id=order)}
+
+    async def requests() -> list[int]:
+        transport = httpx.ASGITransport(app=app)
+        async with httpx.AsyncClient(transport=transport, base_url="http://shop") as client:
+            calls = [client.get(f"/reminder/order-{i}") for i in range(60)]
+            answers = await asyncio.wait_for(asyncio.gather(*calls), timeout=120)  # a guard
+        return [r.status_code for r in answers]
+
+    try:
+        assert [200] * 60 == asyncio.run(requests())  # the sink is still stalled here
+        waited = led.stats()["waited"]
+        assert (block_timeout > 0, True) == (waited > 0, led.stats()["spilled"] > 0)
+    finally:
+        release.set()
+    led.close()
+    stats = led.stats()
+    assert 60 == stats["written"] + stats["spilled"]
+    dl.ingest(led.spill_path, target)
+    assert check_integrity(target).ok
+
+
+@pytest.mark.parametrize("bad", [-1, float("nan"), float("inf")])
+def test_block_timeout_must_be_a_number_of_seconds_at_least_0(tmp_path: Path, bad: float) -> None:
+    with pytest.raises(ValueError, match="block_timeout must be a number of seconds >= 0"):
+        dl.Ledger(tmp_path / "x.db", block_timeout=bad)

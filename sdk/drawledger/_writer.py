@@ -38,7 +38,7 @@ from typing import Any
 
 import orjson
 
-from drawledger import _records
+from drawledger._chain import Chain
 from drawledger._schema import DEC
 from drawledger._sinks import Sink
 from drawledger._spill import SpillFile
@@ -84,7 +84,16 @@ class Throttle:
 class Stats:
     """Counters of one ledger in one process (see ``Ledger.stats``)."""
 
-    __slots__ = ("dropped", "recorded", "rejected", "retried", "spill_errors", "spilled", "written")
+    __slots__ = (
+        "dropped",
+        "recorded",
+        "rejected",
+        "retried",
+        "spill_errors",
+        "spilled",
+        "waited",
+        "written",
+    )
 
     def __init__(self) -> None:
         self.recorded = 0
@@ -94,59 +103,10 @@ class Stats:
         self.retried = 0
         self.dropped = 0
         self.spill_errors = 0
+        self.waited = 0  # calls that waited for room in a full queue (up to block_timeout)
 
     def as_dict(self) -> dict[str, int]:
         return {name: getattr(self, name) for name in self.__slots__}
-
-
-class Chain:
-    """The hash chain of one writer (docs/ledger.md): records get seq and prev_hash as sealed.
-
-    Only the holder of ``lock`` may seal; the writer thread seals each batch it takes, in queue
-    order, and the serving thread seals only a record that bypasses the queue (a tap, a spill).
-    """
-
-    __slots__ = ("binder", "genesis", "key", "late", "lock", "prev", "seq", "writer")
-
-    def __init__(
-        self, key: bytes, writer: str = "", binder: Callable[[], str | None] | None = None
-    ) -> None:
-        self.key = key
-        self.writer = writer
-        self.lock = threading.Lock()
-        self.seq = 0
-        self.prev: str | None = None
-        # The prev_hash of seq 0: null, or the genesis hash that binds the chain to its ledger
-        # (docs/ledger.md, "Ledger identity and writer registry"), which ``binder`` registers
-        # and returns when the first record is sealed. ``late``: the ledger could not be
-        # reached then, and the writer registers with its first batch that is written.
-        self.binder = binder
-        self.genesis: str | None = None
-        self.late = False
-
-    def seal(self, item: Item) -> Item:
-        """The record with its seq, prev_hash and hash; a sealed record as it is."""
-        tag = item[0]
-        sealed: Item
-        if self.seq == 0 and tag in ("d-", "o-"):
-            if self.binder is not None:
-                binder, self.binder = self.binder, None
-                self.genesis = binder()
-                self.late = self.genesis is None
-            self.prev = self.genesis
-        if tag == "d-":
-            row = (*item[1], self.seq, self.prev)
-            digest = _records.decision_hash(row, item[2], self.key)
-            sealed = ("d", (*row, digest), item[2])
-        elif tag == "o-":
-            row = (*item[1], self.seq, self.prev)
-            digest = _records.outcome_hash(row, self.key)
-            sealed = ("o", (*row, digest))
-        else:
-            return item
-        self.seq += 1
-        self.prev = digest
-        return sealed
 
 
 class _Flush:
@@ -239,7 +199,8 @@ class Writer:
             self.start()
         if len(q) >= self.queue_size:
             self._wake.set()
-            if not self._overflowing:
+            if not self._overflowing and self.block_timeout > 0:
+                self.stats.waited += 1
                 deadline = time.monotonic() + self.block_timeout
                 while len(q) >= self.queue_size and time.monotonic() < deadline:
                     time.sleep(0.001)

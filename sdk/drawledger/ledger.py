@@ -8,6 +8,7 @@ import functools
 import inspect
 import itertools
 import logging
+import math
 import operator
 import os
 import threading
@@ -19,6 +20,7 @@ from pathlib import Path
 from typing import Any, Generic, ParamSpec, TypeVar
 
 from drawledger import _lifecycle, _records, _sinks, _stream
+from drawledger._chain import Chain
 from drawledger._checks import (
     RecentIds,
     declared_uniforms,
@@ -30,7 +32,7 @@ from drawledger._checks import (
 from drawledger._code import code_hash, function_source, module_file
 from drawledger._probability import decision_propensity
 from drawledger._spill import SpillFile
-from drawledger._writer import FORK_WAIT, Chain, Stats, Writer
+from drawledger._writer import FORK_WAIT, Stats, Writer
 from drawledger.draw import Draw, DrawRecord, bucket_assign
 from drawledger.exceptions import (
     DecisionDefinitionError,
@@ -212,6 +214,10 @@ class Ledger:
     ) -> None:
         if queue_size < 1 or batch_size < 1:
             raise ValueError("queue_size and batch_size must be at least 1")
+        if not 0.0 <= block_timeout < math.inf:  # 0: never wait, spill (async services)
+            raise ValueError(
+                f"block_timeout must be a number of seconds >= 0, got {block_timeout!r}"
+            )
         if isinstance(recent_ids, bool) or not isinstance(recent_ids, int) or recent_ids < 0:
             raise ValueError("recent_ids must be an integer >= 0")
         self.target = os.fspath(target)

@@ -29,8 +29,8 @@ from recipe_card import CARDS, SCORES, make_decision
 
 import drawledger as dl
 from drawledger import _schema, _sinks
+from drawledger._chain import Chain
 from drawledger._records import DECISION_COLUMNS, DRAW_COLUMNS
-from drawledger._writer import Chain
 
 pytestmark = pytest.mark.benchmark
 
