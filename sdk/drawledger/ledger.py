@@ -19,16 +19,8 @@ from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any, Generic, ParamSpec, TypeVar
 
-from drawledger import _lifecycle, _records, _sinks, _stream
+from drawledger import _checks, _lifecycle, _records, _sinks, _stream
 from drawledger._chain import Chain
-from drawledger._checks import (
-    RecentIds,
-    declared_uniforms,
-    finite_number,
-    plain_text,
-    redact,
-    timestamp,
-)
 from drawledger._code import code_hash, function_source, module_file
 from drawledger._probability import decision_propensity
 from drawledger._spill import SpillFile
@@ -256,7 +248,7 @@ class Ledger:
         self._closed = False
         # The decision ids given to this ledger lately (docs/ledger.md, "Decision ids"): a
         # reuse is refused at the call. Kept across a fork: the parent's ids are in the ledger.
-        self._recent = RecentIds(recent_ids)
+        self._recent = _checks.RecentIds(recent_ids)
         self._init_process()
         _LEDGERS.add(self)
 
@@ -345,7 +337,7 @@ class Ledger:
         if self._redact_paths:
             plain = _records.from_json(_records.to_json(inputs, what))
             for path in self._redact_paths:
-                redact(plain, path, self._redact_key)
+                _checks.redact(plain, path, self._redact_key)
             return _records.to_json(plain, what)
         return _records.to_json(inputs, what)
 
@@ -390,7 +382,7 @@ class Ledger:
         to_json = _records.to_json
         for idx, name, kind, args, u, value, prob, is_density in draws:
             if name is not None and ("\x00" in name or not name.isascii()):
-                plain_text(name)  # raises when it is not plain text
+                _checks.plain_text(name)  # raises when it is not plain text
             try:
                 value_json = encoded[1] if encoded is not None and value is encoded[0] else \
                     to_json(value, "its value")  # fmt: skip
@@ -415,9 +407,9 @@ class Ledger:
         did = self._next_id() if decision_id is None else decision_id
         if not isinstance(did, str) or not did:
             raise NotSerializableError("decision_id must be a non-empty string")
-        plain_text(did, stream, unit)  # draw names: in _draw_rows
+        _checks.plain_text(did, stream, unit)  # draw names: in _draw_rows
         draw_rows = self._draw_rows(did, draws, encoded)
-        stamp = time.time() if ts is None else timestamp(ts)
+        stamp = time.time() if ts is None else _checks.timestamp(ts)
         row = (did, stream, unit, stamp, fn, chash, inputs, params, action, prop + 0.0, kind,
                seed, self.writer)  # fmt: skip
         self._enqueue(("d-", row, draw_rows), decision_id)
@@ -459,15 +451,15 @@ class Ledger:
             raise NotSerializableError("outcome: decision_id must be a non-empty string")
         if not isinstance(name, str) or not name:
             raise NotSerializableError("outcome: name must be a non-empty string")
-        plain_text(decision_id, name)
-        number = finite_number(value)
+        _checks.plain_text(decision_id, name)
+        number = _checks.finite_number(value)
         if number is None:
             raise NotSerializableError(
                 f"outcome {name!r}: value must be a finite number, got {value!r}"
             )
         if self._closed:
             raise LedgerClosedError(f"ledger {self.target!r} is closed")
-        stamp = time.time() if ts is None else timestamp(ts)
+        stamp = time.time() if ts is None else _checks.timestamp(ts)
         self._enqueue(("o-", (decision_id, name, number + 0.0, stamp, self.writer)))
 
     def bucket(
@@ -517,13 +509,13 @@ class Ledger:
             raise DrawArgumentError("declared draw: stream must be a non-empty string")
         if not isinstance(args, Mapping):
             raise DrawArgumentError(f"declared {kind} draw: args must be an object")
-        p = None if isinstance(prob, bool) else finite_number(prob)
+        p = None if isinstance(prob, bool) else _checks.finite_number(prob)
         if p is None or not p >= 0.0:
             raise DrawArgumentError(f"declared {kind} draw: prob must be a finite number >= 0")
         density = kind in ("uniform", "normal", "lognormal") if is_density is None else is_density
         if not density and p > 1.0:
             raise DrawArgumentError(f"declared {kind} draw: probability {p} exceeds 1")
-        uniforms = declared_uniforms(kind, u)
+        uniforms = _checks.declared_uniforms(kind, u)
         record = DrawRecord(0, None, kind, dict(args), uniforms, value, p, density)
         action = _records.to_json(value, f"declared {kind} draw: value")
         return self._append_decision(decision_id, stream, unit, ts, None, None, "{}", "{}",
