@@ -15,7 +15,7 @@ from drawledger._text import visible
 if TYPE_CHECKING:
     from rich.text import Text
 
-__all__ = ["shown", "warning"]
+__all__ = ["plain_text", "shown", "warning"]
 
 
 def shown(value: object, style: str = "") -> Text:
@@ -30,3 +30,15 @@ def warning(text: object) -> Text:
     from rich.text import Text
 
     return Text.assemble(("warning:", "yellow"), " ", visible(text))
+
+
+def plain_text(renderable: object, width: int = 110) -> str:
+    """``renderable`` (a report, a table) as plain text ``width`` columns wide: no colour and
+    no escape sequence, as ``render()`` gives it."""
+    import io
+
+    from rich.console import Console
+
+    buffer = io.StringIO()
+    Console(file=buffer, width=width, color_system=None, highlight=False).print(renderable)
+    return buffer.getvalue().rstrip("\n")

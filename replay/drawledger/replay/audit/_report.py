@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import io
 from dataclasses import dataclass, fields
 from typing import TYPE_CHECKING, Any
 
@@ -10,7 +9,7 @@ import pandas as pd
 
 from drawledger._text import counted
 from drawledger.replay._html import html_table
-from drawledger.replay._terminal import shown
+from drawledger.replay._terminal import plain_text, shown
 from drawledger.replay.audit import _stats
 from drawledger.replay.audit._limits import (
     ALPHA,
@@ -163,11 +162,7 @@ class AuditReport:
 
     def render(self) -> str:
         """The tables as plain text."""
-        from rich.console import Console
-
-        console = Console(width=140, record=True, file=io.StringIO())
-        console.print(self)
-        return console.export_text()
+        return plain_text(self, width=140)
 
     def __str__(self) -> str:
         return self.render()

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import html
-import os
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
 from typing import TYPE_CHECKING, Any
@@ -12,7 +11,7 @@ import numpy as np
 import pandas as pd
 
 from drawledger.replay._html import html_table
-from drawledger.replay._terminal import shown, warning
+from drawledger.replay._terminal import plain_text, shown, warning
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -263,7 +262,7 @@ class EstimateReport:
 
     def render(self) -> str:
         """The tables and warnings as plain text."""
-        return _plain(self)
+        return plain_text(self)
 
     def __str__(self) -> str:
         return self.render()
@@ -288,15 +287,6 @@ def _alerts(lines: list[str]) -> RenderResult:
 
     for line in lines:
         yield Text.assemble(("ALERT: ", "bold red"), shown(line))
-
-
-def _plain(renderable: Any) -> str:
-    from rich.console import Console
-
-    console = Console(width=110, record=True, file=open(os.devnull, "w"), color_system=None)  # noqa: SIM115
-    console.print(renderable)
-    console.file.close()
-    return console.export_text()
 
 
 @dataclass
@@ -420,7 +410,7 @@ class SweepReport:
 
     def render(self) -> str:
         """The table and warnings as plain text."""
-        return _plain(self)
+        return plain_text(self)
 
     def __str__(self) -> str:
         return self.render()

@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
-import io
 import math
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 from drawledger._text import visible
 from drawledger.replay._html import html_table
+from drawledger.replay._terminal import plain_text
 from drawledger.replay.guard._evidence import threshold
 from drawledger.replay.guard._state import INTEGRITY_PROBLEMS, GuardState
 from drawledger.replay.guard._watch import window_view
@@ -117,11 +117,7 @@ class GuardReport:
         yield self.__rich__()
 
     def render(self) -> str:
-        from rich.console import Console
-
-        buffer = io.StringIO()
-        Console(file=buffer, width=110, no_color=True, highlight=False).print(self)
-        return buffer.getvalue().rstrip("\n")
+        return plain_text(self)
 
     def __str__(self) -> str:
         return self.render()

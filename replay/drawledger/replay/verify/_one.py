@@ -9,7 +9,6 @@ links between records (gaps, broken links) are the ledger's: ``drawledger verify
 
 from __future__ import annotations
 
-import io
 import os
 from collections.abc import Iterable
 from dataclasses import dataclass, field
@@ -18,7 +17,7 @@ from typing import TYPE_CHECKING, Any
 from drawledger._records import DECISION_COLUMNS, decision_hash, from_json, outcome_hash
 from drawledger._schema import DEC, DRAW, OUT
 from drawledger.exceptions import ReplayError
-from drawledger.replay._terminal import shown
+from drawledger.replay._terminal import plain_text, shown
 from drawledger.replay.propensity import DEFAULT_BUDGET, DEFAULT_MC_SAMPLES
 from drawledger.replay.sources import read_decision
 from drawledger.replay.verify._decision import Context, check_decision
@@ -176,11 +175,7 @@ class DecisionView:
 
     def render(self) -> str:
         """The decision as plain text."""
-        from rich.console import Console
-
-        buffer = io.StringIO()
-        Console(file=buffer, width=160, no_color=True, highlight=False).print(self)
-        return buffer.getvalue().rstrip("\n")
+        return plain_text(self, width=160)
 
     def __str__(self) -> str:
         return self.render()

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import io
 import os
 from collections import Counter
 from dataclasses import dataclass, field
@@ -12,7 +11,7 @@ import pandas as pd
 
 from drawledger._text import counted
 from drawledger.replay._html import html_table
-from drawledger.replay._terminal import shown
+from drawledger.replay._terminal import plain_text, shown
 from drawledger.replay.integrity import IntegrityReport
 from drawledger.replay.verify import _export
 from drawledger.replay.verify._types import COUNTS, NOT_FAILING, REASONS, UNREPLAYABLE, ChunkResult
@@ -115,11 +114,7 @@ class VerifyReport:
 
     def render(self) -> str:
         """The summary as plain text."""
-        from rich.console import Console
-
-        buffer = io.StringIO()
-        Console(file=buffer, width=110, no_color=True, highlight=False).print(self)
-        return buffer.getvalue().rstrip("\n")
+        return plain_text(self)
 
     def __str__(self) -> str:
         return self.render()
