@@ -135,9 +135,9 @@ class Chain:
                 self.late = self.genesis is None
             self.prev = self.genesis
         if tag == "d-":
-            row = (*item[1], self.seq, self.prev)
-            digest = _records.decision_hash(row, item[2], self.key)
-            sealed = ("d", (*row, digest), item[2])
+            full = _records.seal_decision(item[1], self.seq, self.prev, item[2], self.key)
+            digest = full[-1]
+            sealed = ("d", full, item[2])
         elif tag == "o-":
             row = (*item[1], self.seq, self.prev)
             digest = _records.outcome_hash(row, self.key)
@@ -457,10 +457,12 @@ class Writer:
         writer's chain has no gap; it goes to the reject file.
         """
         given: list[str] = []
+        at_id, at_writer = DEC.decision_id, DEC.writer
         for item in items:
             if item[0] == "d-":
-                did, writer = item[1][DEC.decision_id], item[1][DEC.writer]
-                if not (did.startswith(writer) and did[len(writer) : len(writer) + 1] == "."):
+                row = item[1]
+                did = row[at_id]
+                if not did.startswith(row[at_writer] + "."):
                     given.append(did)
         if not given or time.monotonic() < self._down_until:
             return items

@@ -179,11 +179,14 @@ def measure(rounds: int = ROUNDS, per_round: int = PER_ROUND) -> dict[str, Any]:
         ledger.close()
         floor.close()
         written = ledger.stats()["written"]
+
+    def per_round(a: str, b: str) -> list[float]:
+        return [x / y for x, y in zip(times[a], times[b], strict=True)]
+
     ratios = {
-        "drawledger/bare": [p / b for p, b in zip(times["drawledger"], times["bare"], strict=True)],
-        "floor/bare": [f / b for f, b in zip(times["floor"], times["bare"], strict=True)],
-        "drawledger/floor": [p / f for p, f in zip(times["drawledger"], times["floor"],
-                                                   strict=True)],  # fmt: skip
+        "drawledger/bare": per_round("drawledger", "bare"),
+        "floor/bare": per_round("floor", "bare"),
+        "drawledger/floor": per_round("drawledger", "floor"),
     }
     return {
         "where": where,
@@ -192,6 +195,37 @@ def measure(rounds: int = ROUNDS, per_round: int = PER_ROUND) -> dict[str, Any]:
         "spread": {name: (min(rs), max(rs)) for name, rs in ratios.items()},
         "written": written,
     }
+
+
+def queue_bytes(calls: int = 20_000) -> float:
+    """Bytes of memory one pending record holds in the writer's queue (tracemalloc): the
+    quickstart's decision queued ``calls`` times with no writer thread taking the records."""
+    import gc
+    import tracemalloc
+    from collections import deque
+
+    with tempfile.TemporaryDirectory() as tmp:
+        held = dl.Ledger(Path(tmp) / "held.db", recent_ids=0)  # ids are counted apart
+        held._writer.queue = deque()
+        held._writer._live = True  # put() takes the thread for running and never starts it
+        fn = make_decision(held)
+        for _ in range(100):
+            fn(CARDS, SCORES)
+        held._writer.queue.clear()
+        gc.collect()
+        tracemalloc.start()
+        try:
+            before = tracemalloc.get_traced_memory()[0]
+            for _ in range(calls):
+                fn(CARDS, SCORES)
+            gc.collect()
+            after = tracemalloc.get_traced_memory()[0]
+        finally:
+            tracemalloc.stop()
+        assert calls == len(held._writer.queue)
+        held._writer.queue.clear()
+        held.close()
+    return (after - before) / calls
 
 
 def report(res: dict[str, Any], rounds: int = ROUNDS, per_round: int = PER_ROUND) -> str:
@@ -208,9 +242,11 @@ def report(res: dict[str, Any], rounds: int = ROUNDS, per_round: int = PER_ROUND
 def test_drawledger_within_1_3x_of_the_floor() -> None:
     res = measure()
     print("\n" + report(res))
+    print(f"  queue: {queue_bytes():,.0f} bytes per pending record (tracemalloc)")
     assert ROUNDS * PER_ROUND + 2_000 == res["written"]  # every call was written
     assert res["ratios"]["drawledger/floor"] <= LIMIT
 
 
 if __name__ == "__main__":
     print(report(measure()))
+    print(f"  queue: {queue_bytes():,.0f} bytes per pending record (tracemalloc)")
