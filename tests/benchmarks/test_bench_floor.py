@@ -2,6 +2,7 @@
 
 Run: python -m pytest tests/benchmarks/test_bench_floor.py -m benchmark -s
 (or ``python tests/benchmarks/test_bench_floor.py`` for the same report without pytest).
+Results: docs/performance.md, "## Serving cost against a hand-written floor".
 
 Three variants of the quickstart's decision (a softmax over six recipe cards), each called
 ``PER_ROUND`` times back to back per round, in rounds that interleave them; the time of a
@@ -180,13 +181,13 @@ def measure(rounds: int = ROUNDS, per_round: int = PER_ROUND) -> dict[str, Any]:
         floor.close()
         written = ledger.stats()["written"]
 
-    def per_round(a: str, b: str) -> list[float]:
+    def ratio_of(a: str, b: str) -> list[float]:
         return [x / y for x, y in zip(times[a], times[b], strict=True)]
 
     ratios = {
-        "drawledger/bare": per_round("drawledger", "bare"),
-        "floor/bare": per_round("floor", "bare"),
-        "drawledger/floor": per_round("drawledger", "floor"),
+        "drawledger/bare": ratio_of("drawledger", "bare"),
+        "floor/bare": ratio_of("floor", "bare"),
+        "drawledger/floor": ratio_of("drawledger", "floor"),
     }
     return {
         "where": where,
