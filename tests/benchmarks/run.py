@@ -415,10 +415,11 @@ NOTES: dict[str, str] = {
   instruction counts below do not depend on the load.
 - Instructions per decision (callgrind; a run of N = 1,000 decisions minus a run of N = 0):
   the floor's Python work (seed, one stream block, the softmax and the pick, six orjson
-  encodings, the chain hash) is 68.4k; drawledger's is 137.0k, 102.3k on the serving thread
-  and 34.7k sealing on the writer thread. Both then insert the same rows: `SqlSink.write`
-  costs 60.4k per decision with its draw, raw `sqlite3.executemany` of the same rows 59.3k.
-  So all in, about 197k against 128k: 1.55x, what the wall-clock ratio shows.
+  encodings, the chain hash) is 68.4k; drawledger's is 132.2k, 92.4k on the serving thread
+  and 39.7k sealing on the writer thread (this method's spread is about 2k). Both then
+  insert the same rows: `SqlSink.write` costs 60.4k per decision with its draw, raw
+  `sqlite3.executemany` of the same rows 59.3k.
+  So all in, about 193k against 128k: 1.51x, about what the wall-clock ratio shows.
 - The SQL path is not where the difference is: SQLAlchemy's `exec_driver_sql` adds 2% over
   the raw DB-API `executemany` of the same rows (the sink passes the driver its rows as they
   are), so the insert did not move to the raw cursor.
@@ -427,7 +428,7 @@ NOTES: dict[str, str] = {
   text, units), the NaN screen of each JSON text, a canonical form over all sixteen columns
   and the draw row, in which the JSON texts are encoded once more as JSON strings (about six
   blake2b blocks per decision: blake2b's compression function, CPython's portable
-  implementation, is 15k of the 137k), and about 25 Python calls from the decorator to the
+  implementation, is 15k of the 132k), and about 25 Python calls from the decorator to the
   queue. No single step is more than a tenth of it.
 - What would close the gap: the canonical form and chain hash, the draw engine's checks and
   the uniform stream are plain loops over bytes and floats; a compiled extension doing them
@@ -445,9 +446,9 @@ NOTES: dict[str, str] = {
   the whole record on its first pass; about one record in five still reaches the old
   generation (the collector may look at the tuple of draw rows before the rows in it). In a
   service with a large heap each full collection costs more, but they come more rarely.
-- Memory: a pending record in the writer's queue holds about 1.2 kB (the quickstart's decision,
+- Memory: a pending record in the writer's queue holds about 1.1 kB (the quickstart's decision,
   `tracemalloc`), and the queue holds at most `queue_size` records (default 100,000: about
-  120 MB of such records); docs/operations.md.""",
+  115 MB of such records); docs/operations.md.""",
     "Sinks": """\
 - The Parquet sink beats the raw `write_table` with default options because it turns dictionary
   encoding on only for repeating columns and statistics on only for numeric columns, and
