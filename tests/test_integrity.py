@@ -548,3 +548,18 @@ def test_a_corrupt_sqlite_file_is_one_ledger_error(ledger_path: Path) -> None:
     ledger_path.write_bytes(bytes(data))
     with pytest.raises(dl.LedgerError, match="database is corrupt: database disk image"):
         check_integrity(ledger_path)
+
+
+@pytest.mark.parametrize("prev", [None, "ab" * 32])
+def test_sealing_a_decision_appends_seq_prev_and_the_hash_of_the_whole_row(
+    prev: str | None,
+) -> None:
+    """``seal_decision`` (the writer's path) gives the row ``decision_hash`` signs, bit for bit."""
+    row = ("req-8c1", "recipe-card", "rider-17", 1.5, "m:f", "0" * 32, '{"scores":[1.6]}',
+           '{"temperature":0.7}', '"ramen"', 0.25, "exact", "ab" * 16, "w1")  # fmt: skip
+    draws = [("req-8c1", 0, "card", "softmax", '{"options":["ramen"]}', "[0.5]", '"ramen"',
+              0.25, 0)]  # fmt: skip
+    full = (*row, 7, prev)
+    assert (*full, _records.decision_hash(full, draws, KEY)) == _records.seal_decision(
+        row, 7, prev, draws, KEY
+    )

@@ -50,9 +50,9 @@ class Chain:
                 self.late = self.genesis is None
             self.prev = self.genesis
         if tag == "d-":
-            row = (*item[1], self.seq, self.prev)
-            digest = _records.decision_hash(row, item[2], self.key)
-            sealed = ("d", (*row, digest), item[2])
+            full = _records.seal_decision(item[1], self.seq, self.prev, item[2], self.key)
+            digest = full[-1]
+            sealed = ("d", full, item[2])
         elif tag == "o-":
             row = (*item[1], self.seq, self.prev)
             digest = _records.outcome_hash(row, self.key)

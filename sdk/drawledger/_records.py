@@ -24,8 +24,9 @@ HASH_PERSON = b"drawledger.h1"
 _DOUBLE = struct.Struct(">d")
 # What a record's hash covers: its row up to the hash column. Module constants, because they are
 # read once per record and reading an attribute costs more than reading a global.
-_DECISION_HASHED = DEC.hash
 _OUTCOME_HASHED = OUT.hash
+_DECISION_SEQ = DEC.seq
+_DECISION_PREV = DEC.prev_hash
 
 
 def json_default(obj: Any) -> Any:
@@ -83,7 +84,7 @@ def to_json(obj: Any, what: str) -> str:
         raise NotSerializableError(f"{what} cannot be recorded as JSON: {exc}") from None
     # orjson writes NaN and infinities (numpy's too) as null; JSON has no such numbers, so
     # refuse them, naming where they sit.
-    if raw.find(b"null") != -1:  # find: "in" costs an exception
+    if raw.rfind(b"null") != -1:  # rfind: CPython's find and "in" search this slower
         where = non_finite_at(obj)
         if where is not None:
             at = f": {where} is" if where else " is"
@@ -115,8 +116,15 @@ def _digest(canonical: bytes, key: bytes) -> str:
 
 def decision_canonical(row: tuple[Any, ...], draws: list[tuple[Any, ...]]) -> bytes:
     """Canonical bytes of a decision row (without its hash) and its draw rows (docs/ledger.md)."""
+    return _decision_body(row, row[_DECISION_SEQ], row[_DECISION_PREV], draws)
+
+
+def _decision_body(
+    row: tuple[Any, ...], seq: int, prev: str | None, draws: list[tuple[Any, ...]]
+) -> bytes:
+    """``decision_canonical`` of ``row``'s first columns (up to ``writer``), ``seq``, ``prev``."""
     (did, stream, unit, ts, fn, code_hash, inputs, params, action, prop, prop_kind, seed,
-     writer, seq, prev) = row[:_DECISION_HASHED]  # fmt: skip
+     writer) = row[:_DECISION_SEQ]  # fmt: skip
     pack = _DOUBLE.pack  # float_hex, inlined: this runs once per decision
     body = [
         "drawledger.decision.v1", did, stream, unit, pack(ts).hex(), fn, code_hash, inputs,
@@ -125,6 +133,15 @@ def decision_canonical(row: tuple[Any, ...], draws: list[tuple[Any, ...]]) -> by
          for _, idx, name, kind, args, u, value, prob, density in draws],
     ]  # fmt: skip
     return orjson.dumps(body)
+
+
+def seal_decision(
+    row: tuple[Any, ...], seq: int, prev: str | None, draws: list[tuple[Any, ...]], key: bytes
+) -> tuple[Any, ...]:
+    """The complete decision row: ``row`` (its columns up to ``writer``), ``seq``, ``prev`` and
+    the hash of them with ``draws``; what ``decision_hash`` computes, without building the row
+    twice (the writer thread seals every decision with it)."""
+    return (*row, seq, prev, _digest(_decision_body(row, seq, prev, draws), key))
 
 
 def outcome_canonical(row: tuple[Any, ...]) -> bytes:

@@ -17,6 +17,7 @@ __all__ = [
     "SEED_BYTES",
     "STREAM_PERSON",
     "block",
+    "block_bytes",
     "bucket_uniform",
     "new_seed",
     "to_unit",
@@ -66,11 +67,20 @@ def to_unit(x: int) -> float:
     return ((x >> 11) + 0.5) * SCALE
 
 
+# The counters of the first blocks, encoded once (most decisions use block 0 alone).
+_COUNTERS = tuple(b.to_bytes(8, "little") for b in range(16))
+
+
+def block_bytes(seed: bytes, b: int) -> bytes:
+    """The 64 bytes of block ``b`` of the stream keyed by ``seed``: eight little-endian words."""
+    counter = _COUNTERS[b] if b < 16 else b.to_bytes(8, "little")
+    # digest_size 64 is blake2b's default; leaving it out spares an argument on the hot path
+    return _blake2b(counter, key=seed, person=STREAM_PERSON).digest()
+
+
 def words(seed: bytes, b: int) -> tuple[int, ...]:
     """The eight 64-bit words of block ``b`` of the stream keyed by ``seed``."""
-    # digest_size 64 is blake2b's default; leaving it out spares an argument on the hot path
-    digest = _blake2b(b.to_bytes(8, "little"), key=seed, person=STREAM_PERSON)
-    return WORDS.unpack(digest.digest())
+    return WORDS.unpack(block_bytes(seed, b))
 
 
 def block(seed: bytes, b: int) -> list[float]:

@@ -420,10 +420,12 @@ class Writer:
         writer's chain has no gap; it goes to the reject file.
         """
         given: list[str] = []
+        at_id, at_writer = DEC.decision_id, DEC.writer
         for item in items:
             if item[0] == "d-":
-                did, writer = item[1][DEC.decision_id], item[1][DEC.writer]
-                if not (did.startswith(writer) and did[len(writer) : len(writer) + 1] == "."):
+                row = item[1]
+                did = row[at_id]
+                if not did.startswith(row[at_writer] + "."):
                     given.append(did)
         if not given or time.monotonic() < self._down_until:
             return items

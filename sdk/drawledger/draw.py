@@ -12,6 +12,7 @@ problem, and a draw that fails consumes no uniform and records nothing.
 from __future__ import annotations
 
 import math
+import struct
 from collections.abc import Mapping, Sequence
 from typing import Any, NamedTuple, TypeVar
 
@@ -57,6 +58,7 @@ BELOW_ONE = 1.0 - 2.0**-53
 
 _SCALE = _stream.SCALE
 _exp = math.exp
+_word_at = struct.Struct("<Q").unpack_from  # one word of a block: no tuple of all eight
 
 
 class DrawRecord(NamedTuple):
@@ -105,7 +107,7 @@ class Draw:
     ``records``.
     """
 
-    __slots__ = ("_block", "_n", "_words", "records", "seed")
+    __slots__ = ("_block", "_bytes", "_n", "records", "seed")
 
     def __init__(self, seed: bytes | None = None) -> None:
         if seed is None:
@@ -116,7 +118,7 @@ class Draw:
         self.records: list[DrawRecord] = []
         self._n = 0  # uniforms used so far
         self._block = -1
-        self._words: tuple[int, ...] = ()
+        self._bytes = b""  # the current block of the stream
 
     # -- sources of randomness (replay overrides these) -------------------------------------
     def _uniform(self) -> float:
@@ -125,9 +127,9 @@ class Draw:
         self._n = n + 1
         b = n >> 3
         if b != self._block:
-            self._words = _stream.words(self.seed, b)
+            self._bytes = _stream.block_bytes(self.seed, b)
             self._block = b
-        return ((self._words[n & 7] >> 11) + 0.5) * _SCALE
+        return ((_word_at(self._bytes, (n & 7) << 3)[0] >> 11) + 0.5) * _SCALE
 
     def _pick(self, probs: list[float]) -> tuple[int, float]:
         """One categorical step: the chosen index and the uniform it used."""

@@ -376,7 +376,7 @@ class Ledger:
 
     def _draw_rows(
         self, did: str, draws: Sequence[DrawRecord], encoded: tuple[Any, str] | None = None
-    ) -> list[tuple[Any, ...]]:
+    ) -> tuple[tuple[Any, ...], ...]:
         """Rows of the draws table; ``encoded`` = (object, its JSON) spares encoding it twice."""
         rows = []
         to_json = _records.to_json
@@ -392,7 +392,7 @@ class Ledger:
             except NotSerializableError as exc:
                 label = f"{kind} draw {name!r}" if name is not None else f"{kind} draw"
                 raise NotSerializableError(f"{label} (#{idx}): {exc}") from None
-        return rows
+        return tuple(rows)  # no list in a queued record: the garbage collector can untrack it
 
     def _append_decision(
         self, decision_id: str | None, stream: str, unit: str | None, ts: float | None,

@@ -409,6 +409,46 @@ _AREA = re.compile(r'Results: docs/performance\.md, "## ([^"]+)"')
 # What each area's owner found when profiling, absorbed from the hand-written sections this
 # document had before it was generated (the numbers live in the output above each note).
 NOTES: dict[str, str] = {
+    "Serving cost against a hand-written floor": """\
+- The machine was shared (load average 1.7 to 6 during these runs): one run's
+  drawledger/floor ratio moved between 1.5 and 1.7 from run to run, on the same code. The
+  instruction counts below do not depend on the load.
+- Instructions per decision (callgrind; a run of N = 1,000 decisions minus a run of N = 0):
+  the floor's Python work (seed, one stream block, the softmax and the pick, six orjson
+  encodings, the chain hash) is 68.4k; drawledger's is 132.2k, 92.4k on the serving thread
+  and 39.7k sealing on the writer thread (this method's spread is about 2k). Both then
+  insert the same rows: `SqlSink.write` costs 60.4k per decision with its draw, raw
+  `sqlite3.executemany` of the same rows 59.3k.
+  So all in, about 193k against 128k: 1.51x, about what the wall-clock ratio shows.
+- The SQL path is not where the difference is: SQLAlchemy's `exec_driver_sql` adds 2% over
+  the raw DB-API `executemany` of the same rows (the sink passes the driver its rows as they
+  are), so the insert did not move to the raw cursor.
+- What drawledger does that the floor does not: every check of the draw's arguments
+  (types, finiteness, lengths, the temperature, the name) and of the call (decision ids,
+  text, units), the NaN screen of each JSON text, a canonical form over all sixteen columns
+  and the draw row, in which the JSON texts are encoded once more as JSON strings (about six
+  blake2b blocks per decision: blake2b's compression function, CPython's portable
+  implementation, is 15k of the 132k), and about 25 Python calls from the decorator to the
+  queue. No single step is more than a tenth of it.
+- What would close the gap: the canonical form and chain hash, the draw engine's checks and
+  the uniform stream are plain loops over bytes and floats; a compiled extension doing them
+  (C or Rust, with the Python code kept as the reference the draw-spec and hash tests compare
+  against) would take an estimated 60-70k instructions off a decision, to about the floor's
+  cost. A canonical form v2 that hashes the stored JSON texts length-prefixed instead of
+  re-encoding them would save about a fifth of the hashed bytes, but needs a versioned
+  format that the integrity check and ingest read beside v1; neither is in this change.
+- Python's garbage collector is the largest single difference in wall time: the floor's
+  loop triggers no collection at all, while drawledger's records wait in the queue and the
+  writer's batch long enough to survive young collections. Timed with `gc.callbacks` over
+  60,000 decisions with the writer running: 366 young, 33 middle and 3 full collections,
+  about 13% of drawledger's time, the full ones (the whole heap) most of it. A queued record
+  now holds its draw rows in a tuple instead of a list, so the collector can stop tracking
+  the whole record on its first pass; about one record in five still reaches the old
+  generation (the collector may look at the tuple of draw rows before the rows in it). In a
+  service with a large heap each full collection costs more, but they come more rarely.
+- Memory: a pending record in the writer's queue holds about 1.1 kB (the quickstart's decision,
+  `tracemalloc`), and the queue holds at most `queue_size` records (default 100,000: about
+  115 MB of such records); docs/operations.md.""",
     "Sinks": """\
 - The Parquet sink beats the raw `write_table` with default options because it turns dictionary
   encoding on only for repeating columns and statistics on only for numeric columns, and
