@@ -128,13 +128,30 @@ class IngestReport:
             out += [f"  line {n}: {visible(reason)}" for n, reason in found[:MAX_SHOWN]]
             if len(found) > MAX_SHOWN:
                 out.append(f"  ... and {len(found) - MAX_SHOWN} more {label} lines")
-        if self.spilled:
-            out.append(f"  {counted(self.spilled, 'declared draw')} could not be written and "
-                       "were spilled")  # fmt: skip
-        if self.rejected:
-            out.append(f"  {counted(self.rejected, 'declared draw')} refused by the writer: "
-                       "their decision id reached the ledger during the ingest")  # fmt: skip
+        out += [f"  {problem}" for problem in self._unwritten()]
         return "\n".join(out)
+
+    def _unwritten(self) -> list[str]:
+        out = []
+        if self.spilled:
+            out.append(f"{counted(self.spilled, 'declared draw')} could not be written and "
+                       "were spilled; ingest that spill file again")  # fmt: skip
+        if self.rejected:
+            out.append(f"{counted(self.rejected, 'declared draw')} refused by the writer: "
+                       "their decision id reached the ledger during the ingest")  # fmt: skip
+        return out
+
+    def problems(self) -> list[str]:
+        """One line per kind of problem, with its first example: what the command reports."""
+        out = []
+        for label, found in (("conflicting records not loaded", self.conflicting),
+                             ("records refused for a decision id already in the ledger",
+                              self.duplicate_ids),
+                             ("malformed lines skipped", self.malformed)):  # fmt: skip
+            if found:
+                n, reason = found[0]
+                out.append(f"{len(found)} {label} (first: line {n}: {visible(reason)})")
+        return out + self._unwritten()
 
     def __str__(self) -> str:
         return self.render()

@@ -25,7 +25,7 @@ from drawledger._cli_output import EXIT_FOUND, EXIT_OK, EXIT_USAGE, OneLineParse
 from drawledger._cli_output import console as _console
 from drawledger._cli_output import json_option as _json_option
 from drawledger._cli_output import write_json as _write_json
-from drawledger._text import counted, visible
+from drawledger._text import visible
 from drawledger.exceptions import DrawledgerError, EstimateRefusedError
 
 Handler = Callable[[argparse.Namespace], int]
@@ -97,20 +97,7 @@ def _ingest(args: argparse.Namespace) -> int:
     if args.json:
         _write_json(args.json, report.to_dict())
     print(report.render())
-    problems = []
-    for label, found in (("conflicting records not loaded", report.conflicting),
-                         ("records refused for a decision id already in the ledger",
-                          report.duplicate_ids),
-                         ("malformed lines skipped", report.malformed)):  # fmt: skip
-        if found:
-            n, reason = found[0]
-            problems.append(f"{len(found)} {label} (first: line {n}: {visible(reason)})")
-    if report.spilled:
-        problems.append(f"{counted(report.spilled, 'declared draw')} could not be written and "
-                        "were spilled; ingest that spill file again")  # fmt: skip
-    if report.rejected:
-        problems.append(f"{counted(report.rejected, 'declared draw')} refused by the writer: "
-                        "their decision id reached the ledger during the ingest")  # fmt: skip
+    problems = report.problems()
     if problems:
         print(f"drawledger ingest: error: {'; '.join(problems)}", file=sys.stderr)
     if report.malformed or report.spilled:
