@@ -3,78 +3,23 @@ the git history of a --path directory."""
 
 from __future__ import annotations
 
-import importlib
 import json
-import subprocess
-import sys
-import uuid
+import shutil
+import sqlite3
 from collections import Counter
 from pathlib import Path
 
 import pytest
+from git_shop import Shop, git
 
+from drawledger._code import source_identity
 from drawledger.cli import main
-from drawledger.ledger import REGISTRY
+from drawledger.exceptions import ReplayError
 from drawledger.replay import verify
 
-MODULE = """import drawledger as dl
-
-ledger = dl.Ledger({target!r}, format={format!r})
-
-
-@ledger.decision("recipe-card")
-def feature_card(scores: list[float], draw: dl.Draw, *, temperature: float = 0.7) -> str:
-    cards = ["one-pot-pasta", "green-curry", "taco-night", "lentil-soup"]
-{body}
-"""
 FIRST = '    return draw.softmax(cards, scores, temperature=temperature, name="card")'
 COMMENTED = "    # hotter evenings: more exploration later\n" + FIRST
 HOTTER = '    return draw.softmax(cards, scores, temperature=temperature + 0.3, name="card")'
-
-
-def git(repo: Path, *args: str) -> str:
-    done = subprocess.run(
-        ["git", "-c", "user.name=Grocery Dev", "-c", "user.email=dev@grocery.invalid",
-         "-c", "init.defaultBranch=main", "-C", str(repo), *args],
-        capture_output=True, text=True, check=True,
-    )  # fmt: skip
-    return done.stdout.strip()
-
-
-class Shop:
-    """A git repository holding one decision module, deployed three times."""
-
-    def __init__(self, root: Path, format: str | None = None, url: str | None = None) -> None:
-        self.repo = root / "shop"
-        self.repo.mkdir()
-        self.format = format
-        self.ledger: Path | str = url or root / (
-            "ledger" if format == "parquet" else "decisions.db"
-        )
-        self.name = f"cards_{uuid.uuid4().hex[:8]}"
-        git(self.repo, "init", "-q")
-
-    def deploy(self, body: str, n: int, message: str) -> str:
-        """Commit the module with ``body``, then log ``n`` decisions with it; its identity."""
-        file = self.repo / f"{self.name}.py"
-        file.write_text(MODULE.format(target=str(self.ledger), format=self.format, body=body))
-        git(self.repo, "add", file.name)
-        git(self.repo, "commit", "-q", "-m", message)
-        sys.path.insert(0, str(self.repo))
-        try:
-            module = importlib.import_module(self.name)
-            for i in range(n):
-                module.feature_card([1.0 + i % 3, 2.0, 0.5, 1.5], unit=f"shopper-{i}")
-            module.ledger.close()
-            return str(module.feature_card.code_hash)
-        finally:
-            sys.path.remove(str(self.repo))
-            self.forget()
-
-    def forget(self) -> None:
-        sys.modules.pop(self.name, None)
-        for key in [k for k in REGISTRY if k.startswith(self.name + ":")]:
-            del REGISTRY[key]
 
 
 def _three_deploys(tmp_path: Path, n: int, format: str | None = None,
@@ -182,3 +127,68 @@ def test_the_deploys_page_runs_as_written(run_markdown) -> None:  # type: ignore
     assert "verified 600 of 600 | ok: True" in done.stdout
     assert '+    return draw.softmax(cards, scores, temperature=temperature * 0.8, name="card")' \
         in done.stdout  # fmt: skip
+
+
+KEY = "grocery-ledger-key"
+
+
+def _without_history(tmp_path: Path) -> tuple[Shop, list[str]]:
+    """Two deploys under a keyed ledger, then the repository's history deleted: the first
+    version can only come from the source the ledger stores."""
+    shop = Shop(tmp_path, key=KEY)
+    ids = [shop.deploy(FIRST, 30, "Feature a recipe card"), shop.deploy(HOTTER, 30, "Hotter")]
+    shutil.rmtree(shop.repo / ".git")
+    return shop, ids
+
+
+def _stored(shop: Shop, identity: str) -> str:
+    with sqlite3.connect(shop.ledger) as conn:
+        (source,) = conn.execute("SELECT source FROM code_versions WHERE identity = ?",
+                                 (identity,)).fetchone()  # fmt: skip
+    return str(source)
+
+
+def _plant(shop: Shop, identity: str, canary: Path, *, rehash: bool) -> None:
+    """Edit the stored source of ``identity`` to create ``canary`` when it runs; with
+    ``rehash``, also give it and its decisions the edited source's identity (without the key)."""
+    source = _stored(shop, identity).replace(
+        "    return", f"    __import__('os').system('touch {canary}')\n    return"
+    )
+    with sqlite3.connect(shop.ledger) as conn:
+        conn.execute("UPDATE code_versions SET source = ? WHERE identity = ?", (source, identity))
+        if rehash:
+            new = source_identity(source)
+            conn.execute("UPDATE code_versions SET identity = ? WHERE identity = ?",
+                         (new, identity))  # fmt: skip
+            conn.execute("UPDATE decisions SET code_hash = ? WHERE code_hash = ?", (new, identity))
+
+
+def test_stored_source_replays_a_version_the_history_lost_after_the_keyed_check(
+    tmp_path: Path,
+) -> None:
+    shop, _ = _without_history(tmp_path)
+    assert 30 == verify(shop.ledger, path=[shop.repo]).by_reason["version-not-found"]
+    report = verify(shop.ledger, path=[shop.repo], run_stored_source=True, integrity_key=KEY)
+    assert (60, 60) == (report.decisions, report.verified)
+    assert ["stored source", "current code"] == [v["replayed_under"] for v in report.versions]
+
+
+@pytest.mark.parametrize("rehash", [False, True], ids=["source-edited", "identity-rewritten"])
+def test_edited_stored_source_never_runs(tmp_path: Path, rehash: bool) -> None:
+    shop, ids = _without_history(tmp_path)
+    canary = tmp_path / "canary"
+    _plant(shop, ids[0], canary, rehash=rehash)
+    report = verify(shop.ledger, path=[shop.repo], integrity_key=KEY)  # without the option
+    assert not report.ok and not canary.exists()
+    refusal = "keyed integrity check" if rehash else "does not hash to its identity"
+    with pytest.raises(ReplayError, match=refusal):
+        verify(shop.ledger, path=[shop.repo], run_stored_source=True, integrity_key=KEY)
+    assert not canary.exists()
+
+
+def test_stored_source_is_never_run_without_the_integrity_key(tmp_path: Path) -> None:
+    shop, _ = _without_history(tmp_path)
+    with pytest.raises(ReplayError, match="integrity key"):
+        verify(shop.ledger, path=[shop.repo], run_stored_source=True)
+    assert 2 == main(["verify", str(shop.ledger), "--path", str(shop.repo),
+                      "--run-stored-source"])  # fmt: skip

@@ -106,7 +106,8 @@ def estimate_command(args: argparse.Namespace) -> int:
         bootstrap=args.bootstrap, level=args.level, seed=args.seed, reward_range=given_range,
         missing_reward=missing, progress=sys.stderr.isatty() and not args.quiet, jobs=args.jobs,
         integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None,
-        engine=args.engine, scheduler=args.scheduler, **accepted(args),
+        engine=args.engine, scheduler=args.scheduler, history=not args.no_history,
+        **accepted(args),
     )  # fmt: skip
     report: Any
     try:
@@ -151,12 +152,19 @@ def accept_options(p: argparse.ArgumentParser) -> None:
                    "the output says so first, exit 1")  # fmt: skip
 
 
+def history_option(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--no-history", action="store_true",
+                   help="do not search the git history of --path directories for the code "
+                   "versions that logged older records (docs/deploys.md)")  # fmt: skip
+
+
 def estimate_options(p: argparse.ArgumentParser) -> None:
     p.description = (
-        "Verify the ledger, then estimate the mean reward of a target policy (the logged\n"
-        "decision function with --set parameters, or a --target callable) from the verified\n"
-        "records: IPS, SNIPS, clipped IPS and doubly robust, each with an interval, the paired\n"
-        "difference to a baseline (default: the logging policy), and overlap diagnostics.\n"
+        "Verify the ledger, then estimate the mean reward of a target policy (the decision\n"
+        "function of the current code under --path with --set parameters, or a --target\n"
+        "callable) from the verified records: IPS, SNIPS, clipped IPS and doubly robust, each\n"
+        "with an interval, the paired difference to a baseline (default: the logging policy,\n"
+        "each record under the code version that logged it), and overlap diagnostics.\n"
         "Exit 0 when the data can answer; 1 when the target has a support deficit or uneven\n"
         "weights (a small effective sample size or one dominant weight), when the estimate is\n"
         "refused because the ledger fails its integrity check or decisions of the stream failed\n"
@@ -194,6 +202,7 @@ def estimate_options(p: argparse.ArgumentParser) -> None:
                    help="reward when the outcome is missing, or 'exclude' (default 0)")  # fmt: skip
     p.add_argument("--jobs", type=int, default=1, metavar="N",
                    help="verify in N processes (default 1)")  # fmt: skip
+    history_option(p)
     accept_options(p)
 
 

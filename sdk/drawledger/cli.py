@@ -20,6 +20,7 @@ from drawledger._cli_estimate import (
     assignments,
     estimate_command,
     estimate_options,
+    history_option,
 )
 from drawledger._cli_output import EXIT_FOUND, EXIT_OK, EXIT_USAGE, OneLineParser, run_quietly
 from drawledger._cli_output import console as _console
@@ -117,6 +118,7 @@ def _verify(args: argparse.Namespace) -> int:
         progress=not args.quiet,
         integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None, engine=args.engine,
         scheduler=args.scheduler, history=not args.no_history,
+        run_stored_source=args.run_stored_source,
     )  # fmt: skip
     if args.json:
         _write_json(args.json, report.to_dict())
@@ -330,9 +332,11 @@ def build_parser() -> argparse.ArgumentParser:
                    "propensity; past that, Monte Carlo (default 4096)")  # fmt: skip
     p.add_argument("--mc-samples", type=int, default=2000, metavar="N",
                    help="Monte Carlo runs per decision past --budget (default 2000)")  # fmt: skip
-    p.add_argument("--no-history", action="store_true",
-                   help="do not search the git history of --path directories for the code "
-                   "versions that logged older records (docs/deploys.md)")  # fmt: skip
+    history_option(p)
+    p.add_argument("--run-stored-source", action="store_true",
+                   help="replay the records of a code version the git history does not hold "
+                   "from the source the ledger stores; needs DRAWLEDGER_INTEGRITY_KEY and a "
+                   "ledger that passes the keyed integrity check (docs/deploys.md)")  # fmt: skip
     _engine_options(p)
 
     p = add("versions", "list the code versions that made a ledger's decisions, or diff two",

@@ -14,6 +14,7 @@ from drawledger._records import from_json
 from drawledger._schema import DEC
 from drawledger.exceptions import ReplayError
 from drawledger.replay._keys import id_keys
+from drawledger.replay.estimate._elsewhere import Logged
 from drawledger.replay.estimate._estimators import ID_KEY
 from drawledger.replay.estimate._policies import Policy, Records, Target, evaluate
 from drawledger.replay.estimate._rewards import Rewards
@@ -80,6 +81,7 @@ class Facts:
     refused_n: int = 0  # of them, with a reason the caller did not accept
     refused: Counter[str] = field(default_factory=Counter)  # those reasons
     code_changed: int = 0  # decisions used although their code changed (accepted)
+    versions: Counter[tuple[str, str]] = field(default_factory=Counter)  # used, by (fn, identity)
 
 
 @dataclass
@@ -282,20 +284,27 @@ def _ratio_bound(target: _Dists | None, logging: _Dists | None, width: int) -> f
 
 
 def evaluate_piece(rows: Sequence[tuple[Any, ...]], draws: Iterable[tuple[Any, ...]],
-                   flagged: frozenset[str], job: Job, rewards: Rewards) -> PieceData:  # fmt: skip
-    """Stage 1: replay the piece and re-run its usable records under every policy."""
+                   flagged: frozenset[str], job: Job, rewards: Rewards,
+                   logged: Logged | None = None) -> PieceData:  # fmt: skip
+    """Stage 1: replay the piece and re-run its usable records under every policy.
+
+    ``logged``: the piece's records of other code versions, already replayed under their own
+    version (``job.settings.elsewhere`` leaves them out here)."""
     k = len(job.policies)
     facts = Facts(rows=len(rows))
     rows = [r for r in rows if str(r[DEC.stream]) == job.stream]  # other streams are not replayed
     mine = flagged & {r[DEC.decision_id] for r in rows} if flagged else frozenset()
     checked = verify_chunk(rows, draws, mine, job.settings)
+    if logged is not None:
+        checked.add(logged.checked)
     if not checked.rows:
         return _empty(facts, k)
     frame = pd.concat(checked.rows, ignore_index=True)
     facts.total = len(frame)
-    texts: dict[str, tuple[Any, Any, Any]] = {}
+    texts: dict[str, tuple[Any, Any, Any, Any]] = {}
     for row in rows:
-        texts.setdefault(row[DEC.decision_id], (row[DEC.fn], row[DEC.inputs], row[DEC.params]))
+        text = (row[DEC.fn], row[DEC.inputs], row[DEC.params], row[DEC.code_hash])
+        texts.setdefault(row[DEC.decision_id], text)
     fns = {d: t[0] for d, t in texts.items()}
     frame, r, facts.excluded = _usable(frame, fns, rewards, job, facts)
     if job.reward_range is not None:
@@ -308,6 +317,9 @@ def evaluate_piece(rows: Sequence[tuple[Any, ...]], draws: Iterable[tuple[Any, .
                    params=[c[2] for c in chosen], actions=frame["action"].astype(str).tolist(),
                    mu=frame["propensity"].to_numpy(dtype=float, copy=True), r=r,
                    methods=frame["propensity_method"].tolist())  # fmt: skip
+    if logged is not None:
+        recs.foreign = {i: logged.dists.get(d) for i, (d, c) in enumerate(zip(ids, chosen,
+                        strict=True)) if (c[0], c[3]) in job.settings.elsewhere}  # fmt: skip
     path, allow = list(job.settings.path), list(job.settings.allow)
     targets = [Target(p, path, allow) for p in job.policies]
     logging, results = evaluate(recs, targets, path=path, allow=allow, seed=job.seed)
@@ -317,12 +329,13 @@ def evaluate_piece(rows: Sequence[tuple[Any, ...]], draws: Iterable[tuple[Any, .
         codes.setdefault(a, len(codes))
     same = list(zip(recs.inputs, recs.params, strict=True))
     dists = [None if res.dists is None else _Dists.of(res.dists, same, codes) for res in results]
-    logged = None if any(d is None for d in logging) else _Dists.of(logging, same, codes)
+    logged_dists = None if any(d is None for d in logging) else _Dists.of(logging, same, codes)
     facts.n, facts.functions = n, set(recs.fn)
+    facts.versions = Counter((c[0], c[3]) for c in chosen)
     facts.reward_low, facts.reward_high = float(r.min()), float(r.max())
     facts.methods = [res.methods for res in results]
     facts.dists = [d is not None for d in dists]
-    facts.bounds = [_ratio_bound(d, logged, len(codes)) for d in dists]
+    facts.bounds = [_ratio_bound(d, logged_dists, len(codes)) for d in dists]
     facts.actions = list(codes)
     x = x_index = label = None
     if any(facts.dists):

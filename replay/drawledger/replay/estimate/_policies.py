@@ -41,7 +41,7 @@ from drawledger.replay.verify import (
     resolve_decision,
 )
 
-__all__ = ["Evaluated", "Policy", "Records", "Target", "evaluate"]
+__all__ = ["Evaluated", "Policy", "Records", "Target", "evaluate", "logging_distributions"]
 
 Policy = Mapping[str, Any] | str | None
 
@@ -58,6 +58,10 @@ class Records:
     mu: np.ndarray  # replayed logging propensity (or density)
     r: np.ndarray  # reward
     methods: list[str | None]  # how the verifier found mu
+    # Records logged by another code version (record index: its logging action distribution
+    # under that version, None when it has no exact one): they are re-run here only under the
+    # targets, never under the logging policy.
+    foreign: dict[int, dict[str, float] | None] = field(default_factory=dict)
 
 
 class Target:
@@ -150,6 +154,7 @@ class _Run:
     returned: str
     dist: dict[str, float] | None
     single: bool = False  # one draw, whose value the decision returned
+    foreign: bool = False  # another code version's: only ``dist`` is known here
 
     @property
     def density(self) -> DrawRecord | None:
@@ -214,15 +219,27 @@ def evaluate(
         if dec is None:
             dec = resolve_decision(recs.fn[i], path=path, allow=allow)
             decisions[recs.fn[i]] = dec
-        inputs = load_inputs(dec, recs.inputs[i])
-        logged = params.get((dec.name, recs.params[i]))
-        if logged is None:
-            logged = load_params(dec, recs.params[i])
-            if immutable(logged) and len(params) < 1024:
-                params[(dec.name, recs.params[i])] = logged
+        try:
+            inputs = load_inputs(dec, recs.inputs[i])
+            logged = params.get((dec.name, recs.params[i]))
+            if logged is None:
+                logged = load_params(dec, recs.params[i])
+                if immutable(logged) and len(params) < 1024:
+                    params[(dec.name, recs.params[i])] = logged
+        except ReplayError as exc:
+            if i not in recs.foreign:
+                raise
+            raise ReplayError(
+                f"{where} was logged by another code version of {dec.name}, whose inputs or "
+                f"parameters the current code does not take, so it cannot be re-run under the "
+                f"target: {exc}"
+            ) from None
         rseed = _record_seed(did, seed)
         by_density = recs.methods[i] == DENSITY
-        lrun = _run(dec, inputs, logged, rseed, budget, where)
+        if i in recs.foreign:
+            lrun = _Run([], action, recs.foreign[i], foreign=True)
+        else:
+            lrun = _run(dec, inputs, logged, rseed, budget, where)
         logging_dists.append(lrun.dist)
         for t, res in zip(targets, out, strict=True):
             if t.logging:
@@ -242,6 +259,14 @@ def evaluate(
         elif res.dists is not None and len(res.dists) != n:
             res.dists = None
     return logging_dists, out
+
+
+def logging_distributions(
+    recs: Records, *, path: Sequence[str], allow: Sequence[str], seed: int,
+    budget: int = DEFAULT_BUDGET,
+) -> list[dict[str, float] | None]:  # fmt: skip
+    """Each record's action distribution under its logged parameters (None: no exact one)."""
+    return evaluate(recs, [], path=path, allow=allow, seed=seed, budget=budget)[0]
 
 
 def _evaluate_callable(t: Target, res: Evaluated, i: int, inputs: Mapping[str, Any],
@@ -291,6 +316,9 @@ def _evaluate_params(
         prop = from_run(dec, inputs, params, action, trun.records, trun.returned, seed=seed)
         res.p[i] = prop.value
         res.methods[prop.method] += 1
+    if lrun.foreign:  # the logging policy's code is another version's: not run here
+        res.deficit[i] = math.nan
+        return
     # Support by sampling: trun.returned is a draw from the target (a seeded run); the record
     # counts as deficit when the logging policy gives that action probability (density) 0.
     back = from_run(dec, inputs, logged, trun.returned, lrun.records, lrun.returned, seed=seed)

@@ -67,9 +67,30 @@ def interval_label(settings: Mapping[str, Any]) -> str:
 def _policy_text(d: Mapping[str, Any]) -> str:
     if "callable" in d:
         return str(d["callable"])
-    if d.get("overrides"):
-        return ", ".join(f"{k}={v!r}" for k, v in d["overrides"].items())
-    return "logging policy"
+    changed = ", ".join(f"{k}={v!r}" for k, v in d.get("overrides", {}).items())
+    if "code" in d:  # records of other code versions: the target is the current code
+        return f"{d['code']}, {changed}" if changed else str(d["code"])
+    return changed or "logging policy"
+
+
+def _versions_table(versions: list[dict[str, Any]]) -> list[Any]:
+    """The code versions of the stream, when some record was logged by another version than
+    the current code (none otherwise)."""
+    from rich.box import SIMPLE
+    from rich.table import Table
+    from rich.text import Text
+
+    if not any(not v["logged_under"].startswith("current code") for v in versions):
+        return []
+    t = Table(title="code versions (logging propensities from each record's own version)",
+              title_justify="left", box=SIMPLE)  # fmt: skip
+    for name in ("function", "identity", "decisions", "used", "logged under"):
+        t.add_column(name, justify="right" if name in ("decisions", "used") else "left",
+                     overflow="fold")  # fmt: skip
+    for v in versions:  # Text: what a ledger holds is never read as markup
+        t.add_row(*(Text(str(v[k])) for k in ("fn", "identity", "decisions", "used",
+                                               "logged_under")))  # fmt: skip
+    return [t]
 
 
 @dataclass(frozen=True)
@@ -138,6 +159,7 @@ class EstimateReport:
     alerts: list[str] = field(default_factory=list)
     accepted_failures: dict[str, Any] | None = None
     missing_rewards: dict[str, Any] = field(default_factory=dict)
+    versions: list[dict[str, Any]] = field(default_factory=list)
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -153,6 +175,7 @@ class EstimateReport:
             "excluded": {"total": self.decisions - self.n, "by_reason": self.excluded},
             "missing_rewards": self.missing_rewards,
             "settings": self.settings,
+            "versions": self.versions,
             "warnings": self.warnings,
             "ok": self.ok,
         }
@@ -239,7 +262,7 @@ class EstimateReport:
         filled = _filled(self.missing_rewards)
         if filled:
             g.add_row(*filled)
-        out: list[Any] = [t, d, g]
+        out: list[Any] = [t, d, g, *_versions_table(self.versions)]
         if self.segments is not None:
             s = Table(title=shown(f"segments by {self.segments['by']}"), title_justify="left",
                       box=SIMPLE)  # fmt: skip
@@ -304,6 +327,7 @@ class SweepReport:
     alerts: list[str] = field(default_factory=list)
     accepted_failures: dict[str, Any] | None = None
     missing_rewards: dict[str, Any] = field(default_factory=dict)
+    versions: list[dict[str, Any]] = field(default_factory=list)
 
     @property
     def table(self) -> pd.DataFrame:
@@ -376,8 +400,8 @@ class SweepReport:
         return {"alerts": self.alerts, "accepted_failures": self.accepted_failures,
                 "n": self.n, "param": self.param, "points": self.points,
                 "baseline": self.baseline, "settings": self.settings,
-                "missing_rewards": self.missing_rewards, "warnings": self.warnings,
-                "ok": self.ok}  # fmt: skip
+                "missing_rewards": self.missing_rewards, "versions": self.versions,
+                "warnings": self.warnings, "ok": self.ok}  # fmt: skip
 
     def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
         from rich.box import SIMPLE
@@ -402,6 +426,7 @@ class SweepReport:
             t.add_row(f"{p['value']:g}" if isinstance(p["value"], float) else shown(p["value"]),
                       *cells, f"{p['diagnostics']['ess']:.1f}")  # fmt: skip
         yield t
+        yield from _versions_table(self.versions)
         filled = _filled(self.missing_rewards)
         if filled:
             yield Text(f"{filled[0]}: {filled[1]}")

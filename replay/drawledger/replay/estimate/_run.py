@@ -113,12 +113,13 @@ class _Question:
     scheduler: str | None
     accept_integrity: bool
     accept: frozenset[str]
+    history: bool
 
 
 def _pass(
     ledger: str | os.PathLike[str], q: _Question, policies: Sequence[Policy], *, cap: float,
     bootstrap: int, by: str | None, weights: bool,
-) -> tuple[Pass, str]:  # fmt: skip
+) -> tuple[Pass, str, list[dict[str, Any]]]:  # fmt: skip
     """The chosen stream's records, replayed and evaluated under ``policies`` piece by piece
     (locally or on Dask) and reduced to the estimators' statistics."""
     text = os.fspath(ledger)
@@ -126,9 +127,10 @@ def _pass(
         raise ReplayError(f"jobs must be a positive integer, got {q.jobs!r}")
     settings = Settings(path=q.path, allow=q.allow, budget=DEFAULT_BUDGET,
                         mc_samples=DEFAULT_MC_SAMPLES, keep_rows=True)  # fmt: skip
-    # Stored sources, so that a record of another code version is version-not-found as in
-    # verify (estimates do not replay earlier versions from the git history yet).
-    settings = plan_versions(text, q.format, settings, False).settings
+    # As in verify: a record of another code version is replayed under its own version when
+    # the history holds it (local engine), else it is version-not-found.
+    versions = plan_versions(text, q.format, settings, q.history and q.engine == "local")
+    settings = versions.settings
     if q.engine == "dask" or is_parquet(text, q.format):
         root = parquet_root(text, q.format if q.engine == "dask" else "parquet", "estimate")
         by_stream = stream_partitions(root)
@@ -145,9 +147,24 @@ def _pass(
         job = replace(job, settings=absolute_paths(settings))
     with open_engine(q.engine, jobs=q.jobs, scheduler=q.scheduler, progress=q.progress,
                      command="estimate") as engine:  # fmt: skip
-        return estimate_on(engine, target, format, tasks, job, integrity_key=q.integrity_key,
-                           cap=cap, bootstrap=bootstrap, weights=weights,
-                           accept_integrity=q.accept_integrity), stream  # fmt: skip
+        p = estimate_on(engine, target, format, tasks, job, integrity_key=q.integrity_key,
+                        cap=cap, bootstrap=bootstrap, weights=weights,
+                        accept_integrity=q.accept_integrity, versions=versions)  # fmt: skip
+    return p, stream, _versions(versions.versions, stream, p)
+
+
+def _other_code(versions: Sequence[Mapping[str, Any]]) -> bool:
+    """Some records were logged by another code version than the current one."""
+    return any(not v["logged_under"].startswith("current code") for v in versions)
+
+
+def _versions(planned: Sequence[Mapping[str, Any]], stream: str, p: Pass) -> list[dict[str, Any]]:
+    """The code versions of the stream: decisions, records used, and the code that replayed
+    them (the logging side of each record)."""
+    return [{"fn": v["fn"], "identity": v["identity"], "decisions": v["decisions"],
+             "used": p.versions.get((v["fn"], v["identity"]), 0),
+             "logged_under": v["replayed_under"]}
+            for v in planned if v["stream"] == stream]  # fmt: skip
 
 
 @dataclass
@@ -323,6 +340,7 @@ def estimate(
     scheduler: str | None = None,
     accept_integrity_failures: bool = False,
     accept_verification_failures: Collection[str] = (),
+    history: bool = True,
 ) -> EstimateReport:
     """Estimate the mean ``reward`` of a target policy from the verified records of a ledger.
 
@@ -345,6 +363,12 @@ def estimate(
     ``accept_verification_failures`` (reasons such as ``["code-changed"]``, or ``["all"]``)
     accept them: the failing decisions are dropped, the report's ``alerts`` say so first,
     ``accepted_failures`` counts them, and ``ok`` is False.
+
+    Across deploys (docs/deploys.md): each record's logging propensity comes from the code
+    version that logged it, replayed from the git history of a ``path`` directory as
+    ``verify`` does (``history=False`` turns it off); the target is the current code under
+    ``path`` with the record's logged parameters and ``overrides``. The report's ``versions``
+    counts the decisions and the records used of each version.
     """
     if overrides is not None and target is not None:
         raise ReplayError("give either overrides (changed parameters) or a callable target")
@@ -353,11 +377,14 @@ def estimate(
                           format=format, progress=progress, jobs=jobs, engine=engine,
                           integrity_key=integrity_key, scheduler=scheduler,
                           accept_integrity=accept_integrity_failures,
-                          accept_verification_failures=accept_verification_failures)  # fmt: skip
+                          accept_verification_failures=accept_verification_failures,
+                          history=history)  # fmt: skip
     spec: Policy = target if target is not None else dict(overrides or {})
     for policy in (spec, baseline):  # refuse a bad callable before the long pass
         Target(policy, q.path, q.allow)
-    p, stream_name = _pass(ledger, q, [spec, baseline], cap=cap, bootstrap=b, by=by, weights=True)
+    p, stream_name, versions = _pass(
+        ledger, q, [spec, baseline], cap=cap, bootstrap=b, by=by, weights=True
+    )
     s = _Settings(cap, interval, level, b, seed, p.reward_range, reward_range is not None)
     bounds = (p.bounds[0], p.bounds[-1])
     has_dr = p.dr[0] and p.dr[-1]
@@ -368,6 +395,8 @@ def estimate(
     found = _found(p, missing_reward)
     describe = {**_describe(spec), "stream": stream_name, "functions": p.functions,
                 "reward": reward, "propensities": dict(p.methods[0])}  # fmt: skip
+    if spec is not None and not isinstance(spec, str) and _other_code(versions):
+        describe["code"] = "current code"
     assert p.weights is not None
     return EstimateReport(
         n=summary["n"], target=describe, estimates=summary["estimates"],
@@ -377,7 +406,7 @@ def estimate(
         segments=None if by is None else _segments(p, bounds, s, by),
         decisions=p.total, weights=p.weights, ok=not _problem(summary) and not _accepted(p),
         alerts=top, accepted_failures=found["accepted_failures"],
-        missing_rewards=found["missing_rewards"],
+        missing_rewards=found["missing_rewards"], versions=versions,
     )  # fmt: skip
 
 
@@ -407,6 +436,7 @@ def sweep(
     scheduler: str | None = None,
     accept_integrity_failures: bool = False,
     accept_verification_failures: Collection[str] = (),
+    history: bool = True,
 ) -> SweepReport:
     """Estimates of the policies ``overrides + {param: v}`` for each v in ``values``.
 
@@ -423,12 +453,15 @@ def sweep(
                           format=format, progress=progress, jobs=jobs, engine=engine,
                           integrity_key=integrity_key, scheduler=scheduler,
                           accept_integrity=accept_integrity_failures,
-                          accept_verification_failures=accept_verification_failures)  # fmt: skip
+                          accept_verification_failures=accept_verification_failures,
+                          history=history)  # fmt: skip
     fixed = dict(overrides or {})
     policies: list[Policy] = [{**fixed, param: v} for v in grid]
     policies.append(baseline)
     Target(baseline, q.path, q.allow)
-    p, stream_name = _pass(ledger, q, policies, cap=cap, bootstrap=b, by=None, weights=False)
+    p, stream_name, versions = _pass(
+        ledger, q, policies, cap=cap, bootstrap=b, by=None, weights=False
+    )
     s = _Settings(cap, interval, level, b, seed, p.reward_range, reward_range is not None)
     points, warnings, ok = [], [], True
     base_estimates: dict[str, Any] = {}
@@ -450,5 +483,5 @@ def sweep(
         settings={**s.to_dict(), "overrides": fixed, "stream": stream_name, "reward": reward},
         warnings=_excluded_warnings(p) + warnings + s.notes(), n=p.n, ok=ok and not _accepted(p),
         alerts=alerts(p.failures, p.integrity, reward, missing_reward, p.n),
-        **_found(p, missing_reward),
+        versions=versions, **_found(p, missing_reward),
     )  # fmt: skip

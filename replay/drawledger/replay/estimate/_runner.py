@@ -5,24 +5,29 @@ from __future__ import annotations
 
 import os
 from collections.abc import Callable, Sequence
+from dataclasses import replace
 from typing import Any, TypeVar
 
 from drawledger.exceptions import ReplayError
 from drawledger.replay.engines import Engine
+from drawledger.replay.estimate._elsewhere import Logged, logged_elsewhere
 from drawledger.replay.estimate._piece import Facts, Job, PieceData, evaluate_piece
 from drawledger.replay.estimate._refuse import Failures, check_stream, integrity_verdict
 from drawledger.replay.estimate._rewards import Rewards, read_rewards
 from drawledger.replay.estimate._stages import Pass, run_pass
 from drawledger.replay.integrity import check_on
 from drawledger.replay.sources import Task, stream_outcome_names
+from drawledger.replay.verify import VersionPlan
 
 T = TypeVar("T")
 
 
-def _evaluate(task: Task, flagged: frozenset[str], job: Job, rewards: Rewards) -> PieceData:
+def _evaluate(item: tuple[Task, Logged | None], flagged: frozenset[str], job: Job,
+              rewards: Rewards) -> PieceData:  # fmt: skip
     """Stage 1 of one chunk: its records replayed and re-run under every policy."""
+    task, logged = item
     rows, draws = task.read()
-    return evaluate_piece(rows, draws, flagged, job, rewards)
+    return evaluate_piece(rows, draws, flagged, job, rewards, logged)
 
 
 def _facts(data: PieceData) -> Facts:
@@ -38,8 +43,8 @@ class EngineRunner:
     keeps it between the stages (a file, a Dask worker), so this process holds a chunk's
     data at most, and the later stages of a chunk run where its data is."""
 
-    def __init__(self, engine: Engine, tasks: Sequence[Task], flagged: frozenset[str],
-                 rewards: Any) -> None:  # fmt: skip
+    def __init__(self, engine: Engine, tasks: Sequence[tuple[Task, Logged | None]],
+                 flagged: frozenset[str], rewards: Any) -> None:  # fmt: skip
         self.engine = engine
         self.tasks = tasks
         self.flagged = flagged
@@ -60,11 +65,13 @@ class EngineRunner:
 def estimate_on(
     engine: Engine, ledger: str, format: str | None, tasks: Sequence[Task], job: Job, *,
     integrity_key: bytes | str | None, cap: float, bootstrap: int, weights: bool,
-    accept_integrity: bool,
+    accept_integrity: bool, versions: VersionPlan,
 ) -> Pass:  # fmt: skip
     """``run_pass`` on ``engine``: the rewards table read by one side task (kept on the engine)
     and the integrity check beside it; the flagged decisions reach every chunk. A failed
-    integrity check refuses the estimate unless ``accept_integrity``."""
+    integrity check refuses the estimate unless ``accept_integrity``. The records of the
+    code versions found in the history (``versions``) are replayed under their own version
+    first, in a process of each revision."""
     checking = check_on(engine, ledger, format=format, integrity_key=integrity_key)
     rewards = engine.submit(read_rewards, os.fspath(ledger), format, job.reward,
                             label="reading outcomes")  # fmt: skip
@@ -73,7 +80,11 @@ def estimate_on(
     report = checking.result()
     integrity = integrity_verdict(report, accept_integrity)
     flagged = frozenset(report.decision_ids)
-    runner = EngineRunner(engine, tasks, flagged, rewards)
+    logged, leftover = logged_elsewhere(versions, tasks, job.stream, flagged, job.seed)
+    if leftover:
+        here = replace(job.settings, elsewhere=job.settings.elsewhere - leftover)
+        job = replace(job, settings=here)
+    runner = EngineRunner(engine, list(zip(tasks, logged, strict=True)), flagged, rewards)
 
     def names() -> list[str]:
         return engine.submit(stream_outcome_names, ledger, format, job.stream,

@@ -208,6 +208,7 @@ class Pass:
     weights: np.ndarray | None
     failures: Failures
     integrity: dict[str, int]  # integrity problems the caller accepted
+    versions: Counter[tuple[str, str]]  # records used, by (function, code identity)
 
 
 def run_pass(runner: Runner, job: Job, *, cap: float, bootstrap: int, weights: bool,
@@ -265,7 +266,7 @@ def run_pass(runner: Runner, job: Job, *, cap: float, bootstrap: int, weights: b
         reward_range=plan.reward_range, dr=dists, bounds=bounds, pairs=pairs,
         segments={v: Group.combine(g) for v, g in segments.items()},
         weights=np.concatenate(kept) if weights else None, failures=failures,
-        integrity=integrity,
+        integrity=integrity, versions=sum((f.versions for f in used), Counter()),
     )  # fmt: skip
 
 

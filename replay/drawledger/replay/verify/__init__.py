@@ -13,8 +13,14 @@ from drawledger.replay.verify._imports import (
 from drawledger.replay.verify._one import DecisionView, verify_one
 from drawledger.replay.verify._report import VerifyReport
 from drawledger.replay.verify._run import verify
-from drawledger.replay.verify._types import NOT_FAILING, REASONS, Settings, absolute_paths
-from drawledger.replay.verify._versioned import plan_versions
+from drawledger.replay.verify._types import (
+    NOT_FAILING,
+    REASONS,
+    ChunkResult,
+    Settings,
+    absolute_paths,
+)
+from drawledger.replay.verify._versioned import VersionPlan, in_revisions, plan_versions
 from drawledger.replay.verify._versions import (
     CodeVersion,
     VersionsReport,
@@ -28,15 +34,18 @@ __all__ = [
     "BASE_COLUMNS",
     "NOT_FAILING",
     "REASONS",
+    "ChunkResult",
     "CodeVersion",
     "DecisionView",
     "Settings",
     "VerifyReport",
+    "VersionPlan",
     "VersionsReport",
     "absolute_paths",
     "code_versions",
     "immutable",
     "import_allowed",
+    "in_revisions",
     "load_inputs",
     "load_params",
     "lookup_qualname",

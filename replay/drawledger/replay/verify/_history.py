@@ -30,9 +30,9 @@ _NAME = re.compile(r"^[A-Za-z_]\w*(\.[A-Za-z_]\w*)*$")
 MAX_REVISIONS = 500  # revisions of one file searched at most (newest first)
 
 
-def function_text(module_text: str, qualname: str) -> str | None:
-    """The dedented source of ``qualname`` (decorators included, as ``inspect.getsource`` reads
-    it) in a module's text; None when the text does not parse or lacks it."""
+def _span(module_text: str, qualname: str) -> tuple[int, int, str] | None:
+    """The first and last line of ``qualname`` (decorators included) in a module's text, and
+    its indentation; None when the text does not parse or lacks it."""
     try:
         tree = ast.parse(module_text)
     except (SyntaxError, ValueError):
@@ -47,8 +47,17 @@ def function_text(module_text: str, qualname: str) -> str | None:
         body = node.body
     assert node is not None and node.end_lineno is not None
     first = min([node.lineno, *(d.lineno for d in getattr(node, "decorator_list", []))])
-    lines = module_text.splitlines(keepends=True)[first - 1 : node.end_lineno]
-    return textwrap.dedent("".join(lines))
+    return first, node.end_lineno, " " * node.col_offset
+
+
+def function_text(module_text: str, qualname: str) -> str | None:
+    """The dedented source of ``qualname`` (decorators included, as ``inspect.getsource`` reads
+    it) in a module's text; None when the text does not parse or lacks it."""
+    found = _span(module_text, qualname)
+    if found is None:
+        return None
+    first, last, _ = found
+    return textwrap.dedent("".join(module_text.splitlines(keepends=True)[first - 1 : last]))
 
 
 def text_identity(module_text: str, qualname: str) -> str | None:
@@ -130,7 +139,7 @@ def search(wanted: dict[str, set[str]], current: dict[str, tuple[str, Path]]) ->
         if top is None or file is None:
             continue
         rel = file.resolve().relative_to(top).as_posix()
-        log = _git(top, "log", "--format=%H", f"--max-count={MAX_REVISIONS}", "--", rel)
+        log = _git(top, "log", "--all", "--format=%H", f"--max-count={MAX_REVISIONS}", "--", rel)
         left = {i for i in identities if i.startswith(CODE_IDENTITY_VERSION)}
         for rev in log.stdout.split() if log is not None else []:
             if not left:
@@ -166,3 +175,26 @@ def temporary_tree(top: Path, rev: str) -> Path | None:
 def moved_path(base: Path, top: Path, tree: Path) -> str:
     """The ``--path`` directory ``base`` of the work tree ``top`` inside a materialized tree."""
     return os.fspath(tree / base.relative_to(top))
+
+
+def stored_tree(base: Path, fn: str, source: str) -> Path | None:
+    """A fresh temporary copy of the ``--path`` directory ``base`` in which the function ``fn``
+    (``module:qualname``) has the stored ``source`` instead of its current text (the caller
+    removes it); None when the module or the function is not there."""
+    module, _, qualname = fn.partition(":")
+    file = module_path(base, module)
+    if file is None:
+        return None
+    text = file.read_text(encoding="utf-8")
+    found = _span(text, qualname)
+    if found is None:
+        return None
+    first, last, indent = found
+    lines = text.splitlines(keepends=True)
+    body = textwrap.indent(source if source.endswith("\n") else source + "\n", indent)
+    where = Path(tempfile.mkdtemp(prefix="drawledger-stored-"))
+    tree = where / base.name
+    shutil.copytree(base, tree, ignore=shutil.ignore_patterns(".git", "__pycache__"))
+    patched = tree / file.relative_to(base)
+    patched.write_text("".join([*lines[: first - 1], body, *lines[last:]]), encoding="utf-8")
+    return where

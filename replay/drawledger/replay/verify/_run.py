@@ -31,7 +31,7 @@ from drawledger.replay.verify import _export
 from drawledger.replay.verify._chunk import verify_chunk
 from drawledger.replay.verify._report import VerifyReport, build_report, rows_with_outcomes
 from drawledger.replay.verify._types import ChunkResult, Settings, absolute_paths
-from drawledger.replay.verify._versioned import plan_versions, replay_revisions
+from drawledger.replay.verify._versioned import VersionPlan, plan_versions, replay_revisions
 
 
 def _verify_task(task: Task, flagged: AbstractSet[str], settings: Settings) -> ChunkResult | None:
@@ -89,6 +89,7 @@ def verify(
     scheduler: str | None = None,
     chunk_size: int = CHUNK_SIZE,
     history: bool = True,
+    run_stored_source: bool = False,
 ) -> VerifyReport:
     """Replay every decision of a ledger and check its integrity.
 
@@ -104,7 +105,9 @@ def verify(
     version than the current one are replayed under their own version when ``history`` is on,
     a ``path`` directory lies in a git work tree, and its history holds that version (local
     engine; docs/deploys.md); else they are ``version-not-found`` (with the diff from the
-    stored source) or, without a stored source, ``code-changed``.
+    stored source) or, without a stored source, ``code-changed``. ``run_stored_source``
+    replays the records of a version the history does not hold from the source the ledger
+    stores, after the keyed integrity check passed (``integrity_key`` is required).
     """
     if engine not in ("local", "dask"):
         raise ValueError(f"engine must be 'local' or 'dask', got {engine!r}")
@@ -127,12 +130,19 @@ def verify(
     if engine == "dask":  # the workers may run elsewhere: absolute paths, a Parquet ledger
         ledger, format, size = parquet_root(ledger, format, "verify"), "parquet", chunk_size
         settings = absolute_paths(settings)
-    versions = plan_versions(ledger, format, settings, history and engine == "local")
+    if run_stored_source and (not integrity_key or engine != "local"):
+        raise ReplayError("running stored source needs the ledger's integrity key "
+                          "(DRAWLEDGER_INTEGRITY_KEY) and the local engine: only a ledger that "
+                          "passes the keyed integrity check has its stored source run")  # fmt: skip
+    versions = plan_versions(ledger, format, settings, history and engine == "local",
+                             run_stored_source)  # fmt: skip
     with open_engine(engine, jobs=jobs, scheduler=scheduler, progress=progress,
                      command="verify") as runner:  # fmt: skip
         total, integrity = verify_on(runner, ledger, format=format, integrity_key=integrity_key,
                                      settings=versions.settings, size=size)  # fmt: skip
     flagged = frozenset(integrity.decision_ids)
+    if versions.runs_stored_source or versions.unmatched:
+        _check_stored(versions, integrity)
     for part in replay_revisions(versions, ledger, format, size, flagged):
         total.add(part)
     rows = rows_with_outcomes(total.rows, ledger, format) if settings.keep_rows else pd.DataFrame()
@@ -141,3 +151,18 @@ def verify(
     if export is not None:
         _export.write_export(rows, export)
     return report
+
+
+def _check_stored(versions: VersionPlan, integrity: IntegrityReport) -> None:
+    """Stored source runs only from a ledger that passes its keyed integrity check, and only
+    when every version asked for hashes to its identity: a ledger that was edited could hold
+    any code (docs/deploys.md)."""
+    if not integrity.ok:
+        raise ReplayError("refusing to run the ledger's stored source: the ledger fails its "
+                          "keyed integrity check, so its stored code may have been edited; "
+                          "run verify without --run-stored-source for the details")  # fmt: skip
+    if versions.unmatched:
+        fn, identity = versions.unmatched[0]
+        raise ReplayError(f"refusing to run the ledger's stored source: the stored source of "
+                          f"{fn} does not hash to its identity {identity} (edited after it "
+                          f"was recorded); nothing was run")  # fmt: skip

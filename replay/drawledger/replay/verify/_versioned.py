@@ -11,13 +11,15 @@ from __future__ import annotations
 import os
 import pickle
 import shutil
+import struct
 import subprocess
 import sys
 import tempfile
+from collections.abc import Callable
 from collections.abc import Set as AbstractSet
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeVar
 
 from drawledger._schema import DEC, DRAW
 from drawledger.exceptions import ReplayError
@@ -25,29 +27,58 @@ from drawledger.replay.sources import decision_versions, plan, read_code_version
 from drawledger.replay.verify import _history
 from drawledger.replay.verify._chunk import verify_chunk
 from drawledger.replay.verify._types import ChunkResult, Settings
+from drawledger.replay.verify._versions import source_matches
+
+T = TypeVar("T")
+
+Pair = tuple[str, str]  # (function, code identity)
 
 
 @dataclass
 class Revision:
-    """The records of some code versions, replayed on the tree of one git revision."""
+    """The records of some code versions, replayed on the tree of one git revision, or (with
+    ``source``) on a copy of the ``--path`` directory holding a version's stored source."""
 
     rev: str
     top: Path
     base: Path
-    pairs: frozenset[tuple[str, str]]
+    pairs: frozenset[Pair]
+    source: str | None = None
+
+    @property
+    def label(self) -> str:
+        if self.source is None:
+            return f"the code version of git {self.rev[:12]}"
+        return f"the stored source of {self.rev}"
+
+    def tree(self) -> tuple[Path, str] | None:
+        """A temporary tree (the caller removes it) and the ``--path`` directory in it."""
+        if self.source is None:
+            tree = _history.temporary_tree(self.top, self.rev)
+            return None if tree is None else (tree, _history.moved_path(self.base, self.top, tree))
+        ((fn, _),) = self.pairs
+        tree = _history.stored_tree(self.base, fn, self.source)
+        return None if tree is None else (tree, os.fspath(tree / self.base.name))
 
 
 @dataclass
-class Plan:
+class VersionPlan:
     settings: Settings
     revisions: list[Revision] = field(default_factory=list)
     versions: list[dict[str, Any]] = field(default_factory=list)
+    # Versions whose stored source was asked for but does not hash to their identity.
+    unmatched: list[Pair] = field(default_factory=list)
+
+    @property
+    def runs_stored_source(self) -> bool:
+        return any(r.source is not None for r in self.revisions)
 
 
 def plan_versions(ledger: str | os.PathLike[str], format: str | None, settings: Settings,
-            history: bool) -> Plan:  # fmt: skip
+                  history: bool, stored: bool = False) -> VersionPlan:  # fmt: skip
     """The plan: stored sources for every chunk, the revisions to replay apart, and the
-    versions table of the report."""
+    versions table of the report. ``stored``: a version the history does not hold is replayed
+    from its stored source (the caller checks the ledger's keyed integrity first)."""
     sources: dict[str, str] = {}
     for row in read_code_versions(ledger, format=format):
         identity, source = row[0], row[4]
@@ -66,6 +97,17 @@ def plan_versions(ledger: str | os.PathLike[str], format: str | None, settings: 
         by_rev.setdefault(rev, set()).add(pair)
     revisions = [Revision(rev, *found.bases[rev], frozenset(pairs))
                  for rev, pairs in sorted(by_rev.items())]  # fmt: skip
+    unmatched: list[Pair] = []
+    for use in uses if stored else ():
+        pair, now = (use.fn, use.identity), current.get(use.fn)
+        source = sources.get(use.identity)
+        if now is None or use.identity == now[0] or pair in found.revisions or source is None:
+            continue
+        if source_matches(use.identity, source):
+            revisions.append(Revision(use.identity, now[1], now[1], frozenset({pair}), source))
+        else:
+            unmatched.append(pair)
+    from_source = {p for r in revisions if r.source is not None for p in r.pairs}
     versions = []
     for use in uses:
         now = current.get(use.fn)
@@ -74,19 +116,22 @@ def plan_versions(ledger: str | os.PathLike[str], format: str | None, settings: 
             under = "current code"
         elif rev:
             under = f"git {rev[:12]}"
+        elif (use.fn, use.identity) in from_source:
+            under = "stored source"
         elif now is None:
             under = "current code (not under --path)"
         else:
             under = "not found"
         versions.append({"stream": use.stream, "fn": use.fn, "identity": use.identity,
                          "decisions": use.decisions, "replayed_under": under})  # fmt: skip
-    elsewhere = frozenset(found.revisions)
-    stored = tuple(sorted(sources.items()))
-    return Plan(replace(settings, sources=stored, elsewhere=elsewhere), revisions, versions)
+    elsewhere = frozenset(found.revisions) | from_source
+    kept = tuple(sorted(sources.items()))
+    return VersionPlan(replace(settings, sources=kept, elsewhere=elsewhere), revisions, versions,
+                       unmatched)  # fmt: skip
 
 
-def _replay_revision(ledger: str, format: str | None, size: int, settings: Settings,
-                     flagged: AbstractSet[str]) -> ChunkResult:  # fmt: skip
+def replay_revision(settings: Settings, ledger: str, format: str | None, size: int,
+                    flagged: AbstractSet[str]) -> ChunkResult:  # fmt: skip
     """Every record of ``settings.only`` replayed in this process (one revision's code)."""
     total = ChunkResult()
     for task in plan(ledger, format=format, size=size):
@@ -99,57 +144,135 @@ def _replay_revision(ledger: str, format: str | None, size: int, settings: Setti
     return total
 
 
-def replay_revisions(plan_: Plan, ledger: str | os.PathLike[str], format: str | None,
+def replay_revisions(plan_: VersionPlan, ledger: str | os.PathLike[str], format: str | None,
                      size: int, flagged: AbstractSet[str]) -> list[ChunkResult]:  # fmt: skip
     """Each revision's records replayed in a fresh process on a temporary copy of its tree.
 
     A revision whose tree cannot be extracted leaves its records to the current code (where
     they are reported as ``version-not-found``)."""
-    results: list[ChunkResult] = []
-    leftover: set[tuple[str, str]] = set()
-    for revision in plan_.revisions:
-        tree = _history.temporary_tree(revision.top, revision.rev)
-        if tree is None:
-            leftover |= revision.pairs
-            continue
-        try:
-            moved = _history.moved_path(revision.base, revision.top, tree)
-            settings = replace(plan_.settings, path=(moved,), elsewhere=frozenset(),
-                               only=revision.pairs)  # fmt: skip
-            args = (os.fspath(ledger), format, size, settings, frozenset(flagged))
-            results.append(_in_fresh_process(revision.rev, args))
-        finally:
-            shutil.rmtree(tree, ignore_errors=True)
+    args = (os.fspath(ledger), format, size, frozenset(flagged))
+    results, leftover = in_revisions(plan_, replay_revision, *args)
     if leftover:
         settings = replace(plan_.settings, elsewhere=frozenset(), only=frozenset(leftover))
-        results.append(_replay_revision(os.fspath(ledger), format, size, settings, flagged))
+        results.append(replay_revision(settings, *args))
     return results
 
 
-def _in_fresh_process(rev: str, args: tuple[Any, ...]) -> ChunkResult:
-    """``_replay_revision(*args)`` in a new interpreter: nothing of this process's modules (the
-    current code version) and nothing of the calling script runs there."""
-    with tempfile.TemporaryDirectory(prefix="drawledger-replay-") as work:
-        out = Path(work) / "result.pickle"
-        payload = pickle.dumps((list(sys.path), args, os.fspath(out)))
-        command = [sys.executable, "-c", f"from {__name__} import worker_main; worker_main()"]
-        done = subprocess.run(command, input=payload, capture_output=True, check=False)
-        if not out.is_file():
-            last = done.stderr.decode(errors="replace").strip().splitlines()[-1:] or ["no output"]
-            raise ReplayError(f"replaying the code version of git {rev[:12]} failed: {last[0]}")
-        status, value = pickle.loads(out.read_bytes())
-    if status != "ok":
-        raise ReplayError(f"replaying the code version of git {rev[:12]} failed: {value}")
-    result: ChunkResult = value
-    return result
+def in_revisions(
+    plan_: VersionPlan, work: Callable[..., T], *args: Any
+) -> tuple[list[T], set[Pair]]:
+    """``work(settings, *args)`` for each revision of the plan, in a fresh process on a
+    temporary copy of its tree, with ``settings`` replaying only that revision's versions (the
+    ``--path`` directories moved into the tree). ``work`` is a module-level function; its
+    arguments and result are pickled. Returns the results and the (function, identity) pairs
+    of the revisions whose tree could not be extracted."""
+    results: list[T] = []
+    leftover: set[Pair] = set()
+    with _Processes() as processes:
+        for revision in plan_.revisions:
+            made = revision.tree()
+            if made is None:
+                leftover |= revision.pairs
+                continue
+            tree, moved = made
+            try:
+                settings = replace(plan_.settings, path=(moved,), elsewhere=frozenset(),
+                                   only=revision.pairs)  # fmt: skip
+                results.append(processes.run(revision.label, work, (settings, *args)))
+            finally:
+                shutil.rmtree(tree, ignore_errors=True)
+    return results, leftover
 
 
-def worker_main() -> None:
-    """The fresh process of ``_in_fresh_process``: arguments on stdin, result to a file."""
-    path, args, out = pickle.loads(sys.stdin.buffer.read())
+class _Processes:
+    """Processes that share nothing with this one, one per code version: a server process
+    started as a new interpreter imports this module once, then forks a process per version
+    (so each starts in milliseconds instead of importing everything again). Nothing of this
+    process's modules (the current code version) and nothing of the calling script runs there.
+    Where there is no fork (Windows), the server does the work itself and a new one starts for
+    the next version."""
+
+    def __init__(self) -> None:
+        self.server: subprocess.Popen[bytes] | None = None
+
+    def __enter__(self) -> _Processes:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        if self.server is not None:
+            self._stop(self.server)
+
+    @staticmethod
+    def _stop(server: subprocess.Popen[bytes]) -> None:
+        assert server.stdin is not None
+        server.stdin.close()
+        try:
+            server.wait(timeout=30)
+        except subprocess.TimeoutExpired:
+            server.kill()
+            server.wait()
+
+    def run(self, label: str, work: Callable[..., T], args: tuple[Any, ...]) -> T:
+        """``work(*args)`` in a process of its own (the search path set to this process's)."""
+        failed = f"replaying {label} failed"
+        if self.server is None or self.server.poll() is not None:
+            command = [sys.executable, "-c", f"from {__name__} import serve; serve()"]
+            self.server = subprocess.Popen(command, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
+                                           stderr=subprocess.DEVNULL)  # fmt: skip
+        server = self.server
+        assert server.stdin is not None and server.stdout is not None
+        with tempfile.TemporaryDirectory(prefix="drawledger-replay-") as work_dir:
+            out = os.path.join(work_dir, "result.pickle")
+            request = pickle.dumps((list(sys.path), pickle.dumps((work, args)), out))
+            try:
+                server.stdin.write(struct.pack("<Q", len(request)) + request)
+                server.stdin.flush()
+                status = server.stdout.readline().strip().decode() or "no status"
+            except OSError:
+                status = "no status"
+            if not os.path.isfile(out):
+                raise ReplayError(f"{failed}: its process ended without a result ({status})")
+            with open(out, "rb") as f:
+                outcome, value = pickle.load(f)
+        if outcome != "ok":
+            raise ReplayError(f"{failed}: {value}")
+        result: T = value
+        return result
+
+
+def serve() -> None:
+    """The server of ``_Processes``: requests on stdin, a status line per request on stdout."""
+    requests, replies = sys.stdin.buffer, sys.stdout.buffer
+    fork = getattr(os, "fork", None)
+    while head := requests.read(8):
+        request = requests.read(struct.unpack("<Q", head)[0])
+        if fork is None:
+            _work(request)
+            replies.write(b"done\n")
+            replies.flush()
+            return
+        child = fork()
+        if child == 0:
+            try:
+                null = os.open(os.devnull, os.O_WRONLY)
+                os.dup2(null, 1)  # what decision code prints never mixes with the replies
+                _work(request)
+            finally:
+                os._exit(0)
+        _, code = os.waitpid(child, 0)
+        replies.write(f"exit status {os.waitstatus_to_exitcode(code)}\n".encode())
+        replies.flush()
+
+
+def _work(request: bytes) -> None:
+    """One request: the search path set before the work and its arguments are unpickled; the
+    outcome pickled to the request's file."""
+    path, payload, out = pickle.loads(request)
     sys.path[:] = path
     try:
-        outcome: tuple[str, Any] = ("ok", _replay_revision(*args))
+        work, args = pickle.loads(payload)
+        outcome: tuple[str, Any] = ("ok", work(*args))
     except Exception as exc:  # reported to the parent in one line
         outcome = ("error", f"{type(exc).__name__}: {exc}")
-    Path(out).write_bytes(pickle.dumps(outcome))
+    with open(out, "wb") as f:
+        pickle.dump(outcome, f)
