@@ -43,6 +43,33 @@ def test_chunks_as_rows_and_as_frames_hold_the_same_decisions(tmp_path: Path, ki
     assert [f"d-{i:04d}" for i in range(230)] == sorted(d for chunk in as_rows for d in chunk)
 
 
+@pytest.mark.parametrize("kind", ["sqlite", "parquet"])
+def test_a_read_by_code_identity_holds_only_those_decisions_and_their_draws(
+    tmp_path: Path, kind: str
+) -> None:
+    target = tmp_path / ("ledger.db" if kind == "sqlite" else "ledger")
+    ledger = dl.Ledger(target, **({"format": "parquet"} if kind == "parquet" else {}))
+
+    @ledger.decision("pick")
+    def pick(draw: dl.Draw) -> int:
+        return draw.integers(0, 3, name="slot")
+
+    @ledger.decision("pick")
+    def pick_wider(draw: dl.Draw) -> int:
+        return draw.integers(0, 5, name="slot")
+
+    for i in range(30):
+        (pick if i % 3 else pick_wider)(decision_id=f"d-{i:02d}")
+    ledger.close()
+    wider = str(pick_wider.code_hash)
+    (task,) = sources.plan(target)
+    rows, draws = task.read(codes=frozenset({wider}))
+    assert [f"d-{i:02d}" for i in range(0, 30, 3)] == sorted(r[0] for r in rows)
+    assert {wider} == {r[5] for r in rows}
+    assert sorted(r[0] for r in rows) == sorted(d[0] for d in draws)
+    assert (30, 30) == tuple(map(len, task.read()))
+
+
 def test_draws_come_with_their_decisions(tmp_path: Path) -> None:
     _write(tmp_path / "ledger.db", 30)
     for decisions, draws in sources.iter_decision_chunks(tmp_path / "ledger.db", 7):

@@ -44,9 +44,10 @@ def logged_pieces(settings: Settings, tasks: Sequence[Task], stream: str,
     """In a revision's process: each piece's records of ``settings.only`` (of ``stream``)
     verified, and the action distribution of the verified ones under their own code."""
     only = settings.only or frozenset()
+    codes = frozenset(code for _, code in only)
     out = []
     for task in tasks:
-        rows, draws = task.read()
+        rows, draws = task.read(codes=codes)  # the other versions' records are not read
         mine = [r for r in rows if str(r[DEC.stream]) == stream
                 and (r[DEC.fn], r[DEC.code_hash]) in only]  # fmt: skip
         ids = {r[DEC.decision_id] for r in mine}

@@ -10,6 +10,7 @@ from typing import Any
 import pandas as pd
 import sqlalchemy as sa
 
+from drawledger._schema import DEC, DRAW
 from drawledger._sinks import sqlalchemy_url
 from drawledger.exceptions import (
     LedgerError,
@@ -43,17 +44,23 @@ class Task:
     slices: tuple[SqlSlice, ...] = ()
     piece: Piece | None = None  # a Parquet piece: consecutive part files
 
-    def read(self, engine: sa.Engine | None = None) -> tuple[list[Row], list[Row]]:
-        """Its rows; SQL through ``engine``, else through this process's own engine."""
+    def read(self, engine: sa.Engine | None = None, *,
+             codes: frozenset[str] | None = None) -> tuple[list[Row], list[Row]]:  # fmt: skip
+        """Its rows; SQL through ``engine``, else through this process's own engine. With
+        ``codes``, only the decisions whose code identity is one of them, and their draws."""
         rows: list[Row] = []
         draws: list[Row] = []
         if self.piece is not None:
             rows, draws = read_piece(self.piece)
             self._check_count(len(rows))
+            if codes is not None:
+                rows = [r for r in rows if r[DEC.code_hash] in codes]
+                ids = {r[DEC.decision_id] for r in rows}
+                draws = [d for d in draws if d[DRAW.decision_id] in ids]
             return rows, draws
         engine = engine or _engine(self.target)
         for sl in self.slices:
-            r, d = read_sql_slice(engine, sl)
+            r, d = read_sql_slice(engine, sl, codes)
             rows.extend(r)
             draws.extend(d)
         return rows, draws

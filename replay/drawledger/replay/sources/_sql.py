@@ -60,17 +60,28 @@ def sql_slices(engine: sa.Engine, size: int) -> list[SqlSlice]:
     return out
 
 
-def read_sql_slice(engine: sa.Engine, sl: SqlSlice) -> tuple[list[Row], list[Row]]:
-    """Decision rows (in seq order) and draw rows of one slice."""
+def read_sql_slice(engine: sa.Engine, sl: SqlSlice,
+                   codes: frozenset[str] | None = None) -> tuple[list[Row], list[Row]]:  # fmt: skip
+    """Decision rows (in seq order) and draw rows of one slice; with ``codes``, only the
+    decisions whose code identity is one of them."""
     cond = "writer = :w AND seq >= :lo" + ("" if sl.hi is None else " AND seq < :hi")
-    of_d = cond.replace("writer", "d.writer").replace("seq", "d.seq")
-    bind = {"w": sl.writer, "lo": sl.lo, "hi": sl.hi}
+    bind: dict[str, Any] = {"w": sl.writer, "lo": sl.lo, "hi": sl.hi}
+    if codes is not None:
+        cond += " AND code_hash IN :codes"
+        bind["codes"] = sorted(codes)
+    of_d = cond.replace("writer", "d.writer").replace("seq", "d.seq").replace("code_", "d.code_")
+
+    def query(text: str) -> sa.TextClause:
+        statement = sa.text(text)
+        return statement if codes is None else statement.bindparams(
+            sa.bindparam("codes", expanding=True))  # fmt: skip
+
     with reading(engine.url), engine.connect() as conn:
         rows = [tuple(r) for r in conn.execute(
-            sa.text(f"SELECT {_DEC} FROM decisions WHERE {cond} ORDER BY seq"), bind)]  # fmt: skip
+            query(f"SELECT {_DEC} FROM decisions WHERE {cond} ORDER BY seq"), bind)]  # fmt: skip
         draws = [tuple(d) for d in conn.execute(
-            sa.text(f"SELECT {_DRAW} FROM draws dr JOIN decisions d ON dr.decision_id = "
-                    f"d.decision_id WHERE {of_d} ORDER BY d.seq, dr.idx"),
+            query(f"SELECT {_DRAW} FROM draws dr JOIN decisions d ON dr.decision_id = "
+                  f"d.decision_id WHERE {of_d} ORDER BY d.seq, dr.idx"),
             bind)]  # fmt: skip
     return rows, draws
 

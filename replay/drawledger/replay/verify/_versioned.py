@@ -134,9 +134,10 @@ def replay_revision(settings: Settings, ledger: str, format: str | None, size: i
                     flagged: AbstractSet[str]) -> ChunkResult:  # fmt: skip
     """Every record of ``settings.only`` replayed in this process (one revision's code)."""
     total = ChunkResult()
+    only = settings.only or frozenset()
+    codes = frozenset(code for _, code in only)
     for task in plan(ledger, format=format, size=size):
-        rows, draws = task.read()
-        only = settings.only or frozenset()
+        rows, draws = task.read(codes=codes)  # the other versions' records are not read
         mine = {r[DEC.decision_id] for r in rows if (r[DEC.fn], r[DEC.code_hash]) in only}
         if mine:
             its_draws = [d for d in draws if d[DRAW.decision_id] in mine]
