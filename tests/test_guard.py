@@ -17,6 +17,7 @@ import orjson
 import pytest
 import shop_decisions as sd
 from conftest import SUPPORT
+from git_shop import Shop
 from hypothesis import given
 from hypothesis import strategies as st
 from test_examples import EXAMPLES, service  # noqa: F401  (the live service fixture)
@@ -73,6 +74,33 @@ def test_a_correct_ledger_verifies_and_raises_no_alarm(tmp_path: Path) -> None:
     assert ("recipe-card", "card", "pit") in tests  # softmax over varying scores
     assert ("explore-card", "explore", "ratio") in tests  # a coin with a fixed epsilon
     assert 0 == data["lag"]["records"]
+
+
+FIRST = '    return draw.softmax(cards, scores, temperature=temperature, name="card")'
+HOTTER = '    return draw.softmax(cards, scores, temperature=temperature + 0.3, name="card")'
+
+
+def test_records_logged_before_a_deploy_replay_under_their_version(tmp_path: Path) -> None:
+    """The guard starts after a deploy, with records of the earlier version still to take in:
+    they replay under the git revision that logged them, without an alarm."""
+    shop = Shop(tmp_path)
+    shop.deploy(FIRST, 40, "Feature a recipe card")
+    shop.deploy(HOTTER, 40, "Hotter")
+    report = guard(shop.ledger, path=[shop.repo], once=True)
+    assert (80, 80, []) == (report.state.decisions, report.state.verify["verified"],
+                            report.state.alarms)  # fmt: skip
+
+
+def test_a_deploy_while_the_guard_runs_raises_no_alarm(tmp_path: Path) -> None:
+    """The guard keeps the code it imported; the new version's records replay under the
+    revision that holds it."""
+    shop = Shop(tmp_path)
+    shop.deploy(FIRST, 40, "Feature a recipe card")
+    report = guard(shop.ledger, path=[shop.repo], steps=2,
+                   sleep=lambda _: shop.deploy_elsewhere(HOTTER, 40, "Hotter"))  # fmt: skip
+    shop.forget()
+    assert (80, 80, []) == (report.state.decisions, report.state.verify["verified"],
+                            report.state.alarms)  # fmt: skip
 
 
 def test_taking_in_a_growing_ledger_piece_by_piece_equals_one_pass(tmp_path: Path) -> None:

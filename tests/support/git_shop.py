@@ -63,11 +63,7 @@ class Shop:
     def deploy(self, body: str, n: int, message: str,
                log: Callable[[ModuleType, int], None] = log_scores) -> str:  # fmt: skip
         """Commit the module with ``body``, then ``log`` ``n`` decisions with it; its identity."""
-        file = self.repo / f"{self.name}.py"
-        file.write_text(MODULE.format(target=str(self.ledger), format=self.format, body=body,
-                                      **self.head))  # fmt: skip
-        git(self.repo, "add", file.name)
-        git(self.repo, "commit", "-q", "-m", message)
+        self.commit(body, message)
         sys.path.insert(0, str(self.repo))
         try:
             module = importlib.import_module(self.name)
@@ -77,6 +73,23 @@ class Shop:
         finally:
             sys.path.remove(str(self.repo))
             self.forget()
+
+    def commit(self, body: str, message: str) -> None:
+        """The module with ``body``, written and committed."""
+        file = self.repo / f"{self.name}.py"
+        file.write_text(MODULE.format(target=str(self.ledger), format=self.format, body=body,
+                                      **self.head))  # fmt: skip
+        git(self.repo, "add", file.name)
+        git(self.repo, "commit", "-q", "-m", message)
+
+    def deploy_elsewhere(self, body: str, n: int, message: str) -> None:
+        """Like ``deploy`` (with ``log_scores``), the decisions logged by another process: this
+        one keeps the modules it imported."""
+        self.commit(body, message)
+        code = (f"import sys; sys.path[:0] = [{str(self.repo)!r}, {str(Path(__file__).parent)!r}]"
+                f"; import {self.name} as m, git_shop; git_shop.log_scores(m, {n}); "
+                "m.ledger.close()")  # fmt: skip
+        subprocess.run([sys.executable, "-c", code], check=True, capture_output=True)
 
     def forget(self) -> None:
         sys.modules.pop(self.name, None)

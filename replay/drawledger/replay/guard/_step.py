@@ -3,16 +3,17 @@
 from __future__ import annotations
 
 import heapq
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from drawledger._schema import DEC, DRAW, OUT
 from drawledger.replay.audit import chunk_state
 from drawledger.replay.guard._state import INTEGRITY_PROBLEMS, GuardState, Mark, new_alarm
+from drawledger.replay.guard._versions import Versions
 from drawledger.replay.guard._watch import update_watches
 from drawledger.replay.integrity import IntegrityReport, decision_rec, outcome_rec, walk
 from drawledger.replay.sources import WriterPiece, rows_frame
-from drawledger.replay.verify import Settings, verify_chunk
+from drawledger.replay.verify import Settings
 
 # The audit keeps bottom-k samples and sketches for its rank tests; the guard uses only the
 # audit's counts and histograms, so its samples stay tiny.
@@ -31,6 +32,7 @@ class StepSettings:
     key: bytes
     alpha: float
     window: int
+    versions: Versions = field(default_factory=Versions)  # what replays each code version
 
 
 def contiguous(piece: WriterPiece, after: int) -> tuple[WriterPiece | None, int | None]:
@@ -91,7 +93,8 @@ def take_piece(
             alarms.append(new_alarm("", None, f"integrity:{problem}", first, detail))
 
     # Replay: every decision re-executed and compared with its record.
-    checked = verify_chunk(rows, draws, frozenset(found.decision_ids), settings.verify)
+    checked = settings.versions.verify(rows, draws, frozenset(found.decision_ids),
+                                       settings.verify)  # fmt: skip
     for stream, (_n, verified, mismatched, unreplayable) in checked.streams.items():
         state.verify["verified"] += verified
         state.verify["mismatched"] += mismatched

@@ -20,7 +20,13 @@ from drawledger.replay.verify._types import (
     Settings,
     absolute_paths,
 )
-from drawledger.replay.verify._versioned import VersionPlan, in_revisions, plan_versions
+from drawledger.replay.verify._versioned import (
+    VersionPlan,
+    current_identities,
+    in_revisions,
+    plan_pairs,
+    plan_versions,
+)
 from drawledger.replay.verify._versions import (
     CodeVersion,
     VersionsReport,
@@ -43,12 +49,14 @@ __all__ = [
     "VersionsReport",
     "absolute_paths",
     "code_versions",
+    "current_identities",
     "immutable",
     "import_allowed",
     "in_revisions",
     "load_inputs",
     "load_params",
     "lookup_qualname",
+    "plan_pairs",
     "plan_versions",
     "resolve_decision",
     "source_matches",

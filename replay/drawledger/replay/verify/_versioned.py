@@ -15,7 +15,7 @@ import struct
 import subprocess
 import sys
 import tempfile
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 from collections.abc import Set as AbstractSet
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -32,6 +32,8 @@ from drawledger.replay.verify._versions import source_matches
 T = TypeVar("T")
 
 Pair = tuple[str, str]  # (function, code identity)
+
+Current = dict[str, tuple[str, Path]]  # function: its current identity, the --path directory
 
 
 @dataclass
@@ -85,18 +87,9 @@ def plan_versions(ledger: str | os.PathLike[str], format: str | None, settings: 
         if isinstance(identity, str) and isinstance(source, str):
             sources.setdefault(identity, source)
     uses = decision_versions(ledger, format=format)
-    current = _history.current_identities({u.fn for u in uses}, settings.path)
-    wanted: dict[str, set[str]] = {}
-    for use in uses:
-        now = current.get(use.fn)
-        if now is not None and use.identity != now[0]:
-            wanted.setdefault(use.fn, set()).add(use.identity)
-    found = _history.search(wanted, current) if history and wanted else _history.Found()
-    by_rev: dict[str, set[tuple[str, str]]] = {}
-    for pair, rev in found.revisions.items():
-        by_rev.setdefault(rev, set()).add(pair)
-    revisions = [Revision(rev, *found.bases[rev], frozenset(pairs))
-                 for rev, pairs in sorted(by_rev.items())]  # fmt: skip
+    current = current_identities({u.fn for u in uses}, settings.path)
+    found = _found({(u.fn, u.identity) for u in uses}, current) if history else _history.Found()
+    revisions = _revisions(found)
     unmatched: list[Pair] = []
     for use in uses if stored else ():
         pair, now = (use.fn, use.identity), current.get(use.fn)
@@ -128,6 +121,38 @@ def plan_versions(ledger: str | os.PathLike[str], format: str | None, settings: 
     kept = tuple(sorted(sources.items()))
     return VersionPlan(replace(settings, sources=kept, elsewhere=elsewhere), revisions, versions,
                        unmatched)  # fmt: skip
+
+
+def current_identities(fns: Iterable[str], path: Iterable[str]) -> Current:
+    """The code identity of each function in its file under the ``path`` directories (parsed,
+    not imported), with the directory it was found under; functions not there are left out."""
+    return _history.current_identities(fns, path)
+
+
+def _found(pairs: Iterable[Pair], current: Current) -> _history.Found:
+    """The git revisions that hold the versions of ``pairs`` that are not current."""
+    wanted: dict[str, set[str]] = {}
+    for fn, identity in pairs:
+        now = current.get(fn)
+        if now is not None and identity != now[0]:
+            wanted.setdefault(fn, set()).add(identity)
+    return _history.search(wanted, current) if wanted else _history.Found()
+
+
+def _revisions(found: _history.Found) -> list[Revision]:
+    by_rev: dict[str, set[Pair]] = {}
+    for pair, rev in found.revisions.items():
+        by_rev.setdefault(rev, set()).add(pair)
+    return [Revision(rev, *found.bases[rev], frozenset(pairs))
+            for rev, pairs in sorted(by_rev.items())]  # fmt: skip
+
+
+def plan_pairs(pairs: Iterable[Pair], settings: Settings, current: Current) -> VersionPlan:
+    """The plan for records of ``pairs`` (function, identity): those whose identity is not the
+    ``current`` one of their function are replayed under the git revision that holds it (when
+    the history does), the others here."""
+    found = _found(pairs, current)
+    return VersionPlan(replace(settings, elsewhere=frozenset(found.revisions)), _revisions(found))
 
 
 def replay_revision(settings: Settings, ledger: str, format: str | None, size: int,
