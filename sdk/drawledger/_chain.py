@@ -50,11 +50,12 @@ class Chain:
                 self.late = self.genesis is None
             self.prev = self.genesis
         if tag == "d-":
-            full = _records.seal_decision(item[1], self.seq, self.prev, item[2], self.key)
+            row, draws = _records.pending_decision(item)
+            full = _records.seal_decision(row, self.seq, self.prev, draws, self.key)
             digest = full[-1]
-            sealed = ("d", full, item[2])
+            sealed = ("d", full, draws)
         elif tag == "o-":
-            row = (*item[1], self.seq, self.prev)
+            row = (*item[1:], self.seq, self.prev)
             digest = _records.outcome_hash(row, self.key)
             sealed = ("o", (*row, digest))
         else:
