@@ -12,6 +12,7 @@ from drawledger import _records
 __all__ = ["Chain"]
 
 Item = Any  # a queued record (see drawledger._writer)
+_DRAWS = _records.PENDING_DRAWS
 
 
 class Chain:
@@ -50,8 +51,8 @@ class Chain:
                 self.late = self.genesis is None
             self.prev = self.genesis
         if tag == "d-":
-            row, draws = _records.pending_decision(item)
-            full = _records.seal_decision(row, self.seq, self.prev, draws, self.key)
+            draws = item[_DRAWS:]
+            full = _records.seal_decision(item[1:_DRAWS], self.seq, self.prev, draws, self.key)
             digest = full[-1]
             sealed = ("d", full, draws)
         elif tag == "o-":

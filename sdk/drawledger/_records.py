@@ -116,22 +116,13 @@ def _digest(canonical: bytes, key: bytes) -> str:
     return h.hexdigest()
 
 
-# A record waiting in the writer's queue, unsealed, is one flat tuple of plain values: a tag,
-# then its row without the last three columns (seq, prev_hash, hash); for a decision, then each
-# of its draw rows without the decision id. The garbage collector stops tracking such a tuple at
-# its first look; a tuple that holds tuples can be looked at before them, stay tracked and reach
-# the old generation, whose collections walk the whole heap.
-PENDING_DECISION = DEC.seq + 1  # the tag and the decision row: where the draws start
-PENDING_DRAW = len(DRAW_COLUMNS) - 1  # a draw row without its decision id
-
-
-def pending_decision(item: tuple[Any, ...]) -> tuple[tuple[Any, ...], tuple[tuple[Any, ...], ...]]:
-    """The decision row (up to ``writer``) and the draw rows of a queued ("d-", ...) record."""
-    did = item[1]
-    draws = []
-    for k in range(PENDING_DECISION, len(item), PENDING_DRAW):
-        draws.append((did, *item[k : k + PENDING_DRAW]))
-    return item[1:PENDING_DECISION], tuple(draws)
+# A record waiting in the writer's queue, unsealed, is a flat tuple: its tag, then its row without
+# the last three columns (seq, prev_hash, hash); a decision's then its draw rows, each a tuple of
+# plain values. The garbage collector stops tracking a tuple of plain values at its first look,
+# and one that holds such tuples at its second; a record nested deeper (a tuple of draw rows in
+# it) can be looked at before its parts, stay tracked and reach the old generation, whose
+# collections walk the whole heap.
+PENDING_DRAWS = DEC.seq + 1  # where a queued decision's draw rows start
 
 
 def decision_canonical(row: tuple[Any, ...], draws: Sequence[tuple[Any, ...]]) -> bytes:

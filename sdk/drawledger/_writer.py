@@ -39,7 +39,7 @@ from typing import Any
 import orjson
 
 from drawledger._chain import Chain
-from drawledger._records import pending_decision
+from drawledger._records import PENDING_DRAWS
 from drawledger._schema import DEC
 from drawledger._sinks import Sink
 from drawledger._spill import SpillFile
@@ -47,11 +47,10 @@ from drawledger.exceptions import LedgerError
 
 log = logging.getLogger("drawledger")
 
-# A queued record, or a flush marker. A record is queued unsealed, one flat tuple: its tag ("d-"
-# or "o-") and its row without the last three columns (seq, prev_hash, hash), a decision's then
-# followed by its draw rows without their decision id (``_records.pending_decision``). Sealed,
-# with complete rows, it is ("d", decision_row, draw_rows) or ("o", outcome_row): what sinks,
-# spill files and taps see.
+# A queued record, or a flush marker. A record is queued unsealed, a flat tuple (drawledger.
+# _records, PENDING_DRAWS): ("d-", *decision_row, *draw_rows) or ("o-", *outcome_row), each row
+# without the last three columns (seq, prev_hash, hash). Sealed, with complete rows, it is
+# ("d", decision_row, draw_rows) or ("o", outcome_row): what sinks, spill files and taps see.
 Item = Any
 SEALED = frozenset({"d", "o"})
 
@@ -462,7 +461,7 @@ class Writer:
         reason = "decision id already in the ledger"
         lines = []
         for item in items:
-            row, draws = pending_decision(item)
+            row, draws = item[1:PENDING_DRAWS], item[PENDING_DRAWS:]
             lines.append(orjson.dumps({"rejected": reason, "decision": list(row), "draws": draws}))
         ids = ", ".join(repr(item[1 + DEC.decision_id]) for item in items[:5])
         try:

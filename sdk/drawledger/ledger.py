@@ -372,24 +372,24 @@ class Ledger:
         if not isinstance(did, str) or not did:
             raise NotSerializableError("decision_id must be a non-empty string")
         _checks.plain_text(did, stream, unit)  # draw names: below
-        fields: list[Any] = []  # the draw rows, flat; ``encoded`` = (object, its JSON) spares
-        to_json = _records.to_json  # encoding it twice
+        rows = []  # the draw rows; ``encoded`` = (object, its JSON) spares encoding it twice
+        to_json = _records.to_json
         for idx, name, dkind, args, u, value, dprob, is_density in draws:
             if name is not None and ("\x00" in name or not name.isascii()):
                 _checks.plain_text(name)  # raises when it is not plain text
             try:
                 value_json = encoded[1] if encoded is not None and value is encoded[0] else \
                     to_json(value, "its value")  # fmt: skip
-                fields += (idx, name, dkind, to_json(args, "its arguments"),
-                           to_json(u, "its uniforms"), value_json, dprob + 0.0,
-                           1 if is_density else 0)  # fmt: skip
+                rows.append((did, idx, name, dkind, to_json(args, "its arguments"),
+                             to_json(u, "its uniforms"), value_json, dprob + 0.0,
+                             1 if is_density else 0))  # fmt: skip
             except NotSerializableError as exc:
                 label = f"{dkind} draw {name!r}" if name is not None else f"{dkind} draw"
                 raise NotSerializableError(f"{label} (#{idx}): {exc}") from None
         stamp = time.time() if ts is None else _checks.timestamp(ts)
-        # one flat tuple of plain values (_records.PENDING_DECISION): the collector untracks it
+        # a flat tuple (_records.PENDING_DRAWS): the garbage collector soon stops tracking it
         self._enqueue(("d-", did, stream, unit, stamp, fn, chash, inputs, params, action,
-                       prop + 0.0, kind, seed, self.writer, *fields), decision_id)  # fmt: skip
+                       prop + 0.0, kind, seed, self.writer, *rows), decision_id)  # fmt: skip
         return did
 
     def _refuse(self, decision_id: str) -> None:
