@@ -85,8 +85,8 @@ def to_json(obj: Any, what: str) -> str:
     except (TypeError, orjson.JSONEncodeError) as exc:
         raise NotSerializableError(f"{what} cannot be recorded as JSON: {exc}") from None
     # orjson writes NaN and infinities (numpy's too) as null; JSON has no such numbers, so
-    # refuse them, naming where they sit.
-    if raw.rfind(b"null") != -1:  # rfind: CPython's find and "in" search this slower
+    # refuse them, naming where they sit (a str holds none: its text is not searched).
+    if type(obj) is not str and raw.rfind(b"null") != -1:  # rfind: find and "in" are slower
         where = non_finite_at(obj)
         if where is not None:
             at = f": {where} is" if where else " is"

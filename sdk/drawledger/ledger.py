@@ -371,7 +371,9 @@ class Ledger:
         did = f"{self.writer}.{next(self._ids)}" if decision_id is None else decision_id
         if not isinstance(did, str) or not did:
             raise NotSerializableError("decision_id must be a non-empty string")
-        _checks.plain_text(did, stream, unit)  # draw names: below
+        if unit is not None or "\x00" in did or "\x00" in stream or not did.isascii() or \
+                not stream.isascii():  # fmt: skip
+            _checks.plain_text(did, stream, unit)  # raises when one is not plain text
         rows = []  # the draw rows; ``encoded`` = (object, its JSON) spares encoding it twice
         to_json = _records.to_json
         for idx, name, dkind, args, u, value, dprob, is_density in draws:
