@@ -303,6 +303,29 @@ def test_full_queue_neither_blocks_nor_loses(tmp_path: Path) -> None:
     assert 0 == stats["dropped"]
 
 
+def test_a_queued_decision_is_flat_and_untracked_after_two_collections(
+    ledger_path: Path,
+) -> None:
+    """A queued decision is one tuple of plain values and its draw rows (tuples of plain values):
+    two looks of the garbage collector stop tracking it, so pending records do not pile up in
+    the old generation, whose collections walk the whole heap."""
+    import gc
+
+    led = dl.Ledger(ledger_path)
+    led._writer._live = True  # put() takes the thread for running: the record stays queued
+    feature_card = make_decision(led)
+    feature_card(CARDS, SCORES)
+    item = led._writer.queue[0]
+    led._writer._live = False
+    nested = [x for x in item if isinstance(x, (list, tuple, dict, set))]
+    assert [tuple] == [type(x) for x in nested]  # one draw: its row
+    assert [] == [v for row in nested for v in row if isinstance(v, (list, tuple, dict, set))]
+    gc.collect()
+    gc.collect()
+    assert False is gc.is_tracked(item)
+    led.close()
+
+
 def test_a_queued_decision_holds_only_tuples_and_plain_values(ledger_path: Path) -> None:
     """No list in a queued record: the garbage collector can stop tracking it (tuples of plain
     values) instead of tracing every pending record until the writer takes it."""

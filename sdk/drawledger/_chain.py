@@ -12,6 +12,7 @@ from drawledger import _records
 __all__ = ["Chain"]
 
 Item = Any  # a queued record (see drawledger._writer)
+_DRAWS = _records.PENDING_DRAWS
 
 
 class Chain:
@@ -50,11 +51,12 @@ class Chain:
                 self.late = self.genesis is None
             self.prev = self.genesis
         if tag == "d-":
-            full = _records.seal_decision(item[1], self.seq, self.prev, item[2], self.key)
+            draws = item[_DRAWS:]
+            full = _records.seal_decision(item[1:_DRAWS], self.seq, self.prev, draws, self.key)
             digest = full[-1]
-            sealed = ("d", full, item[2])
+            sealed = ("d", full, draws)
         elif tag == "o-":
-            row = (*item[1], self.seq, self.prev)
+            row = (*item[1:], self.seq, self.prev)
             digest = _records.outcome_hash(row, self.key)
             sealed = ("o", (*row, digest))
         else:

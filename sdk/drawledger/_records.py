@@ -9,6 +9,7 @@ from __future__ import annotations
 import hashlib
 import math
 import struct
+from collections.abc import Sequence
 from typing import Any
 
 import orjson
@@ -22,6 +23,7 @@ OUTCOME_COLUMNS = OUTCOMES.names
 
 HASH_PERSON = b"drawledger.h1"
 _DOUBLE = struct.Struct(">d")
+_pack = _DOUBLE.pack
 # What a record's hash covers: its row up to the hash column. Module constants, because they are
 # read once per record and reading an attribute costs more than reading a global.
 _OUTCOME_HASHED = OUT.hash
@@ -83,8 +85,8 @@ def to_json(obj: Any, what: str) -> str:
     except (TypeError, orjson.JSONEncodeError) as exc:
         raise NotSerializableError(f"{what} cannot be recorded as JSON: {exc}") from None
     # orjson writes NaN and infinities (numpy's too) as null; JSON has no such numbers, so
-    # refuse them, naming where they sit.
-    if raw.rfind(b"null") != -1:  # rfind: CPython's find and "in" search this slower
+    # refuse them, naming where they sit (a str holds none: its text is not searched).
+    if type(obj) is not str and raw.rfind(b"null") != -1:  # rfind: find and "in" are slower
         where = non_finite_at(obj)
         if where is not None:
             at = f": {where} is" if where else " is"
@@ -114,29 +116,39 @@ def _digest(canonical: bytes, key: bytes) -> str:
     return h.hexdigest()
 
 
-def decision_canonical(row: tuple[Any, ...], draws: list[tuple[Any, ...]]) -> bytes:
+# A record waiting in the writer's queue, unsealed, is a flat tuple: its tag, then its row without
+# the last three columns (seq, prev_hash, hash); a decision's then its draw rows, each a tuple of
+# plain values. The garbage collector stops tracking a tuple of plain values at its first look,
+# and one that holds such tuples at its second; a record nested deeper (a tuple of draw rows in
+# it) can be looked at before its parts, stay tracked and reach the old generation, whose
+# collections walk the whole heap.
+PENDING_DRAWS = DEC.seq + 1  # where a queued decision's draw rows start
+
+
+def decision_canonical(row: tuple[Any, ...], draws: Sequence[tuple[Any, ...]]) -> bytes:
     """Canonical bytes of a decision row (without its hash) and its draw rows (docs/ledger.md)."""
     return _decision_body(row, row[_DECISION_SEQ], row[_DECISION_PREV], draws)
 
 
 def _decision_body(
-    row: tuple[Any, ...], seq: int, prev: str | None, draws: list[tuple[Any, ...]]
+    row: tuple[Any, ...], seq: int, prev: str | None, draws: Sequence[tuple[Any, ...]]
 ) -> bytes:
     """``decision_canonical`` of ``row``'s first columns (up to ``writer``), ``seq``, ``prev``."""
     (did, stream, unit, ts, fn, code_hash, inputs, params, action, prop, prop_kind, seed,
      writer) = row[:_DECISION_SEQ]  # fmt: skip
-    pack = _DOUBLE.pack  # float_hex, inlined: this runs once per decision
+    # float_hex, inlined as _pack(x).hex(): this runs once per decision; _pack is a global, so
+    # the comprehension closes over no cell
     body = [
-        "drawledger.decision.v1", did, stream, unit, pack(ts).hex(), fn, code_hash, inputs,
-        params, action, pack(prop).hex(), prop_kind, seed, writer, seq, prev,
-        [[idx, name, kind, args, u, value, pack(prob).hex(), bool(density)]
+        "drawledger.decision.v1", did, stream, unit, _pack(ts).hex(), fn, code_hash, inputs,
+        params, action, _pack(prop).hex(), prop_kind, seed, writer, seq, prev,
+        [[idx, name, kind, args, u, value, _pack(prob).hex(), bool(density)]
          for _, idx, name, kind, args, u, value, prob, density in draws],
     ]  # fmt: skip
     return orjson.dumps(body)
 
 
 def seal_decision(
-    row: tuple[Any, ...], seq: int, prev: str | None, draws: list[tuple[Any, ...]], key: bytes
+    row: tuple[Any, ...], seq: int, prev: str | None, draws: Sequence[tuple[Any, ...]], key: bytes
 ) -> tuple[Any, ...]:
     """The complete decision row: ``row`` (its columns up to ``writer``), ``seq``, ``prev`` and
     the hash of them with ``draws``; what ``decision_hash`` computes, without building the row
@@ -151,7 +163,7 @@ def outcome_canonical(row: tuple[Any, ...]) -> bytes:
     return orjson.dumps(body)
 
 
-def decision_hash(row: tuple[Any, ...], draws: list[tuple[Any, ...]], key: bytes = b"") -> str:
+def decision_hash(row: tuple[Any, ...], draws: Sequence[tuple[Any, ...]], key: bytes = b"") -> str:
     return _digest(decision_canonical(row, draws), key)
 
 

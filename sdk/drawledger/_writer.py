@@ -39,6 +39,7 @@ from typing import Any
 import orjson
 
 from drawledger._chain import Chain
+from drawledger._records import PENDING_DRAWS
 from drawledger._schema import DEC
 from drawledger._sinks import Sink
 from drawledger._spill import SpillFile
@@ -46,10 +47,10 @@ from drawledger.exceptions import LedgerError
 
 log = logging.getLogger("drawledger")
 
-# A queued record, or a flush marker. A record is queued unsealed, its row without the last three
-# columns (seq, prev_hash, hash): ("d-", decision_row, draw_rows) or ("o-", outcome_row). Sealed,
-# with complete rows, it is ("d", decision_row, draw_rows) or ("o", outcome_row): what sinks,
-# spill files and taps see.
+# A queued record, or a flush marker. A record is queued unsealed, a flat tuple (drawledger.
+# _records, PENDING_DRAWS): ("d-", *decision_row, *draw_rows) or ("o-", *outcome_row), each row
+# without the last three columns (seq, prev_hash, hash). Sealed, with complete rows, it is
+# ("d", decision_row, draw_rows) or ("o", outcome_row): what sinks, spill files and taps see.
 Item = Any
 SEALED = frozenset({"d", "o"})
 
@@ -420,12 +421,15 @@ class Writer:
         writer's chain has no gap; it goes to the reject file.
         """
         given: list[str] = []
-        at_id, at_writer = DEC.decision_id, DEC.writer
+        at_id, at_writer = 1 + DEC.decision_id, 1 + DEC.writer  # the row follows the tag
+        writer, prefix = None, ""  # "<writer>.", built once per writer rather than per record
         for item in items:
             if item[0] == "d-":
-                row = item[1]
-                did = row[at_id]
-                if not did.startswith(row[at_writer] + "."):
+                if item[at_writer] is not writer:
+                    writer = item[at_writer]
+                    prefix = writer + "."
+                did = item[at_id]
+                if not did.startswith(prefix):
                     given.append(did)
         if not given or time.monotonic() < self._down_until:
             return items
@@ -443,7 +447,7 @@ class Writer:
         refused: list[Item] = []
         for item in items:
             if item[0] == "d-":
-                did = item[1][DEC.decision_id]
+                did = item[at_id]
                 if did in taken:
                     refused.append(item)
                     continue
@@ -455,9 +459,11 @@ class Writer:
 
     def _reject(self, items: list[Item]) -> None:
         reason = "decision id already in the ledger"
-        lines = [orjson.dumps({"rejected": reason, "decision": list(item[1]), "draws": item[2]})
-                 for item in items]  # fmt: skip
-        ids = ", ".join(repr(item[1][0]) for item in items[:5])
+        lines = []
+        for item in items:
+            row, draws = item[1:PENDING_DRAWS], item[PENDING_DRAWS:]
+            lines.append(orjson.dumps({"rejected": reason, "decision": list(row), "draws": draws}))
+        ids = ", ".join(repr(item[1 + DEC.decision_id]) for item in items[:5])
         try:
             self.rejects.append(b"".join(line + b"\n" for line in lines))
         except Exception as exc:

@@ -149,23 +149,35 @@ class Decision(Generic[R]):
 
     def __call__(self, *args: Any, unit: str | None = None, decision_id: str | None = None,
                  **kwargs: Any) -> R:  # fmt: skip
-        if type(decision_id) is str and decision_id in self.ledger._recent:
-            self.ledger._refuse(decision_id)  # before the function runs: nothing is drawn
+        ledger = self.ledger
+        if type(decision_id) is str and decision_id in ledger._recent:
+            ledger._refuse(decision_id)  # before the function runs: nothing is drawn
         params_json = self._params_json
         if kwargs or len(args) != len(self.inputs) or params_json is None:
             inputs, params = self._bind(args, kwargs)
             params_json = _records.to_json(params, f"{self.name}: policy parameters")
-            call = [inputs[name] for name in self.inputs]
+            args = tuple([inputs[name] for name in self.inputs])
         else:  # the common call: every input positional, the default policy parameters
             inputs = dict(zip(self.inputs, args, strict=False))  # same length: checked above
             params = None  # the function's own defaults apply
-            call = list(args)
-        ledger = self.ledger
-        inputs_json = ledger._inputs_json(inputs, self._inputs_what)
+        inputs_json = ledger._redacted_json(inputs, self._inputs_what) if ledger._redact_paths \
+            else _records.to_json(inputs, self._inputs_what)  # fmt: skip
         draw = Draw(ledger._seed_source())
-        call.insert(self._draw_index, draw)
+        i = self._draw_index
+        call = (*args, draw) if i == len(args) else (*args[:i], draw, *args[i:])
         action = self.fn(*call) if params is None else self.fn(*call, **params)
-        ledger._record_decision(self, draw, inputs_json, params_json, action, unit, decision_id)
+        action_json = _records.to_json(action, self._action_what)
+        draws = draw.records
+        single = len(draws) == 1 and (
+            draws[0].value is action or _json_or_none(draws[0].value) == action_json
+        )
+        prop, kind = decision_propensity(draws, single, _PROB)
+        if self not in ledger._versions:
+            ledger._note_version(self)
+        ledger._append_decision(
+            decision_id, self.stream, unit, None, self.name, self.code_hash, inputs_json,
+            params_json, action_json, prop, kind, draw.seed.hex(), draws, (action, action_json),
+        )  # fmt: skip
         return action
 
 
@@ -332,40 +344,12 @@ class Ledger:
         return register
 
     # -- recording ----------------------------------------------------------------------------
-    def _inputs_json(self, inputs: dict[str, Any], what: str) -> str:
-        """JSON of a call's inputs, redacted; ``what`` names them in an error."""
-        if self._redact_paths:
-            plain = _records.from_json(_records.to_json(inputs, what))
-            for path in self._redact_paths:
-                _checks.redact(plain, path, self._redact_key)
-            return _records.to_json(plain, what)
-        return _records.to_json(inputs, what)
-
-    def _next_id(self) -> str:
-        return f"{self.writer}.{next(self._ids)}"
-
-    def _record_decision(
-        self,
-        decision: Decision[Any],
-        draw: Draw,
-        inputs: str,
-        params: str,
-        action: Any,
-        unit: str | None,
-        decision_id: str | None,
-    ) -> None:
-        action_json = _records.to_json(action, decision._action_what)
-        draws = draw.records
-        single = len(draws) == 1 and (
-            draws[0].value is action or _json_or_none(draws[0].value) == action_json
-        )
-        prop, kind = decision_propensity(draws, single, _PROB)
-        if decision not in self._versions:
-            self._note_version(decision)
-        self._append_decision(
-            decision_id, decision.stream, unit, None, decision.name, decision.code_hash,
-            inputs, params, action_json, prop, kind, draw.seed.hex(), draws, (action, action_json),
-        )  # fmt: skip
+    def _redacted_json(self, inputs: dict[str, Any], what: str) -> str:
+        """JSON of a call's inputs with the ``redact`` fields replaced; ``what`` names them."""
+        plain = _records.from_json(_records.to_json(inputs, what))
+        for path in self._redact_paths:
+            _checks.redact(plain, path, self._redact_key)
+        return _records.to_json(plain, what)
 
     def _note_version(self, decision: Decision[Any]) -> None:
         """Queue the row of the decision's code version (the first use by this writer)."""
@@ -373,26 +357,6 @@ class Ledger:
         row = (decision.code_hash, decision.stream, decision.name, decision.module_file,
                decision.source, time.time(), self.writer)  # fmt: skip
         self._writer.versions.append(row)
-
-    def _draw_rows(
-        self, did: str, draws: Sequence[DrawRecord], encoded: tuple[Any, str] | None = None
-    ) -> tuple[tuple[Any, ...], ...]:
-        """Rows of the draws table; ``encoded`` = (object, its JSON) spares encoding it twice."""
-        rows = []
-        to_json = _records.to_json
-        for idx, name, kind, args, u, value, prob, is_density in draws:
-            if name is not None and ("\x00" in name or not name.isascii()):
-                _checks.plain_text(name)  # raises when it is not plain text
-            try:
-                value_json = encoded[1] if encoded is not None and value is encoded[0] else \
-                    to_json(value, "its value")  # fmt: skip
-                rows.append((did, idx, name, kind, to_json(args, "its arguments"),
-                             to_json(u, "its uniforms"), value_json, prob + 0.0,
-                             1 if is_density else 0))  # fmt: skip
-            except NotSerializableError as exc:
-                label = f"{kind} draw {name!r}" if name is not None else f"{kind} draw"
-                raise NotSerializableError(f"{label} (#{idx}): {exc}") from None
-        return tuple(rows)  # no list in a queued record: the garbage collector can untrack it
 
     def _append_decision(
         self, decision_id: str | None, stream: str, unit: str | None, ts: float | None,
@@ -404,15 +368,30 @@ class Ledger:
             raise LedgerClosedError(f"ledger {self.target!r} is closed")
         if unit is not None and not isinstance(unit, str):
             raise NotSerializableError(f"unit must be a string, got {type(unit).__name__}")
-        did = self._next_id() if decision_id is None else decision_id
+        did = f"{self.writer}.{next(self._ids)}" if decision_id is None else decision_id
         if not isinstance(did, str) or not did:
             raise NotSerializableError("decision_id must be a non-empty string")
-        _checks.plain_text(did, stream, unit)  # draw names: in _draw_rows
-        draw_rows = self._draw_rows(did, draws, encoded)
+        if unit is not None or "\x00" in did or "\x00" in stream or not did.isascii() or \
+                not stream.isascii():  # fmt: skip
+            _checks.plain_text(did, stream, unit)  # raises when one is not plain text
+        rows = []  # the draw rows; ``encoded`` = (object, its JSON) spares encoding it twice
+        to_json = _records.to_json
+        for idx, name, dkind, args, u, value, dprob, is_density in draws:
+            if name is not None and ("\x00" in name or not name.isascii()):
+                _checks.plain_text(name)  # raises when it is not plain text
+            try:
+                value_json = encoded[1] if encoded is not None and value is encoded[0] else \
+                    to_json(value, "its value")  # fmt: skip
+                rows.append((did, idx, name, dkind, to_json(args, "its arguments"),
+                             to_json(u, "its uniforms"), value_json, dprob + 0.0,
+                             1 if is_density else 0))  # fmt: skip
+            except NotSerializableError as exc:
+                label = f"{dkind} draw {name!r}" if name is not None else f"{dkind} draw"
+                raise NotSerializableError(f"{label} (#{idx}): {exc}") from None
         stamp = time.time() if ts is None else _checks.timestamp(ts)
-        row = (did, stream, unit, stamp, fn, chash, inputs, params, action, prop + 0.0, kind,
-               seed, self.writer)  # fmt: skip
-        self._enqueue(("d-", row, draw_rows), decision_id)
+        # a flat tuple (_records.PENDING_DRAWS): the garbage collector soon stops tracking it
+        self._enqueue(("d-", did, stream, unit, stamp, fn, chash, inputs, params, action,
+                       prop + 0.0, kind, seed, self.writer, *rows), decision_id)  # fmt: skip
         return did
 
     def _refuse(self, decision_id: str) -> None:
@@ -428,7 +407,9 @@ class Ledger:
         remembered. ``Writer.put`` handles a full queue. Taps (drawledger.testing) get the
         record sealed at once, with its seq and hash; a tap returning True holds the record back.
         """
-        with self._lock:
+        lock = self._lock
+        lock.acquire()  # not "with": a lock's __enter__ and __exit__ cost twice as much
+        try:
             if claim is not None:
                 if claim in self._recent:
                     self._refuse(claim)
@@ -442,6 +423,8 @@ class Ledger:
                 if held:
                     return
             self._writer.put(item)
+        finally:
+            lock.release()
 
     def outcome(
         self, decision_id: str, name: str, value: float, *, ts: float | None = None
@@ -460,7 +443,7 @@ class Ledger:
         if self._closed:
             raise LedgerClosedError(f"ledger {self.target!r} is closed")
         stamp = time.time() if ts is None else _checks.timestamp(ts)
-        self._enqueue(("o-", (decision_id, name, number + 0.0, stamp, self.writer)))
+        self._enqueue(("o-", decision_id, name, number + 0.0, stamp, self.writer))
 
     def bucket(
         self,

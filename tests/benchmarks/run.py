@@ -410,45 +410,62 @@ _AREA = re.compile(r'Results: docs/performance\.md, "## ([^"]+)"')
 # document had before it was generated (the numbers live in the output above each note).
 NOTES: dict[str, str] = {
     "Serving cost against a hand-written floor": """\
-- The machine was shared (load average 1.7 to 6 during these runs): one run's
-  drawledger/floor ratio moved between 1.5 and 1.7 from run to run, on the same code. The
+- The machine was shared (load average 2 to 4.5 during these runs): one run's
+  drawledger/floor ratio moves by 0.1 or more from run to run on the same code. The
   instruction counts below do not depend on the load.
-- Instructions per decision (callgrind; a run of N = 1,000 decisions minus a run of N = 0):
-  the floor's Python work (seed, one stream block, the softmax and the pick, six orjson
-  encodings, the chain hash) is 68.4k; drawledger's is 132.2k, 92.4k on the serving thread
-  and 39.7k sealing on the writer thread (this method's spread is about 2k). Both then
-  insert the same rows: `SqlSink.write` costs 60.4k per decision with its draw, raw
-  `sqlite3.executemany` of the same rows 59.3k.
-  So all in, about 193k against 128k: 1.51x, about what the wall-clock ratio shows.
+- Instructions per decision (callgrind, `PYTHONHASHSEED=0`; a run of N = 2,000 decisions
+  minus a run of N = 0; records held in memory, then sealed as the writer seals a batch, then
+  written by the writer's own `_write` in batches of 512 as the floor writes them), before
+  (commit `f17c461`) and after this change; the method's spread is about 1k:
+
+  | what | before | after |
+  | --- | --- | --- |
+  | serving thread | 100.8k | 95.1k |
+  | sealing on the writer thread | 35.7k | 37.9k |
+  | serving and sealing | 136.5k | 133.0k |
+  | all in, with the SQLite insert | 191.5k | 187.2k |
+  | the floor: its Python work / all in | 66.8k / 117.0k | 67.0k / 117.2k |
+
+  So all in, 1.64x the floor's instructions before and 1.60x after. The wall-clock ratio is
+  lower than the instruction ratio; these measurements do not say why.
+- Wall clock, `python tests/benchmarks/test_bench_floor.py` three times on each checkout,
+  alternating (load average about 3.3): drawledger/floor 1.30, 1.34, 1.37 before and 1.28,
+  1.29, 1.33 after (medians 1.34 and 1.29). The goal of 1.2 is not met.
+- What this change did: a queued decision is one flat tuple, its row and then its draw rows
+  (tuples of plain values), where it held a tuple of draw rows (one level deeper); an outcome
+  is flat too. The garbage collector untracks a tuple only once the tuples in it are untracked,
+  and it may look at a record before its parts, so a record nested three deep stayed tracked
+  through two collections and reached the old generation. Timed with `gc.callbacks` over
+  60,000 decisions with the writer running: 3 full collections before, 1 after (records
+  promoted to the old generation: 10,096 per 20,000 decisions before, 1,984 after); the
+  collector's share of drawledger's time fell from about 7% to about 6%. The writer takes
+  a queued decision apart with two slices, which is most of the 2.2k more sealing work.
+  On the serving thread: the decision's recording runs in `Decision.__call__` and one method of
+  the ledger (four calls fewer), the ledger's lock is taken with `acquire`/`release` (a lock's
+  `__enter__`/`__exit__` cost twice as much), a string's JSON skips the NaN screen (a string
+  holds no number), and decision ids and streams are screened inline before the full
+  plain-text check; every check runs as before. The writer screens given decision ids
+  against one `"<writer>."` prefix per batch instead of building it per record.
+- Where the rest goes: the draw engine alone (a `Draw` and its softmax: argument checks,
+  the probabilities, one blake2b block) is 44k of the 95k on the serving thread, of which the
+  probabilities are 12.5k and the arguments' checks 8.2k; the four JSON texts (inputs, action,
+  the draw's arguments and uniforms) about 20k; the rest is the decorator, the queue and the
+  ledger's lock. Sealing is blake2b over about 790 canonical bytes (15.5k: CPython's portable
+  blake2b, seven blocks) and building the canonical form (13k).
 - The SQL path is not where the difference is: SQLAlchemy's `exec_driver_sql` adds 2% over
   the raw DB-API `executemany` of the same rows (the sink passes the driver its rows as they
   are), so the insert did not move to the raw cursor.
-- What drawledger does that the floor does not: every check of the draw's arguments
-  (types, finiteness, lengths, the temperature, the name) and of the call (decision ids,
-  text, units), the NaN screen of each JSON text, a canonical form over all sixteen columns
-  and the draw row, in which the JSON texts are encoded once more as JSON strings (about six
-  blake2b blocks per decision: blake2b's compression function, CPython's portable
-  implementation, is 15k of the 132k), and about 25 Python calls from the decorator to the
-  queue. No single step is more than a tenth of it.
 - What would close the gap: the canonical form and chain hash, the draw engine's checks and
   the uniform stream are plain loops over bytes and floats; a compiled extension doing them
   (C or Rust, with the Python code kept as the reference the draw-spec and hash tests compare
   against) would take an estimated 60-70k instructions off a decision, to about the floor's
   cost. A canonical form v2 that hashes the stored JSON texts length-prefixed instead of
-  re-encoding them would save about a fifth of the hashed bytes, but needs a versioned
-  format that the integrity check and ingest read beside v1; neither is in this change.
-- Python's garbage collector is the largest single difference in wall time: the floor's
-  loop triggers no collection at all, while drawledger's records wait in the queue and the
-  writer's batch long enough to survive young collections. Timed with `gc.callbacks` over
-  60,000 decisions with the writer running: 366 young, 33 middle and 3 full collections,
-  about 13% of drawledger's time, the full ones (the whole heap) most of it. A queued record
-  now holds its draw rows in a tuple instead of a list, so the collector can stop tracking
-  the whole record on its first pass; about one record in five still reaches the old
-  generation (the collector may look at the tuple of draw rows before the rows in it). In a
-  service with a large heap each full collection costs more, but they come more rarely.
-- Memory: a pending record in the writer's queue holds about 1.1 kB (the quickstart's decision,
+  re-encoding them as JSON strings would drop only their escapes (about 40 of the 790 bytes:
+  one blake2b block, 2k), for a versioned format that the integrity check and ingest would
+  read beside v1; it was not made.
+- Memory: a pending record in the writer's queue holds about 1.0 kB (the quickstart's decision,
   `tracemalloc`), and the queue holds at most `queue_size` records (default 100,000: about
-  115 MB of such records); docs/operations.md.""",
+  105 MB of such records); docs/operations.md.""",
     "Sinks": """\
 - The Parquet sink beats the raw `write_table` with default options because it turns dictionary
   encoding on only for repeating columns and statistics on only for numeric columns, and
