@@ -98,7 +98,7 @@ def _encode(records: Sequence[DrawRecord]) -> list[tuple[Any, ...]]:
 
 
 def _logged(encoded: Sequence[tuple[Any, ...]], action_json: str) -> tuple[float, str]:
-    """The propensity the SDK logs for these draws and action (ledger._record_decision)."""
+    """The propensity the SDK logs for these draws and action (as `Decision.__call__` does)."""
     single = len(encoded) == 1 and encoded[0][4] == action_json
     return decision_propensity(encoded, single, itemgetter(5))
 
