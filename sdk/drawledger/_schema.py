@@ -236,6 +236,14 @@ def value_problem(column: Column, value: object) -> str | None:
     return f"{column.name} is {shown}, not {_WANTED[column.kind]}"
 
 
+# Per table, the tuples of field types of rows found to fit it. A fit depends only on each
+# field's class, so a row of plain values whose types were seen fitting fits: replay checks
+# every row it reads, and a ledger's rows come in a handful of such shapes.
+_FITTING: dict[str, set[tuple[type, ...]]] = {}
+_PLAIN = frozenset({str, int, float, type(None)})
+_MAX_SHAPES = 64
+
+
 def row_problem(table: TableSpec, row: tuple[object, ...]) -> str | None:
     """Why a row read from a ledger does not fit ``table``'s columns, or None when it does.
 
@@ -243,6 +251,19 @@ def row_problem(table: TableSpec, row: tuple[object, ...]) -> str | None:
     allows none, or text or a blob where a number belongs; readers report such a record with
     this reason instead of computing with it.
     """
+    shape = tuple(map(type, row))
+    fitting = _FITTING.get(table.name)
+    if fitting is not None and shape in fitting:
+        return None
+    problem = _row_problem(table, row)
+    if problem is None:
+        fitting = _FITTING.setdefault(table.name, set())
+        if len(fitting) < _MAX_SHAPES and _PLAIN.issuperset(shape):
+            fitting.add(shape)
+    return problem
+
+
+def _row_problem(table: TableSpec, row: tuple[object, ...]) -> str | None:
     if len(row) != len(table.columns):
         return f"{table.name} row has {len(row)} fields, not {len(table.columns)}"
     for column, value in zip(table.columns, row, strict=True):

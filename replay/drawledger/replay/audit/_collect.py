@@ -77,19 +77,26 @@ class AuditState:
 
 
 def chunk_state(
-    decisions: pd.DataFrame, draws: pd.DataFrame, *, sample_size: int = SAMPLE_SIZE
+    decisions: pd.DataFrame,
+    draws: pd.DataFrame,
+    *,
+    sample_size: int = SAMPLE_SIZE,
+    counts_only: bool = False,
 ) -> AuditState:
     """Sufficient statistics of one chunk of the ``decisions`` and ``draws`` tables.
 
     ``draws`` may hold draws of other decisions (they are ignored); decisions without draws
-    count towards the number of decisions and their seeds.
+    count towards the number of decisions and their seeds. ``counts_only``: only each draw's
+    consistency problems, counts and histograms (what the guard's sequential tests read); the
+    streams' sketches, the samples, unit pairs, calibration and hours are left empty, so such
+    a state is not for ``finish``.
     """
     state = AuditState(sample_size)
     _check_columns(decisions, AUDIT_DECISION_COLUMNS, "decisions")
     _check_columns(draws, AUDIT_DRAW_COLUMNS, "draws")
     decisions = decisions.drop_duplicates("decision_id")
     state.decisions = len(decisions)
-    for stream, part in decisions.groupby("stream", sort=False):
+    for stream, part in () if counts_only else decisions.groupby("stream", sort=False):
         s = state._stream(str(stream))
         seeds = part["seed"].dropna().to_numpy(dtype=object)
         s.decisions += len(part)
@@ -118,10 +125,11 @@ def chunk_state(
             g.units = unit_frame(part, sample_size)
             g.draws = len(part)
         else:
-            g, flat_u = group_state(str(kind), part, sample_size)
-            s = state._stream(key[0])
-            s.uniform_count += len(flat_u)
-            s.uniforms.merge(Sketch(sample_size, flat_u))
+            g, flat_u = group_state(str(kind), part, sample_size, counts_only=counts_only)
+            if not counts_only:
+                s = state._stream(key[0])
+                s.uniform_count += len(flat_u)
+                s.uniforms.merge(Sketch(sample_size, flat_u))
         if key in state.groups:
             state.groups[key].merge(g)
         else:
