@@ -236,10 +236,11 @@ def value_problem(column: Column, value: object) -> str | None:
     return f"{column.name} is {shown}, not {_WANTED[column.kind]}"
 
 
-# Per table, the tuples of field types of rows found to fit it. A fit depends only on each
-# field's class, so a row of plain values whose types were seen fitting fits: replay checks
-# every row it reads, and a ledger's rows come in a handful of such shapes.
-_FITTING: dict[str, set[tuple[type, ...]]] = {}
+# Per table (by identity, the table kept with its shapes), the tuples of field types of rows
+# found to fit it. A fit depends only on each field's class, so a row of plain values whose
+# types were seen fitting fits: replay checks every row it reads, and a ledger's rows come in
+# a handful of such shapes.
+_FITTING: dict[int, tuple[TableSpec, set[tuple[type, ...]]]] = {}
 _PLAIN = frozenset({str, int, float, type(None)})
 _MAX_SHAPES = 64
 
@@ -252,14 +253,15 @@ def row_problem(table: TableSpec, row: tuple[object, ...]) -> str | None:
     this reason instead of computing with it.
     """
     shape = tuple(map(type, row))
-    fitting = _FITTING.get(table.name)
-    if fitting is not None and shape in fitting:
+    known = _FITTING.get(id(table))
+    if known is not None and known[0] is table and shape in known[1]:
         return None
     problem = _row_problem(table, row)
-    if problem is None:
-        fitting = _FITTING.setdefault(table.name, set())
-        if len(fitting) < _MAX_SHAPES and _PLAIN.issuperset(shape):
-            fitting.add(shape)
+    if problem is None and _PLAIN.issuperset(shape):
+        if known is None or known[0] is not table:
+            known = _FITTING[id(table)] = (table, set())
+        if len(known[1]) < _MAX_SHAPES:
+            known[1].add(shape)
     return problem
 
 

@@ -17,13 +17,14 @@ from drawledger.replay.propensity import DEFAULT_BUDGET, DEFAULT_MC_SAMPLES
 from drawledger.replay.sources import Follower, Head
 from drawledger.replay.verify import Settings
 
-# Records per piece: the unit the guard takes in, checks and saves its state after.
+# Records per piece: the unit the guard takes in and checks (the statistics and alarms are
+# updated per piece).
 PIECE_SIZE = 1_000
 
 # Seconds between state saves while a look takes in pieces: the state is saved after a piece
-# when this long has passed since the last save or the piece raised an alarm, and always at
-# the end of a look, so a restart redoes at most about this much work (an fsync per piece
-# cost more than the statistics of a piece).
+# when this long has passed since the last save or when the piece raised an alarm, and always
+# at the end of a look; a restart takes in again at most about this much work. (A save per
+# piece, with its two fsyncs, cost more than a piece's statistics.)
 SAVE_EVERY = 1.0
 
 # Draws in the windowed drift view.
