@@ -412,6 +412,8 @@ def test_counts_only_statistics_equal_those_of_the_full_chunk_state() -> None:
             assert g.ratio.observed.tolist() == h.ratio.observed.tolist()
             assert g.ratio.expected.tolist() == h.ratio.expected.tolist()
     assert {} == lean.streams
+    with pytest.raises(ReplayError, match="counts only"):
+        lean.finish()
 
 
 def test_bounded_sample_is_used_for_rank_tests_and_said_so() -> None:
