@@ -55,8 +55,10 @@ def verify_chunk(
     ``flagged`` holds the ids among them that the integrity check found in a problem. Pure:
     the result depends only on the arguments (and the decision code they name). ``memo``
     keeps the enumerated distributions of (function, inputs, parameters) from one chunk to
-    the next (a caller that checks chunks one after another, like the guard); each is a
-    function of its key, so it changes no result, only how often it is computed.
+    the next, for a caller that checks chunks one after another (the guard; ``verify`` gives
+    each chunk its own). A remembered distribution is the one the chunk would compute, as
+    within a chunk: only a Monte Carlo estimate made for one action also serves the other
+    actions of the same inputs and parameters, where one of them might have had a density.
     """
     if settings.elsewhere or settings.only is not None:
         decisions = [r for r in decisions if _here(r, settings)]
