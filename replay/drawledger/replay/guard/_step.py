@@ -18,7 +18,8 @@ from drawledger.replay.sources import WriterPiece, rows_frame
 from drawledger.replay.verify import Settings
 
 # The audit keeps bottom-k samples and sketches for its rank tests; the guard uses only the
-# audit's counts and histograms, so its samples stay tiny.
+# audit's counts and histograms (it asks for counts only), so the units of a bucket draw, the
+# one sample still kept, stay few.
 SAMPLE_SIZE = 16
 
 # Verify reasons that do not fail a check: a declared draw was made by other code (the
