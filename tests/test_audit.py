@@ -384,6 +384,38 @@ def test_chunking_does_not_change_the_result(sample_size: int) -> None:
                     assert x == pytest.approx(y, rel=1e-9, abs=1e-12), a[:4]
 
 
+def test_counts_only_statistics_equal_those_of_the_full_chunk_state() -> None:
+    """``chunk_state(counts_only=True)`` (the guard's) leaves out sketches and samples but
+    counts each draw's problems, picks and histograms exactly as the full state does."""
+    from drawledger.replay.audit import chunk_state
+
+    d, w = scenario(11)
+    full = chunk_state(d, w, sample_size=50)
+    lean = chunk_state(d, w, sample_size=50, counts_only=True)
+    assert sorted(full.groups) == sorted(lean.groups)
+    for key, g in full.groups.items():
+        h = lean.groups[key]
+        assert (g.draws, g.steps, g.uniforms, dict(g.problems), g.signature, g.varying, g.note) == (
+            h.draws,
+            h.steps,
+            h.uniforms,
+            dict(h.problems),
+            h.signature,
+            h.varying,
+            h.note,
+        )
+        assert g.u_hist.tolist() == h.u_hist.tolist()
+        assert g.pit_hist.tolist() == h.pit_hist.tolist()
+        assert (g.ratio is None) == (h.ratio is None), key
+        if g.ratio is not None and h.ratio is not None:
+            assert g.ratio.keys == h.ratio.keys
+            assert g.ratio.observed.tolist() == h.ratio.observed.tolist()
+            assert g.ratio.expected.tolist() == h.ratio.expected.tolist()
+    assert {} == lean.streams
+    with pytest.raises(ReplayError, match="counts only"):
+        lean.finish()
+
+
 def test_bounded_sample_is_used_for_rank_tests_and_said_so() -> None:
     """With sample_size below the number of draws, KS and rank tests run on a sample of that
     size, histograms and ratios still count every draw."""

@@ -214,6 +214,33 @@ def test_a_guard_killed_between_pieces_resumes_to_the_uninterrupted_result(
     assert comparable(whole) == comparable(killed)
 
 
+def test_the_state_is_saved_between_looks_and_after_an_alarm_not_after_every_piece(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Pieces taken in within SAVE_EVERY seconds share one save at the end of the look; a
+    piece that raises an alarm is saved at once (a restart does not raise it again)."""
+    from drawledger.replay.guard import _run
+
+    saves: list[int] = []
+    real = _run.save_state
+
+    def counted(path: Any, state: Any, unchanged: Any = None) -> bytes:
+        saves.append(state.pieces)
+        return real(path, state, unchanged)
+
+    monkeypatch.setattr(_run, "save_state", counted)
+    monkeypatch.setattr(_run, "SAVE_EVERY", 3600.0)
+    fair = legacy_ledger(tmp_path / "fair.db", 0.5, 400)
+    report = guard(fair, state=tmp_path / "fair.json", once=True, piece_size=40)
+    assert (10, [10], True) == (report.state.pieces, saves, report.ok)
+    assert 400 == load_state(tmp_path / "fair.json", os.fspath(fair)).decisions
+    saves.clear()
+    biased = legacy_ledger(tmp_path / "biased.db", 0.8, 2000)
+    report = guard(biased, state=tmp_path / "biased.json", once=True, piece_size=200)
+    assert not report.ok
+    assert 2 <= len(saves) and saves[-1] == 10 and saves[0] < 10
+
+
 def test_ledger_text_reaches_the_terminal_escaped_and_on_alarm_gets_json(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

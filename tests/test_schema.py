@@ -317,6 +317,20 @@ def test_a_null_or_another_type_is_named_with_its_column(spec: TableSpec) -> Non
             assert f"{spec.name}.{column.name} is NULL" == _schema.row_problem(spec, tuple(row))
 
 
+@pytest.mark.parametrize("spec", SPECS, ids=lambda s: s.name)
+def test_a_shape_seen_fitting_does_not_hide_a_problem_of_the_next_row(spec: TableSpec) -> None:
+    """row_problem remembers the field types of rows that fit: a row that fits, then rows
+    with one field of another type, each still gets its reason."""
+    good = tuple(_valid(c) for c in spec.columns)
+    for _ in range(2):
+        assert None is _schema.row_problem(spec, good)
+        for at, column in enumerate(spec.columns):
+            row = list(good)
+            row[at] = True if column.kind == "integer" else b"x"
+            assert _schema.row_problem(spec, tuple(row)) is not None, column.name
+        assert _schema.row_problem(spec, good[:-1]) is not None
+
+
 def test_a_bool_is_not_an_integer_of_the_ledger() -> None:
     row = [_valid(c) for c in DRAWS.columns]
     row[DRAW.is_density] = True

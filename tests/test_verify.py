@@ -523,6 +523,26 @@ def test_chunk_function_is_pure_and_checks_flags() -> None:
     assert {"declared": 1} == dict(verify_chunk([row], [], set(), Settings()).by_reason)
 
 
+def test_a_memo_shared_by_chunks_changes_no_result(ledger_path: Path) -> None:
+    """verify_chunk with one memo passed to chunk after chunk (as the guard does) gives every
+    chunk the result it has with a memo of its own: counts, reasons, propensities."""
+    from drawledger.replay.propensity import Memo
+    from drawledger.replay.sources import iter_chunks
+
+    _shop_ledger(ledger_path, n=30)
+    _sql(ledger_path, "UPDATE draws SET prob = 0.9 WHERE decision_id = 'card-3'")
+    settings = Settings(path=(str(Path(sd.__file__).parent),))
+    memo = Memo()
+    chunks = list(iter_chunks(ledger_path, size=20))
+    assert len(chunks) > 3
+    for rows, draws in chunks:
+        alone = verify_chunk(rows, draws, set(), settings)
+        shared = verify_chunk(rows, draws, set(), settings, memo)
+        assert (alone.streams, alone.by_reason, alone.examples, alone.methods) == (
+            shared.streams, shared.by_reason, shared.examples, shared.methods)  # fmt: skip
+        pd.testing.assert_frame_equal(alone.rows[0], shared.rows[0])
+
+
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(decision_specs)
 def test_arbitrary_rows_give_reasons_never_exceptions(spec: tuple) -> None:

@@ -236,6 +236,15 @@ def value_problem(column: Column, value: object) -> str | None:
     return f"{column.name} is {shown}, not {_WANTED[column.kind]}"
 
 
+# Per table (by identity, the table kept with its shapes), the tuples of field types of rows
+# found to fit it. A fit depends only on each field's class, so a row of plain values whose
+# types were seen fitting fits: replay checks every row it reads, and a ledger's rows come in
+# a handful of such shapes.
+_FITTING: dict[int, tuple[TableSpec, set[tuple[type, ...]]]] = {}
+_PLAIN = frozenset({str, int, float, type(None)})
+_MAX_SHAPES = 64
+
+
 def row_problem(table: TableSpec, row: tuple[object, ...]) -> str | None:
     """Why a row read from a ledger does not fit ``table``'s columns, or None when it does.
 
@@ -243,6 +252,20 @@ def row_problem(table: TableSpec, row: tuple[object, ...]) -> str | None:
     allows none, or text or a blob where a number belongs; readers report such a record with
     this reason instead of computing with it.
     """
+    shape = tuple(map(type, row))
+    known = _FITTING.get(id(table))
+    if known is not None and known[0] is table and shape in known[1]:
+        return None
+    problem = _row_problem(table, row)
+    if problem is None and _PLAIN.issuperset(shape):
+        if known is None or known[0] is not table:
+            known = _FITTING[id(table)] = (table, set())
+        if len(known[1]) < _MAX_SHAPES:
+            known[1].add(shape)
+    return problem
+
+
+def _row_problem(table: TableSpec, row: tuple[object, ...]) -> str | None:
     if len(row) != len(table.columns):
         return f"{table.name} row has {len(row)} fields, not {len(table.columns)}"
     for column, value in zip(table.columns, row, strict=True):

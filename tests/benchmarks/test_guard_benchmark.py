@@ -8,9 +8,10 @@ a pydantic input), recorded through the SDK into SQLite. Reported, on one core e
 
 - ``write``: decisions per second the SDK records (calls, then ``close``: every record
   written);
-- ``guard``: decisions per second the guard takes in from that ledger (reading, chain, replay,
-  the audit's statistics, the evidence, a state file saved after each piece), and the ratio
-  write / guard (above 1: the guard is the faster);
+- ``guard``: decisions per second the guard takes in from that ledger (reading, chain, replay
+  twice, the audit's statistics, the evidence, the state file saved as the guard does), and
+  the ratio guard / write (1 or above: the guard keeps up with the SDK on one core). Both are
+  the best of ``ROUNDS`` rounds, taken in turn, so that a busy shared machine moves both alike;
 - peak memory (``VmHWM`` of a fresh process; Linux) of the guard on two ledger sizes, to show
   that it does not grow with the ledger.
 """
@@ -33,6 +34,7 @@ from drawledger.replay.guard import guard
 pytestmark = pytest.mark.benchmark
 
 N = 20_000
+ROUNDS = 3
 MEMORY_SIZES = (20_000, 80_000)
 
 PEAK = """
@@ -59,12 +61,14 @@ def _record(path: Path, n: int) -> float:
 
 def test_guard_keeps_up_with_the_sdk() -> None:
     with tempfile.TemporaryDirectory() as tmp:
-        db = Path(tmp) / "cards.db"
-        write = _record(db, N)
-        start = time.perf_counter()
-        report = guard(db, path=[SUPPORT], state=Path(tmp) / "state.json", once=True)
-        rate = N / (time.perf_counter() - start)
-        assert N == report.state.verify["verified"]
+        write = rate = 0.0
+        for i in range(ROUNDS):
+            db = Path(tmp) / f"cards-{i}.db"
+            write = max(write, _record(db, N))
+            start = time.perf_counter()
+            report = guard(db, path=[SUPPORT], state=Path(tmp) / f"state-{i}.json", once=True)
+            rate = max(rate, N / (time.perf_counter() - start))
+            assert N == report.state.verify["verified"]
         print(f"\nwrite {write:,.0f}/s, guard {rate:,.0f}/s, guard / write {rate / write:.2f}")
         for n in MEMORY_SIZES:
             big = Path(tmp) / f"cards-{n}.db"

@@ -37,6 +37,7 @@ class AuditState:
         if isinstance(sample_size, bool) or not isinstance(sample_size, int) or sample_size < 1:
             raise ReplayError(f"sample_size must be a positive integer, got {sample_size!r}")
         self.sample_size = sample_size
+        self.counts_only = False  # built by chunk_state(counts_only=True): no report from it
         self.decisions = 0
         self.groups: dict[GroupKey, GroupState] = {}
         self.streams: dict[str, StreamState] = {}
@@ -49,6 +50,7 @@ class AuditState:
 
     def merge(self, other: AuditState) -> None:
         """Add ``other`` (another chunk or partition) into this state."""
+        self.counts_only |= other.counts_only
         self.decisions += other.decisions
         for key, g in other.groups.items():
             if key in self.groups:
@@ -61,6 +63,9 @@ class AuditState:
     def finish(self, alpha: float = ALPHA) -> AuditReport:
         """Run every test on the statistics gathered and return the report."""
         check_alpha(alpha)
+        if self.counts_only:
+            raise ReplayError("an audit state of counts only (the guard's) has no report: "
+                              "build it with chunk_state(..., counts_only=False)")  # fmt: skip
         tests: list[AuditTest] = []
         figures: list[AuditFigure] = []
         for stream in sorted(self.streams):
@@ -77,19 +82,27 @@ class AuditState:
 
 
 def chunk_state(
-    decisions: pd.DataFrame, draws: pd.DataFrame, *, sample_size: int = SAMPLE_SIZE
+    decisions: pd.DataFrame,
+    draws: pd.DataFrame,
+    *,
+    sample_size: int = SAMPLE_SIZE,
+    counts_only: bool = False,
 ) -> AuditState:
     """Sufficient statistics of one chunk of the ``decisions`` and ``draws`` tables.
 
     ``draws`` may hold draws of other decisions (they are ignored); decisions without draws
-    count towards the number of decisions and their seeds.
+    count towards the number of decisions and their seeds. ``counts_only``: only each draw's
+    consistency problems, counts and histograms (what the guard's sequential tests read); the
+    streams' sketches, the samples, unit pairs, calibration and hours are left empty (and
+    ``finish`` refuses such a state).
     """
     state = AuditState(sample_size)
+    state.counts_only = counts_only
     _check_columns(decisions, AUDIT_DECISION_COLUMNS, "decisions")
     _check_columns(draws, AUDIT_DRAW_COLUMNS, "draws")
     decisions = decisions.drop_duplicates("decision_id")
     state.decisions = len(decisions)
-    for stream, part in decisions.groupby("stream", sort=False):
+    for stream, part in () if counts_only else decisions.groupby("stream", sort=False):
         s = state._stream(str(stream))
         seeds = part["seed"].dropna().to_numpy(dtype=object)
         s.decisions += len(part)
@@ -118,10 +131,11 @@ def chunk_state(
             g.units = unit_frame(part, sample_size)
             g.draws = len(part)
         else:
-            g, flat_u = group_state(str(kind), part, sample_size)
-            s = state._stream(key[0])
-            s.uniform_count += len(flat_u)
-            s.uniforms.merge(Sketch(sample_size, flat_u))
+            g, flat_u = group_state(str(kind), part, sample_size, counts_only=counts_only)
+            if not counts_only:
+                s = state._stream(key[0])
+                s.uniform_count += len(flat_u)
+                s.uniforms.merge(Sketch(sample_size, flat_u))
         if key in state.groups:
             state.groups[key].merge(g)
         else:

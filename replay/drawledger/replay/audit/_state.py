@@ -71,14 +71,24 @@ class Cells:
 
 
 def _cells(
-    keys: list[str], step: IntArray, key: IntArray, p: FloatArray, chosen: IntArray
+    keys: list[str],
+    step: IntArray,
+    key: IntArray,
+    p: FloatArray,
+    chosen: IntArray,
+    *,
+    outer: bool = True,
 ) -> Cells:
+    """The cells of the picks; ``outer=False`` leaves ``outer`` empty (counts only)."""
     k = len(keys)
-    m = sparse.csr_matrix((p, (step, key)), shape=(len(chosen), k))
-    outer = np.asarray((m.T @ m).todense())
+    if outer:
+        m = sparse.csr_matrix((p, (step, key)), shape=(len(chosen), k))
+        products = np.asarray((m.T @ m).todense())
+    else:
+        products = np.zeros((0, 0))
     observed = np.bincount(key[chosen], minlength=k).astype(np.float64)
     expected = np.bincount(key, weights=p, minlength=k).astype(np.float64)
-    return Cells(keys, observed, expected, outer)
+    return Cells(keys, observed, expected, products)
 
 
 class Sketch:
@@ -224,8 +234,13 @@ def _hash_ids(ids: npt.NDArray[Any], idx: IntArray) -> U64Array:
     return _stats.mix64(id_keys(ids, HASH_KEY) ^ (idx.astype(np.uint64) * STEP))
 
 
-def group_state(kind: str, frame: pd.DataFrame, size: int) -> tuple[GroupState, FloatArray]:
-    """Sufficient statistics of one chunk of one draw, and all the uniforms it recorded."""
+def group_state(
+    kind: str, frame: pd.DataFrame, size: int, *, counts_only: bool = False
+) -> tuple[GroupState, FloatArray]:
+    """Sufficient statistics of one chunk of one draw, and all the uniforms it recorded.
+
+    ``counts_only``: without the hours, unit pairs, calibration and sample (chunk_state).
+    """
     st = GroupState(size)
     st.draws = len(frame)
     recorded = frame["prob"].to_numpy(np.float64)
@@ -261,11 +276,15 @@ def group_state(kind: str, frame: pd.DataFrame, size: int) -> tuple[GroupState, 
     st.uniforms = int(has_u.sum())
     st.u_hist = _stats.histogram(u[has_u])
     st.pit_hist = _stats.histogram(pit)
+    st.note = parsed.note
+    if counts_only:
+        if parsed.keys is not None and st.steps:
+            _discrete_stats(st, parsed, keep, counts_only=True)
+        return st, flat_u
     ts = frame["ts"].to_numpy(np.float64)[row]
     hour = (np.floor(ts / 3600.0) % 24).astype(np.int64)
     pit_bin = np.minimum((pit * BINS).astype(np.int64), BINS - 1)
     st.hour_hist = np.bincount(hour * BINS + pit_bin, minlength=24 * BINS).reshape(24, BINS)
-    st.note = parsed.note
     if kind in PAIRED_KINDS and "unit" in frame.columns:
         codes, uniq = pd.factorize(frame["unit"].to_numpy(dtype=object), use_na_sentinel=False)
         names = np.array(["" if x is None or x != x else str(x) for x in uniq], dtype=object)
@@ -277,7 +296,11 @@ def group_state(kind: str, frame: pd.DataFrame, size: int) -> tuple[GroupState, 
     return st, flat_u
 
 
-def _discrete_stats(st: GroupState, parsed: Parsed, keep: npt.NDArray[np.bool_]) -> None:
+def _discrete_stats(
+    st: GroupState, parsed: Parsed, keep: npt.NDArray[np.bool_], *, counts_only: bool = False
+) -> None:
+    """The cells of the picks; ``counts_only``: without the calibration cells and the ratio
+    cells' ``outer``."""
     assert parsed.flat_step is not None and parsed.flat_key is not None
     assert parsed.flat_p is not None and parsed.chosen is not None and parsed.keys is not None
     # drop steps of draws found inconsistent after parsing (recorded probability, uniforms)
@@ -293,7 +316,9 @@ def _discrete_stats(st: GroupState, parsed: Parsed, keep: npt.NDArray[np.bool_])
         if len(parsed.keys) > MAX_OPTIONS:
             st.note = f"more than {MAX_OPTIONS} distinct options"
         else:
-            st.ratio = _cells(parsed.keys, f_step, f_key, f_p, chosen)
+            st.ratio = _cells(parsed.keys, f_step, f_key, f_p, chosen, outer=not counts_only)
+    if counts_only:
+        return
     cal_key = np.searchsorted(CAL_EDGES, f_p, side="right") - 1
     st.calibration = _cells(CAL_KEYS, f_step, cal_key, f_p, chosen)
 

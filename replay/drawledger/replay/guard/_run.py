@@ -17,8 +17,15 @@ from drawledger.replay.propensity import DEFAULT_BUDGET, DEFAULT_MC_SAMPLES
 from drawledger.replay.sources import Follower, Head
 from drawledger.replay.verify import Settings
 
-# Records per piece: the state is saved after each piece, so a restart redoes at most this many.
+# Records per piece: the unit the guard takes in and checks (the statistics and alarms are
+# updated per piece).
 PIECE_SIZE = 1_000
+
+# Seconds between state saves while a look takes in pieces: the state is saved after a piece
+# when this long has passed since the last save or when the piece raised an alarm, and always
+# at the end of a look; a restart takes in again at most about this much work. (A save per
+# piece, with its two fsyncs, cost more than a piece's statistics.)
+SAVE_EVERY = 1.0
 
 # Draws in the windowed drift view.
 WINDOW = 10_000
@@ -58,8 +65,8 @@ def take_in(
     clock: Callable[[], float] = time.time,
 ) -> tuple[int, float | None]:  # fmt: skip
     """Take in every new record of every writer, piece by piece; ``after_piece`` is called
-    after each (to save the state) with the lag behind the newest records seen when the look
-    began. Returns the lag behind the ledger when done."""
+    after each (to save the state, see SAVE_EVERY) with the lag behind the newest records
+    seen when the look began. Returns the lag behind the ledger when done."""
     heads = follower.heads()
     for key, covered in state.writers.items():
         head = heads.get(key)
@@ -163,13 +170,22 @@ def guard(
                 on_alarm(alarm)
 
     saved: list[bytes | None] = [None]
+    last_save = [time.monotonic(), len(current.alarms)]
 
     follower = Follower(ledger, format=format)
     served = Metrics(metrics_port) if metrics_port is not None else None
 
     def save(lag: tuple[int, float | None]) -> None:
         saved[0] = save_state(state, current, saved[0])
+        last_save[:] = [time.monotonic(), len(current.alarms)]
         if served is not None:
+            served.update(current, *lag)
+
+    def after_piece(lag: tuple[int, float | None]) -> None:
+        if (time.monotonic() - last_save[0] >= SAVE_EVERY
+                or len(current.alarms) != last_save[1]):  # fmt: skip
+            save(lag)
+        elif served is not None:
             served.update(current, *lag)
 
     lag: tuple[int, float | None] = (0, None)
@@ -177,7 +193,7 @@ def guard(
         looks = 0
         while True:
             lag = take_in(follower, current, settings, piece_size=piece_size,
-                          gap_wait=gap_wait, emit=emit, after_piece=save)  # fmt: skip
+                          gap_wait=gap_wait, emit=emit, after_piece=after_piece)  # fmt: skip
             save(lag)
             looks += 1
             if once or (steps is not None and looks >= steps):

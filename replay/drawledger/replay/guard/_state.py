@@ -1,9 +1,9 @@
 """The guard's state: where each writer's chain stands, and the merged statistics.
 
 Saved as one JSON file, written atomically (a temporary file in the same directory, flushed
-to disk, then renamed over the old one) after every piece the guard takes in, so that a guard
-killed at any moment resumes from the last whole piece: it never reads again what it covered,
-and never skips a record.
+to disk, then renamed over the old one) between the pieces the guard takes in (``SAVE_EVERY``
+in ``_run``), so that a guard killed at any moment resumes from the last saved piece: it
+never skips a record, and takes in again only what came after that save.
 """
 
 from __future__ import annotations

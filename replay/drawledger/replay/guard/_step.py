@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import heapq
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -11,12 +12,14 @@ from drawledger.replay.audit import chunk_state
 from drawledger.replay.guard._state import INTEGRITY_PROBLEMS, GuardState, Mark, new_alarm
 from drawledger.replay.guard._versions import Versions
 from drawledger.replay.guard._watch import update_watches
-from drawledger.replay.integrity import IntegrityReport, decision_rec, outcome_rec, walk
+from drawledger.replay.integrity import IntegrityReport, Rec, decision_rec, outcome_rec, walk
+from drawledger.replay.propensity import Memo
 from drawledger.replay.sources import WriterPiece, rows_frame
 from drawledger.replay.verify import Settings
 
 # The audit keeps bottom-k samples and sketches for its rank tests; the guard uses only the
-# audit's counts and histograms, so its samples stay tiny.
+# audit's counts and histograms (it asks for counts only), so the units of a bucket draw, the
+# one sample still kept, stay few.
 SAMPLE_SIZE = 16
 
 # Verify reasons that do not fail a check: a declared draw was made by other code (the
@@ -26,13 +29,19 @@ NOT_FAILING = frozenset({"declared"})
 
 @dataclass(frozen=True)
 class StepSettings:
-    """What taking in a piece needs besides the piece."""
+    """What taking in a piece needs besides the piece.
+
+    ``memo`` keeps the replay's enumerated distributions from piece to piece (bounded; see
+    ``verify_chunk``), so that a decision's inputs seen in an earlier piece are not enumerated
+    again.
+    """
 
     verify: Settings
     key: bytes
     alpha: float
     window: int
     versions: Versions = field(default_factory=Versions)  # what replays each code version
+    memo: Memo = field(default_factory=Memo, compare=False)
 
 
 def contiguous(piece: WriterPiece, after: int) -> tuple[WriterPiece | None, int | None]:
@@ -76,12 +85,11 @@ def take_piece(
     by_id: dict[str, list[tuple[Any, ...]]] = {}
     for d in draws:
         by_id.setdefault(d[DRAW.decision_id], []).append(d)
-    recs = heapq.merge(
-        (decision_rec(r, list(by_id.get(r[DEC.decision_id], ())), settings.key, set())
-         for r in rows),
-        (outcome_rec(o, settings.key) for o in piece.outcomes),
-        key=lambda r: (r.seq, r.order),
-    )  # fmt: skip
+    recs: Iterable[Rec] = (decision_rec(r, list(by_id.get(r[DEC.decision_id], ())),
+                                        settings.key, set()) for r in rows)  # fmt: skip
+    if piece.outcomes:
+        recs = heapq.merge(recs, (outcome_rec(o, settings.key) for o in piece.outcomes),
+                           key=lambda r: (r.seq, r.order))  # fmt: skip
     found = IntegrityReport(keyed=bool(settings.key))
     chains = walk(found, recs, set(), {writer: (mark.seq + 1, mark.hash)})
     for problem in INTEGRITY_PROBLEMS:
@@ -94,7 +102,7 @@ def take_piece(
 
     # Replay: every decision re-executed and compared with its record.
     checked = settings.versions.verify(rows, draws, frozenset(found.decision_ids),
-                                       settings.verify)  # fmt: skip
+                                       settings.verify, settings.memo)  # fmt: skip
     for stream, (_n, verified, mismatched, unreplayable) in checked.streams.items():
         state.verify["verified"] += verified
         state.verify["mismatched"] += mismatched
@@ -114,7 +122,7 @@ def take_piece(
     # The audit's statistics of the piece, merged into the sequential evidence.
     if rows:
         audit = chunk_state(rows_frame(rows, "decisions"), rows_frame(draws, "draws"),
-                            sample_size=SAMPLE_SIZE)  # fmt: skip
+                            sample_size=SAMPLE_SIZE, counts_only=True)  # fmt: skip
         first_ids: dict[str, str] = {}
         for r in rows:
             first_ids.setdefault(str(r[DEC.stream]), r[DEC.decision_id])

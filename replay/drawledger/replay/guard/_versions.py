@@ -15,6 +15,7 @@ from dataclasses import dataclass, field, replace
 from typing import Any
 
 from drawledger._schema import DEC
+from drawledger.replay.propensity import Memo
 from drawledger.replay.verify import (
     ChunkResult,
     Settings,
@@ -61,10 +62,11 @@ class Versions:
         return made
 
     def verify(self, rows: Sequence[Row], draws: Sequence[Row], flagged: AbstractSet[str],
-               settings: Settings) -> ChunkResult:  # fmt: skip
-        """``verify_chunk`` of a piece, each record under its own code version."""
+               settings: Settings, memo: Memo | None = None) -> ChunkResult:  # fmt: skip
+        """``verify_chunk`` of a piece, each record under its own code version; ``memo``
+        serves the records replayed here, under the current code."""
         plan = self.plan(rows, settings)
-        checked = verify_chunk(rows, draws, flagged, plan.settings)
+        checked = verify_chunk(rows, draws, flagged, plan.settings, memo)
         if not plan.revisions:
             return checked
         results, leftover = in_revisions(plan, _replay, list(rows), list(draws), flagged)
@@ -72,5 +74,5 @@ class Versions:
             checked.add(part)
         if leftover:  # a tree that could not be extracted: here, where it is code-changed
             here = replace(plan.settings, elsewhere=frozenset(), only=frozenset(leftover))
-            checked.add(verify_chunk(rows, draws, flagged, here))
+            checked.add(verify_chunk(rows, draws, flagged, here, memo))
         return checked

@@ -233,7 +233,8 @@ def decision_rec(row: Row, draws: list[Row], key: bytes, dup_ids: set[str]) -> R
         ok = True  # counted as a duplicate; its draws cannot be attributed
     else:
         try:
-            draws.sort(key=lambda d: d[DRAW.idx])
+            if len(draws) > 1:
+                draws.sort(key=lambda d: d[DRAW.idx])
             ok = _records.decision_hash(row, draws, key) == digest
         except _UNHASHABLE:
             ok = False

@@ -11,6 +11,7 @@ from typing import Any
 import pandas as pd
 
 from drawledger._schema import DEC, DRAW
+from drawledger.replay.propensity import Memo
 from drawledger.replay.verify import _export
 from drawledger.replay.verify._decision import Context, as_text, check_decision
 from drawledger.replay.verify._types import (
@@ -47,18 +48,24 @@ def verify_chunk(
     draws: Iterable[Row],
     flagged: AbstractSet[str],
     settings: Settings,
+    memo: Memo | None = None,
 ) -> ChunkResult:
     """Check a chunk of decision rows with their draw rows (tuples in the ledger's column order).
 
     ``flagged`` holds the ids among them that the integrity check found in a problem. Pure:
-    the result depends only on the arguments (and the decision code they name).
+    the result depends only on the arguments (and the decision code they name). ``memo``
+    keeps the enumerated distributions of (function, inputs, parameters) from one chunk to
+    the next, for a caller that checks chunks one after another (the guard; ``verify`` gives
+    each chunk its own). A remembered distribution is the one the chunk would compute, as
+    within a chunk: only a Monte Carlo estimate made for one action also serves the other
+    actions of the same inputs and parameters, where one of them might have had a density.
     """
     if settings.elsewhere or settings.only is not None:
         decisions = [r for r in decisions if _here(r, settings)]
     by_id: dict[str, list[Row]] = {}
     for d in draws:
         by_id.setdefault(d[DRAW.decision_id], []).append(d)
-    ctx = Context(settings)
+    ctx = Context(settings, memo)
     result = ChunkResult()
     base: list[tuple[Any, ...]] = []
     flat: list[dict[str, Any]] = []

@@ -90,6 +90,17 @@ def _json(obj: Any, what: str) -> str:
 
 
 def _encode(records: Sequence[DrawRecord]) -> list[tuple[Any, ...]]:
+    dumps = orjson.dumps
+    try:  # the usual case in one pass; what cannot be encoded is named by the loop below
+        return [
+            (kind, name, dumps(args, default=json_default, option=JSON_OPTIONS).decode(),
+             dumps(u, default=json_default, option=JSON_OPTIONS).decode(),
+             dumps(value, default=json_default, option=JSON_OPTIONS).decode(), prob,
+             bool(is_density))
+            for _, name, kind, args, u, value, prob, is_density in records
+        ]  # fmt: skip
+    except TypeError:
+        pass
     return [
         (r.kind, r.name, _json(r.args, "draw arguments"), _json(r.u, "uniforms"),
          _json(r.value, "draw value"), r.prob, bool(r.is_density))
@@ -133,11 +144,11 @@ class _Checked:
 class Context:
     """Per-chunk caches: resolved functions, decoded parameters, enumerated distributions."""
 
-    def __init__(self, settings: Settings) -> None:
+    def __init__(self, settings: Settings, memo: Memo | None = None) -> None:
         self.settings = settings
         self.resolved: dict[str, Decision[Any] | ReplayError] = {}
         self.params: dict[tuple[str, str], dict[str, Any]] = {}
-        self.memo = Memo()
+        self.memo = Memo() if memo is None else memo
         self.probed: Counter[str] = Counter()  # decisions fully enumerated, by function
         self.multi: set[str] = set()  # functions seen making several draws (never trusted)
         self.sources = dict(settings.sources)  # stored source by code identity
@@ -406,9 +417,12 @@ def check_decision(row: Row, draws: list[Row], ctx: Context, flagged: bool) -> _
     out = _Checked()
     if flagged:
         out.add("integrity", "part of an integrity problem (see integrity)")
-    damaged = row_problem(DECISIONS, row) or next(
-        (p for p in (row_problem(DRAWS, d) for d in draws) if p), None
-    )
+    damaged = row_problem(DECISIONS, row)
+    if damaged is None:
+        for d in draws:
+            damaged = row_problem(DRAWS, d)
+            if damaged is not None:
+                break
     if damaged is not None:  # nothing is computed from a field of the wrong type
         out.add("bad-record", damaged)
         return out
