@@ -141,7 +141,8 @@ def iter_chunks(
 ) -> Iterator[tuple[list[Row], list[Row]]]:
     """Decision rows with their draw rows, chunk by chunk (at least ``size`` decisions each,
     the last aside): SQL ledgers writer by writer in seq order, Parquet ledgers part file by
-    part file in path order."""
+    part file in path order. The draw rows come in their decisions' order; sort one
+    decision's draws by ``idx`` before relying on their order."""
     for task, engine in _tasks(target, format, size):
         yield task.read(engine)
 
