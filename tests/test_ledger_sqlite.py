@@ -324,27 +324,3 @@ def test_a_queued_decision_is_flat_and_untracked_after_two_collections(
     gc.collect()
     assert False is gc.is_tracked(item)
     led.close()
-
-
-def test_a_queued_decision_holds_only_tuples_and_plain_values(ledger_path: Path) -> None:
-    """No list in a queued record: the garbage collector can stop tracking it (tuples of plain
-    values) instead of tracing every pending record until the writer takes it."""
-    import gc
-
-    led = dl.Ledger(ledger_path)
-    led._writer._live = True  # put() takes the thread for running: the record stays queued
-    feature_card = make_decision(led)
-    feature_card(CARDS, SCORES)
-    item = led._writer.queue[0]
-    led._writer._live = False
-
-    def containers(x: object) -> set[type]:
-        if isinstance(x, (list, tuple, dict, set)):
-            return {type(x)}.union(*(containers(v) for v in x))
-        return set()
-
-    assert {tuple} == containers(item)
-    for _ in range(3):  # a pass may see a tuple before the ones in it: one pass per level
-        gc.collect()
-    assert False is gc.is_tracked(item)
-    led.close()
