@@ -4,7 +4,7 @@ replay as it was before versions), and of a ledger logged by ten deploys of the 
 (each record replayed under its own version, found in the git history).
 
 Run: python -m pytest tests/benchmarks/test_bench_versions.py -m benchmark -s
-Results: docs/deploys.md, "What it costs".
+Results: docs/performance.md, "## Replay across code versions" (and docs/deploys.md).
 
 Each deploy changes the temperature formula (a new code identity), so the ten-version ledger
 needs nine git revisions extracted and nine processes of their own, each reading the ledger and
