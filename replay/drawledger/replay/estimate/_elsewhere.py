@@ -8,6 +8,9 @@ target (the current code) here. docs/deploys.md.
 
 from __future__ import annotations
 
+import os
+import pickle
+import uuid
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -40,21 +43,43 @@ class Logged:
 
 
 def logged_pieces(settings: Settings, tasks: Sequence[Task], stream: str,
-                  flagged: frozenset[str], seed: int) -> list[Logged]:  # fmt: skip
+                  flagged: frozenset[str], seed: int, folder: str) -> list[str | None]:  # fmt: skip
     """In a revision's process: each piece's records of ``settings.only`` (of ``stream``)
-    verified, and the action distribution of the verified ones under their own code."""
+    verified, and the action distribution of the verified ones under their own code; each
+    piece's ``Logged`` pickled to a file in ``folder`` (None: the piece has none of them), so
+    that the caller holds one piece's at a time."""
     only = settings.only or frozenset()
     codes = frozenset(code for _, code in only)
-    out = []
-    for task in tasks:
+    out: list[str | None] = []
+    for i, task in enumerate(tasks):
         rows, draws = task.read(codes=codes)  # the other versions' records are not read
         mine = [r for r in rows if str(r[DEC.stream]) == stream
                 and (r[DEC.fn], r[DEC.code_hash]) in only]  # fmt: skip
+        if not mine:
+            out.append(None)
+            continue
         ids = {r[DEC.decision_id] for r in mine}
         its = [d for d in draws if d[DRAW.decision_id] in ids]
         checked = verify_chunk(mine, its, flagged & ids, settings)
-        out.append(Logged(checked, _dists(checked, mine, settings, seed)))
+        file = os.path.join(folder, f"{uuid.uuid4().hex}-{i}.pickle")
+        with open(file, "wb") as f:
+            pickle.dump(Logged(checked, _dists(checked, mine, settings, seed)), f)
+        out.append(file)
     return out
+
+
+def load_logged(files: Sequence[str]) -> Logged | None:
+    """A piece's records of other versions, from the files of each revision (None: none)."""
+    if not files:
+        return None
+    checked = ChunkResult()
+    dists: dict[str, Dist] = {}
+    for file in files:
+        with open(file, "rb") as f:
+            part: Logged = pickle.load(f)
+        checked.add(part.checked)
+        dists.update(part.dists)
+    return Logged(checked, dists)
 
 
 def _dists(checked: ChunkResult, rows: Sequence[tuple[object, ...]], settings: Settings,
@@ -79,21 +104,20 @@ def _dists(checked: ChunkResult, rows: Sequence[tuple[object, ...]], settings: S
     return dict(zip(ids, found, strict=True))
 
 
-def logged_elsewhere(plan: VersionPlan, tasks: Sequence[Task], stream: str, flagged: frozenset[str],
-                     seed: int) -> tuple[list[Logged | None], set[tuple[str, str]]]:  # fmt: skip
-    """Per task, its records of the versions found in the history, replayed under their own
-    version (None: the piece has none); and the (function, identity) pairs whose tree could
-    not be extracted (the estimate's pieces replay them, as ``version-not-found``)."""
+def logged_elsewhere(plan: VersionPlan, tasks: Sequence[Task], stream: str,
+                     flagged: frozenset[str], seed: int,
+                     folder: str) -> tuple[list[list[str]], set[tuple[str, str]]]:  # fmt: skip
+    """Per task, the files holding its records of the versions found in the history, replayed
+    under their own version (``load_logged`` reads them); and the (function, identity) pairs
+    whose tree could not be extracted (the estimate's pieces replay them, as
+    ``version-not-found``)."""
     if not plan.revisions:
-        return [None] * len(tasks), set()
-    results, leftover = in_revisions(plan, logged_pieces, list(tasks), stream, flagged, seed)
-    per_task: list[Logged | None] = []
-    for i in range(len(tasks)):
-        parts = [r[i] for r in results]
-        checked = ChunkResult()
-        dists: dict[str, Dist] = {}
-        for part in parts:
-            checked.add(part.checked)
-            dists.update(part.dists)
-        per_task.append(Logged(checked, dists) if checked.streams else None)
+        return [[] for _ in tasks], set()
+    results, leftover = in_revisions(plan, logged_pieces, list(tasks), stream, flagged, seed,
+                                     folder)  # fmt: skip
+    per_task: list[list[str]] = [[] for _ in tasks]
+    for files in results:
+        for mine, file in zip(per_task, files, strict=True):
+            if file is not None:
+                mine.append(file)
     return per_task, leftover

@@ -4,13 +4,14 @@ stages sent to it."""
 from __future__ import annotations
 
 import os
+import tempfile
 from collections.abc import Callable, Sequence
 from dataclasses import replace
 from typing import Any, TypeVar
 
 from drawledger.exceptions import ReplayError
 from drawledger.replay.engines import Engine
-from drawledger.replay.estimate._elsewhere import Logged, logged_elsewhere
+from drawledger.replay.estimate._elsewhere import load_logged, logged_elsewhere
 from drawledger.replay.estimate._piece import Facts, Job, PieceData, evaluate_piece
 from drawledger.replay.estimate._refuse import Failures, check_stream, integrity_verdict
 from drawledger.replay.estimate._rewards import Rewards, read_rewards
@@ -22,12 +23,13 @@ from drawledger.replay.verify import VersionPlan
 T = TypeVar("T")
 
 
-def _evaluate(item: tuple[Task, Logged | None], flagged: frozenset[str], job: Job,
+def _evaluate(item: tuple[Task, list[str]], flagged: frozenset[str], job: Job,
               rewards: Rewards) -> PieceData:  # fmt: skip
-    """Stage 1 of one chunk: its records replayed and re-run under every policy."""
+    """Stage 1 of one chunk: its records replayed and re-run under every policy (with its
+    records of other code versions, replayed under their own in the files ``item`` names)."""
     task, logged = item
     rows, draws = task.read()
-    return evaluate_piece(rows, draws, flagged, job, rewards, logged)
+    return evaluate_piece(rows, draws, flagged, job, rewards, load_logged(logged))
 
 
 def _facts(data: PieceData) -> Facts:
@@ -43,7 +45,7 @@ class EngineRunner:
     keeps it between the stages (a file, a Dask worker), so this process holds a chunk's
     data at most, and the later stages of a chunk run where its data is."""
 
-    def __init__(self, engine: Engine, tasks: Sequence[tuple[Task, Logged | None]],
+    def __init__(self, engine: Engine, tasks: Sequence[tuple[Task, list[str]]],
                  flagged: frozenset[str], rewards: Any) -> None:  # fmt: skip
         self.engine = engine
         self.tasks = tasks
@@ -80,11 +82,6 @@ def estimate_on(
     report = checking.result()
     integrity = integrity_verdict(report, accept_integrity)
     flagged = frozenset(report.decision_ids)
-    logged, leftover = logged_elsewhere(versions, tasks, job.stream, flagged, job.seed)
-    if leftover:
-        here = replace(job.settings, elsewhere=job.settings.elsewhere - leftover)
-        job = replace(job, settings=here)
-    runner = EngineRunner(engine, list(zip(tasks, logged, strict=True)), flagged, rewards)
 
     def names() -> list[str]:
         return engine.submit(stream_outcome_names, ledger, format, job.stream,
@@ -93,5 +90,12 @@ def estimate_on(
     def check(facts: Sequence[Facts]) -> Failures:
         return check_stream(facts, job.reward, job.stream, names)
 
-    return run_pass(runner, job, cap=cap, bootstrap=bootstrap, weights=weights, check=check,
-                    integrity=integrity)  # fmt: skip
+    with tempfile.TemporaryDirectory(prefix="drawledger-versions-") as folder:
+        logged, leftover = logged_elsewhere(versions, tasks, job.stream, flagged, job.seed,
+                                            folder)  # fmt: skip
+        if leftover:
+            here = replace(job.settings, elsewhere=job.settings.elsewhere - leftover)
+            job = replace(job, settings=here)
+        runner = EngineRunner(engine, list(zip(tasks, logged, strict=True)), flagged, rewards)
+        return run_pass(runner, job, cap=cap, bootstrap=bootstrap, weights=weights,
+                        check=check, integrity=integrity)  # fmt: skip
