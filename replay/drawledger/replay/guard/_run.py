@@ -204,6 +204,7 @@ def guard(
                 break
     finally:
         follower.close()
+        settings.versions.server.close()
         if served is not None:
             served.close()
     return GuardReport(current, float(alpha), new, *lag)

@@ -18,6 +18,7 @@ from drawledger._schema import DEC
 from drawledger.replay.propensity import Memo
 from drawledger.replay.verify import (
     ChunkResult,
+    RevisionServer,
     Settings,
     VersionPlan,
     current_identities,
@@ -43,6 +44,7 @@ class Versions:
 
     current: dict[str, Any] = field(default_factory=dict)
     plans: dict[frozenset[tuple[str, str]], VersionPlan] = field(default_factory=dict)
+    server: RevisionServer = field(default_factory=RevisionServer)  # kept for the whole run
 
     def plan(self, rows: Sequence[Row], settings: Settings) -> VersionPlan:
         pairs = frozenset((r[DEC.fn], r[DEC.code_hash]) for r in rows
@@ -69,7 +71,8 @@ class Versions:
         checked = verify_chunk(rows, draws, flagged, plan.settings, memo)
         if not plan.revisions:
             return checked
-        results, leftover = in_revisions(plan, _replay, list(rows), list(draws), flagged)
+        results, leftover = in_revisions(plan, _replay, list(rows), list(draws), flagged,
+                                         server=self.server)  # fmt: skip
         for part in results:
             checked.add(part)
         if leftover:  # a tree that could not be extracted: here, where it is code-changed

@@ -21,6 +21,7 @@ from drawledger.replay.verify._types import (
     absolute_paths,
 )
 from drawledger.replay.verify._versioned import (
+    RevisionServer,
     VersionPlan,
     current_identities,
     in_revisions,
@@ -43,6 +44,7 @@ __all__ = [
     "ChunkResult",
     "CodeVersion",
     "DecisionView",
+    "RevisionServer",
     "Settings",
     "VerifyReport",
     "VersionPlan",

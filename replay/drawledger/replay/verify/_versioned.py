@@ -17,6 +17,7 @@ import sys
 import tempfile
 from collections.abc import Callable, Iterable
 from collections.abc import Set as AbstractSet
+from contextlib import nullcontext
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, TypeVar
@@ -185,16 +186,17 @@ def replay_revisions(plan_: VersionPlan, ledger: str | os.PathLike[str], format:
 
 
 def in_revisions(
-    plan_: VersionPlan, work: Callable[..., T], *args: Any
+    plan_: VersionPlan, work: Callable[..., T], *args: Any, server: RevisionServer | None = None
 ) -> tuple[list[T], set[Pair]]:
     """``work(settings, *args)`` for each revision of the plan, in a fresh process on a
     temporary copy of its tree, with ``settings`` replaying only that revision's versions (the
     ``--path`` directories moved into the tree). ``work`` is a module-level function; its
-    arguments and result are pickled. Returns the results and the (function, identity) pairs
-    of the revisions whose tree could not be extracted."""
+    arguments and result are pickled. ``server`` starts the processes (default: a server of
+    this call's own; a caller that comes back often keeps one). Returns the results and the
+    (function, identity) pairs of the revisions whose tree could not be extracted."""
     results: list[T] = []
     leftover: set[Pair] = set()
-    with _Processes() as processes:
+    with nullcontext(server) if server is not None else RevisionServer() as processes:
         for revision in plan_.revisions:
             made = revision.tree()
             if made is None:
@@ -210,7 +212,7 @@ def in_revisions(
     return results, leftover
 
 
-class _Processes:
+class RevisionServer:
     """Processes that share nothing with this one, one per code version: a server process
     started as a new interpreter imports this module once, then forks a process per version
     (so each starts in milliseconds instead of importing everything again). Nothing of this
@@ -221,12 +223,17 @@ class _Processes:
     def __init__(self) -> None:
         self.server: subprocess.Popen[bytes] | None = None
 
-    def __enter__(self) -> _Processes:
+    def __enter__(self) -> RevisionServer:
         return self
 
     def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        """Stop the server process, if one runs."""
         if self.server is not None:
             self._stop(self.server)
+            self.server = None
 
     @staticmethod
     def _stop(server: subprocess.Popen[bytes]) -> None:
@@ -267,7 +274,7 @@ class _Processes:
 
 
 def serve() -> None:
-    """The server of ``_Processes``: requests on stdin, a status line per request on stdout."""
+    """The server of ``RevisionServer``: requests on stdin, a status line per request on stdout."""
     requests, replies = sys.stdin.buffer, sys.stdout.buffer
     fork = getattr(os, "fork", None)
     while head := requests.read(8):
