@@ -103,6 +103,47 @@ def test_a_deploy_while_the_guard_runs_raises_no_alarm(tmp_path: Path) -> None:
                             report.state.alarms)  # fmt: skip
 
 
+SCALED = """import drawledger as dl
+
+ledger = dl.Ledger({db!r})
+SCALE = {scale}  # outside the function: not part of its code identity
+
+
+@ledger.decision("recipe-card")
+def feature_card(scores: list[float], draw: dl.Draw) -> str:
+    return draw.softmax(["pasta", "curry", "tacos"], [s * SCALE for s in scores], name="card")
+
+
+def serve(start: int) -> None:
+    for i in range(start, start + 300):
+        feature_card([1.0, 2.0, 0.5 + i % 3], decision_id=f"card-{{i}}")
+    ledger.close()
+"""
+
+
+def test_a_code_change_without_a_new_version_alarms_at_its_first_decision(
+    tmp_path: Path,
+) -> None:
+    """A module constant the decision uses changes while the guard runs (its identity does
+    not): the first decision logged by the changed code is the alarm's first affected one."""
+    db, code = tmp_path / "cards.db", tmp_path / "code"
+    code.mkdir()
+    name = f"scaled_{os.getpid()}_{time.time_ns()}"
+
+    def serve(scale: float, start: int) -> None:
+        (code / f"{name}.py").write_text(SCALED.format(db=str(db), scale=scale))
+        subprocess.run([sys.executable, "-c", f"import {name}; {name}.serve({start})"], cwd=code,
+                       check=True)  # fmt: skip
+
+    serve(1.0, 0)
+    report = guard(db, path=[code], steps=2, sleep=lambda _: serve(2.0, 300))
+    sys.modules.pop(name, None)
+    alarms = [a for a in report.state.alarms if a["test"].startswith("verify:")]
+    first = sorted(int(a["decision"].removeprefix("card-")) for a in alarms)
+    assert 300 == first[0]  # every reason's first affected decision is a changed one
+    assert 300 == report.state.verify["verified"]
+
+
 def test_taking_in_a_growing_ledger_piece_by_piece_equals_one_pass(tmp_path: Path) -> None:
     """Three looks while the ledger grows give the statistics of one look at the whole."""
     db, state = tmp_path / "shop.db", tmp_path / "state.json"
