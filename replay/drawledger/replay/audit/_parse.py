@@ -11,7 +11,6 @@ import numpy as np
 import numpy.typing as npt
 import orjson
 import pandas as pd
-from scipy import special
 
 from drawledger.draw import lognormal_pdf, normal_pdf
 from drawledger.replay.audit import _stats
@@ -304,6 +303,8 @@ def _parse_continuous(
     computed again with the SDK's own formula (``math`` and numpy may differ in the last bit
     of a logarithm, which matters for tiny sigma).
     """
+    from scipy import special
+
     names = {"uniform": ("low", "high"), "normal": ("mean", "sd"), "lognormal": ("mu", "sigma")}
     first, second = names[kind]
     codes, uniq = pd.factorize(args, use_na_sentinel=False)

@@ -10,7 +10,6 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import numpy.typing as npt
 import pandas as pd
-from scipy import sparse
 
 from drawledger.replay._keys import id_keys
 from drawledger.replay.audit import _stats
@@ -80,6 +79,8 @@ def _cells(
     outer: bool = True,
 ) -> Cells:
     """The cells of the picks; ``outer=False`` leaves ``outer`` empty (counts only)."""
+    from scipy import sparse
+
     k = len(keys)
     if outer:
         m = sparse.csr_matrix((p, (step, key)), shape=(len(chosen), k))

@@ -10,7 +10,6 @@ from typing import NamedTuple
 
 import numpy as np
 import numpy.typing as npt
-from scipy import stats
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -50,6 +49,8 @@ def binned_uniformity(counts: npt.NDArray[np.int64]) -> TestResult | None:
     Uses the finest binning (20, 10, 5, 4 or 2 bins) whose expected count per bin is at least
     MIN_EXPECTED.
     """
+    from scipy import stats
+
     n = int(counts.sum())
     for bins in _COARSER:
         if n / bins >= MIN_EXPECTED:
@@ -88,6 +89,8 @@ def grouping_matrix(groups: list[list[int]], cells: int) -> FloatArray:
 
 def pearson(observed: FloatArray, expected: FloatArray) -> TestResult:
     """Pearson chi-square goodness of fit (scipy.stats.chisquare), df = cells - 1."""
+    from scipy import stats
+
     res = stats.chisquare(observed, expected)
     return TestResult(float(res.statistic), float(res.pvalue), len(observed) - 1)
 
@@ -99,6 +102,8 @@ def quadratic_chisq(diff: FloatArray, cov: FloatArray) -> TestResult | None:
     and cov = sum_i (diag(p_i) - p_i p_i'), whose diagonal holds the Poisson-binomial variances
     sum_i p_ij (1 - p_ij). With the same p for every pick this is exactly Pearson's statistic.
     """
+    from scipy import stats
+
     values, vectors = np.linalg.eigh(cov)
     keep = values > 1e-9 * max(float(values.max(initial=0.0)), 1e-300)
     df = int(keep.sum())
@@ -129,6 +134,8 @@ def repeats(values: int, distinct: int, cells: float) -> TestResult:
     of coinciding pairs is approximately Poisson with mean C(values, 2) / cells (the birthday
     problem); the p-value is the Poisson upper tail at the observed number of repeats.
     """
+    from scipy import stats
+
     r = values - distinct
     lam = values * (values - 1) / 2.0 / cells
     p = 1.0 if r <= 0 else float(stats.poisson.sf(r - 1, lam))
@@ -169,12 +176,16 @@ def _decimal(u: FloatArray, scale: float) -> bool:
 
 def spearman(x: FloatArray, y: FloatArray) -> TestResult:
     """Spearman's rank correlation and its two-sided p-value (scipy.stats.spearmanr)."""
+    from scipy import stats
+
     res = stats.spearmanr(x, y)
     return TestResult(float(res.statistic), float(res.pvalue))
 
 
 def ks_uniform(values: FloatArray) -> TestResult:
     """Kolmogorov-Smirnov test against U(0, 1) (scipy.stats.kstest)."""
+    from scipy import stats
+
     res = stats.kstest(values, "uniform")
     return TestResult(float(res.statistic), float(res.pvalue))
 

@@ -8,7 +8,6 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from drawledger.replay.audit import _stats
 from drawledger.replay.audit._limits import (
@@ -162,6 +161,8 @@ def _ratio(cells: Cells, fixed: bool) -> tuple[TestResult | None, str]:
 
 def _by_hour(hist: IntArray) -> tuple[TestResult | None, int]:
     """PIT values against U(0, 1) within each hour of the day: sum of Pearson chi-squares."""
+    from scipy import stats
+
     per_hour = _stats.coarsen(hist, HOUR_BINS)
     n_h = per_hour.sum(axis=1)
     used = per_hour[n_h / HOUR_BINS >= _stats.MIN_EXPECTED]

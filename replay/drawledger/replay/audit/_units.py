@@ -32,7 +32,6 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import numpy.typing as npt
 import pandas as pd
-from scipy import sparse, stats
 
 from drawledger._probability import integers_args, option_probabilities
 from drawledger.exceptions import DrawArgumentError
@@ -159,6 +158,8 @@ def unit_pairs(
 ) -> UnitPairs | None:  # fmt: skip
     """The pairs of one chunk of one draw; ``keep`` marks its consistent steps, ``unit_keys``
     the hash of each row's unit. None for kinds without one pick per draw."""
+    from scipy import sparse
+
     if kind not in PAIRED_KINDS or parsed.keys is None or parsed.chosen is None:
         return None
     assert parsed.flat_step is not None and parsed.flat_key is not None
@@ -215,6 +216,8 @@ def unit_pairs(
 def sticky_test(u: UnitPairs) -> TestResult | None:
     """One-sided z test of more repeated picks than declared; None below MIN_EXPECTED
     expected repeats or non-repeats (the normal approximation needs both; common practice)."""
+    from scipy import stats
+
     if u.expected < MIN_EXPECTED or u.pairs - u.expected < MIN_EXPECTED or u.variance <= 0.0:
         return None
     z = (u.matches - u.expected) / math.sqrt(u.variance)

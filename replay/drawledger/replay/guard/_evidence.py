@@ -16,7 +16,6 @@ from collections.abc import Sequence
 
 import numpy as np
 import numpy.typing as npt
-from scipy import special, stats
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -64,6 +63,8 @@ def log_mixture_e(
     size. Cells declared impossible must have no count (the caller checks it: a pick of an
     impossible option is a consistency failure, not evidence).
     """
+    from scipy import special
+
     n = np.asarray(counts, dtype=np.float64)
     p0 = np.asarray(declared, dtype=np.float64)
     live = p0 > 0.0
@@ -99,6 +100,8 @@ def window_test(counts: Sequence[float], declared: Sequence[float]) -> float | N
     A fixed-n test on the last decisions: information about drift, not an anytime-valid alarm
     (looked at after every piece, its false-alarm rate is far above its level).
     """
+    from scipy import stats
+
     n = np.asarray(counts, dtype=np.float64)
     p0 = np.asarray(declared, dtype=np.float64)
     live = p0 > 0.0
