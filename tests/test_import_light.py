@@ -45,8 +45,8 @@ def test_serving_side_imports_no_analysis_stack(tmp_path: Path) -> None:
 def test_the_analysis_side_imports_scipy_and_matplotlib_only_when_used() -> None:
     """``import drawledger.replay`` (every command, and each process that replays another code
     version) loads neither SciPy nor matplotlib: the statistics and figures import them."""
-    code = ("import sys, drawledger.replay; "
-            "print(sorted({m.split('.')[0] for m in sys.modules} & {'scipy', 'matplotlib'}))")  # fmt: skip
+    code = ("import sys, drawledger.replay; print(sorted({m.split('.')[0] for m in sys.modules}"
+            " & {'scipy', 'matplotlib'}))")  # fmt: skip
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                           timeout=120)  # fmt: skip
     assert 0 == done.returncode, done.stderr
