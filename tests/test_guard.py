@@ -459,7 +459,8 @@ def test_growing_ledgers_watched_by_the_guard_keep_alpha(tmp_path: Path) -> None
     """100 real ledgers x 200 batches of 25, correct randomization, the guard resuming from
     its state file after each batch: the share of ledgers with any alarm stays within the
     binomial tolerance of alpha = 0.01 (scipy.stats.binom, 99th percentile); the chi-square
-    re-run after every batch alarms on more of them (about 20 minutes on a shared machine; the simulated watches of tests/test_guard_evidence.py run 1000 x 200)."""
+    re-run after every batch alarms on more of them (about 20 minutes on a shared machine;
+    the simulated watches of tests/test_guard_evidence.py run 1000 x 200)."""
     from scipy import stats
 
     delays, fixed = _grow_and_watch(100, 200, 25, None, tmp_path)
