@@ -38,6 +38,9 @@ _EXTRAS = {
     "dask": "dask", "distributed": "dask", "prometheus_client": "guard",
 }  # fmt: skip
 
+# Commands whose statistics need SciPy: checked before any work starts.
+_STATISTICS = frozenset({"audit", "guard", "report", "demo"})
+
 _EXTRA_NAMES = {
     "replay": "the analysis extras",
     "dask": "the Dask extras",
@@ -482,6 +485,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         if getattr(args, "engine", "local") == "dask":
             import dask  # noqa: F401  (missing: the one line below, before any work starts)
             import distributed  # noqa: F401
+        if args.command in _STATISTICS:
+            import scipy  # noqa: F401  (the analysis side imports it where it is used)
         _check_outputs(args)
         return run_quietly(handler, args)
     except KeyboardInterrupt:
