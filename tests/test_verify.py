@@ -30,7 +30,7 @@ from drawledger.exceptions import LedgerError, ReplayError
 from drawledger.ledger import REGISTRY
 from drawledger.replay import verify
 from drawledger.replay.verify import Settings, verify_chunk
-from drawledger.replay.verify._decision import _Checked, _compare_draws
+from drawledger.replay.verify._decision import Checked, _compare_draws
 from drawledger.replay.verify._diff import first_difference, mismatch, same, version_detail
 
 SERVICE = """
@@ -327,10 +327,10 @@ def test_mismatch_of_long_text_is_cut_around_the_difference_for_the_terminal() -
 
 def test_a_deleted_draw_and_a_renamed_draw_are_worded_like_every_mismatch() -> None:
     replayed = [("bernoulli", "coin", "{}", "[0.5]", "true", 0.5, False)]
-    checked = _Checked()
+    checked = Checked()
     _compare_draws(checked, replayed, [])
     assert "draws 1 replayed, 0 recorded" == checked.reasons["draw-count"]
-    checked = _Checked()
+    checked = Checked()
     _compare_draws(
         checked, replayed, [("d", 0, "toss", "bernoulli", "{}", "[0.5]", "true", 0.5, 0)]
     )

@@ -192,3 +192,16 @@ def test_stored_source_is_never_run_without_the_integrity_key(tmp_path: Path) ->
         verify(shop.ledger, path=[shop.repo], run_stored_source=True)
     assert 2 == main(["verify", str(shop.ledger), "--path", str(shop.repo),
                       "--run-stored-source"])  # fmt: skip
+
+
+def test_show_replays_a_decision_under_the_version_that_logged_it(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    shop, ids = _three_deploys(tmp_path, 5)
+    with sqlite3.connect(shop.ledger) as conn:
+        (first,) = conn.execute("SELECT decision_id FROM decisions WHERE code_hash = ? LIMIT 1",
+                                (ids[0],)).fetchone()  # fmt: skip
+    assert 0 == main(["show", str(shop.ledger), first, "--path", str(shop.repo)])
+    assert "replayed under the code version of git" in capsys.readouterr().out
+    assert 1 == main(["show", str(shop.ledger), first, "--path", str(shop.repo), "--no-history"])
+    assert "version-not-found" in capsys.readouterr().out

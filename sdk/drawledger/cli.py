@@ -149,7 +149,8 @@ def _show(args: argparse.Namespace) -> int:
     from drawledger.replay import verify_one
 
     view = verify_one(args.ledger, args.decision_id, path=args.path, allow=args.allow,
-                      integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None)  # fmt: skip
+                      integrity_key=os.environ.get("DRAWLEDGER_INTEGRITY_KEY") or None,
+                      history=not args.no_history)  # fmt: skip
     if args.json:
         _write_json(args.json, view.to_dict())
     _console().print(view)
@@ -371,6 +372,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     p.add_argument("decision_id", metavar="DECISION_ID", help="the decision's id")
     _replay_options(p)
+    history_option(p)
     _json_option(p)
 
     p = add("audit", "test statistically that randomization happened as declared",

@@ -114,7 +114,7 @@ def _logged(encoded: Sequence[tuple[Any, ...]], action_json: str) -> tuple[float
     return decision_propensity(encoded, single, itemgetter(5))
 
 
-class _Checked:
+class Checked:
     """Reasons found for one decision, with the first detail of each."""
 
     __slots__ = ("action", "inputs", "propensity", "reasons", "replayed", "short")
@@ -222,7 +222,7 @@ def _draw_rows(rows: list[Row]) -> list[Row]:
     return rows
 
 
-def _compare_draws(out: _Checked, replayed: list[tuple[Any, ...]], recorded: list[Row]) -> None:
+def _compare_draws(out: Checked, replayed: list[tuple[Any, ...]], recorded: list[Row]) -> None:
     if len(replayed) != len(recorded):
         out.differ("draw-count", "draws", len(replayed), len(recorded))
     for (kind, name, args, u, value, prob, dens), d in zip(replayed, recorded, strict=False):
@@ -247,7 +247,7 @@ def _compare_draws(out: _Checked, replayed: list[tuple[Any, ...]], recorded: lis
             out.differ("probability", f"{where}: {what}", prob, r_prob)
 
 
-def _check_python(out: _Checked, row: Row, draws: list[Row], ctx: Context) -> None:
+def _check_python(out: Checked, row: Row, draws: list[Row], ctx: Context) -> None:
     raw = parse_object(row[DEC.inputs], "inputs")
     out.inputs = raw
     decision = ctx.resolve(row[DEC.fn])
@@ -371,7 +371,7 @@ def _arm(text: Any, what: str) -> str:
     return value if isinstance(value, str) else to_json(value, what)
 
 
-def _check_bucket(out: _Checked, row: Row, draw: Row, unit: str, shares: dict[str, Any],
+def _check_bucket(out: Checked, row: Row, draw: Row, unit: str, shares: dict[str, Any],
                   salt: str) -> None:  # fmt: skip
     """Hashed assignment has no seed: recompute the arm, its uniform and its share."""
     recorded_u = _parse(draw[DRAW.u], "bucket uniforms")
@@ -401,7 +401,7 @@ def _check_bucket(out: _Checked, row: Row, draw: Row, unit: str, shares: dict[st
     out.propensity = Propensity(prob, EXACT)
 
 
-def _check_other(out: _Checked, row: Row, draws: list[Row]) -> None:
+def _check_other(out: Checked, row: Row, draws: list[Row]) -> None:
     """A decision without a function: a hashed bucket assignment or a declared draw."""
     if len(draws) == 1 and draws[0][DRAW.kind] == "bucket":
         args = _bucket_args(draws[0])
@@ -412,9 +412,9 @@ def _check_other(out: _Checked, row: Row, draws: list[Row]) -> None:
     out.add("declared", f"declared {kind} draw: audited, not replayed")
 
 
-def check_decision(row: Row, draws: list[Row], ctx: Context, flagged: bool) -> _Checked:
+def check_decision(row: Row, draws: list[Row], ctx: Context, flagged: bool) -> Checked:
     """Every reason one decision is not verified (none: verified)."""
-    out = _Checked()
+    out = Checked()
     if flagged:
         out.add("integrity", "part of an integrity problem (see integrity)")
     damaged = row_problem(DECISIONS, row)

@@ -19,9 +19,10 @@ from drawledger._schema import DEC, DRAW, OUT
 from drawledger.exceptions import ReplayError
 from drawledger.replay._terminal import plain_text, shown
 from drawledger.replay.propensity import DEFAULT_BUDGET, DEFAULT_MC_SAMPLES
-from drawledger.replay.sources import read_decision
-from drawledger.replay.verify._decision import Context, check_decision
+from drawledger.replay.sources import read_code_versions, read_decision
+from drawledger.replay.verify._decision import Checked, Context, check_decision
 from drawledger.replay.verify._types import NOT_FAILING, UNREPLAYABLE, Settings
+from drawledger.replay.verify._versioned import current_identities, in_revisions, plan_pairs
 
 if TYPE_CHECKING:
     from rich.console import Console, ConsoleOptions, RenderResult
@@ -214,18 +215,23 @@ def verify_one(
     budget: int = DEFAULT_BUDGET,
     mc_samples: int = DEFAULT_MC_SAMPLES,
     integrity_key: bytes | str | None = None,
+    history: bool = True,
 ) -> DecisionView:
     """One decision of ``ledger`` in full, replayed as ``verify`` replays it (importing decision
-    code only from ``path`` and ``allow``), with the hashes of its records checked
-    (``integrity_key``: the key the ledger was written with, if any). ``ReplayError`` when
-    the ledger has no decision ``decision_id``."""
+    code only from ``path`` and ``allow``; a decision of another code version under the git
+    revision that holds it, unless ``history`` is False), with the hashes of its records
+    checked (``integrity_key``: the key the ledger was written with, if any). ``ReplayError``
+    when the ledger has no decision ``decision_id``."""
     rows = read_decision(ledger, decision_id, format=format)
     if not rows.decisions:
         raise ReplayError(f"no decision {decision_id!r} in the ledger")
     row = rows.decisions[0]
     copies = len(rows.decisions)
+    stored = {r[0]: r[4] for r in read_code_versions(ledger, format=format)
+              if isinstance(r[0], str) and isinstance(r[4], str)}  # fmt: skip
     settings = Settings(path=tuple(os.fspath(p) for p in path), allow=tuple(allow),
-                        budget=budget, mc_samples=mc_samples, keep_rows=False)  # fmt: skip
+                        budget=budget, mc_samples=mc_samples, keep_rows=False,
+                        sources=tuple(sorted(stored.items())))  # fmt: skip
     key = integrity_key.encode() if isinstance(integrity_key, str) else (integrity_key or b"")
     notes = []
     if copies > 1:
@@ -240,7 +246,8 @@ def verify_one(
                      "content")  # fmt: skip
     notes.append("links between records (gaps, broken links) are not checked here: "
                  "drawledger verify checks them")  # fmt: skip
-    checked = check_decision(row, list(rows.draws), Context(settings), flagged=len(notes) > 1)
+    checked = _under_its_version(row, list(rows.draws), settings, len(notes) > 1, history,
+                                 notes)  # fmt: skip
     prop = checked.propensity
     return DecisionView(
         decision_id=decision_id,
@@ -256,3 +263,27 @@ def verify_one(
         copies=copies,
         notes=notes,
     )  # fmt: skip
+
+
+def _under_its_version(row: tuple[Any, ...], draws: list[tuple[Any, ...]], settings: Settings,
+                       flagged: bool, history: bool, notes: list[str]) -> Checked:  # fmt: skip
+    """The decision checked as ``verify`` checks it: under the git revision that holds its
+    code version when that is not the current one (a note says so), else here."""
+    pair = (row[DEC.fn], row[DEC.code_hash])
+    if history and isinstance(pair[0], str) and isinstance(pair[1], str):
+        plan = plan_pairs({pair}, settings, current_identities({pair[0]}, settings.path))
+        if plan.revisions:
+            results, _ = in_revisions(plan, _checked_elsewhere, row, draws, flagged)
+            if results:
+                notes.append(f"replayed under {plan.revisions[0].label}")
+                return results[0]
+    return check_decision(row, draws, Context(settings), flagged)
+
+
+def _checked_elsewhere(settings: Settings, row: tuple[Any, ...], draws: list[tuple[Any, ...]],
+                       flagged: bool) -> Checked:  # fmt: skip
+    """In a code version's process: the decision checked; its inputs (objects of that version's
+    types) stay there."""
+    checked = check_decision(row, draws, Context(settings), flagged)
+    checked.inputs = {}
+    return checked
