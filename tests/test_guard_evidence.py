@@ -161,3 +161,17 @@ def test_the_window_test_reports_drift_in_recent_counts() -> None:
         stats.chisquare([550, 450], [500, 500]).pvalue  # reference: scipy.stats.chisquare
     )
     assert window_test([3, 1], [0.5, 0.5]) is None  # expected counts below 5
+
+
+@given(
+    st.lists(st.integers(20, 400), min_size=2, max_size=8),
+    st.lists(st.floats(0.05, 1.0), min_size=8, max_size=8),
+)
+def test_the_window_test_is_pearsons_chi_square(counts: list[int], weights: list[float]) -> None:
+    shares = np.array(weights[: len(counts)]) / sum(weights[: len(counts)])
+    expected = sum(counts) * shares
+    got = window_test(counts, list(shares))
+    if expected.min() < 5.0:
+        assert got is None
+    else:  # reference: scipy.stats.chisquare with the same expected counts
+        assert stats.chisquare(counts, expected).pvalue == pytest.approx(got, rel=1e-9, abs=1e-300)

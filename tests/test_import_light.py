@@ -51,3 +51,37 @@ def test_the_analysis_side_imports_scipy_and_matplotlib_only_when_used() -> None
                           timeout=120)  # fmt: skip
     assert 0 == done.returncode, done.stderr
     assert "[]" == done.stdout.strip()
+
+
+GUARD = """
+import contextlib, io, sys
+import drawledger as dl
+from drawledger.cli import main
+
+ledger = dl.Ledger(sys.argv[1])
+
+
+@ledger.decision("coin")
+def flip(draw: dl.Draw) -> str:
+    return draw.categorical(["heads", "tails"], [0.5, 0.5])
+
+
+for _ in range(400):
+    flip()
+ledger.close()
+with contextlib.redirect_stdout(io.StringIO()) as shown:
+    code = main(["guard", sys.argv[1], "--path", sys.argv[2], "--once"])
+assert code == 0 and "coin" in shown.getvalue(), (code, shown.getvalue())
+print(sorted(m for m in sys.modules if m in ("scipy.stats", "scipy.sparse")))
+"""
+
+
+def test_a_once_guard_loads_neither_scipy_stats_nor_scipy_sparse(tmp_path: Path) -> None:
+    """``drawledger guard --once`` (cron-style, a fresh interpreter per look) reads its tails
+    from scipy.special: scipy.stats and scipy.sparse would add about a second to every look."""
+    script = tmp_path / "guard.py"
+    script.write_text(GUARD, encoding="utf-8")
+    done = subprocess.run([sys.executable, str(script), str(tmp_path / "coin.db"), str(tmp_path)],
+                          capture_output=True, text=True, timeout=120)  # fmt: skip
+    assert 0 == done.returncode, done.stderr
+    assert "[]" == done.stdout.strip().splitlines()[-1]

@@ -13,11 +13,15 @@ a pydantic input), recorded through the SDK into SQLite. Reported, on one core e
   the ratio guard / write (1 or above: the guard keeps up with the SDK on one core). Both are
   the best of ``ROUNDS`` rounds, taken in turn, so that a busy shared machine moves both alike;
 - peak memory (``VmHWM`` of a fresh process; Linux) of the guard on two ledger sizes, to show
-  that it does not grow with the ledger.
+  that it does not grow with the ledger;
+- the start-up of a cron-style look: ``drawledger guard --once`` on a ledger of 50 decisions in
+  a fresh process, against ``python -c "import drawledger.replay.guard"`` (the import alone),
+  median of ``ROUNDS`` runs.
 """
 
 from __future__ import annotations
 
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -36,6 +40,8 @@ pytestmark = pytest.mark.benchmark
 N = 20_000
 ROUNDS = 3
 MEMORY_SIZES = (20_000, 80_000)
+
+CLI = "import sys; from drawledger.cli import main; sys.exit(main(sys.argv[1:]))"
 
 PEAK = """
 import sys
@@ -76,3 +82,18 @@ def test_guard_keeps_up_with_the_sdk() -> None:
             done = subprocess.run([sys.executable, "-c", PEAK, str(big), str(SUPPORT)],
                                   capture_output=True, text=True, check=True)  # fmt: skip
             print(f"guard peak memory, {n:,} decisions: {done.stdout.strip()} MiB")
+        small = Path(tmp) / "cards-50.db"
+        _record(small, 50)
+        look = [sys.executable, "-c", CLI, "guard", str(small), "--path", str(SUPPORT), "--once"]
+        imports = [sys.executable, "-c", "import drawledger.replay.guard"]
+        took = {"look": [], "import": []}
+        for _ in range(ROUNDS):
+            for name, command in (("look", look), ("import", imports)):
+                start = time.perf_counter()
+                subprocess.run(command, capture_output=True, check=True)
+                took[name].append(time.perf_counter() - start)
+        whole, alone = statistics.median(took["look"]), statistics.median(took["import"])
+        print(
+            f"guard --once on 50 decisions, fresh process: {whole:.2f} s; importing the guard "
+            f"alone: {alone:.2f} s ({alone / whole:.0%} of it)"
+        )

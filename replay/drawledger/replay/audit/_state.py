@@ -79,10 +79,10 @@ def _cells(
     outer: bool = True,
 ) -> Cells:
     """The cells of the picks; ``outer=False`` leaves ``outer`` empty (counts only)."""
-    from scipy import sparse
-
     k = len(keys)
     if outer:
+        from scipy import sparse
+
         m = sparse.csr_matrix((p, (step, key)), shape=(len(chosen), k))
         products = np.asarray((m.T @ m).todense())
     else:
