@@ -6,6 +6,7 @@ from __future__ import annotations
 import functools
 import json
 import random
+import re
 import sqlite3
 from pathlib import Path
 from types import ModuleType
@@ -18,7 +19,7 @@ from scipy.special import softmax
 
 from drawledger.cli import main
 from drawledger.exceptions import EstimateRefusedError
-from drawledger.replay import estimate, sweep
+from drawledger.replay import WhatIf, estimate, sweep, write_report
 
 BODY = '    return draw.softmax(cards, ctx["scores"], temperature=temperature, name="card")'
 COMMENTED = "    # evening shoppers see the same ranking\n" + BODY
@@ -134,6 +135,35 @@ def test_a_sweep_over_the_current_code_uses_every_version(tmp_path: Path) -> Non
     report = sweep(shop.ledger, reward="checkout", param="temperature", values=[0.5, 0.7],
                    path=[shop.repo])  # fmt: skip
     assert (450, [300, 150]) == (report.n, [v["used"] for v in report.versions])
+
+
+def test_the_html_report_and_the_notebook_views_show_each_version(tmp_path: Path) -> None:
+    shop, ids = _deploys(tmp_path, 150)
+    one = estimate(shop.ledger, reward="checkout", overrides={"temperature": 0.9},
+                   path=[shop.repo])  # fmt: skip
+    swept = sweep(shop.ledger, reward="checkout", param="temperature", values=[0.5, 0.7],
+                  path=[shop.repo])  # fmt: skip
+    page = write_report(shop.ledger, tmp_path / "report.html", path=[shop.repo],
+                        whatifs=[WhatIf("warmer", one), WhatIf("temperatures", swept)]
+                        ).path.read_text()  # fmt: skip
+    assert 2 == page.count("<th>logged under</th>")  # one table per what-if
+    # identity, logged under, decisions, used: the first two deploys share one identity (a
+    # comment edit), replayed from their git revision
+    row = '<td>{}</td><td>{}</td><td class="num">{}</td><td class="num">{}</td>'
+    assert re.search(row.format(ids[0], "git [0-9a-f]{12}", 300, 300), page)
+    assert row.format(ids[2], "current code", 150, 150) in page
+    for view in (one._repr_html_(), swept._repr_html_()):
+        assert "code versions" in view and ids[0][:12] in view and "<td>300</td>" in view
+
+
+def test_one_version_shows_no_versions_table(tmp_path: Path) -> None:
+    shop = Shop(tmp_path, arg="ctx", arg_type="dict", cards=repr(CARDS))
+    shop.deploy(BODY, 150, "Feature a recipe card by softmax", _logger(SEEDS[0]))
+    one = estimate(shop.ledger, reward="checkout", overrides={"temperature": 0.9},
+                   path=[shop.repo])  # fmt: skip
+    page = write_report(shop.ledger, tmp_path / "report.html", path=[shop.repo],
+                        whatifs=[WhatIf("warmer", one)]).path.read_text()  # fmt: skip
+    assert ("logged under" not in page) and ("code versions" not in one._repr_html_())
 
 
 def test_a_checkout_of_an_earlier_version_makes_it_the_target(tmp_path: Path) -> None:

@@ -5,6 +5,7 @@ from drawledger.replay.estimate._report import (
     EstimateReport,
     SweepReport,
     interval_label,
+    other_versions,
 )
 from drawledger.replay.estimate._run import estimate, sweep
 
@@ -14,5 +15,6 @@ __all__ = [
     "SweepReport",
     "estimate",
     "interval_label",
+    "other_versions",
     "sweep",
 ]

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import html
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, fields
 from typing import TYPE_CHECKING, Any
 
@@ -73,6 +73,12 @@ def _policy_text(d: Mapping[str, Any]) -> str:
     return changed or "logging policy"
 
 
+def other_versions(versions: Sequence[Mapping[str, Any]]) -> bool:
+    """Whether some record of ``versions`` was logged by another code version than the
+    current code (then the output shows the versions)."""
+    return any(not str(v["logged_under"]).startswith("current code") for v in versions)
+
+
 def _versions_table(versions: list[dict[str, Any]]) -> list[Any]:
     """The code versions of the stream, when some record was logged by another version than
     the current code (none otherwise)."""
@@ -80,10 +86,9 @@ def _versions_table(versions: list[dict[str, Any]]) -> list[Any]:
     from rich.table import Table
     from rich.text import Text
 
-    if not any(not v["logged_under"].startswith("current code") for v in versions):
+    if not other_versions(versions):
         return []
-    t = Table(title="code versions (logging propensities from each record's own version)",
-              title_justify="left", box=SIMPLE)  # fmt: skip
+    t = Table(title=VERSIONS_TITLE, title_justify="left", box=SIMPLE)
     for name in ("function", "identity", "decisions", "used", "logged under"):
         t.add_column(name, justify="right" if name in ("decisions", "used") else "left",
                      overflow="fold")  # fmt: skip
@@ -219,7 +224,7 @@ class EstimateReport:
         head = ("estimator", "value", "low", "high", "outer low", "outer high",
                 f"difference vs {base}", "difference low", "difference high")  # fmt: skip
         table = html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
-        return _html_alerts(self.alerts) + table
+        return _html_alerts(self.alerts) + table + _html_versions(self.versions)
 
     def _tables(self) -> list[Any]:
         from rich.box import SIMPLE
@@ -297,6 +302,19 @@ def _filled(missing: Mapping[str, Any]) -> tuple[str, str] | None:
         return None
     return (f"records without the reward (counted as {missing['value']:g})",
             f"{missing['filled']} ({missing['share']:.1%})")  # fmt: skip
+
+
+VERSIONS_TITLE = "code versions (logging propensities from each record's own version)"
+
+
+def _html_versions(versions: list[dict[str, Any]]) -> str:
+    """The code versions as an HTML table, when some record was logged by another version."""
+    if not other_versions(versions):
+        return ""
+    rows = [(v["fn"], v["identity"], v["decisions"], v["used"], v["logged_under"])
+            for v in versions]  # fmt: skip
+    return html_table(VERSIONS_TITLE, ("function", "identity", "decisions", "used",
+                                       "logged under"), rows)  # fmt: skip
 
 
 def _html_alerts(lines: list[str]) -> str:
@@ -394,7 +412,7 @@ class SweepReport:
                 for p in self.points for name, e in p["estimates"].items()]  # fmt: skip
         head = (self.param, "estimator", "value", "low", "high", "ess")
         table = html_table(caption, head, rows, (f"warning: {w}" for w in self.warnings))
-        return _html_alerts(self.alerts) + table
+        return _html_alerts(self.alerts) + table + _html_versions(self.versions)
 
     def to_dict(self) -> dict[str, Any]:
         return {"alerts": self.alerts, "accepted_failures": self.accepted_failures,

@@ -27,6 +27,7 @@ from drawledger.replay.estimate._report import (
     INTERVALS,
     EstimateReport,
     SweepReport,
+    other_versions,
 )
 from drawledger.replay.estimate._rewards import choose_stream
 from drawledger.replay.estimate._runner import estimate_on
@@ -151,11 +152,6 @@ def _pass(
                         cap=cap, bootstrap=bootstrap, weights=weights,
                         accept_integrity=q.accept_integrity, versions=versions)  # fmt: skip
     return p, stream, _versions(versions.versions, stream, p)
-
-
-def _other_code(versions: Sequence[Mapping[str, Any]]) -> bool:
-    """Some records were logged by another code version than the current one."""
-    return any(not v["logged_under"].startswith("current code") for v in versions)
 
 
 def _versions(planned: Sequence[Mapping[str, Any]], stream: str, p: Pass) -> list[dict[str, Any]]:
@@ -395,7 +391,7 @@ def estimate(
     found = _found(p, missing_reward)
     describe = {**_describe(spec), "stream": stream_name, "functions": p.functions,
                 "reward": reward, "propensities": dict(p.methods[0])}  # fmt: skip
-    if spec is not None and not isinstance(spec, str) and _other_code(versions):
+    if spec is not None and not isinstance(spec, str) and other_versions(versions):
         describe["code"] = "current code"
     assert p.weights is not None
     return EstimateReport(

@@ -9,7 +9,7 @@ from __future__ import annotations
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import ClassVar
+from typing import Any, ClassVar
 
 from drawledger.replay.audit import (
     AS_DECLARED,
@@ -19,7 +19,12 @@ from drawledger.replay.audit import (
     AuditReport,
     AuditTest,
 )
-from drawledger.replay.estimate import EstimateReport, SweepReport, interval_label
+from drawledger.replay.estimate import (
+    EstimateReport,
+    SweepReport,
+    interval_label,
+    other_versions,
+)
 from drawledger.replay.integrity import PROBLEMS
 from drawledger.replay.report._figures import (
     Image,
@@ -155,6 +160,7 @@ class EstimateBlock:
     diagnostics: Table
     warnings: Sequence[str]
     alerts: Sequence[str] = ()
+    versions: Table | None = None  # when some record was logged by another code version
 
 
 @dataclass(frozen=True)
@@ -172,6 +178,7 @@ class SweepBlock:
     table: Table
     warnings: Sequence[str]
     alerts: Sequence[str] = ()
+    versions: Table | None = None  # when some record was logged by another code version
 
 
 def verify_section(v: VerifyReport) -> VerifySection:
@@ -373,6 +380,7 @@ def _estimate_block(title: str, r: EstimateReport, truth: float | None) -> Estim
         diagnostics=diagnostics,
         warnings=r.warnings,
         alerts=r.alerts,
+        versions=_versions(r.versions),
     )
 
 
@@ -412,7 +420,19 @@ def _sweep_block(title: str, s: SweepReport, truth: Sequence[float] | None) -> S
         table=Table(head, rows),
         warnings=_grouped(s.warnings, s.param),
         alerts=s.alerts,
+        versions=_versions(s.versions),
     )
+
+
+def _versions(versions: Sequence[Mapping[str, Any]]) -> Table | None:
+    """The code versions of a what-if's records, when some record was logged by another
+    version than the current code (None otherwise)."""
+    if not other_versions(versions):
+        return None
+    rows = [(str(v["fn"]), str(v["identity"]), str(v["logged_under"]), num(v["decisions"]),
+             num(v["used"])) for v in versions]  # fmt: skip
+    return Table(("function", "identity", "logged under", "decisions", "used"), rows,
+                 numeric_from=3)  # fmt: skip
 
 
 def _grouped(warnings: Sequence[str], param: str) -> list[str]:
