@@ -13,9 +13,10 @@ import pytest
 from git_shop import Shop, git
 
 from drawledger._code import source_identity
+from drawledger._schema import DEC, DRAW
 from drawledger.cli import main
 from drawledger.exceptions import ReplayError
-from drawledger.replay import verify
+from drawledger.replay import sources, verify
 
 FIRST = '    return draw.softmax(cards, scores, temperature=temperature, name="card")'
 COMMENTED = "    # hotter evenings: more exploration later\n" + FIRST
@@ -85,6 +86,20 @@ def test_parquet_ledgers_replay_under_their_versions_with_several_jobs(tmp_path:
     report = verify(shop.ledger, path=[shop.repo], jobs=2)
     assert (120, 120, {}) == (report.decisions, report.verified, report.by_reason)
     assert [ids[0], ids[2]] == [v["identity"] for v in report.versions]
+
+
+def test_a_parquet_piece_read_for_one_version_holds_its_records_and_their_draws(
+    tmp_path: Path,
+) -> None:
+    shop, ids = _three_deploys(tmp_path, 40, "parquet")
+    (piece,) = sources.pieces(sources.partitions(shop.ledger), 1_000)
+    rows, draws, total = sources.read_piece(piece)
+    mine, their_draws, same_total = sources.read_piece(piece, frozenset({ids[0]}))
+    expected = [r for r in rows if r[DEC.code_hash] == ids[0]]  # the filter in Python
+    assert (120, 80, 80) == (total, len(expected), len(their_draws))
+    assert (expected, total) == (mine, same_total)
+    kept = {r[DEC.decision_id] for r in expected}
+    assert [d for d in draws if d[DRAW.decision_id] in kept] == their_draws
 
 
 def test_postgresql_ledgers_replay_under_their_versions(tmp_path: Path, postgres_url: str) -> None:

@@ -214,10 +214,14 @@ def read_part(path: Path, table: str) -> pa.Table:
     return data if data.schema.equals(schema) else data.cast(schema)
 
 
+def table_rows(data: pa.Table) -> list[Row]:
+    """The rows of an Arrow table as tuples in its column order (values bit for bit)."""
+    return list(zip(*(col.to_pylist() for col in data.columns), strict=True))
+
+
 def part_rows(path: Path, table: str) -> list[Row]:
     """The rows of a part file as tuples in the table's column order (values bit for bit)."""
-    data = read_part(path, table)
-    return list(zip(*(col.to_pylist() for col in data.columns), strict=True))
+    return table_rows(read_part(path, table))
 
 
 def iter_part_pairs(root: str | os.PathLike[str]) -> Iterator[tuple[Part, Path | None]]:

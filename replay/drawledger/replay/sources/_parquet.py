@@ -6,15 +6,11 @@ import os
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 from drawledger import _parquet
 from drawledger.exceptions import ReplayError
 from drawledger.replay.sources._tables import is_parquet
-
-if TYPE_CHECKING:
-    pass
-
 
 Row = tuple[Any, ...]
 
@@ -116,15 +112,34 @@ def pieces(parts: Sequence[Partition], chunk_size: int) -> list[Piece]:
     return out
 
 
-def read_piece(piece: Piece) -> tuple[list[Row], list[Row]]:
-    """Decision rows and draw rows of a piece, as tuples in the ledger's column order."""
+def read_piece(
+    piece: Piece, codes: frozenset[str] | None = None
+) -> tuple[list[Row], list[Row], int]:
+    """Decision rows and draw rows of a piece, as tuples in the ledger's column order, and the
+    number of decisions its part files hold. With ``codes``, only the decisions whose code
+    identity is one of them, and their draws: chosen in Arrow, before any row becomes Python
+    (a process replaying one code version reads every piece)."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    wanted = None if codes is None else pa.array(sorted(codes), pa.string())
     rows: list[Row] = []
     draws: list[Row] = []
+    total = 0
     for path, sibling in zip(piece.parts, piece.draws, strict=True):
-        rows.extend(_parquet.part_rows(Path(path), "decisions"))
-        if sibling is not None:
-            draws.extend(_parquet.part_rows(Path(sibling), "draws"))
-    return rows, draws
+        decisions = _parquet.read_part(Path(path), "decisions")
+        total += decisions.num_rows
+        if wanted is not None:
+            decisions = decisions.filter(pc.is_in(decisions["code_hash"], value_set=wanted))
+        rows.extend(_parquet.table_rows(decisions))
+        if sibling is None or (wanted is not None and not decisions.num_rows):
+            continue
+        found = _parquet.read_part(Path(sibling), "draws")
+        if wanted is not None:
+            ids = decisions["decision_id"].combine_chunks()
+            found = found.filter(pc.is_in(found["decision_id"], value_set=ids))
+        draws.extend(_parquet.table_rows(found))
+    return rows, draws, total
 
 
 def piece_ids(piece: Piece) -> set[str]:

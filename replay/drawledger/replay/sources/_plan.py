@@ -10,7 +10,6 @@ from typing import Any
 import pandas as pd
 import sqlalchemy as sa
 
-from drawledger._schema import DEC, DRAW
 from drawledger._sinks import sqlalchemy_url
 from drawledger.exceptions import (
     LedgerError,
@@ -51,12 +50,8 @@ class Task:
         rows: list[Row] = []
         draws: list[Row] = []
         if self.piece is not None:
-            rows, draws = read_piece(self.piece)
-            self._check_count(len(rows))
-            if codes is not None:
-                rows = [r for r in rows if r[DEC.code_hash] in codes]
-                ids = {r[DEC.decision_id] for r in rows}
-                draws = [d for d in draws if d[DRAW.decision_id] in ids]
+            rows, draws, total = read_piece(self.piece, codes)
+            self._check_count(total)
             return rows, draws
         engine = engine or _engine(self.target)
         for sl in self.slices:
