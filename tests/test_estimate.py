@@ -495,6 +495,27 @@ def test_missing_rewards_count_as_zero_or_are_excluded(tmp_path):
     assert ([], 0) == (kept.alerts, kept.missing_rewards["filled"])
 
 
+def test_many_missing_rewards_alert_and_fail_the_estimate_sweep_and_report(tmp_path):
+    """10% of the records without the reward (above the 5% alert share) and counted as 0: the
+    alert stands first and nothing built on it is ok; excluding them instead is ok."""
+    led = dl.Ledger(tmp_path / "late.db")
+    shop.use(led, seed=1)
+    for i in range(400):
+        shop.feature_card(shop.context(i % 4), decision_id=f"d{i}")
+        if i % 10:
+            led.outcome(f"d{i}", "checkout", float(i % 3 == 0))
+    led.close()
+    near = {"temperature": 0.8}  # close to the logging 0.7: the overlap is good
+    filled = estimate(tmp_path / "late.db", reward="checkout", overrides=near)
+    curve = sweep(tmp_path / "late.db", reward="checkout", param="temperature", values=[0.8])
+    kept = estimate(tmp_path / "late.db", reward="checkout", overrides=near, missing_reward=None)
+    assert filled.alerts[0].startswith("40 of 400 records used (10.0%) have no 'checkout'")
+    assert (False, False, True) == (filled.ok, curve.ok, kept.ok)
+    page = write_report(tmp_path / "late.db", tmp_path / "late.html",
+                        whatifs=[WhatIf("warmer", filled)])  # fmt: skip
+    assert not page.ok and "have no &#39;checkout&#39; outcome" in page.path.read_text()
+
+
 def test_a_few_missing_rewards_are_counted_without_an_alert(tmp_path):
     """1 of 40 (2.5%) is below the 5% alert share; it is still counted in the JSON."""
     led = dl.Ledger(tmp_path / "late.db")

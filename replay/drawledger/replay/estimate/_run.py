@@ -268,11 +268,6 @@ def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool,
     return out
 
 
-def _accepted(p: Pass) -> bool:
-    """Failures were accepted: the estimate comes from a ledger or stream that failed."""
-    return bool(p.integrity or p.failures.failed)
-
-
 def _found(p: Pass, missing_reward: float | None) -> dict[str, Any]:
     return failure_fields(p.failures, p.integrity, missing_reward, p.n)
 
@@ -400,7 +395,7 @@ def estimate(
         baseline_estimates=summary["baseline"], difference=summary["difference"],
         excluded=dict(p.excluded), warnings=warnings, settings=s.to_dict(),
         segments=None if by is None else _segments(p, bounds, s, by),
-        decisions=p.total, weights=p.weights, ok=not _problem(summary) and not _accepted(p),
+        decisions=p.total, weights=p.weights, ok=not _problem(summary) and not top,
         alerts=top, accepted_failures=found["accepted_failures"],
         missing_rewards=found["missing_rewards"], versions=versions,
     )  # fmt: skip
@@ -459,6 +454,7 @@ def sweep(
         ledger, q, policies, cap=cap, bootstrap=b, by=None, weights=False
     )
     s = _Settings(cap, interval, level, b, seed, p.reward_range, reward_range is not None)
+    top = alerts(p.failures, p.integrity, reward, missing_reward, p.n)
     points, warnings, ok = [], [], True
     base_estimates: dict[str, Any] = {}
     for j, (value, pair) in enumerate(zip(grid, p.pairs, strict=True)):
@@ -477,7 +473,7 @@ def sweep(
         param=param, values=grid, points=points,
         baseline={**_describe(baseline), "estimates": base_estimates},
         settings={**s.to_dict(), "overrides": fixed, "stream": stream_name, "reward": reward},
-        warnings=_excluded_warnings(p) + warnings + s.notes(), n=p.n, ok=ok and not _accepted(p),
-        alerts=alerts(p.failures, p.integrity, reward, missing_reward, p.n),
+        warnings=_excluded_warnings(p) + warnings + s.notes(), n=p.n, ok=ok and not top,
+        alerts=top,
         versions=versions, **_found(p, missing_reward),
     )  # fmt: skip

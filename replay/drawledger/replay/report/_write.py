@@ -77,10 +77,11 @@ class HtmlReport:
 
     @property
     def ok(self) -> bool:
-        """Verification and audit passed, no estimate was refused or made from accepted
-        failures (estimate warnings do not make a report fail)."""
-        accepted = any(w.result.accepted_failures for w in self.whatifs)
-        return self.verification.ok and self.audit.ok and not self.refused and not accepted
+        """Verification and audit passed, no estimate was refused or shown under an alert
+        (made from accepted failures, or with many rewards filled in); estimate warnings do
+        not make a report fail."""
+        alerted = any(w.result.alerts for w in self.whatifs)
+        return self.verification.ok and self.audit.ok and not self.refused and not alerted
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -192,28 +193,26 @@ def write_report(
             refused.append(str(exc))
         else:
             questions.append(WhatIf(f"What if: {policy(result.target)}", result))
+    report = HtmlReport(target, verification, audit_report, questions, refused)
     if progress:
         from rich.console import Console
 
         with Console(stderr=True).status("drawing the report's figures"):
-            page = _page(os.fspath(ledger), verification, audit_report, questions, title,
-                         refused)  # fmt: skip
+            page = _page(os.fspath(ledger), report, title)
     else:
-        page = _page(os.fspath(ledger), verification, audit_report, questions, title, refused)
+        page = _page(os.fspath(ledger), report, title)
     with replacing(target) as out:
         out.write(page.encode("utf-8"))
-    return HtmlReport(target, verification, audit_report, questions, refused)
+    return report
 
 
-def _page(
-    ledger: str, v: VerifyReport, a: AuditReport, questions: Sequence[WhatIf], title: str | None,
-    refused: Sequence[str] = (),
-) -> str:  # fmt: skip
-    alerts = [f"Estimate refused: {r}" for r in refused]
-    alerts += [f"{w.title}: {a}" for w in questions for a in w.result.alerts]
+def _page(ledger: str, report: HtmlReport, title: str | None) -> str:
+    v, a, questions = report.verification, report.audit, report.whatifs
+    alerts = [f"Estimate refused: {r}" for r in report.refused]
+    alerts += [f"{w.title}: {line}" for w in questions for line in w.result.alerts]
     return TEMPLATES.get_template("page.html.j2").render(
         heading=title or "drawledger report",
-        ok=v.ok and a.ok and not refused and not any(w.result.accepted_failures for w in questions),
+        ok=report.ok,
         alerts=alerts,
         ledger=ledger,
         decisions=num(v.decisions),
