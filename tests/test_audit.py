@@ -237,7 +237,13 @@ def test_small_streams_report_not_enough_data() -> None:
         ratio.alarm,
     )
     assert "not enough data" == find(report, "slot-discount", "uniforms_ks").verdict
-    assert report.ok
+    # no alarm, but no answer either: the draw is listed as untested and the audit is not ok
+    assert ((), (("slot-discount", "categorical", "discount", 6),)) == (
+        report.alarms,
+        report.untested,
+    )
+    assert not report.ok
+    assert "NOT AUDITED: slot-discount, categorical discount: 6 draws" in report.render()
 
 
 def test_alarm_when_draws_do_not_follow_the_declaration() -> None:

@@ -195,6 +195,24 @@ def test_report_of_declared_draws(tmp_path: Path) -> None:
     assert 1 + len(result.audit.figures) == len(images(parse(text)))
 
 
+def test_a_draw_too_rare_to_test_fails_the_report_with_a_banner(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Six declared coin flips: no alarm, but no test of randomness either."""
+    ledger = dl.Ledger(tmp_path / "few.db")
+    for i in range(6):
+        heads = i % 2 == 0  # a uniform below p gives True (the picking rule)
+        ledger.record_draw("tip-prompt", "bernoulli", {"p": 0.5}, heads, 0.5,
+                           u=[0.25 if heads else 0.75])  # fmt: skip
+    ledger.close()
+    code = main(["report", str(tmp_path / "few.db"), "--html", str(tmp_path / "few.html")])
+    assert (1, "audit 1 draw not audited") == (code, capsys.readouterr().out.strip()[-24:])
+    text = (tmp_path / "few.html").read_text(encoding="utf-8")
+    assert '<span class="badge bad">1 draw not audited</span>' in text
+    assert ('<p class="banner">Not audited: <span class="name">tip-prompt, bernoulli: 6 draws, '
+            "too few for any test of randomness</span></p>") in text  # fmt: skip
+
+
 def test_report_replaces_an_existing_file_whole(demo_run: Any, tmp_path: Path) -> None:
     """An existing report is replaced by the new one, and no temporary file is left behind."""
     html = tmp_path / "report.html"

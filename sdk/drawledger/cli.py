@@ -158,7 +158,7 @@ def _show(args: argparse.Namespace) -> int:
 
 
 def _audit(args: argparse.Namespace) -> int:
-    """Test the randomization of every stream; exit 1 when an alarm fires."""
+    """Test the randomization of every stream; exit 1 on an alarm or a draw too rare to test."""
     from drawledger.replay import audit
 
     report = audit(
@@ -382,7 +382,7 @@ def build_parser() -> argparse.ArgumentParser:
         "declare: uniforms, probability integral transforms, assignment ratios, repeated\n"
         "seeds (docs/audit.md). No decision code runs, so declared draws are tested too.\n"
         "p-values are Holm-corrected across a stream's tests. Exit 0 when no alarm fires,\n"
-        "1 when one does."
+        "1 when one does or a draw is too rare to test."
     )
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     _json_option(p)

@@ -23,6 +23,13 @@ if TYPE_CHECKING:
     from rich.console import Console, ConsoleOptions, RenderResult
 
 
+# The tests of a draw's randomness (the others check its declaration, its units and repeats):
+# a draw none of whose randomness tests had enough data was not audited.
+RANDOMNESS_TESTS = frozenset(
+    {"ratio", "calibration", "uniforms_ks", "uniforms_chisq", "pit_ks", "pit_chisq"}
+)
+
+
 @dataclass(frozen=True)
 class AuditTest:
     """One test of one draw (or of a whole stream, for repeated seeds and uniforms)."""
@@ -97,8 +104,28 @@ class AuditReport:
 
     @property
     def ok(self) -> bool:
-        """True when no alarm fired."""
-        return not any(t.alarm for t in self.tests)
+        """True when no alarm fired and every draw had enough data for a test of randomness."""
+        return not any(t.alarm for t in self.tests) and not self.untested
+
+    @property
+    def verdict(self) -> str:
+        """The audit in a few words: "no alarm", "2 alarms" or "1 draw not audited"."""
+        if self.alarms:
+            return counted(len(self.alarms), "alarm")
+        if self.untested:
+            return f"{counted(len(self.untested), 'draw')} not audited"
+        return "no alarm"
+
+    @property
+    def untested(self) -> tuple[tuple[str, str, str | None, int], ...]:
+        """The draws (stream, kind, name, draws) none of whose tests of randomness had enough
+        data: no alarm there says nothing."""
+        groups: dict[tuple[str, str, str | None], list[AuditTest]] = {}
+        for t in self.tests:
+            if t.kind is not None and t.test in RANDOMNESS_TESTS:
+                groups.setdefault((t.stream, t.kind, t.draw), []).append(t)
+        return tuple((*key, max(t.n for t in found)) for key, found in groups.items()
+                     if all(t.verdict == NOT_ENOUGH_DATA for t in found))  # fmt: skip
 
     @property
     def alarms(self) -> tuple[AuditTest, ...]:
@@ -110,17 +137,27 @@ class AuditReport:
             "ok": self.ok,
             "alpha": self.alpha,
             "decisions": self.decisions,
+            "untested": [
+                {"stream": stream, "kind": kind, "draw": draw, "n": n}
+                for stream, kind, draw, n in self.untested
+            ],
             "tests": [t.to_dict() for t in self.tests],
         }
 
     def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
         """One table per stream; p is the Holm-adjusted p-value the verdict uses."""
         from rich.table import Table
+        from rich.text import Text
 
         if not self.tests:
             yield f"No draws to audit ({counted(self.decisions, 'decision')})."
             return
         yield f"[bold]Randomization audit of {counted(self.decisions, 'decision')}[/]"
+        for stream, kind, draw, n in self.untested:
+            name = f"{kind} {draw}" if draw else kind
+            yield Text.assemble(("NOT AUDITED: ", "bold red"), shown(f"{stream}, {name}"),
+                                f": {counted(n, 'draw')}, too few for any test of "
+                                "randomness")  # fmt: skip
         style = {AS_DECLARED: "green", NOT_AS_DECLARED: "bold red", NOT_ENOUGH_DATA: "dim"}
         for stream in dict.fromkeys(t.stream for t in self.tests):
             table = Table(title=shown(stream), title_justify="left", title_style="bold")
@@ -154,11 +191,14 @@ class AuditReport:
                 "PIT: the probability integral transform (PIT) of each draw under the "
                 "distribution it declares, uniform on (0, 1) when draws are as declared."
             )
-        if self.ok:
-            yield "[green]No alarm: every testable draw looks as declared.[/]"
-        else:
+        if self.alarms:
             alarms = counted(len(self.alarms), "alarm")
             yield f"[bold red]{alarms}: randomization not as declared.[/]"
+        elif self.untested:
+            draws = counted(len(self.untested), "draw")
+            yield f"[bold red]No alarm, but {draws} could not be tested: too few draws.[/]"
+        else:
+            yield "[green]No alarm: every testable draw looks as declared.[/]"
 
     def render(self) -> str:
         """The tables as plain text."""
@@ -175,8 +215,7 @@ class AuditReport:
 
     def _repr_html_(self) -> str:
         """Every test as a row of an HTML table (notebooks); p is Holm-adjusted."""
-        verdict = "no alarm" if self.ok else counted(len(self.alarms), "alarm")
-        caption = f"Randomization audit of {counted(self.decisions, 'decision')}: {verdict}"
+        caption = f"Randomization audit of {counted(self.decisions, 'decision')}: {self.verdict}"
         rows = [(t.stream, t.draw, t.kind, TEST_LABELS[t.test], t.n, t.statistic, t.p_adjusted,
                  t.verdict) for t in self.tests]  # fmt: skip
         head = ("stream", "draw", "kind", "test", "n", "statistic", "p", "verdict")

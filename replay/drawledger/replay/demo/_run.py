@@ -98,7 +98,7 @@ class DemoResult:
         caption = (f"drawledger demo, {self.sessions} sessions: temperature "
                    f"{TARGET_TEMPERATURE:g} instead of {log['temperature']:g}, true checkout "
                    f"rate {_f(truth)}; verify {'passed' if self.verification.ok else 'FAILED'}, "
-                   f"audit {'no alarm' if self.audit.ok else 'ALARM'}")  # fmt: skip
+                   f"audit {self.audit.verdict}")  # fmt: skip
         rows = [(name, e.value, e.low, e.high) for name, e in t.results.items()]
         return html_table(caption, ("estimator", "estimate", "low", "high"), rows)
 
@@ -116,7 +116,7 @@ class DemoResult:
             f"{'intact' if v.integrity.ok else 'FAILED'}",
             f"  audit    {counted(len(a.tests), 'test')} on "
             f"{counted(len({t.stream for t in a.tests}), 'stream')}: "
-            + ("no alarm" if a.ok else counted(len(a.alarms), "ALARM"))
+            + a.verdict
             + f" (Holm-corrected p < {a.alpha:g})",
             "",
             f"What if the recipe card used temperature {TARGET_TEMPERATURE:g} instead of "

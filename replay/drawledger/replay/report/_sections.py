@@ -133,13 +133,14 @@ class AuditSection:
     (empty when everything is shown)."""
 
     ok: bool
-    alarms: int
+    verdict: str
     alpha: str
     decisions: str
     rows: Sequence[AuditRow]
     panels: Sequence[AuditPanel]
     others: Table | None = None
     note: str = ""
+    untested: Sequence[str] = ()  # the draws too rare to test, one line each
     classes: ClassVar[dict[str, str]] = VERDICT_CLASSES
 
 
@@ -283,8 +284,10 @@ def audit_section(a: AuditReport, decisions: Mapping[str, int] | None = None) ->
         notes.append(f"Figures are drawn for at most {PANELS_PER_STREAM} draws per stream; "
                      f"{num(undrawn)} more draws are in the table only.")  # fmt: skip
     note = " ".join(notes)
+    untested = [f"{stream}, {kind}{f' {draw!r}' if draw else ''}: {num(n)} draws, too few for "
+                "any test of randomness" for stream, kind, draw, n in a.untested]  # fmt: skip
     return AuditSection(
-        a.ok, len(a.alarms), f"{a.alpha:g}", num(a.decisions), rows, panels, others, note
+        a.ok, a.verdict, f"{a.alpha:g}", num(a.decisions), rows, panels, others, note, untested
     )
 
 

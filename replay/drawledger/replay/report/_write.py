@@ -102,7 +102,7 @@ class HtmlReport:
             f"wrote {self.path}: {counted(v.decisions, 'decision')}, {v.verified} verified, "
             f"{v.mismatched} mismatched, {v.unreplayable} unreplayable; integrity "
             f"{'ok' if v.integrity.ok else 'FAILED'}; audit "
-            f"{'no alarm' if a.ok else counted(len(a.alarms), 'alarm')}"
+            f"{a.verdict}"
         )
 
     def __str__(self) -> str:
@@ -115,7 +115,7 @@ class HtmlReport:
             ("verification", f"{v.verified} of {v.decisions} decisions verified, "
                              f"{v.mismatched} mismatched, {v.unreplayable} unreplayable"),
             ("integrity", "ok" if v.integrity.ok else "FAILED"),
-            ("audit", "no alarm" if a.ok else f"{len(a.alarms)} alarm(s)"),
+            ("audit", a.verdict),
         ]  # fmt: skip
         rows += [("estimate refused", r) for r in self.refused]
         rows += [(f"ALERT: {w.title}", line) for w in self.whatifs for line in w.result.alerts]
