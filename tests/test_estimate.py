@@ -516,6 +516,25 @@ def test_many_missing_rewards_alert_and_fail_the_estimate_sweep_and_report(tmp_p
     assert not page.ok and "have no &#39;checkout&#39; outcome" in page.path.read_text()
 
 
+def test_several_outcomes_of_a_decision_are_summed_and_said(tmp_path):
+    """Every fifth decision's checkout recorded twice (a retried event): the reward is the sum,
+    as the logging mean computed by hand shows, and a warning counts those records."""
+    led = dl.Ledger(tmp_path / "twice.db")
+    shop.use(led, seed=1)
+    totals = []
+    for i in range(200):
+        shop.feature_card(shop.context(i % 4), decision_id=f"d{i}")
+        led.outcome(f"d{i}", "checkout", float(i % 3 == 0))
+        totals.append(float(i % 3 == 0))
+        if i % 5 == 0:
+            led.outcome(f"d{i}", "checkout", 1.0)
+            totals[-1] += 1.0
+    led.close()
+    report = estimate(tmp_path / "twice.db", reward="checkout", overrides={"temperature": 0.8})
+    assert sum(totals) / 200 == pytest.approx(report.logging_value, rel=1e-12)
+    assert report.warnings[0].startswith("40 of 200 records used have several 'checkout' outcomes")
+
+
 def test_a_few_missing_rewards_are_counted_without_an_alert(tmp_path):
     """1 of 40 (2.5%) is below the 5% alert share; it is still counted in the JSON."""
     led = dl.Ledger(tmp_path / "late.db")

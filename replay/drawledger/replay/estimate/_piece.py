@@ -76,6 +76,7 @@ class Facts:
     labels: list[str] = field(default_factory=list)  # segment values, codes index this
     rewarded: int = 0  # decisions of the stream with the reward (verified or not)
     filled: int = 0  # records used whose reward is the missing-reward value
+    summed: int = 0  # records used whose reward is the sum of several outcomes
     failed: int = 0  # decisions that failed verification
     failed_reasons: Counter[str] = field(default_factory=Counter)  # theirs
     refused_n: int = 0  # of them, with a reason the caller did not accept
@@ -185,9 +186,9 @@ def _usable(frame: pd.DataFrame, fns: dict[str, Any], rewards: Rewards,
             job: Job, facts: Facts) -> tuple[pd.DataFrame, np.ndarray, Counter[str]]:  # fmt: skip
     """The records an estimate uses, their rewards, and the others counted by reason."""
     excluded: Counter[str] = Counter()
-    found = rewards.lookup(frame["decision_id"])
+    found, several = rewards.lookup(frame["decision_id"])
     facts.rewarded = int((~np.isnan(found)).sum())
-    frame = frame.assign(_reward=found)
+    frame = frame.assign(_reward=found, _several=several)
 
     def drop(mask: np.ndarray, reason: str) -> None:
         nonlocal frame
@@ -215,7 +216,8 @@ def _usable(frame: pd.DataFrame, fns: dict[str, Any], rewards: Rewards,
     else:
         facts.filled = int(np.isnan(r).sum())
         r = np.where(np.isnan(r), job.missing_reward, r)
-    return frame.drop(columns="_reward"), r, excluded
+    facts.summed = int(frame["_several"].sum())
+    return frame.drop(columns=["_reward", "_several"]), r, excluded
 
 
 def _flatten(obj: Any, prefix: str, out: dict[str, float]) -> None:

@@ -80,6 +80,7 @@ class Failures:
     failed: int  # decisions that failed verification (all left out)
     reasons: dict[str, int]  # their reasons
     code_changed: int  # decisions used although their code changed (accepted)
+    summed: int = 0  # records used whose reward is the sum of several outcomes
 
     @classmethod
     def of(cls, facts: Sequence[Facts]) -> Failures:
@@ -88,7 +89,8 @@ class Failures:
             reasons.update(f.failed_reasons)
         return cls(sum(f.total for f in facts), sum(f.rewarded for f in facts),
                    sum(f.filled for f in facts), sum(f.failed for f in facts),
-                   dict(sorted(reasons.items())), sum(f.code_changed for f in facts))  # fmt: skip
+                   dict(sorted(reasons.items())), sum(f.code_changed for f in facts),
+                   sum(f.summed for f in facts))  # fmt: skip
 
 
 def check_stream(facts: Sequence[Facts], reward: str, stream: str,

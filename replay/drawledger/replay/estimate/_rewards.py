@@ -29,6 +29,7 @@ class Rewards:
 
     table: np.ndarray  # (key, value) records sorted by key, keys distinct
     count: int  # outcome records of that name
+    several: np.ndarray  # sorted keys of the decisions with several such outcomes (summed)
 
     @classmethod
     def of(cls, parts: Iterable[tuple[np.ndarray, np.ndarray]], capacity: int) -> Rewards:
@@ -45,16 +46,18 @@ class Rewards:
         keys = table["key"]
         first = np.ones(at, dtype=bool)
         np.not_equal(keys[1:], keys[:-1], out=first[1:])
-        if not first.all():  # several outcomes of that name for a decision: their sum
+        several = np.unique(keys[1:][~first[1:]])  # a key repeated: its decision's outcomes
+        if several.size:  # several outcomes of that name for a decision: their sum
             starts = np.flatnonzero(first)
             summed = np.empty(starts.size, dtype=_REWARD)
             summed["key"] = keys[starts]
             summed["value"] = np.add.reduceat(table["value"], starts)
             table = summed
-        return cls(table, at)
+        return cls(table, at, several)
 
-    def lookup(self, ids: Iterable[Any]) -> np.ndarray:
-        """The total of each decision id (NaN: no such outcome)."""
+    def lookup(self, ids: Iterable[Any]) -> tuple[np.ndarray, np.ndarray]:
+        """The total of each decision id (NaN: no such outcome), and whether it sums several
+        outcomes."""
         wanted = _digests(ids)
         keys = self.table["key"]
         out = np.full(wanted.size, np.nan)
@@ -62,7 +65,7 @@ class Rewards:
             pos = np.minimum(np.searchsorted(keys, wanted), keys.size - 1)
             hit = keys[pos] == wanted
             out[hit] = self.table["value"][pos[hit]]
-        return out
+        return out, np.isin(wanted, self.several)
 
 
 def read_rewards(ledger: str, format: str | None, reward: str) -> Rewards:

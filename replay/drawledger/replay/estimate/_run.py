@@ -219,8 +219,12 @@ def _summary(g: Group, has_dr: bool, bounds: tuple[float, float], s: _Settings,
     }
 
 
-def _excluded_warnings(p: Pass) -> list[str]:
+def _excluded_warnings(p: Pass, reward: str) -> list[str]:
     out = []
+    if p.failures.summed:
+        out.append(f"{p.failures.summed} of {p.n} records used have several {reward!r} "
+                   "outcomes; each uses their sum (a retried event counts twice: record one "
+                   "outcome per decision if that is not what the reward means)")  # fmt: skip
     if p.failures.code_changed:
         changed = counted(p.failures.code_changed, "decision")
         out.append(f"{changed} ran under decision code that has changed since; they replayed "
@@ -380,8 +384,8 @@ def estimate(
     bounds = (p.bounds[0], p.bounds[-1])
     has_dr = p.dr[0] and p.dr[-1]
     summary = _summary(p.pairs[0], has_dr, bounds, s, p.weights)
-    warnings = [*_excluded_warnings(p), *_warnings(summary, p.methods[0], has_dr, s.reward_range),
-                *s.notes()]  # fmt: skip
+    warnings = [*_excluded_warnings(p, reward),
+                *_warnings(summary, p.methods[0], has_dr, s.reward_range), *s.notes()]  # fmt: skip
     top = alerts(p.failures, p.integrity, reward, missing_reward, p.n)
     found = _found(p, missing_reward)
     describe = {**_describe(spec), "stream": stream_name, "functions": p.functions,
@@ -473,7 +477,7 @@ def sweep(
         param=param, values=grid, points=points,
         baseline={**_describe(baseline), "estimates": base_estimates},
         settings={**s.to_dict(), "overrides": fixed, "stream": stream_name, "reward": reward},
-        warnings=_excluded_warnings(p) + warnings + s.notes(), n=p.n, ok=ok and not top,
+        warnings=_excluded_warnings(p, reward) + warnings + s.notes(), n=p.n, ok=ok and not top,
         alerts=top,
         versions=versions, **_found(p, missing_reward),
     )  # fmt: skip
