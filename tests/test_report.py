@@ -374,17 +374,20 @@ def test_beyond_the_limit_streams_get_one_row_each_and_the_page_says_so(
             _declared(led, f"stream-{k}", 70 + 10 * k)
         _declared(led, "two-draws", 200, draw="x")
         led.record_draw("two-draws", "bernoulli", {"p": 0.5}, True, 0.5, decision_id="extra")
+        _declared(led, "rare", 3)  # too few draws to test: "not enough data", not "as declared"
     text = write_report(ledger, tmp_path / "many.html").path.read_text(encoding="utf-8")
     page = parse(text)
     captions = re.findall(r'<figcaption><b><span class="name">([^<]*)</span>', text)
     assert ["drifting", "stream-5", "two-draws"] == sorted(captions)
     assert 1 + 3 == len(images(page))
-    assert "8 streams: the 3 with alarms or the most decisions are shown in full" in text
-    assert '<p class="note">8 streams' in text
+    assert "9 streams: the 3 with alarms or the most decisions are shown in full" in text
+    assert '<p class="note">9 streams' in text
     assert "at most 1 draws per stream; 1 more draws are in the table only" in text
     others = re.search(r"<h3>Other streams</h3>.*?</table>", text, re.S)
     assert others is not None
-    assert 5 == others.group(0).count("<tr>") - 1
+    assert 6 == others.group(0).count("<tr>") - 1
+    rare = re.search(r'<tr><td><span class="name">rare</span>.*?</tr>', others.group(0))
+    assert rare is not None and "not enough data" in rare.group(0)
 
 
 def test_long_names_are_cut_with_the_whole_name_as_title_and_figures_stay_narrow(

@@ -300,13 +300,15 @@ def _other_streams(a: AuditReport, full: set[str], decisions: Mapping[str, int])
     if not tests:
         return None
     rows = []
+    untested = {u[0] for u in a.untested}  # a draw of the stream could not be tested
     for stream in sorted(tests, key=lambda s: (-decisions.get(s, 0), s)):
         ts = tests[stream]
         alarms = sum(t.alarm for t in ts)
         ps = [t.p_adjusted for t in ts if t.p_adjusted is not None]
         verdicts = {t.verdict for t in ts}
         verdict = NOT_AS_DECLARED if alarms else (
-            AS_DECLARED if AS_DECLARED in verdicts else NOT_ENOUGH_DATA)  # fmt: skip
+            AS_DECLARED if AS_DECLARED in verdicts and stream not in untested
+            else NOT_ENOUGH_DATA)  # fmt: skip
         rows.append((stream, num(decisions.get(stream, 0)), num(len(ts)), num(alarms),
                      p_value(min(ps)) if ps else num(None), verdict))  # fmt: skip
     head = ("stream", "decisions", "tests", "alarms", "smallest p (Holm)", "verdict")
