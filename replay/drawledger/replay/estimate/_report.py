@@ -73,6 +73,9 @@ def _policy_text(d: Mapping[str, Any]) -> str:
     return changed or "logging policy"
 
 
+VERSIONS_TITLE = "code versions (logging propensities from each record's own version)"
+
+
 def other_versions(versions: Sequence[Mapping[str, Any]]) -> bool:
     """Whether some record of ``versions`` was logged by another code version than the
     current code (then the output shows the versions)."""
@@ -302,9 +305,6 @@ def _filled(missing: Mapping[str, Any]) -> tuple[str, str] | None:
         return None
     return (f"records without the reward (counted as {missing['value']:g})",
             f"{missing['filled']} ({missing['share']:.1%})")  # fmt: skip
-
-
-VERSIONS_TITLE = "code versions (logging propensities from each record's own version)"
 
 
 def _html_versions(versions: list[dict[str, Any]]) -> str:
