@@ -138,7 +138,7 @@ def test_a_sweep_over_the_current_code_uses_every_version(tmp_path: Path) -> Non
 
 
 def test_the_html_report_and_the_notebook_views_show_each_version(tmp_path: Path) -> None:
-    shop, ids = _deploys(tmp_path, 150)
+    shop, ids = _deploys(tmp_path, 60)
     one = estimate(shop.ledger, reward="checkout", overrides={"temperature": 0.9},
                    path=[shop.repo])  # fmt: skip
     swept = sweep(shop.ledger, reward="checkout", param="temperature", values=[0.5, 0.7],
@@ -150,15 +150,15 @@ def test_the_html_report_and_the_notebook_views_show_each_version(tmp_path: Path
     # identity, logged under, decisions, used: the first two deploys share one identity (a
     # comment edit), replayed from their git revision
     row = '<td>{}</td><td>{}</td><td class="num">{}</td><td class="num">{}</td>'
-    assert re.search(row.format(ids[0], "git [0-9a-f]{12}", 300, 300), page)
-    assert row.format(ids[2], "current code", 150, 150) in page
+    assert re.search(row.format(ids[0], "git [0-9a-f]{12}", 120, 120), page)
+    assert row.format(ids[2], "current code", 60, 60) in page
     for view in (one._repr_html_(), swept._repr_html_()):
-        assert "code versions" in view and ids[0][:12] in view and "<td>300</td>" in view
+        assert "code versions" in view and ids[0][:12] in view and "<td>120</td>" in view
 
 
 def test_one_version_shows_no_versions_table(tmp_path: Path) -> None:
     shop = Shop(tmp_path, arg="ctx", arg_type="dict", cards=repr(CARDS))
-    shop.deploy(BODY, 150, "Feature a recipe card by softmax", _logger(SEEDS[0]))
+    shop.deploy(BODY, 60, "Feature a recipe card by softmax", _logger(SEEDS[0]))
     one = estimate(shop.ledger, reward="checkout", overrides={"temperature": 0.9},
                    path=[shop.repo])  # fmt: skip
     page = write_report(shop.ledger, tmp_path / "report.html", path=[shop.repo],
