@@ -30,6 +30,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import drawledger as dl
+from drawledger import _parquet
 from drawledger.cli import main
 from drawledger.exceptions import EstimateRefusedError, ReplayError
 from drawledger.replay import estimate, sources, sweep, verify
@@ -202,6 +203,27 @@ def test_verify_with_an_integrity_problem_equals_the_local_engine(
     assert remote.integrity.gaps > 0 and remote.integrity.orphan_outcomes > 0
     assert remote.integrity.duplicates > 0
     assert 2 == remote.integrity.writers
+
+
+def test_outcomes_missing_from_a_last_batch_count_as_the_local_engine(
+    tmp_path: Path, scheduler: str
+) -> None:
+    """A writer stopped between the renames of its last batch: not a gap on either engine."""
+    root = tmp_path / "ledger"
+    led = dl.Ledger(root, format="parquet", batch_size=1000)
+    for i in range(8):
+        led.record_draw("reminder-delay", "bernoulli", {"p": 0.5}, i % 2 == 0, 0.5,
+                        decision_id=f"req-{i}")  # fmt: skip
+        led.outcome(f"req-{i}", "checkout", 1.0)
+        if i == 3:
+            led.flush()
+    led.close()
+    _parquet.parts(root, "outcomes")[-1].path.unlink()  # the last batch's outcomes
+    local = _verify(root, keep_rows=False)
+    remote = _verify(root, engine="dask", scheduler=scheduler, keep_rows=False)
+    assert local.to_dict() == remote.to_dict()
+    assert (True, 0, 4) == (remote.ok, remote.integrity.gaps,
+                            remote.integrity.uncommitted_records)  # fmt: skip
 
 
 def test_audit_statistics_equal_the_local_engine(ledger: Path, scheduler: str) -> None:

@@ -212,6 +212,32 @@ def test_a_hole_in_a_chain_is_waited_for_then_reported_as_a_gap(tmp_path: Path) 
     assert 199 == reported.state.decisions
 
 
+def test_outcomes_missing_from_a_stopped_writers_last_batch_are_no_gap(tmp_path: Path) -> None:
+    """A Parquet writer stopped between the renames of its last batch: after the wait, the
+    outcomes that never came raise no alarm, as in ``drawledger verify``; one missing from an
+    earlier batch does."""
+    root = tmp_path / "pq"
+    led = dl.Ledger(root, format="parquet", batch_size=1000)
+    for i in range(12):
+        led.record_draw("reminder-delay", "bernoulli", {"p": 0.5}, i % 2 == 0, 0.5,
+                        decision_id=f"req-{i}")  # fmt: skip
+        led.outcome(f"req-{i}", "checkout", 1.0)
+        if i % 4 == 3:
+            led.flush()
+    led.close()
+    outcome_parts = sorted((root / "outcomes").rglob("*.parquet"))
+    outcome_parts[-1].unlink()
+    stopped = guard(root, once=True, gap_wait=0.0)
+    assert (True, 12, 0) == (
+        stopped.ok,
+        stopped.state.decisions,
+        sum(stopped.state.integrity.values()),
+    )
+    outcome_parts[0].unlink()
+    earlier = guard(root, once=True, gap_wait=0.0)
+    assert (False, 4) == (earlier.ok, earlier.state.integrity["gaps"])
+
+
 GUARD_RUN = """
 import sys, time
 sys.path.insert(0, sys.argv[3])

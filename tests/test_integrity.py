@@ -372,6 +372,63 @@ def test_draws_part_left_by_an_interrupted_batch_is_not_a_failure(tmp_path: Path
     assert 1 == report.uncommitted_parts
 
 
+def _batches_with_outcomes(root: Path, batches: int = 3) -> None:
+    """A Parquet ledger whose every batch holds 4 decisions and an outcome for each of them."""
+    led = dl.Ledger(root, format="parquet", batch_size=1000)
+    for b in range(batches):
+        for i in range(4 * b, 4 * b + 4):
+            led.record_draw("reminder-delay", "bernoulli", {"p": 0.5}, i % 2 == 0, 0.5,
+                            decision_id=f"req-{i}")  # fmt: skip
+            led.outcome(f"req-{i}", "checkout", 1.0)
+        led.flush()
+    led.close()
+
+
+def test_outcomes_part_missing_from_the_last_batch_is_uncommitted_not_a_gap(
+    tmp_path: Path,
+) -> None:
+    """A writer stopped after the decisions rename of its last batch: its outcomes never came."""
+    root = tmp_path / "ledger"
+    _batches_with_outcomes(root)
+    _parquet.parts(root, "outcomes")[-1].path.unlink()
+    report = check_integrity(root)
+    assert report.ok, report.render()
+    assert (0, 4, 12, 8) == (report.gaps, report.uncommitted_records, report.decisions,
+                             report.outcomes)  # fmt: skip
+    assert "4 records of a writer's last batch never committed" in report.render()
+    assert 4 == report.to_dict()["uncommitted_records"]
+
+
+def test_outcomes_part_missing_from_an_earlier_batch_is_a_gap(tmp_path: Path) -> None:
+    root = tmp_path / "ledger"
+    _batches_with_outcomes(root)
+    _parquet.parts(root, "outcomes")[1].path.unlink()
+    report = check_integrity(root)
+    assert (False, 4, 0) == (report.ok, report.gaps, report.uncommitted_records)
+
+
+def test_decisions_of_the_last_batch_deleted_behind_its_outcomes_are_gaps(
+    tmp_path: Path,
+) -> None:
+    """Outcomes are renamed after decisions: outcomes without their decisions part are no crash."""
+    root = tmp_path / "ledger"
+    _batches_with_outcomes(root)
+    _parquet.parts(root, "decisions")[-1].path.unlink()
+    report = check_integrity(root)
+    assert (False, 4, 0) == (report.ok, report.gaps, report.uncommitted_records)
+
+
+def test_part_whose_footer_names_parts_of_another_writer_is_refused(tmp_path: Path) -> None:
+    root = tmp_path / "ledger"
+    _batches_with_outcomes(root)
+    last = _parquet.parts(root, "outcomes")[-1].path
+    data = pq.read_table(last)
+    forged = json.dumps(["outcomes/../../elsewhere/000000000001-000000000002-ab.parquet"])
+    pq.write_table(data.replace_schema_metadata({_parquet.BATCH_KEY: forged.encode()}), last)
+    with pytest.raises(dl.LedgerError, match="footer names parts of its batch"):
+        check_integrity(root)
+
+
 def _writer_of(root: Path) -> str:
     part = _parquet.parts(root, "decisions")[0].path
     writer: str = pq.read_table(part, columns=["writer"]).column(0)[0].as_py()

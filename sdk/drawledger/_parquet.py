@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import contextlib
 import hashlib
+import json
 import os
 import time
 from collections.abc import Iterator, Sequence
@@ -68,6 +69,7 @@ _WRITE_OPTIONS: dict[str, dict[str, Any]] = {
     for table, schema in SCHEMAS.items()
 }
 SUFFIX = ".parquet"
+BATCH_KEY = b"drawledger.batch"  # footer metadata: the part files of its batch
 
 
 def writer_tag(writer: str) -> str:
@@ -145,6 +147,73 @@ def parts(root: str | os.PathLike[str], table: str) -> list[Part]:
         return []
     found = (parse_part(p) for p in base.rglob(f"*{SUFFIX}"))
     return sorted((p for p in found if p is not None), key=lambda p: p.path)
+
+
+def batch_parts(root: str | os.PathLike[str], part: Part) -> list[Part] | None:
+    """The parts of decisions and outcomes written in one batch with ``part``, as its footer
+    names them (None for a part written alone or before batches named their parts).
+
+    Only names of committed parts of the same writer under the ledger's decisions and
+    outcomes tables are taken; anything else in the footer raises ``LedgerError``.
+    """
+    try:
+        meta = pq.read_metadata(part.path).metadata or {}
+    except (OSError, pa.ArrowException) as exc:
+        raise LedgerError(f"cannot read ledger part {os.fspath(part.path)!r}: {exc}") from None
+    if BATCH_KEY not in meta:
+        return None
+    out: list[Part] = []
+    try:
+        for name in json.loads(meta[BATCH_KEY]):
+            fields = name.split("/")
+            if fields[0] == "draws":
+                continue
+            named = parse_part(Path(root, name))
+            if (
+                named is None
+                or named.tag != part.tag
+                or ".." in fields
+                or fields[0] not in ("decisions", "outcomes")
+            ):
+                raise ValueError(name)
+            out.append(named)
+    except (ValueError, TypeError, AttributeError):
+        where = os.fspath(part.path)
+        raise LedgerError(
+            f"ledger part {where!r} is damaged: its footer names parts of its batch that are "
+            "not parts of its writer"
+        ) from None
+    return out
+
+
+def unfinished_batch(root: str | os.PathLike[str], parts: list[Part]) -> list[tuple[int, int]]:
+    """The seq ranges (first, last; disjoint, sorted) of the parts of a writer's last batch
+    that never came into place: the writer stopped between the renames of the batch.
+
+    The parts of a batch name each other in their footers, in the order of their renames.
+    Only the last batch counts, only when every part it names lies above every other part of
+    the writer, and only when the missing parts are the last ones to be renamed: a part
+    missing anywhere else leaves gaps.
+    """
+    if not parts:
+        return []
+    last = max(parts, key=lambda p: p.last)
+    batch = batch_parts(root, last)
+    if not batch:
+        return []
+    named = {b.path for b in batch}
+    below = max((p.last for p in parts if p.path not in named), default=-1)
+    present = {p.path for p in parts}
+    came = [b.path in present for b in batch]
+    if any(b.first <= below for b in batch) or came != sorted(came, reverse=True):
+        return []
+    merged: list[tuple[int, int]] = []
+    for first, end in sorted((b.first, b.last) for b in batch if b.path not in present):
+        if merged and first <= merged[-1][1] + 1:
+            merged[-1] = (merged[-1][0], max(end, merged[-1][1]))
+        else:
+            merged.append((first, end))
+    return merged
 
 
 def draws_sibling(root: str | os.PathLike[str], part: Part) -> Path:
@@ -321,13 +390,20 @@ class ParquetSink:
         for (writer, days), rows in ogroups.items():
             folder = self.root / "outcomes" / day(days * 86400)
             planned.append((folder, _part_name(writer, rows, OUT.seq), rows, "outcomes"))
+        # Every part of a batch of several names them all: a crash between the renames leaves
+        # parts that say which of their batch never came (unfinished_batch).
+        names = [(folder / name).relative_to(self.root).as_posix() for folder, name, *_ in planned]
+        meta = {BATCH_KEY: json.dumps(names).encode()} if len(names) > 1 else None
         staged: list[tuple[Path, Path]] = []
         try:
             for folder, name, rows, table in planned:
                 folder.mkdir(parents=True, exist_ok=True)
                 tmp = folder / f".{name}.{os.getpid()}.{os.urandom(4).hex()}.tmp"
                 staged.append((tmp, folder / name))
-                pq.write_table(rows_to_table(rows, table), tmp, **_WRITE_OPTIONS[table])
+                data = rows_to_table(rows, table)
+                if meta is not None:
+                    data = data.replace_schema_metadata(meta)
+                pq.write_table(data, tmp, **_WRITE_OPTIONS[table])
                 if self.full:
                     _fsync_path(tmp)
             for tmp, final in staged:

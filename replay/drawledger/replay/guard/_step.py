@@ -91,7 +91,8 @@ def take_piece(
         recs = heapq.merge(recs, (outcome_rec(o, settings.key) for o in piece.outcomes),
                            key=lambda r: (r.seq, r.order))  # fmt: skip
     found = IntegrityReport(keyed=bool(settings.key))
-    chains = walk(found, recs, set(), {writer: (mark.seq + 1, mark.hash)})
+    chains = walk(found, recs, set(), {writer: (mark.seq + 1, mark.hash)},
+                  unfinished=piece.unfinished)  # fmt: skip
     for problem in INTEGRITY_PROBLEMS:
         n = getattr(found, problem)
         if n:

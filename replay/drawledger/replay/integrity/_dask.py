@@ -8,9 +8,9 @@ from pathlib import Path
 
 from drawledger import _parquet
 from drawledger.replay.engines import DaskEngine, Handle
-from drawledger.replay.integrity._parquet import parquet_chain, parquet_cross_checks
+from drawledger.replay.integrity._parquet import parquet_cross_checks, walk_writer
 from drawledger.replay.integrity._registry import check_registry
-from drawledger.replay.integrity._report import MAX_EXAMPLES, PROBLEMS, IntegrityReport, walk
+from drawledger.replay.integrity._report import MAX_EXAMPLES, PROBLEMS, IntegrityReport
 from drawledger.replay.sources import read_registry
 
 
@@ -38,9 +38,7 @@ def _integrity_chains(
             if p.tag in wanted:
                 by_tag.setdefault(p.tag, []).append((p.first, order, p))
     for tag in sorted(by_tag):
-        plist = sorted(by_tag[tag], key=lambda t: t[:2])
-        walk(report, parquet_chain(base, plist, key, set(dup_ids), report),
-                 set(dup_ids))  # fmt: skip
+        walk_writer(base, by_tag[tag], key, set(dup_ids), report)
     return report
 
 
@@ -51,7 +49,14 @@ def combine_reports(
 
     total = found[0]
     for part in chains:
-        for name in (*PROBLEMS, "decisions", "outcomes", "writers", "uncommitted_parts"):
+        for name in (
+            *PROBLEMS,
+            "decisions",
+            "outcomes",
+            "writers",
+            "uncommitted_parts",
+            "uncommitted_records",
+        ):
             setattr(total, name, getattr(total, name) + getattr(part, name))
         for problem, shown in part.examples.items():
             mine = total.examples.setdefault(problem, [])

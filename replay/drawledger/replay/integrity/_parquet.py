@@ -98,8 +98,18 @@ def check_parquet(root: Path, key: bytes, report: IntegrityReport) -> None:
         for p in plist:
             by_tag.setdefault(p.tag, []).append((p.first, order, p))
     for tag in sorted(by_tag):
-        ordered = sorted(by_tag[tag], key=lambda t: t[:2])
-        walk(report, parquet_chain(root, ordered, key, dup_ids, report), dup_ids)
+        walk_writer(root, by_tag[tag], key, dup_ids, report)
+
+
+def walk_writer(
+    root: Path, plist: list[tuple[int, int, _parquet.Part]], key: bytes, dup_ids: set[str],
+    report: IntegrityReport,
+) -> None:  # fmt: skip
+    """Walk one writer tag's chain; parts as (first seq, 0 decisions or 1 outcomes, part)."""
+    ordered = sorted(plist, key=lambda t: t[:2])
+    unfinished = _parquet.unfinished_batch(root, [p for *_, p in ordered])
+    walk(report, parquet_chain(root, ordered, key, dup_ids, report), dup_ids,
+         unfinished=unfinished)  # fmt: skip
 
 
 def _load_part(

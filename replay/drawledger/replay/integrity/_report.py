@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import struct
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any, NamedTuple
 
@@ -58,6 +58,7 @@ class IntegrityReport:
     writers: int = 0
     keyed: bool = False
     uncommitted_parts: int = 0
+    uncommitted_records: int = 0
     examples: dict[str, list[str]] = field(default_factory=dict)
     decision_ids: set[str] = field(default_factory=set)
     reasons: dict[str, str] = field(default_factory=dict)
@@ -103,7 +104,8 @@ class IntegrityReport:
         out.update({p: getattr(self, p) for p in PROBLEMS})
         out.update(decisions=self.decisions, outcomes=self.outcomes, writers=self.writers,
                    keyed=self.keyed, uncommitted_parts=self.uncommitted_parts,
-                   registry=self.registry, legacy_writers=self.legacy_writers)  # fmt: skip
+                   uncommitted_records=self.uncommitted_records, registry=self.registry,
+                   legacy_writers=self.legacy_writers)  # fmt: skip
         out["examples"] = {k: list(v) for k, v in self.examples.items()}
         if self.reasons:
             out["bad_record_reasons"] = dict(self.reasons)
@@ -136,6 +138,11 @@ class IntegrityReport:
             parts = counted(self.uncommitted_parts, "draws part")
             lines.append(f"  {parts} of batches interrupted between their renames (ignored "
                          "by readers; safe to delete)")  # fmt: skip
+        if self.uncommitted_records:
+            lost = counted(self.uncommitted_records, "record")
+            lines.append(f"  {lost} of a writer's last batch never committed: the writer stopped "
+                         "between the renames of the batch, before flush() acknowledged it "
+                         "(not a failure: see docs/ledger.md)")  # fmt: skip
         if self.bad_hashes and self.bad_hashes == self.decisions + self.outcomes:
             lines.append("  every hash differs: was the ledger written with another integrity key?")
         return "\n".join(lines)
@@ -188,10 +195,13 @@ def chain_key(rec: Rec) -> tuple[int, int]:
 def walk(
     report: IntegrityReport, records: Iterable[Rec], dup_ids: set[str],
     start: dict[str, tuple[int, str | None]] | None = None,
+    unfinished: Sequence[tuple[int, int]] = (),
 ) -> dict[str, tuple[int, str | None]]:  # fmt: skip
     """Check records of writer chains, given in (seq, order) order within each writer.
 
     ``start`` continues chains checked before: writer -> (next expected seq, last hash).
+    Missing seqs within the ``unfinished`` ranges (first, last) count as uncommitted records,
+    not gaps: the parts of an interrupted last batch (``unfinished_batch``; one writer a walk).
     Returns where each chain stands after the records.
     """
     state: dict[str, tuple[int, str | None]] = dict(start or {})  # writer -> (next seq, hash)
@@ -213,14 +223,24 @@ def walk(
             continue
         report.chained.add(rec.writer)
         if rec.seq > expected:
-            report.note("gaps", rec.decision_id, rec.seq - expected)
+            lost = _within(unfinished, expected, rec.seq)
+            report.uncommitted_records += lost
+            if rec.seq - expected > lost:
+                report.note("gaps", rec.decision_id, rec.seq - expected - lost)
         elif rec.seq == 0:  # the chain's start: null, or a genesis (check_registry)
             report.starts[rec.writer] = rec.prev_hash
         elif rec.prev_hash != last_hash:
             report.note("broken_links", rec.decision_id)
         state[rec.writer] = (rec.seq + 1, rec.hash)
+    for expected, _ in state.values():  # the end of an unfinished batch, past the last record
+        report.uncommitted_records += _within(unfinished, expected, 1 << 63)
     report.writers += len(state)
     return state
+
+
+def _within(ranges: Sequence[tuple[int, int]], low: int, high: int) -> int:
+    """How many seqs from ``low`` to ``high - 1`` lie in the disjoint (first, last) ranges."""
+    return sum(max(0, min(high, last + 1) - max(low, first)) for first, last in ranges)
 
 
 # What hashing a record whose fields have the wrong types raises (a NULL or text float, ...).

@@ -54,6 +54,8 @@ class WriterPiece:
     draws: list[Row]
     outcomes: list[Row]
     last: int
+    # Seq ranges of a stopped writer's last batch that never came (``unfinished_batch``).
+    unfinished: tuple[tuple[int, int], ...] = ()
 
 
 class Follower:
@@ -158,11 +160,9 @@ class Follower:
         return out
 
     def _parquet_after(self, tag: str, after: int, size: int) -> WriterPiece | None:
-        found = sorted(
-            ((p.first, order, p) for order, table in ((0, "decisions"), (1, "outcomes"))
-             for p in self._tagged(table) if p.tag == tag and p.last > after),
-            key=lambda t: (t[0], t[1]),
-        )  # fmt: skip
+        every = [(p.first, order, p) for order, table in ((0, "decisions"), (1, "outcomes"))
+                 for p in self._tagged(table) if p.tag == tag]  # fmt: skip
+        found = sorted((t for t in every if t[2].last > after), key=lambda t: (t[0], t[1]))
         rows: list[Row] = []
         draws: list[Row] = []
         outcomes: list[Row] = []
@@ -187,4 +187,5 @@ class Follower:
         rows.sort(key=lambda r: r[DEC.seq])
         outcomes.sort(key=lambda o: o[OUT.seq])
         draws.sort(key=lambda d: (d[DRAW.decision_id], d[DRAW.idx]))
-        return WriterPiece(tag, rows, draws, outcomes, last)
+        unfinished = _parquet.unfinished_batch(self.target, [p for *_, p in every])
+        return WriterPiece(tag, rows, draws, outcomes, last, tuple(unfinished))
