@@ -186,9 +186,9 @@ def batch_parts(root: str | os.PathLike[str], part: Part) -> list[Part] | None:
     return out
 
 
-def unfinished_batch(root: str | os.PathLike[str], parts: list[Part]) -> list[tuple[int, int]]:
-    """The seq ranges (first, last; disjoint, sorted) of the parts of a writer's last batch
-    that never came into place: the writer stopped between the renames of the batch.
+def unfinished_batch(root: str | os.PathLike[str], parts: list[Part]) -> list[Part]:
+    """The parts of a writer's last batch that never came into place: the writer stopped
+    between the renames of the batch. ``parts`` are the writer's decisions and outcomes parts.
 
     The parts of a batch name each other in their footers, in the order of their renames.
     Only the last batch counts, only when every part it names lies above every other part of
@@ -197,8 +197,7 @@ def unfinished_batch(root: str | os.PathLike[str], parts: list[Part]) -> list[tu
     """
     if not parts:
         return []
-    last = max(parts, key=lambda p: p.last)
-    batch = batch_parts(root, last)
+    batch = batch_parts(root, max(parts, key=lambda p: p.last))
     if not batch:
         return []
     named = {b.path for b in batch}
@@ -207,13 +206,7 @@ def unfinished_batch(root: str | os.PathLike[str], parts: list[Part]) -> list[tu
     came = [b.path in present for b in batch]
     if any(b.first <= below for b in batch) or came != sorted(came, reverse=True):
         return []
-    merged: list[tuple[int, int]] = []
-    for first, end in sorted((b.first, b.last) for b in batch if b.path not in present):
-        if merged and first <= merged[-1][1] + 1:
-            merged[-1] = (merged[-1][0], max(end, merged[-1][1]))
-        else:
-            merged.append((first, end))
-    return merged
+    return [b for b in batch if b.path not in present]
 
 
 def draws_sibling(root: str | os.PathLike[str], part: Part) -> Path:

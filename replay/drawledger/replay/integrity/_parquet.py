@@ -69,16 +69,25 @@ def parquet_cross_checks(root: Path, report: IntegrityReport) -> set[str]:
         for i in np.flatnonzero(missing).tolist():
             report.note("orphan_outcomes", ids[i])
 
-    # Draws parts without their decisions part: past the end of their writer's chain, the
-    # remains of a batch interrupted between its renames; anywhere else, orphans.
+    # Draws parts without their decisions part: past the end of their writer's chain, or of
+    # a decisions part that never came (unfinished_batch), the remains of a batch interrupted
+    # between its renames; anywhere else, orphans.
     paired = {_parquet.draws_sibling(root, p) for p in dec_parts}
     chain_end: dict[str, int] = {}
+    by_tag: dict[str, list[_parquet.Part]] = {}
     for p in (*dec_parts, *out_parts):
         chain_end[p.tag] = max(chain_end.get(p.tag, -1), p.last)
+        by_tag.setdefault(p.tag, []).append(p)
+    never_came = {
+        _parquet.draws_sibling(root, m)
+        for plist in by_tag.values()
+        for m in _parquet.unfinished_batch(root, plist)
+        if m.path.is_relative_to(root / "decisions")
+    }
     for p in _parquet.parts(root, "draws"):
         if p.path in paired:
             continue
-        if p.first > chain_end.get(p.tag, -1):
+        if p.first > chain_end.get(p.tag, -1) or p.path in never_came:
             report.uncommitted_parts += 1
             continue
         for did in _id_column(p.path, "draws"):
@@ -109,7 +118,7 @@ def walk_writer(
     ordered = sorted(plist, key=lambda t: t[:2])
     unfinished = _parquet.unfinished_batch(root, [p for *_, p in ordered])
     walk(report, parquet_chain(root, ordered, key, dup_ids, report), dup_ids,
-         unfinished=unfinished)  # fmt: skip
+         unfinished=[(p.first, p.last) for p in unfinished])  # fmt: skip
 
 
 def _load_part(

@@ -205,6 +205,7 @@ def walk(
     Returns where each chain stands after the records.
     """
     state: dict[str, tuple[int, str | None]] = dict(start or {})  # writer -> (next seq, hash)
+    unfinished = _merged(unfinished)
     for rec in records:
         if rec.order == 0:
             report.decisions += 1
@@ -238,8 +239,19 @@ def walk(
     return state
 
 
+def _merged(ranges: Sequence[tuple[int, int]]) -> list[tuple[int, int]]:
+    """(first, last) ranges merged where they overlap or touch, sorted."""
+    out: list[tuple[int, int]] = []
+    for first, last in sorted(ranges):
+        if out and first <= out[-1][1] + 1:
+            out[-1] = (out[-1][0], max(last, out[-1][1]))
+        else:
+            out.append((first, last))
+    return out
+
+
 def _within(ranges: Sequence[tuple[int, int]], low: int, high: int) -> int:
-    """How many seqs from ``low`` to ``high - 1`` lie in the disjoint (first, last) ranges."""
+    """How many seqs from ``low`` to ``high - 1`` lie in the (merged) ranges."""
     return sum(max(0, min(high, last + 1) - max(low, first)) for first, last in ranges)
 
 

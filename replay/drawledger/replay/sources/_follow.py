@@ -188,4 +188,5 @@ class Follower:
         outcomes.sort(key=lambda o: o[OUT.seq])
         draws.sort(key=lambda d: (d[DRAW.decision_id], d[DRAW.idx]))
         unfinished = _parquet.unfinished_batch(self.target, [p for *_, p in every])
-        return WriterPiece(tag, rows, draws, outcomes, last, tuple(unfinished))
+        return WriterPiece(tag, rows, draws, outcomes, last,
+                           tuple((p.first, p.last) for p in unfinished))  # fmt: skip
