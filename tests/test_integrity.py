@@ -397,6 +397,7 @@ def test_outcomes_part_missing_from_the_last_batch_is_uncommitted_not_a_gap(
                              report.outcomes)  # fmt: skip
     assert "4 records of a writer's last batch never committed" in report.render()
     assert 4 == report.to_dict()["uncommitted_records"]
+    assert "<td>uncommitted records (not a failure)</td><td>4</td>" in report._repr_html_()
 
 
 def test_outcomes_part_missing_from_an_earlier_batch_is_a_gap(tmp_path: Path) -> None:

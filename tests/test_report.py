@@ -195,6 +195,25 @@ def test_report_of_declared_draws(tmp_path: Path) -> None:
     assert 1 + len(result.audit.figures) == len(images(parse(text)))
 
 
+def test_report_counts_a_stopped_writers_uncommitted_records(tmp_path: Path) -> None:
+    """The outcomes part of a Parquet writer's last batch never came: shown, not a failure."""
+    root = tmp_path / "pq"
+    led = dl.Ledger(root, format="parquet", batch_size=1000)
+    for i in range(40):
+        led.record_draw("slot-discount", "bernoulli", {"p": 0.5}, i % 2 == 0, 0.5,
+                        decision_id=f"d{i}")  # fmt: skip
+        led.outcome(f"d{i}", "checkout", 1.0)
+        if i == 19:
+            led.flush()
+    led.close()
+    sorted((root / "outcomes").rglob("*.parquet"))[-1].unlink()
+    result = write_report(root, tmp_path / "pq.html")
+    text = result.path.read_text(encoding="utf-8")
+    integrity = result.verification.integrity
+    assert (True, 20) == (integrity.ok, integrity.uncommitted_records)
+    assert re.search(r"uncommitted records \(not a failure\)</td>\s*<td[^>]*>20<", text), text
+
+
 def test_a_draw_too_rare_to_test_fails_the_report_with_a_banner(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

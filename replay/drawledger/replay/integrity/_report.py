@@ -99,6 +99,13 @@ class IntegrityReport:
         self.ok = not any(getattr(self, p) for p in PROBLEMS if p != "orphan_outcomes")
         return self
 
+    def uncommitted(self) -> list[tuple[str, int]]:
+        """What a writer stopped between the renames of a Parquet batch left, where it left
+        anything: (what, count); not failures."""
+        found = [("uncommitted parts", self.uncommitted_parts),
+                 ("uncommitted records", self.uncommitted_records)]  # fmt: skip
+        return [(what, n) for what, n in found if n]
+
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {"ok": self.ok}
         out.update({p: getattr(self, p) for p in PROBLEMS})
@@ -173,6 +180,7 @@ class IntegrityReport:
                    f"{counted(self.writers, 'writer')}")  # fmt: skip
         rows = [(p.replace("_", " "), getattr(self, p), ", ".join(self.examples.get(p, [])))
                 for p in PROBLEMS]  # fmt: skip
+        rows += [(f"{what} (not a failure)", n, "") for what, n in self.uncommitted()]
         return html_table(caption, ("problem", "count", "examples"), rows)
 
 

@@ -208,7 +208,8 @@ def verify_section(v: VerifyReport) -> VerifySection:
                 ", ".join(d.get("examples", {}).get(p, [])),
             )
             for p in PROBLEMS
-        ],
+        ]
+        + [(f"{what} (not a failure)", num(n), "") for what, n in i.uncommitted()],
     )
     reasons = [Reason(r, num(n), v.examples.get(r, [])[:3]) for r, n in v.by_reason.items()]
     return VerifySection(
