@@ -535,6 +535,23 @@ def test_several_outcomes_of_a_decision_are_summed_and_said(tmp_path):
     assert report.warnings[0].startswith("40 of 200 records used have several 'checkout' outcomes")
 
 
+def test_one_draw_propensities_are_said_on_both_sides(tmp_path):
+    """A code out of 10,000 (more than the budget of 4096): each propensity is that of the
+    draw's value, not proven to be the action's; the estimate says so for each policy."""
+    led = dl.Ledger(tmp_path / "codes.db")
+    shop.use(led, seed=2)
+    for i in range(60):
+        code = shop.coupon_code(decision_id=f"d{i}")
+        led.outcome(f"d{i}", "redeemed", float(code % 2))
+    led.close()
+    report = estimate(tmp_path / "codes.db", reward="redeemed", overrides={"codes": 8000})
+    said = [w for w in report.warnings if "one-draw" in w]
+    assert 2 == len(said), report.warnings
+    assert said[0].startswith("60 of 60 logging propensities are one-draw")
+    assert said[1].startswith("60 target propensities are one-draw")
+    assert {"one-draw": 60} == report.target["propensities"]
+
+
 def test_a_few_missing_rewards_are_counted_without_an_alert(tmp_path):
     """1 of 40 (2.5%) is below the 5% alert share; it is still counted in the JSON."""
     led = dl.Ledger(tmp_path / "late.db")

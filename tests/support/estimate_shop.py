@@ -86,6 +86,12 @@ def mixed_delay(basket: dict[str, Any], draw: dl.Draw, *, share: float = 0.5) ->
     return draw.normal(90.0, 15.0, name="delay")
 
 
+@_placeholder.decision("coupon-code")
+def coupon_code(draw: dl.Draw, *, codes: int = 10_000) -> int:
+    """A coupon code out of more than the enumeration budget: one-draw propensities."""
+    return draw.integers(0, codes, name="code")
+
+
 _SLOPPY = random.Random(5)
 
 
@@ -98,7 +104,7 @@ def sloppy_card(ctx: dict[str, Any], draw: dl.Draw, *, temperature: float = 0.7)
 
 
 DECISIONS = (feature_card, greedy_card, reminder_delay, reminder_window, explore_card,
-             send_reminder, mixed_delay, sloppy_card)  # fmt: skip
+             send_reminder, mixed_delay, sloppy_card, coupon_code)  # fmt: skip
 
 
 def use(ledger: dl.Ledger, seed: int | None = None) -> None:

@@ -18,7 +18,7 @@ from drawledger.replay.estimate._elsewhere import Logged
 from drawledger.replay.estimate._estimators import ID_KEY
 from drawledger.replay.estimate._policies import Policy, Records, Target, evaluate
 from drawledger.replay.estimate._rewards import Rewards
-from drawledger.replay.propensity import MONTE_CARLO
+from drawledger.replay.propensity import MONTE_CARLO, ONE_DRAW
 from drawledger.replay.verify import BASE_COLUMNS, NOT_FAILING, Settings, verify_chunk
 
 T = TypeVar("T")
@@ -77,6 +77,7 @@ class Facts:
     rewarded: int = 0  # decisions of the stream with the reward (verified or not)
     filled: int = 0  # records used whose reward is the missing-reward value
     summed: int = 0  # records used whose reward is the sum of several outcomes
+    one_draw: int = 0  # records used whose logging propensity is one-draw (not proven)
     failed: int = 0  # decisions that failed verification
     failed_reasons: Counter[str] = field(default_factory=Counter)  # theirs
     refused_n: int = 0  # of them, with a reason the caller did not accept
@@ -217,6 +218,7 @@ def _usable(frame: pd.DataFrame, fns: dict[str, Any], rewards: Rewards,
         facts.filled = int(np.isnan(r).sum())
         r = np.where(np.isnan(r), job.missing_reward, r)
     facts.summed = int(frame["_several"].sum())
+    facts.one_draw = int((frame["propensity_method"] == ONE_DRAW).sum())
     return frame.drop(columns=["_reward", "_several"]), r, excluded
 
 

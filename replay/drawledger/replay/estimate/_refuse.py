@@ -81,6 +81,7 @@ class Failures:
     reasons: dict[str, int]  # their reasons
     code_changed: int  # decisions used although their code changed (accepted)
     summed: int = 0  # records used whose reward is the sum of several outcomes
+    one_draw: int = 0  # records used whose logging propensity is one-draw (not proven)
 
     @classmethod
     def of(cls, facts: Sequence[Facts]) -> Failures:
@@ -90,7 +91,7 @@ class Failures:
         return cls(sum(f.total for f in facts), sum(f.rewarded for f in facts),
                    sum(f.filled for f in facts), sum(f.failed for f in facts),
                    dict(sorted(reasons.items())), sum(f.code_changed for f in facts),
-                   sum(f.summed for f in facts))  # fmt: skip
+                   sum(f.summed for f in facts), sum(f.one_draw for f in facts))  # fmt: skip
 
 
 def check_stream(facts: Sequence[Facts], reward: str, stream: str,

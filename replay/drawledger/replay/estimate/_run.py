@@ -32,7 +32,12 @@ from drawledger.replay.estimate._report import (
 from drawledger.replay.estimate._rewards import choose_stream
 from drawledger.replay.estimate._runner import estimate_on
 from drawledger.replay.estimate._stages import Group, Pass
-from drawledger.replay.propensity import DEFAULT_BUDGET, DEFAULT_MC_SAMPLES, MONTE_CARLO
+from drawledger.replay.propensity import (
+    DEFAULT_BUDGET,
+    DEFAULT_MC_SAMPLES,
+    MONTE_CARLO,
+    ONE_DRAW,
+)
 from drawledger.replay.sources import (
     CHUNK_SIZE,
     Task,
@@ -225,6 +230,8 @@ def _excluded_warnings(p: Pass, reward: str) -> list[str]:
         out.append(f"{p.failures.summed} of {p.n} records used have several {reward!r} "
                    "outcomes; each uses their sum (a retried event counts twice: record one "
                    "outcome per decision if that is not what the reward means)")  # fmt: skip
+    if p.failures.one_draw:
+        out.append(_one_draw_warning(f"{p.failures.one_draw} of {p.n} logging propensities"))
     if p.failures.code_changed:
         changed = counted(p.failures.code_changed, "decision")
         out.append(f"{changed} ran under decision code that has changed since; they replayed "
@@ -234,6 +241,12 @@ def _excluded_warnings(p: Pass, reward: str) -> list[str]:
         return out
     parts = ", ".join(f"{k}: {v}" for k, v in sorted(p.excluded.items()))
     return [*out, f"{p.total - p.n} of {p.total} decisions were excluded ({parts})"]
+
+
+def _one_draw_warning(which: str) -> str:
+    return (f"{which} are one-draw: the probability of one draw's value, not proven to be the "
+            "action's (another value of the draw could return the same action; a draw with "
+            "more outcomes than the enumeration budget, docs/replay.md)")  # fmt: skip
 
 
 def _deficit_warning(deficit: float, reward_range: tuple[float, float], dr: bool) -> str:
@@ -264,6 +277,8 @@ def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool,
     if uneven:
         out.append(f"{'; '.join(uneven)}: the estimate rests on few records or a few heavy "
                    "weights, so its intervals may be too narrow")  # fmt: skip
+    if methods.get(ONE_DRAW, 0):
+        out.append(_one_draw_warning(f"{methods[ONE_DRAW]} target propensities"))
     mc = methods.get(MONTE_CARLO, 0)
     if mc:
         out.append(f"{mc} target propensities were estimated by Monte Carlo (noisy weights)")
