@@ -372,9 +372,9 @@ def test_draws_part_left_by_an_interrupted_batch_is_not_a_failure(tmp_path: Path
     assert 1 == report.uncommitted_parts
 
 
-def _batches_with_outcomes(root: Path, batches: int = 3) -> None:
+def _batches_with_outcomes(root: Path, batches: int = 3, key: str | None = None) -> None:
     """A Parquet ledger whose every batch holds 4 decisions and an outcome for each of them."""
-    led = dl.Ledger(root, format="parquet", batch_size=1000)
+    led = dl.Ledger(root, format="parquet", batch_size=1000, integrity_key=key)
     for b in range(batches):
         for i in range(4 * b, 4 * b + 4):
             led.record_draw("reminder-delay", "bernoulli", {"p": 0.5}, i % 2 == 0, 0.5,
@@ -419,15 +419,43 @@ def test_decisions_of_the_last_batch_deleted_behind_its_outcomes_are_gaps(
     assert (False, 4, 0) == (report.ok, report.gaps, report.uncommitted_records)
 
 
+def _forge_footer(part: Path, names: list[str], key: bytes = b"") -> None:
+    body = json.dumps({"parts": names, "hash": _records.batch_hash(names, key)})
+    data = pq.read_table(part)
+    pq.write_table(data.replace_schema_metadata({_parquet.BATCH_KEY: body.encode()}), part)
+
+
 def test_part_whose_footer_names_parts_of_another_writer_is_refused(tmp_path: Path) -> None:
     root = tmp_path / "ledger"
     _batches_with_outcomes(root)
     last = _parquet.parts(root, "outcomes")[-1].path
-    data = pq.read_table(last)
-    forged = json.dumps(["outcomes/../../elsewhere/000000000001-000000000002-ab.parquet"])
-    pq.write_table(data.replace_schema_metadata({_parquet.BATCH_KEY: forged.encode()}), last)
+    _forge_footer(last, ["outcomes/../../elsewhere/000000000001-000000000002-ab.parquet"])
     with pytest.raises(dl.LedgerError, match="footer names parts of its batch"):
         check_integrity(root)
+
+
+def test_a_crash_of_a_keyed_writer_is_excused_and_a_footer_forged_without_its_key_is_not(
+    tmp_path: Path,
+) -> None:
+    """Keyed mode: the part names of a batch are signed with the integrity key. A footer
+    rewritten without the key to name an outcomes part deleted from the middle batch as
+    the missing end of the last batch excuses nothing: the deletion stays a gap."""
+    crashed, edited = tmp_path / "crashed", tmp_path / "edited"
+    for root in (crashed, edited):
+        _batches_with_outcomes(root, key="s3cret")
+    _parquet.parts(crashed, "outcomes")[-1].path.unlink()
+    report = check_integrity(crashed, integrity_key="s3cret")
+    assert (True, 0, 4) == (report.ok, report.gaps, report.uncommitted_records)
+
+    decisions, outcomes = _parquet.parts(edited, "decisions"), _parquet.parts(edited, "outcomes")
+    outcomes[1].path.unlink()  # the middle batch's outcomes
+    names = [p.path.relative_to(edited).as_posix()
+             for p in (decisions[1], decisions[2], outcomes[2], outcomes[1])]  # fmt: skip
+    _forge_footer(outcomes[2].path, names)
+    report = check_integrity(edited, integrity_key="s3cret")
+    assert (False, 4, 0) == (report.ok, report.gaps, report.uncommitted_records)
+    _forge_footer(outcomes[2].path, names, b"s3cret")  # with the key it would pass
+    assert check_integrity(edited, integrity_key="s3cret").ok
 
 
 def _writer_of(root: Path) -> str:

@@ -30,7 +30,7 @@ from urllib.parse import quote
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from drawledger import _registry
+from drawledger import _records, _registry
 from drawledger._schema import CODE_VERSIONS, DEC, OUT, REGISTRY, SPECS, TableSpec, damaged
 from drawledger.exceptions import LedgerError
 
@@ -149,9 +149,10 @@ def parts(root: str | os.PathLike[str], table: str) -> list[Part]:
     return sorted((p for p in found if p is not None), key=lambda p: p.path)
 
 
-def batch_parts(root: str | os.PathLike[str], part: Part) -> list[Part] | None:
+def batch_parts(root: str | os.PathLike[str], part: Part, key: bytes) -> list[Part] | None:
     """The parts of decisions and outcomes written in one batch with ``part``, as its footer
-    names them (None for a part written alone or before batches named their parts).
+    names them; None for a part written alone, before batches named their parts, or whose
+    names do not carry their signature under ``key`` (the integrity key).
 
     Only names of committed parts of the same writer under the ledger's decisions and
     outcomes tables are taken; anything else in the footer raises ``LedgerError``.
@@ -164,7 +165,11 @@ def batch_parts(root: str | os.PathLike[str], part: Part) -> list[Part] | None:
         return None
     out: list[Part] = []
     try:
-        for name in json.loads(meta[BATCH_KEY]):
+        found = json.loads(meta[BATCH_KEY])
+        names = found["parts"]
+        if found["hash"] != _records.batch_hash(names, key):
+            return None
+        for name in names:
             fields = name.split("/")
             if fields[0] == "draws":
                 continue
@@ -177,7 +182,7 @@ def batch_parts(root: str | os.PathLike[str], part: Part) -> list[Part] | None:
             ):
                 raise ValueError(name)
             out.append(named)
-    except (ValueError, TypeError, AttributeError):
+    except (ValueError, TypeError, AttributeError, KeyError):
         where = os.fspath(part.path)
         raise LedgerError(
             f"ledger part {where!r} is damaged: its footer names parts of its batch that are "
@@ -186,18 +191,18 @@ def batch_parts(root: str | os.PathLike[str], part: Part) -> list[Part] | None:
     return out
 
 
-def unfinished_batch(root: str | os.PathLike[str], parts: list[Part]) -> list[Part]:
+def unfinished_batch(root: str | os.PathLike[str], parts: list[Part], key: bytes) -> list[Part]:
     """The parts of a writer's last batch that never came into place: the writer stopped
     between the renames of the batch. ``parts`` are the writer's decisions and outcomes parts.
 
-    The parts of a batch name each other in their footers, in the order of their renames.
-    Only the last batch counts, only when every part it names lies above every other part of
-    the writer, and only when the missing parts are the last ones to be renamed: a part
-    missing anywhere else leaves gaps.
+    The parts of a batch name each other in their footers, in the order of their renames,
+    signed with the integrity key ``key``. Only the last batch counts, only when every part it
+    names lies above every other part of the writer, and only when the missing parts are the
+    last ones to be renamed: a part missing anywhere else leaves gaps.
     """
     if not parts:
         return []
-    batch = batch_parts(root, max(parts, key=lambda p: p.last))
+    batch = batch_parts(root, max(parts, key=lambda p: p.last), key)
     if not batch:
         return []
     named = {b.path for b in batch}
@@ -343,9 +348,10 @@ class ParquetSink:
 
     indexed_ids = False  # stored_ids reads every part: ingest asks, the writer does not
 
-    def __init__(self, root: str, *, durability: str = "normal") -> None:
+    def __init__(self, root: str, *, durability: str = "normal", key: bytes = b"") -> None:
         self.root = Path(root).expanduser()
         self.full = durability == "full"
+        self.key = key  # signs the part names of each batch (unfinished_batch)
         self._ids: dict[str, str] | None = None  # stream of each decision id (stored_ids)
         try:
             for table in TABLES:
@@ -386,7 +392,8 @@ class ParquetSink:
         # Every part of a batch of several names them all: a crash between the renames leaves
         # parts that say which of their batch never came (unfinished_batch).
         names = [(folder / name).relative_to(self.root).as_posix() for folder, name, *_ in planned]
-        meta = {BATCH_KEY: json.dumps(names).encode()} if len(names) > 1 else None
+        body = {"parts": names, "hash": _records.batch_hash(names, self.key)}
+        meta = {BATCH_KEY: json.dumps(body).encode()} if len(names) > 1 else None
         staged: list[tuple[Path, Path]] = []
         try:
             for folder, name, rows, table in planned:

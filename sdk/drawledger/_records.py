@@ -182,6 +182,11 @@ def genesis_hash(ledger_id: str, writer: str, key: bytes = b"") -> str:
     return _digest(orjson.dumps(["drawledger.genesis.v1", ledger_id, writer]), key)
 
 
+def batch_hash(names: Sequence[str], key: bytes = b"") -> str:
+    """The signature of the part names of a Parquet batch (docs/ledger.md, "Parquet layout")."""
+    return _digest(orjson.dumps(["drawledger.batch.v1", list(names)]), key)
+
+
 def writer_tag(
     ledger_id: str, writer: str, started: float, genesis: str | None, key: bytes = b""
 ) -> str:

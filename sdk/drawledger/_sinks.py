@@ -272,15 +272,17 @@ _COLUMNS = {t.name: t.names for t in _schema.SPECS}
 
 
 def open_sink(
-    target: str | os.PathLike[str], format: str | None = None, *, durability: str = "normal"
-) -> Sink:
-    """The sink for a ledger target: a path (SQLite), a SQLAlchemy URL, or a Parquet directory."""
+    target: str | os.PathLike[str], format: str | None = None, *, durability: str = "normal",
+    key: bytes = b"",
+) -> Sink:  # fmt: skip
+    """The sink for a ledger target: a path (SQLite), a SQLAlchemy URL, or a Parquet directory.
+    ``key`` is the integrity key (a Parquet sink signs the part names of each batch with it)."""
     if format in (None, "sql", "sqlite"):
         return SqlSink(sqlalchemy_url(target), durability=durability)
     if format == "parquet":
         from drawledger._parquet import ParquetSink
 
-        return ParquetSink(os.fspath(target), durability=durability)
+        return ParquetSink(os.fspath(target), durability=durability, key=key)
     raise LedgerError(f"unknown ledger format {format!r}; use 'parquet' or leave it out")
 
 

@@ -285,7 +285,8 @@ class Ledger:
         )
 
     def _open_sink(self) -> _sinks.Sink:
-        return _sinks.open_sink(self.target, self.format, durability=self.durability)
+        return _sinks.open_sink(self.target, self.format, durability=self.durability,
+                                key=self._key)  # fmt: skip
 
     def _bind_chain(self) -> str | None:
         """Register this writer in the ledger's registry; the genesis its chain starts from.

@@ -172,7 +172,7 @@ def guard(
     saved: list[bytes | None] = [None]
     last_save = [time.monotonic(), len(current.alarms)]
 
-    follower = Follower(ledger, format=format)
+    follower = Follower(ledger, format=format, key=key)
     served = Metrics(metrics_port) if metrics_port is not None else None
 
     def save(lag: tuple[int, float | None]) -> None:

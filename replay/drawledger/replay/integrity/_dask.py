@@ -21,7 +21,7 @@ def _integrity_ids(root: str, key: bytes) -> tuple[IntegrityReport, set[str]]:
     """
 
     report = IntegrityReport(keyed=bool(key))
-    return report, parquet_cross_checks(Path(root), report)
+    return report, parquet_cross_checks(Path(root), key, report)
 
 
 def _integrity_chains(

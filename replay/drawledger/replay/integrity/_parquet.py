@@ -36,7 +36,7 @@ def _id_column(path: Path, table: str) -> list[str]:
     return ids
 
 
-def parquet_cross_checks(root: Path, report: IntegrityReport) -> set[str]:
+def parquet_cross_checks(root: Path, key: bytes, report: IntegrityReport) -> set[str]:
     """The ledger-wide checks of a Parquet ledger, before the chain walks: duplicate decision
     ids, orphan outcomes and draws, interrupted batches. Returns the duplicate ids."""
     dec_parts = _parquet.parts(root, "decisions")
@@ -81,7 +81,7 @@ def parquet_cross_checks(root: Path, report: IntegrityReport) -> set[str]:
     never_came = {
         _parquet.draws_sibling(root, m)
         for plist in by_tag.values()
-        for m in _parquet.unfinished_batch(root, plist)
+        for m in _parquet.unfinished_batch(root, plist, key)
         if m.path.is_relative_to(root / "decisions")
     }
     for p in _parquet.parts(root, "draws"):
@@ -97,7 +97,7 @@ def parquet_cross_checks(root: Path, report: IntegrityReport) -> set[str]:
 
 def check_parquet(root: Path, key: bytes, report: IntegrityReport) -> None:
     _parquet.check_ledger_dir(root)
-    dup_ids = parquet_cross_checks(root, report)
+    dup_ids = parquet_cross_checks(root, key, report)
     dec_parts = _parquet.parts(root, "decisions")
     out_parts = _parquet.parts(root, "outcomes")
 
@@ -116,7 +116,7 @@ def walk_writer(
 ) -> None:  # fmt: skip
     """Walk one writer tag's chain; parts as (first seq, 0 decisions or 1 outcomes, part)."""
     ordered = sorted(plist, key=lambda t: t[:2])
-    unfinished = _parquet.unfinished_batch(root, [p for *_, p in ordered])
+    unfinished = _parquet.unfinished_batch(root, [p for *_, p in ordered], key)
     walk(report, parquet_chain(root, ordered, key, dup_ids, report), dup_ids,
          unfinished=[(p.first, p.last) for p in unfinished])  # fmt: skip
 

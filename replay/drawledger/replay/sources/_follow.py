@@ -61,8 +61,11 @@ class WriterPiece:
 class Follower:
     """Reads the new records of a ledger writer by writer (one open connection pool)."""
 
-    def __init__(self, target: str | os.PathLike[str], *, format: str | None = None) -> None:
+    def __init__(
+        self, target: str | os.PathLike[str], *, format: str | None = None, key: bytes = b""
+    ) -> None:
         self.target = os.fspath(target)
+        self.key = key  # the integrity key: a Parquet batch's part names are signed with it
         self.parquet = is_parquet(target, format)
         self.engine: sa.Engine | None = None
         if self.parquet:
@@ -187,6 +190,6 @@ class Follower:
         rows.sort(key=lambda r: r[DEC.seq])
         outcomes.sort(key=lambda o: o[OUT.seq])
         draws.sort(key=lambda d: (d[DRAW.decision_id], d[DRAW.idx]))
-        unfinished = _parquet.unfinished_batch(self.target, [p for *_, p in every])
+        unfinished = _parquet.unfinished_batch(self.target, [p for *_, p in every], self.key)
         return WriterPiece(tag, rows, draws, outcomes, last,
                            tuple((p.first, p.last) for p in unfinished))  # fmt: skip
