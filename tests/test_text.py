@@ -31,6 +31,14 @@ def test_visible_text_holds_no_control_format_or_separator_character(text: str) 
     shown.encode("utf-8")  # a lone surrogate would not encode
 
 
+def test_every_format_character_is_escaped_not_only_the_well_known_ones() -> None:
+    """Format characters outside the bidirectional and zero-width ones (Egyptian hieroglyph
+    and musical symbol format controls, Arabic number sign) and an unassigned code point."""
+    text = "a\U00013430b\U0001d173c\u0600d\U000e0002"
+    assert r"a\U00013430b\U0001d173c\u0600d\U000e0002" == visible(text)
+    assert "grün, 食べる, 🥕" == visible("grün, 食べる, 🥕")
+
+
 def test_clipped_text_ends_with_an_ellipsis_within_the_limit() -> None:
     assert "abcd…" == clipped("abcdefgh", 5)
     assert "abc" == clipped("abc", 5)

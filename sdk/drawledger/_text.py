@@ -11,21 +11,24 @@ also shortens very long text for display.
 from __future__ import annotations
 
 import re
+import unicodedata
 
 __all__ = ["clipped", "counted", "visible"]
 
-# C0 and C1 controls with DEL; the bidirectional marks, embeddings, overrides and isolates
-# (Unicode Standard Annex #9); line and paragraph separators; invisible format characters
-# (soft hyphen, zero-width characters, word joiner, byte order mark, interlinear annotation,
-# tags); lone surrogates.
-UNSAFE = re.compile(
-    "[\x00-\x1f\x7f-\x9f\u00ad\u061c\u180e\u200b-\u200f\u2028-\u202e\u2060-\u206f"
-    "\ufeff\ufff9-\ufffb\ud800-\udfff\U000e0000-\U000e007f]"
-)
+# The Unicode general categories never shown as they are: controls (Cc: C0, C1 and DEL),
+# format characters (Cf: the bidirectional marks, embeddings, overrides and isolates of
+# Unicode Standard Annex #9, soft hyphen, zero-width characters, tags, ...), surrogates (Cs),
+# line and paragraph separators (Zl, Zp), and code points unassigned in this Python's Unicode
+# database (Cn), which a newer terminal may treat as any of these.
+UNSAFE_CATEGORIES = frozenset({"Cc", "Cf", "Cs", "Zl", "Zp", "Cn"})
+_ASCII_UNSAFE = re.compile("[\x00-\x1f\x7f]")
 
 
 def _escape(match: re.Match[str]) -> str:
-    code = ord(match.group())
+    return _escape_code(ord(match.group()))
+
+
+def _escape_code(code: int) -> str:
     if code <= 0xFF:
         return f"\\x{code:02x}"
     return f"\\u{code:04x}" if code <= 0xFFFF else f"\\U{code:08x}"
@@ -34,7 +37,12 @@ def _escape(match: re.Match[str]) -> str:
 def visible(text: object) -> str:
     """``text`` as a string with every control, bidirectional and invisible format character
     written as its escape (``\\x1b``, ``\\x0a`` for a newline, ``\\u202e``): one line."""
-    return UNSAFE.sub(_escape, str(text))
+    shown = str(text)
+    if shown.isascii():
+        return _ASCII_UNSAFE.sub(_escape, shown)
+    return "".join(
+        _escape_code(ord(c)) if unicodedata.category(c) in UNSAFE_CATEGORIES else c for c in shown
+    )
 
 
 def clipped(text: object, limit: int) -> str:
