@@ -142,9 +142,13 @@ def test_demo_command_end_to_end(tmp_path: Path, capsys: pytest.CaptureFixture[s
     truth = f"{ShopperSimulator.true_value(temperature=0.3):.4f}"
     for name in ("ips", "snips", "clipped", "dr"):
         assert re.search(rf"^  {name} +\d\.\d{{4}} +{INTERVAL} +{truth}", text, re.M), name
-    for minutes in (30, 45, 60, 75, 90):
+    for minutes in (45, 60, 75, 90):
         true = f"{ShopperSimulator.true_value(nominal_minutes=minutes):.4f}"
         assert re.search(rf"^ +{minutes} +\d\.\d{{4}} +{INTERVAL} +{true}", text, re.M), minutes
+    # 300 sessions are too few for 45 minutes (ESS below 100): the row says so, as the report
+    assert re.search(r"^ +45 .* read with care$", text, re.M)
+    assert re.search(r"^ +90 .*\d$", text, re.M)
+    assert "read with care: the weights are too uneven there" in text
     assert f"report   {out / 'report.html'}" in text
 
 
@@ -156,8 +160,8 @@ def test_demo_result_carries_every_report(demo_run: object) -> None:
     assert 300 == d["sessions"]
     assert 600 == d["verify"]["verified"]
     assert {"ips", "snips", "clipped", "dr"} == set(d["temperature"]["estimates"])
-    assert [30.0, 45.0, 60.0, 75.0, 90.0] == [p["value"] for p in d["delay"]["points"]]
-    assert 5 == len(d["truth"]["delay"])
+    assert [45.0, 60.0, 75.0, 90.0] == [p["value"] for p in d["delay"]["points"]]
+    assert 4 == len(d["truth"]["delay"])
     assert {"simulate", "verify", "audit", "estimate", "sweep", "report"} == set(d["seconds"])
 
 

@@ -156,6 +156,15 @@ def test_sweep_grid_is_evenly_spaced_and_inclusive():
     assert ("temperature", [0.2, 0.4, 0.6, 0.8, 1.0]) == sweep_grid("temperature=0.2:1.0:5")
 
 
+def test_sweep_grid_of_integers_written_as_integers_is_integers():
+    """A count (an integer draw's bound) accepts no 8000.0; 1:4:3 has 2.5 in it, so floats."""
+    name, values = sweep_grid("codes=4000:10000:4")
+    assert ("codes", [4000, 6000, 8000, 10000]) == (name, values)
+    assert {int} == {type(v) for v in values}
+    assert {float} == {type(v) for v in sweep_grid("k=1:4:3")[1]}
+    assert {float} == {type(v) for v in sweep_grid("k=1.0:4.0:4")[1]}
+
+
 def test_reward_range_reads_low_comma_high_or_low_colon_high():
     assert (0.0, 1.0) == reward_range("0,1")
     assert (0.0, 1.0) == reward_range("0:1")

@@ -155,17 +155,18 @@ def test_clipped_outer_band_of_a_difference_covers_the_true_difference():
 
 
 def test_overlap_rule_flags_ess_205_of_4000_with_a_largest_weight_of_150():
-    """The demo's reminder sweep at 30 minutes (4000 sessions): ESS 204.6, largest weight 150.6,
-    4.1% of the sum of the weights. Both rules fire; the thresholds are common practice."""
+    """The reminder sweep at 30 minutes on the demo's ledger (4000 sessions): ESS 204.6,
+    largest weight 150.6, 4.1% of the sum of the weights. Both rules fire; the thresholds are
+    common practice."""
     problems = est.overlap_problems(204.6, 4000, 150.6 / 3714.0)
     assert 2 == len(problems)
-    assert "effective sample size 204.6 is 5.1% of the 4000 records (below 10%)" == problems[0]
+    assert "effective sample size 204.6 is 5.12% of the 4000 records (below 10%)" == problems[0]
     assert "the largest weight carries 4.1% of the sum of the weights (above 1%)" == problems[1]
 
 
 def test_overlap_rule_thresholds_and_the_largest_weights_share():
     assert [] == est.overlap_problems(400.0, 4000, 0.01)
-    assert ["effective sample size 399.0 is 10.0% of the 4000 records (below 10%)"] == (
+    assert ["effective sample size 399.0 is 9.97% of the 4000 records (below 10%)"] == (
         est.overlap_problems(399.0, 4000, None)
     )
     assert ["effective sample size 99.0 of 99 records is below 100"] == (

@@ -44,7 +44,9 @@ MAX_SWEEP_POINTS = 1000  # each point is a whole estimate
 
 
 def sweep_grid(text: str) -> tuple[str, list[float]]:
-    """``K=START:STOP:POINTS`` as the parameter name and POINTS evenly spaced values."""
+    """``K=START:STOP:POINTS`` as the parameter name and POINTS evenly spaced values: integers
+    when START and STOP are written as integers and every value is one (a count of options),
+    else floats."""
     key, sep, spec = text.partition("=")
     parts = spec.split(":")
     try:
@@ -58,7 +60,18 @@ def sweep_grid(text: str) -> tuple[str, list[float]]:
         raise ValueError(f"--sweep {text!r}: START and STOP must be finite numbers")
     if not 2 <= steps <= MAX_SWEEP_POINTS:
         raise ValueError(f"--sweep {text!r}: POINTS must be between 2 and {MAX_SWEEP_POINTS}")
-    return key, [round(start + (stop - start) * (i / (steps - 1)), 12) for i in range(steps)]
+    grid = [round(start + (stop - start) * (i / (steps - 1)), 12) for i in range(steps)]
+    if _is_int(parts[0]) and _is_int(parts[1]) and all(v.is_integer() for v in grid):
+        return key, [int(v) for v in grid]
+    return key, grid
+
+
+def _is_int(text: str) -> bool:
+    try:
+        int(text)
+    except ValueError:
+        return False
+    return True
 
 
 def reward_range(text: str) -> tuple[float, float]:

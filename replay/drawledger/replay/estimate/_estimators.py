@@ -403,8 +403,8 @@ def overlap_problems(ess: float, n: int, max_share: float | None) -> list[str]:
     if ess < MIN_ESS:
         out.append(f"effective sample size {ess:.1f} of {n} records is below {MIN_ESS:g}")
     elif ess < MIN_ESS_SHARE * n:
-        out.append(f"effective sample size {ess:.1f} is {ess / n:.1%} of the {n} records "
-                   f"(below {MIN_ESS_SHARE:.0%})")  # fmt: skip
+        out.append(f"effective sample size {ess:.1f} is {100 * ess / n:.3g}% of the {n} "
+                   f"records (below {MIN_ESS_SHARE:.0%})")  # fmt: skip
     if max_share is not None and max_share > MAX_WEIGHT_SHARE:
         out.append(f"the largest weight carries {max_share:.1%} of the sum of the weights "
                    f"(above {MAX_WEIGHT_SHARE:.0%})")  # fmt: skip

@@ -291,11 +291,19 @@ def _found(p: Pass, missing_reward: float | None) -> dict[str, Any]:
     return failure_fields(p.failures, p.integrity, missing_reward, p.n)
 
 
-def _problem(summary: dict[str, Any]) -> bool:
+def _cannot_answer(summary: dict[str, Any]) -> list[str]:
+    """Why the data cannot answer the question as asked (a support deficit, too uneven
+    weights), one line each, for the top of the output; the warnings give the details."""
     d = summary["diagnostics"]
-    deficit = d["support_deficit"]
-    small = bool(est.overlap_problems(d["ess"], summary["n"], d["max_weight_share"]))
-    return bool((deficit is not None and deficit > 0.0) or small)
+    out = []
+    if d["support_deficit"] is not None and d["support_deficit"] > 0.0:
+        out.append(f"support deficit {d['support_deficit']:.3g}: the data cannot answer this "
+                   "question as asked (see the warning below)")  # fmt: skip
+    uneven = est.overlap_problems(d["ess"], summary["n"], d["max_weight_share"])
+    if uneven:
+        out.append(f"{'; '.join(uneven)}: the estimate rests on few records or a few heavy "
+                   "weights (see the warning below)")  # fmt: skip
+    return out
 
 
 def _segments(p: Pass, bounds: tuple[float, float], s: _Settings, by: str) -> dict[str, Any]:
@@ -401,7 +409,8 @@ def estimate(
     summary = _summary(p.pairs[0], has_dr, bounds, s, p.weights)
     warnings = [*_excluded_warnings(p, reward),
                 *_warnings(summary, p.methods[0], has_dr, s.reward_range), *s.notes()]  # fmt: skip
-    top = alerts(p.failures, p.integrity, reward, missing_reward, p.n)
+    top = [*alerts(p.failures, p.integrity, reward, missing_reward, p.n),
+           *_cannot_answer(summary)]  # fmt: skip
     found = _found(p, missing_reward)
     describe = {**_describe(spec), "stream": stream_name, "functions": p.functions,
                 "reward": reward, "propensities": dict(p.methods[0])}  # fmt: skip
@@ -414,7 +423,7 @@ def estimate(
         baseline_estimates=summary["baseline"], difference=summary["difference"],
         excluded=dict(p.excluded), warnings=warnings, settings=s.to_dict(),
         segments=None if by is None else _segments(p, bounds, s, by),
-        decisions=p.total, weights=p.weights, ok=not _problem(summary) and not top,
+        decisions=p.total, weights=p.weights, ok=not top,
         alerts=top, accepted_failures=found["accepted_failures"],
         missing_rewards=found["missing_rewards"], versions=versions,
     )  # fmt: skip
@@ -474,7 +483,7 @@ def sweep(
     )
     s = _Settings(cap, interval, level, b, seed, p.reward_range, reward_range is not None)
     top = alerts(p.failures, p.integrity, reward, missing_reward, p.n)
-    points, warnings, ok = [], [], True
+    points, warnings = [], []
     base_estimates: dict[str, Any] = {}
     for j, (value, pair) in enumerate(zip(grid, p.pairs, strict=True)):
         has_dr = p.dr[j] and p.dr[-1]
@@ -482,8 +491,9 @@ def sweep(
         base_estimates = summary["baseline"]
         for w in _warnings(summary, p.methods[j], has_dr, s.reward_range):
             warnings.append(f"{param}={value!r}: {w}")
-        ok = ok and not _problem(summary)
-        points.append({"value": value, "estimates": summary["estimates"],
+        cannot = _cannot_answer(summary)
+        top.extend(f"{param}={value!r}: {line}" for line in cannot)
+        points.append({"value": value, "alerts": cannot, "estimates": summary["estimates"],
                        "difference": summary["difference"],
                        "diagnostics": {k: summary["diagnostics"][k] for k in
                                        ("ess", "max_weight", "max_weight_share",
@@ -492,7 +502,7 @@ def sweep(
         param=param, values=grid, points=points,
         baseline={**_describe(baseline), "estimates": base_estimates},
         settings={**s.to_dict(), "overrides": fixed, "stream": stream_name, "reward": reward},
-        warnings=_excluded_warnings(p, reward) + warnings + s.notes(), n=p.n, ok=ok and not top,
+        warnings=_excluded_warnings(p, reward) + warnings + s.notes(), n=p.n, ok=not top,
         alerts=top,
         versions=versions, **_found(p, missing_reward),
     )  # fmt: skip

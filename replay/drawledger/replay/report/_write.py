@@ -78,8 +78,9 @@ class HtmlReport:
     @property
     def ok(self) -> bool:
         """Verification and audit passed, no estimate was refused or shown under an alert
-        (made from accepted failures, or with many rewards filled in); estimate warnings do
-        not make a report fail."""
+        (made from accepted failures, with many rewards filled in, or from data that cannot
+        answer: a support deficit, too uneven weights); other warnings do not make a report
+        fail."""
         alerted = any(w.result.alerts for w in self.whatifs)
         return self.verification.ok and self.audit.ok and not self.refused and not alerted
 
