@@ -28,6 +28,7 @@ import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
+from coin_batches import coin_batches
 
 import drawledger as dl
 from drawledger import _parquet
@@ -210,14 +211,7 @@ def test_outcomes_missing_from_a_last_batch_count_as_the_local_engine(
 ) -> None:
     """A writer stopped between the renames of its last batch: not a gap on either engine."""
     root = tmp_path / "ledger"
-    led = dl.Ledger(root, format="parquet", batch_size=1000)
-    for i in range(8):
-        led.record_draw("reminder-delay", "bernoulli", {"p": 0.5}, i % 2 == 0, 0.5,
-                        decision_id=f"req-{i}")  # fmt: skip
-        led.outcome(f"req-{i}", "checkout", 1.0)
-        if i == 3:
-            led.flush()
-    led.close()
+    coin_batches(root, 2, 4)
     _parquet.parts(root, "outcomes")[-1].path.unlink()  # the last batch's outcomes
     local = _verify(root, keep_rows=False)
     remote = _verify(root, engine="dask", scheduler=scheduler, keep_rows=False)

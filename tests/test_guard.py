@@ -16,6 +16,7 @@ from typing import Any
 import orjson
 import pytest
 import shop_decisions as sd
+from coin_batches import coin_batches
 from conftest import SUPPORT
 from git_shop import Shop
 from hypothesis import given
@@ -217,14 +218,7 @@ def test_outcomes_missing_from_a_stopped_writers_last_batch_are_no_gap(tmp_path:
     outcomes that never came raise no alarm, as in ``drawledger verify``; one missing from an
     earlier batch does."""
     root = tmp_path / "pq"
-    led = dl.Ledger(root, format="parquet", batch_size=1000)
-    for i in range(12):
-        led.record_draw("reminder-delay", "bernoulli", {"p": 0.5}, i % 2 == 0, 0.5,
-                        decision_id=f"req-{i}")  # fmt: skip
-        led.outcome(f"req-{i}", "checkout", 1.0)
-        if i % 4 == 3:
-            led.flush()
-    led.close()
+    coin_batches(root, 3, 4)
     outcome_parts = sorted((root / "outcomes").rglob("*.parquet"))
     outcome_parts[-1].unlink()
     stopped = guard(root, once=True, gap_wait=0.0)

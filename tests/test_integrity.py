@@ -12,6 +12,7 @@ from typing import Any
 
 import pyarrow.parquet as pq
 import pytest
+from coin_batches import coin_batches
 
 import drawledger as dl
 from drawledger import _parquet, _records
@@ -372,24 +373,12 @@ def test_draws_part_left_by_an_interrupted_batch_is_not_a_failure(tmp_path: Path
     assert 1 == report.uncommitted_parts
 
 
-def _batches_with_outcomes(root: Path, batches: int = 3, key: str | None = None) -> None:
-    """A Parquet ledger whose every batch holds 4 decisions and an outcome for each of them."""
-    led = dl.Ledger(root, format="parquet", batch_size=1000, integrity_key=key)
-    for b in range(batches):
-        for i in range(4 * b, 4 * b + 4):
-            led.record_draw("reminder-delay", "bernoulli", {"p": 0.5}, i % 2 == 0, 0.5,
-                            decision_id=f"req-{i}")  # fmt: skip
-            led.outcome(f"req-{i}", "checkout", 1.0)
-        led.flush()
-    led.close()
-
-
 def test_outcomes_part_missing_from_the_last_batch_is_uncommitted_not_a_gap(
     tmp_path: Path,
 ) -> None:
     """A writer stopped after the decisions rename of its last batch: its outcomes never came."""
     root = tmp_path / "ledger"
-    _batches_with_outcomes(root)
+    coin_batches(root, 3, 4)
     _parquet.parts(root, "outcomes")[-1].path.unlink()
     report = check_integrity(root)
     assert report.ok, report.render()
@@ -402,7 +391,7 @@ def test_outcomes_part_missing_from_the_last_batch_is_uncommitted_not_a_gap(
 
 def test_outcomes_part_missing_from_an_earlier_batch_is_a_gap(tmp_path: Path) -> None:
     root = tmp_path / "ledger"
-    _batches_with_outcomes(root)
+    coin_batches(root, 3, 4)
     _parquet.parts(root, "outcomes")[1].path.unlink()
     report = check_integrity(root)
     assert (False, 4, 0) == (report.ok, report.gaps, report.uncommitted_records)
@@ -413,7 +402,7 @@ def test_decisions_of_the_last_batch_deleted_behind_its_outcomes_are_gaps(
 ) -> None:
     """Outcomes are renamed after decisions: outcomes without their decisions part are no crash."""
     root = tmp_path / "ledger"
-    _batches_with_outcomes(root)
+    coin_batches(root, 3, 4)
     _parquet.parts(root, "decisions")[-1].path.unlink()
     report = check_integrity(root)
     assert (False, 4, 0) == (report.ok, report.gaps, report.uncommitted_records)
@@ -427,7 +416,7 @@ def _forge_footer(part: Path, names: list[str], key: bytes = b"") -> None:
 
 def test_part_whose_footer_names_parts_of_another_writer_is_refused(tmp_path: Path) -> None:
     root = tmp_path / "ledger"
-    _batches_with_outcomes(root)
+    coin_batches(root, 3, 4)
     last = _parquet.parts(root, "outcomes")[-1].path
     _forge_footer(last, ["outcomes/../../elsewhere/000000000001-000000000002-ab.parquet"])
     with pytest.raises(dl.LedgerError, match="footer names parts of its batch"):
@@ -442,7 +431,7 @@ def test_a_crash_of_a_keyed_writer_is_excused_and_a_footer_forged_without_its_ke
     the missing end of the last batch excuses nothing: the deletion stays a gap."""
     crashed, edited = tmp_path / "crashed", tmp_path / "edited"
     for root in (crashed, edited):
-        _batches_with_outcomes(root, key="s3cret")
+        coin_batches(root, 3, 4, key="s3cret")
     _parquet.parts(crashed, "outcomes")[-1].path.unlink()
     report = check_integrity(crashed, integrity_key="s3cret")
     assert (True, 0, 4) == (report.ok, report.gaps, report.uncommitted_records)

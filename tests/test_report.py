@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from coin_batches import coin_batches
 from hypothesis import given
 from markupsafe import escape
 from strategies import hostile_text
@@ -198,14 +199,7 @@ def test_report_of_declared_draws(tmp_path: Path) -> None:
 def test_report_counts_a_stopped_writers_uncommitted_records(tmp_path: Path) -> None:
     """The outcomes part of a Parquet writer's last batch never came: shown, not a failure."""
     root = tmp_path / "pq"
-    led = dl.Ledger(root, format="parquet", batch_size=1000)
-    for i in range(40):
-        led.record_draw("slot-discount", "bernoulli", {"p": 0.5}, i % 2 == 0, 0.5,
-                        decision_id=f"d{i}")  # fmt: skip
-        led.outcome(f"d{i}", "checkout", 1.0)
-        if i == 19:
-            led.flush()
-    led.close()
+    coin_batches(root, 2, 20)
     sorted((root / "outcomes").rglob("*.parquet"))[-1].unlink()
     result = write_report(root, tmp_path / "pq.html")
     text = result.path.read_text(encoding="utf-8")
