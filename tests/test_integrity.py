@@ -389,21 +389,17 @@ def test_outcomes_part_missing_from_the_last_batch_is_uncommitted_not_a_gap(
     assert "<td>uncommitted records (not a failure)</td><td>4</td>" in report._repr_html_()
 
 
-def test_outcomes_part_missing_from_an_earlier_batch_is_a_gap(tmp_path: Path) -> None:
-    root = tmp_path / "ledger"
-    coin_batches(root, 3, 4)
-    _parquet.parts(root, "outcomes")[1].path.unlink()
-    report = check_integrity(root)
-    assert (False, 4, 0) == (report.ok, report.gaps, report.uncommitted_records)
-
-
-def test_decisions_of_the_last_batch_deleted_behind_its_outcomes_are_gaps(
-    tmp_path: Path,
+@pytest.mark.parametrize(
+    ("table", "at"), [("outcomes", 1), ("decisions", -1)], ids=["earlier-batch", "renamed-first"]
+)
+def test_a_part_missing_where_no_crash_leaves_one_is_a_gap(
+    tmp_path: Path, table: str, at: int
 ) -> None:
-    """Outcomes are renamed after decisions: outcomes without their decisions part are no crash."""
+    """The outcomes part of an earlier batch, or the decisions part of the last batch while its
+    outcomes (renamed after it) are in place: what a deletion leaves, not a crash."""
     root = tmp_path / "ledger"
     coin_batches(root, 3, 4)
-    _parquet.parts(root, "decisions")[-1].path.unlink()
+    _parquet.parts(root, table)[at].path.unlink()
     report = check_integrity(root)
     assert (False, 4, 0) == (report.ok, report.gaps, report.uncommitted_records)
 
