@@ -557,6 +557,8 @@ def test_one_draw_propensities_are_said_on_both_sides(tmp_path):
     assert said[0].startswith("60 of 60 logging propensities are one-draw")
     assert said[1].startswith("60 target propensities are one-draw")
     assert {"one-draw": 60} == report.target["propensities"]
+    (note,) = verify(tmp_path / "codes.db").method_notes()
+    assert note.startswith("note: 60 propensities are one-draw: the probability of one draw's")
 
 
 def test_a_few_missing_rewards_are_counted_without_an_alert(tmp_path):

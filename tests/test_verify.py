@@ -116,6 +116,22 @@ def _reasons(report: object, did: str) -> set[str]:
     return set() if not isinstance(text, str) else set(text.split(";"))
 
 
+def test_propensities_not_proven_by_every_branch_are_noted(tmp_path: Path) -> None:
+    """A slot out of 5000 codes modulo 7 (more branches than the budget of 4096) is a
+    Monte Carlo propensity: verified, and the summary says so; exact ones need no note."""
+    led = dl.Ledger(tmp_path / "slots.db")
+    sd.use(led)
+    for i in range(3):
+        sd.delivery_slot(sd.Basket(items=1, value=5.0), decision_id=f"slot-{i}")
+        sd.feature_card(sd.context(i), decision_id=f"card-{i}")
+    led.close()
+    report = verify(tmp_path / "slots.db", mc_samples=200)
+    assert (6, {"monte-carlo": 3, "exact": 3}) == (report.verified, report.methods)
+    assert ["note: 3 propensities are estimated by Monte Carlo (propensity_stderr in the "
+            "export)"] == report.method_notes()  # fmt: skip
+    assert report.method_notes()[0] in report.render()
+
+
 def _shop_ledger(path: Path, n: int = 12, *, format: str | None = None) -> dl.Ledger:
     """Every grocery decision of tests/support/shop_decisions.py, n times, plus a bucket and a
     declared draw."""

@@ -13,6 +13,7 @@ from drawledger._text import counted
 from drawledger.replay._html import html_table
 from drawledger.replay._terminal import plain_text, shown
 from drawledger.replay.integrity import IntegrityReport
+from drawledger.replay.propensity import MONTE_CARLO, ONE_DRAW
 from drawledger.replay.verify import _export
 from drawledger.replay.verify._types import COUNTS, NOT_FAILING, REASONS, UNREPLAYABLE, ChunkResult
 
@@ -104,6 +105,7 @@ class VerifyReport:
                 versions.add_row(*(Text(str(v[k])) for k in ("stream", "fn", "identity",
                                    "decisions", "replayed_under")))  # fmt: skip
             parts.append(versions)
+        parts.extend(Text(line) for line in self.method_notes())
         parts.append(Text(self.integrity.render()))
         verdict = "verify passed" if self.ok else "verify FAILED"
         parts.append(Text(verdict, style="bold green" if self.ok else "bold red"))
@@ -111,6 +113,21 @@ class VerifyReport:
 
     def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
         yield self.__rich__()
+
+    def method_notes(self) -> list[str]:
+        """What the propensities not proven by replaying every branch are (one line each)."""
+        out = []
+        for method, what in ((ONE_DRAW, "one-draw: the probability of one draw's value, not "
+                              "proven to be the action's (docs/replay.md, propensity methods)"),
+                             (MONTE_CARLO, "estimated by Monte Carlo (propensity_stderr in "
+                              "the export)")):  # fmt: skip
+            n = self.methods.get(method, 0)
+            if n:
+                out.append(
+                    f"note: {counted(n, 'propensity', 'propensities')} "
+                    f"{'is' if n == 1 else 'are'} {what}"
+                )
+        return out
 
     def render(self) -> str:
         """The summary as plain text."""
