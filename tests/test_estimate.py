@@ -561,6 +561,37 @@ def test_one_draw_propensities_are_said_on_both_sides(tmp_path):
     assert note.startswith("note: 60 propensities are one-draw: the probability of one draw's")
 
 
+def _reminders(path, revenue):
+    """400 send-reminder coins, each with the revenue ``revenue(sent)``."""
+    led = dl.Ledger(path)
+    shop.use(led, seed=3)
+    for i in range(400):
+        sent = shop.send_reminder(decision_id=f"d{i}")
+        led.outcome(f"d{i}", "revenue", revenue(sent))
+    led.close()
+
+
+def test_rewards_too_large_to_sum_are_refused_not_overflowed(tmp_path):
+    """1e308 squared overflows float64 (max about 1.8e308, IEEE 754 binary64)."""
+    _reminders(tmp_path / "huge.db", lambda sent: 1e308 if sent else 1e307)
+    with pytest.raises(ReplayError, match=r"'revenue' rewards reach 1e\+308: beyond 1e\+100"):
+        estimate(tmp_path / "huge.db", reward="revenue", overrides={"p": 0.6})
+    _reminders(tmp_path / "coins.db", float)
+    with pytest.raises(ReplayError, match=r"reward_range reach 1e\+200"):
+        estimate(tmp_path / "coins.db", reward="revenue", overrides={"p": 0.6},
+                 reward_range=(0.0, 1e200))  # fmt: skip
+
+
+def test_large_rewards_print_in_significant_digits(tmp_path):
+    """Revenue in cents of a large basket: seven significant digits, not 30 characters."""
+    _reminders(tmp_path / "cents.db", lambda sent: 4.2e9 if sent else 4.0e9)
+    report = estimate(tmp_path / "cents.db", reward="revenue", overrides={"p": 0.6})
+    ips = report.results["ips"].value
+    assert 4.0e9 <= ips <= 4.2e9 * 1.2
+    assert f"{ips:.7g}" in report.render()
+    assert f"{ips:.4f}" not in report.render()
+
+
 def test_a_few_missing_rewards_are_counted_without_an_alert(tmp_path):
     """1 of 40 (2.5%) is below the 5% alert share; it is still counted in the JSON."""
     led = dl.Ledger(tmp_path / "late.db")

@@ -39,7 +39,10 @@ DR_NOTE = ("dr needs the policy's full action distribution (continuous actions, 
 
 
 def _fmt(x: float | None) -> str:
-    return "-" if x is None else f"{x:.4f}"
+    """Four decimals; seven significant digits from 1e7 up (rewards in cents, say)."""
+    if x is None:
+        return "-"
+    return f"{x:.4f}" if abs(x) < 1e7 else f"{x:.7g}"
 
 
 def _span(e: Mapping[str, float | None]) -> str:

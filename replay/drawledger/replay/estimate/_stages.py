@@ -30,6 +30,10 @@ from drawledger.replay.estimate._reward_model import RewardModel, RidgeStats, dr
 
 T = TypeVar("T")
 
+# The largest reward magnitude estimated: squares of weighted rewards summed over records must
+# stay within float64 (about 1.8e308). A bound of our own, with room for large weights.
+MAX_REWARD = 1e100
+
 
 @dataclass(frozen=True)
 class Schema:
@@ -235,6 +239,11 @@ def run_pass(runner: Runner, job: Job, *, cap: float, bootstrap: int, weights: b
     low = min(f.reward_low for f in used)
     high = max(f.reward_high for f in used)
     rr = job.reward_range or (min(0.0, low), max(0.0, high))
+    if max(abs(rr[0]), abs(rr[1])) > MAX_REWARD:
+        where = "reward_range" if job.reward_range else f"the {job.reward!r} rewards"
+        raise ReplayError(f"{where} reach {max(abs(rr[0]), abs(rr[1])):g}: beyond {MAX_REWARD:g} "
+                          "the weighted rewards and their squares overflow; rescale the "
+                          "rewards (in thousands or millions)")  # fmt: skip
     dists = [all(f.dists[j] for f in used) for j in range(k)]
     schema = model = None
     if any(dists):
