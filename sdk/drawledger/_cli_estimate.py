@@ -179,9 +179,10 @@ def estimate_options(p: argparse.ArgumentParser) -> None:
         "with an interval, the paired difference to a baseline (default: the logging policy,\n"
         "each record under the code version that logged it), and overlap diagnostics.\n"
         "Exit 0 when the data can answer; 1 when the target has a support deficit or uneven\n"
-        "weights (a small effective sample size or one dominant weight), when the estimate is\n"
-        "refused because the ledger fails its integrity check or decisions of the stream failed\n"
-        "verification, or when such failures were accepted (docs/estimators.md); 2 for bad\n"
+        "weights (a small effective sample size or one dominant weight), when more than 5% of\n"
+        "the rewards were filled in, or when such failures were accepted (an ALERT line at the\n"
+        "top says why), or when the estimate is refused because the ledger fails its integrity\n"
+        "check or decisions of the stream failed verification (docs/estimators.md); 2 for bad\n"
         "usage, such as a reward that no decision of the stream has."
     )
     p.add_argument("--target", metavar="MODULE:FUNCTION",

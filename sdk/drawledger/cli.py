@@ -185,7 +185,8 @@ def _demo(args: argparse.Namespace) -> int:
 
 
 def _report(args: argparse.Namespace) -> int:
-    """Write the HTML report; exit 1 when verification or the audit found a problem."""
+    """Write the HTML report; exit 1 when verification or the audit found a problem, or the
+    estimate was refused or shown under an alert (``HtmlReport.ok``)."""
     import os
 
     from drawledger.replay import write_report
@@ -415,7 +416,8 @@ def build_parser() -> argparse.ArgumentParser:
         "--reward and --set, the estimate of a target policy with its weights. The 20 streams\n"
         "with alarms or the most decisions are shown in full, the others one row each. Exit 0\n"
         "when verification and the audit passed, 1 when they found a problem or the estimate\n"
-        "was refused (the page then says why) or made from accepted failures."
+        "was refused or shown under an alert (the page then says why: accepted failures,\n"
+        "many rewards filled in, a support deficit, too uneven weights)."
     )
     p.add_argument("ledger", metavar="LEDGER", help="SQLite path, SQLAlchemy URL or Parquet dir")
     p.add_argument("--html", required=True, metavar="FILE", help="where to write the report")
