@@ -239,11 +239,12 @@ def run_pass(runner: Runner, job: Job, *, cap: float, bootstrap: int, weights: b
     low = min(f.reward_low for f in used)
     high = max(f.reward_high for f in used)
     rr = job.reward_range or (min(0.0, low), max(0.0, high))
-    if max(abs(rr[0]), abs(rr[1])) > MAX_REWARD:
+    largest = max(abs(rr[0]), abs(rr[1]))
+    if largest > MAX_REWARD:
         where = "reward_range" if job.reward_range else f"the {job.reward!r} rewards"
-        raise ReplayError(f"{where} reach {max(abs(rr[0]), abs(rr[1])):g}: beyond {MAX_REWARD:g} "
-                          "the weighted rewards and their squares overflow; rescale the "
-                          "rewards (in thousands or millions)")  # fmt: skip
+        raise ReplayError(f"{where} reach {largest:g}: beyond {MAX_REWARD:g} the weighted "
+                          "rewards and their squares overflow; rescale the rewards (in "
+                          "thousands or millions)")  # fmt: skip
     dists = [all(f.dists[j] for f in used) for j in range(k)]
     schema = model = None
     if any(dists):
