@@ -256,8 +256,11 @@ def test_uneven_weights_are_not_ok_in_estimate_sweep_and_the_report_badge(delays
     assert not curve.ok
     heavy = [w for w in curve.warnings if "heavy weights" in w]
     assert 2 == len(heavy)
-    assert heavy[0].startswith("nominal_minutes=35.0: effective sample size 148.6 is 9.9% of")
+    assert heavy[0].startswith("nominal_minutes=35.0: effective sample size 148.6 is 9.91% of")
     assert heavy[1].startswith("nominal_minutes=45.0: the largest weight carries 1.7% of the ")
+    alerted = [a.split(":")[0] for a in curve.alerts]  # said at the top as well
+    assert ["nominal_minutes=35.0", "nominal_minutes=45.0"] == alerted
+    assert ([], True) == (curve.points[2]["alerts"], bool(curve.points[0]["alerts"]))
     d35, d45, d60 = (p["diagnostics"] for p in curve.points)
     assert 100 <= d35["ess"] < 0.1 * 1500 <= d45["ess"]
     assert d45["max_weight_share"] > 0.01 >= d60["max_weight_share"]
@@ -270,6 +273,7 @@ def test_uneven_weights_are_not_ok_in_estimate_sweep_and_the_report_badge(delays
     page = write_report(delays, tmp_path / "r.html", whatifs=whatifs)
     text = page.path.read_text(encoding="utf-8")
     assert 1 == text.count("read with care") and 1 == text.count("diagnostics ok")
+    assert not page.ok  # a what-if the data cannot answer fails the page, as it fails estimate
 
 
 def test_continuous_support_deficit_is_found_by_sampling_the_target(tmp_path):
