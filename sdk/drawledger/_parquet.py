@@ -151,43 +151,34 @@ def parts(root: str | os.PathLike[str], table: str) -> list[Part]:
 
 def batch_parts(root: str | os.PathLike[str], part: Part, key: bytes) -> list[Part] | None:
     """The parts of decisions and outcomes written in one batch with ``part``, as its footer
-    names them; None for a part written alone, before batches named their parts, or whose
-    names do not carry their signature under ``key`` (the integrity key).
-
-    Only names of committed parts of the same writer under the ledger's decisions and
-    outcomes tables are taken; anything else in the footer raises ``LedgerError``.
+    names them; None for a part written alone or before batches named their parts, and for a
+    footer that does not carry its signature under ``key`` (the integrity key) or names
+    anything but committed parts of the same writer (it is not taken: a missing part is then
+    a gap).
     """
     try:
         meta = pq.read_metadata(part.path).metadata or {}
     except (OSError, pa.ArrowException) as exc:
         raise LedgerError(f"cannot read ledger part {os.fspath(part.path)!r}: {exc}") from None
-    if BATCH_KEY not in meta:
-        return None
-    out: list[Part] = []
     try:
         found = json.loads(meta[BATCH_KEY])
         names = found["parts"]
         if found["hash"] != _records.batch_hash(names, key):
             return None
-        for name in names:
-            fields = name.split("/")
-            if fields[0] == "draws":
-                continue
-            named = parse_part(Path(root, name))
+        out = []
+        for fields in (name.split("/") for name in names):
+            named = parse_part(Path(root, *fields))
             if (
                 named is None
                 or named.tag != part.tag
                 or ".." in fields
-                or fields[0] not in ("decisions", "outcomes")
+                or (fields[0] not in ("decisions", "outcomes", "draws"))
             ):
-                raise ValueError(name)
-            out.append(named)
+                return None
+            if fields[0] != "draws":
+                out.append(named)
     except (ValueError, TypeError, AttributeError, KeyError):
-        where = os.fspath(part.path)
-        raise LedgerError(
-            f"ledger part {where!r} is damaged: its footer names parts of its batch that are "
-            "not parts of its writer"
-        ) from None
+        return None
     return out
 
 
