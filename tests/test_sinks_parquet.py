@@ -161,3 +161,16 @@ def test_reading_a_missing_table_or_directory_is_a_clear_error(tmp_path: Path) -
 def test_unknown_durability_is_refused(tmp_path: Path) -> None:
     with pytest.raises(dl.LedgerError, match="unknown durability"):
         dl.Ledger(tmp_path / "ledger", format="parquet", durability="eventually")
+
+
+def test_a_part_left_empty_by_a_power_loss_is_refused_by_name_with_what_to_do(
+    tmp_path: Path,
+) -> None:
+    root = tmp_path / "pq"
+    led = dl.Ledger(root, format="parquet")
+    led.record_draw("free-delivery", "bernoulli", {"p": 0.2}, False, 0.8, decision_id="b-1")
+    led.close()
+    part = _parquet.parts(root, "decisions")[0].path
+    part.write_bytes(b"")
+    with pytest.raises(dl.LedgerError, match=r"cannot read ledger part .*0 bytes.*power loss"):
+        read_tables(root)

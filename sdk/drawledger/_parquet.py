@@ -159,7 +159,7 @@ def batch_parts(root: str | os.PathLike[str], part: Part, key: bytes) -> list[Pa
     try:
         meta = pq.read_metadata(part.path).metadata or {}
     except (OSError, pa.ArrowException) as exc:
-        raise LedgerError(f"cannot read ledger part {os.fspath(part.path)!r}: {exc}") from None
+        raise unreadable(part.path, exc) from None
     try:
         found = json.loads(meta[BATCH_KEY])
         names = found["parts"]
@@ -242,12 +242,21 @@ def schema_problem(found: pa.Schema, table: str) -> str | None:
     return None
 
 
+def unreadable(path: str | os.PathLike[str], exc: Exception) -> LedgerError:
+    """The error for a part file that cannot be read, with what to do when a power loss cut it
+    short (docs/operations.md, "After a power loss")."""
+    return LedgerError(
+        f"cannot read ledger part {os.fspath(path)!r}: {exc} (a part left empty or cut short "
+        "by a power loss? docs/operations.md says what to do)"
+    )
+
+
 def open_part(path: Path, table: str) -> pq.ParquetFile:
     """A part file of ``table`` with its schema checked (``LedgerError`` when it is not one)."""
     try:
         part = pq.ParquetFile(path)
     except (OSError, pa.ArrowException) as exc:
-        raise LedgerError(f"cannot read ledger part {os.fspath(path)!r}: {exc}") from None
+        raise unreadable(path, exc) from None
     problem = schema_problem(part.schema_arrow, table)
     if problem is not None:
         raise LedgerError(
@@ -262,7 +271,7 @@ def read_columns(path: Path, table: str, columns: list[str]) -> pa.Table:
     try:
         return part.read(columns=columns)
     except (OSError, pa.ArrowException) as exc:
-        raise LedgerError(f"cannot read ledger part {os.fspath(path)!r}: {exc}") from None
+        raise unreadable(path, exc) from None
 
 
 def read_part(path: Path, table: str) -> pa.Table:

@@ -64,7 +64,7 @@ def _matching(path: Path, table: str, decision_id: str) -> list[Row]:
         data = pq.read_table(path, schema=_parquet.SCHEMAS[table],
                              filters=[("decision_id", "==", decision_id)])  # fmt: skip
     except (OSError, pa.ArrowException) as exc:
-        raise LedgerError(f"cannot read ledger part {os.fspath(path)!r}: {exc}") from None
+        raise _parquet.unreadable(path, exc) from None
     return list(zip(*(col.to_pylist() for col in data.columns), strict=True))
 
 

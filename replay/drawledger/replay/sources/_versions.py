@@ -43,7 +43,7 @@ def _parquet_rows(root: str, table: str, columns: list[str]) -> Iterator[Row]:
         try:
             data = pq.read_table(part.path, columns=columns, schema=_parquet.SCHEMAS[table])
         except (OSError, pa.ArrowException) as exc:
-            raise LedgerError(f"cannot read ledger part {os.fspath(part.path)!r}: {exc}") from None
+            raise _parquet.unreadable(part.path, exc) from None
         yield from zip(*(c.to_pylist() for c in data.columns), strict=True)
 
 
