@@ -148,8 +148,9 @@ class IntegrityReport:
         if self.uncommitted_records:
             lost = counted(self.uncommitted_records, "record")
             lines.append(f"  {lost} of a writer's last batch never committed: the writer "
-                         "stopped between the renames of the batch, before flush() acknowledged "
-                         "it, or a power loss took them (not a failure: see docs/ledger.md)")  # fmt: skip
+                         "stopped between the renames of the batch, before flush() "
+                         "acknowledged it, or a power loss took them (not a failure: see "
+                         "docs/ledger.md)")  # fmt: skip
         if self.bad_hashes and self.bad_hashes == self.decisions + self.outcomes:
             lines.append("  every hash differs: was the ledger written with another integrity key?")
         return "\n".join(lines)
