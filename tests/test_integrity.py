@@ -384,7 +384,7 @@ def test_outcomes_part_missing_from_the_last_batch_is_uncommitted_not_a_gap(
     assert report.ok, report.render()
     assert (0, 4, 12, 8) == (report.gaps, report.uncommitted_records, report.decisions,
                              report.outcomes)  # fmt: skip
-    assert "4 records of a writer's last batch never committed" in report.render()
+    assert "4 records of a writer's last batch not in place" in report.render()
     assert 4 == report.to_dict()["uncommitted_records"]
     assert "<td>uncommitted records (not a failure)</td><td>4</td>" in report._repr_html_()
 

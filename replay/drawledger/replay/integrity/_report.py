@@ -147,8 +147,8 @@ class IntegrityReport:
                          "by readers; safe to delete)")  # fmt: skip
         if self.uncommitted_records:
             lost = counted(self.uncommitted_records, "record")
-            lines.append(f"  {lost} of a writer's last batch never committed: the writer "
-                         "stopped between the renames of the batch, before flush() "
+            lines.append(f"  {lost} of a writer's last batch not in place: the writer stopped "
+                         "(or is still) between the renames of the batch, before flush() "
                          "acknowledged it, or a power loss took them (not a failure: see "
                          "docs/ledger.md)")  # fmt: skip
         if self.bad_hashes and self.bad_hashes == self.decisions + self.outcomes:
