@@ -181,6 +181,31 @@ def test_report_of_a_missing_ledger_is_exit_2(
     assert not (tmp_path / "r.html").exists()
 
 
+def test_weights_on_a_log_axis_draw_no_mathematical_text(
+    demo_run: Any, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Log-axis tick labels in mathtext load fallback fonts; with a stale matplotlib font
+    cache each prints a warning on stderr. Weights spread over 1e4 are labelled as numbers."""
+    import dataclasses
+
+    import matplotlib.mathtext
+    import numpy as np
+
+    from drawledger.replay.report._figures import weights_figure
+
+    parsed: list[str] = []
+    parse = matplotlib.mathtext.MathTextParser.parse
+
+    def spy(self: Any, text: str, *args: Any, **kwargs: Any) -> Any:
+        parsed.append(text)
+        return parse(self, text, *args, **kwargs)
+
+    monkeypatch.setattr(matplotlib.mathtext.MathTextParser, "parse", spy)
+    wide = dataclasses.replace(demo_run.temperature, weights=np.geomspace(0.01, 100.0, 50))
+    assert weights_figure(wide).src.startswith("data:image/svg+xml;base64,")
+    assert [] == parsed
+
+
 def test_report_of_declared_draws(tmp_path: Path) -> None:
     """A ledger of declared draws (the legacy example) passes: its decisions are unreplayable
     by nature ("declared" does not fail), and each stream's draws are audited and drawn."""

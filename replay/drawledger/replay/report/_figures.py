@@ -24,6 +24,7 @@ from drawledger.replay.verify import VerifyReport
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
+    from matplotlib.axis import Axis
     from matplotlib.figure import Figure
 
 __all__ = [
@@ -91,6 +92,15 @@ def _embed(fig: Figure, alt: str) -> Image:
         fig.savefig(buffer, format="svg", bbox_inches="tight", metadata={"Date": None})
     data = base64.b64encode(buffer.getvalue()).decode("ascii")
     return Image(alt, f"data:image/svg+xml;base64,{data}")
+
+
+def _plain_log_ticks(axis: Axis) -> None:
+    """Tick labels of a log axis as plain numbers (0.1, 10, 1e+04), not mathematical text:
+    mathtext loads fallback fonts, and a stale font cache then fills stderr with warnings."""
+    from matplotlib.ticker import FuncFormatter, NullFormatter
+
+    axis.set_major_formatter(FuncFormatter(lambda value, _pos: f"{value:g}"))
+    axis.set_minor_formatter(NullFormatter())
 
 
 def _plain(text: str, limit: int = LABEL_LIMIT) -> str:
@@ -285,6 +295,7 @@ def weights_figure(r: EstimateReport) -> Image:
         if spread > 50:
             bins = np.geomspace(positive.min(), positive.max(), 40)
             ax.set_xscale("log")
+            _plain_log_ticks(ax.xaxis)
         else:
             bins = np.linspace(0.0, positive.max() * 1.02, 40)
         ax.hist(positive, bins=bins.tolist(), color="#88aadd", edgecolor="white", lw=0.4)
