@@ -124,7 +124,12 @@ def test_paired_difference_between_two_targets_is_their_difference(cards):
         b.estimates["snips"]["high"] - b.estimates["snips"]["low"]
     )
     assert ab.logging_value is None
-    assert {"overrides": {"temperature": 1.5}} == ab.baseline
+    assert {"overrides": {"temperature": 1.5}} == {
+        k: v for k, v in ab.baseline.items() if k != "diagnostics"
+    }
+    # the baseline's weights are those of temperature 1.5 as a target
+    for key in ("ess", "max_weight_share", "support_deficit"):
+        assert b.diagnostics[key] == pytest.approx(ab.baseline["diagnostics"][key], rel=1e-9)
 
 
 def test_callable_target_gives_the_probability_of_each_logged_action(cards, cards_rows):
@@ -563,6 +568,37 @@ def test_one_draw_propensities_are_said_on_both_sides(tmp_path):
     assert {"one-draw": 60} == report.target["propensities"]
     (note,) = verify(tmp_path / "codes.db").method_notes()
     assert note.startswith("note: 60 propensities are one-draw: the probability of one draw's")
+
+
+def test_a_baseline_the_data_cannot_answer_is_said_at_the_top(tmp_path):
+    """Codes logged out of 10,000; a baseline drawing out of 12,000 puts 1/6 of its mass on
+    codes never logged (2000 / 12000, by hand): its estimates, and the difference, cannot be
+    read. Too many codes to list, so the deficit is sampled, one target draw per record: a
+    binomial share, within 4 standard deviations of 1/6 (sqrt(p(1-p)/300) = 0.0215). The
+    target (8000 codes) is fine; the logging baseline needs no check."""
+    led = dl.Ledger(tmp_path / "codes.db")
+    shop.use(led, seed=4)
+    for i in range(300):
+        code = shop.coupon_code(decision_id=f"d{i}")
+        led.outcome(f"d{i}", "redeemed", float(code % 2))
+    led.close()
+    wide = {"codes": 12_000}
+    report = estimate(tmp_path / "codes.db", reward="redeemed", overrides={"codes": 8000},
+                      baseline=wide)  # fmt: skip
+    deficit = report.to_dict()["baseline"]["diagnostics"]["support_deficit"]
+    assert abs(deficit - 2000 / 12000) < 4 * 0.0215
+    assert not report.ok
+    assert [f"baseline: support deficit {deficit:.3g}: the data cannot answer this question as "
+            "asked (see the warning below)"] == report.alerts  # fmt: skip
+    assert any(w.startswith(f"baseline: support deficit {deficit:.3g}: the baseline puts")
+               for w in report.warnings)  # fmt: skip
+    alone = estimate(tmp_path / "codes.db", reward="redeemed", overrides={"codes": 8000})
+    assert ([], {"policy": "logging"}) == (alone.alerts, alone.baseline)
+    curve = sweep(tmp_path / "codes.db", reward="redeemed", param="codes",
+                  values=[8000, 9000], baseline=wide)  # fmt: skip
+    said = [a for a in curve.alerts if a.startswith("baseline: support deficit")]
+    assert 1 == len(said)  # once for the curve, not at every point
+    assert not curve.ok
 
 
 def _reminders(path, revenue):

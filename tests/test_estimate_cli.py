@@ -97,8 +97,9 @@ def test_what_if_options_reach_the_library(cards, tmp_path, capsys, extra):
     data: dict[str, Any] = orjson.loads(out_json.read_bytes())
     if "--baseline-set" in extra:
         assert {"overrides": {"temperature": 1.5}} == {
-            k: v for k, v in data["baseline"].items() if k != "estimates"
+            k: v for k, v in data["baseline"].items() if k not in ("estimates", "diagnostics")
         }
+        assert 0.0 == data["baseline"]["diagnostics"]["support_deficit"]  # softmax: all cards
     if "--target" in extra:
         assert "estimate_shop:best_card" == data["target"]["callable"]
     if "--by" in extra:

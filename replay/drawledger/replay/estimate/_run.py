@@ -92,6 +92,14 @@ def _check_options(
     return float(cap), b
 
 
+def _baseline(policy: Policy, summary: dict[str, Any]) -> dict[str, Any]:
+    """The baseline as described in the JSON, with its weights' diagnostics unless it is the
+    logging policy (whose weights are all 1)."""
+    if policy is None:
+        return _describe(policy)
+    return {**_describe(policy), "diagnostics": summary["baseline_diagnostics"]}
+
+
 def _describe(policy: Policy) -> dict[str, Any]:
     if policy is None:
         return {"policy": "logging"}
@@ -221,6 +229,11 @@ def _summary(g: Group, has_dr: bool, bounds: tuple[float, float], s: _Settings,
             "weight_quantiles": {} if weights is None else est.weight_quantiles(weights),
             "zero_weight_share": g.zeros / m.n,
         },
+        "baseline_diagnostics": {
+            "ess": est.kish_ess(m, est.WIDTH + est.W),
+            "max_weight_share": est.max_weight_share(m, est.WIDTH + est.W),
+            "support_deficit": g.base_deficit / g.base_known if g.base_known else None,
+        },
     }
 
 
@@ -249,7 +262,8 @@ def _one_draw_warning(which: str) -> str:
             "more outcomes than the enumeration budget, docs/replay.md)")  # fmt: skip
 
 
-def _deficit_warning(deficit: float, reward_range: tuple[float, float], dr: bool) -> str:
+def _deficit_warning(deficit: float, reward_range: tuple[float, float], dr: bool,
+                     policy: str = "target") -> str:  # fmt: skip
     """What a support deficit does to each estimator (docs/estimators.md): IPS and clipped IPS
     count the unseen share as reward 0; SNIPS and DR fill it, so their error has either sign."""
     lo, hi = reward_range
@@ -257,10 +271,27 @@ def _deficit_warning(deficit: float, reward_range: tuple[float, float], dr: bool
     either = deficit * (hi - lo)
     fill = ("snips gives it the seen actions' mean reward and dr its reward model's "
             "predictions" if dr else "snips gives it the seen actions' mean reward")  # fmt: skip
-    return (f"support deficit {deficit:.3g}: the target puts that share of its probability on "
+    return (f"support deficit {deficit:.3g}: the {policy} puts that share of its probability on "
             "actions the logging policy could not take; the data cannot answer this question. "
             f"ips and clipped count that share as reward 0 (biased toward 0 by up to "
             f"{toward:.3g}); {fill} (biased up or down by up to {either:.3g})")  # fmt: skip
+
+
+def _baseline_warnings(summary: dict[str, Any], baseline: Policy, dr: bool,
+                       reward_range: tuple[float, float]) -> list[str]:  # fmt: skip
+    """The deficit and weight warnings of a baseline other than the logging policy."""
+    if baseline is None:
+        return []
+    d = summary["baseline_diagnostics"]
+    out = []
+    if d["support_deficit"] is not None and d["support_deficit"] > 0.0:
+        deficit = _deficit_warning(d["support_deficit"], reward_range, dr, "baseline")
+        out.append(f"baseline: {deficit}")
+    uneven = est.overlap_problems(d["ess"], summary["n"], d["max_weight_share"])
+    if uneven:
+        out.append(f"baseline: {'; '.join(uneven)}: its estimate rests on few records or a few "
+                   "heavy weights, so the intervals may be too narrow")  # fmt: skip
+    return out
 
 
 def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool,
@@ -291,18 +322,21 @@ def _found(p: Pass, missing_reward: float | None) -> dict[str, Any]:
     return failure_fields(p.failures, p.integrity, missing_reward, p.n)
 
 
-def _cannot_answer(summary: dict[str, Any]) -> list[str]:
+def _cannot_answer(summary: dict[str, Any], baseline: bool = False) -> list[str]:
     """Why the data cannot answer the question as asked (a support deficit, too uneven
-    weights), one line each, for the top of the output; the warnings give the details."""
-    d = summary["diagnostics"]
+    weights), one line each, for the top of the output; the warnings give the details. With
+    ``baseline``, the same rule on the baseline's weights (a baseline other than the logging
+    policy is weighted too)."""
+    d = summary["baseline_diagnostics" if baseline else "diagnostics"]
+    who = "baseline: " if baseline else ""
     out = []
     if d["support_deficit"] is not None and d["support_deficit"] > 0.0:
-        out.append(f"support deficit {d['support_deficit']:.3g}: the data cannot answer this "
-                   "question as asked (see the warning below)")  # fmt: skip
+        out.append(f"{who}support deficit {d['support_deficit']:.3g}: the data cannot answer "
+                   "this question as asked (see the warning below)")  # fmt: skip
     uneven = est.overlap_problems(d["ess"], summary["n"], d["max_weight_share"])
     if uneven:
-        out.append(f"{'; '.join(uneven)}: the estimate rests on few records or a few heavy "
-                   "weights (see the warning below)")  # fmt: skip
+        out.append(f"{who}{'; '.join(uneven)}: the estimate rests on few records or a few "
+                   "heavy weights (see the warning below)")  # fmt: skip
     return out
 
 
@@ -408,9 +442,12 @@ def estimate(
     has_dr = p.dr[0] and p.dr[-1]
     summary = _summary(p.pairs[0], has_dr, bounds, s, p.weights)
     warnings = [*_excluded_warnings(p, reward),
-                *_warnings(summary, p.methods[0], has_dr, s.reward_range), *s.notes()]  # fmt: skip
+                *_warnings(summary, p.methods[0], has_dr, s.reward_range),
+                *_baseline_warnings(summary, baseline, has_dr, s.reward_range),
+                *s.notes()]  # fmt: skip
     top = [*alerts(p.failures, p.integrity, reward, missing_reward, p.n),
-           *_cannot_answer(summary)]  # fmt: skip
+           *_cannot_answer(summary),
+           *(_cannot_answer(summary, baseline=True) if baseline is not None else [])]  # fmt: skip
     found = _found(p, missing_reward)
     describe = {**_describe(spec), "stream": stream_name, "functions": p.functions,
                 "reward": reward, "propensities": dict(p.methods[0])}  # fmt: skip
@@ -419,7 +456,7 @@ def estimate(
     assert p.weights is not None
     return EstimateReport(
         n=summary["n"], target=describe, estimates=summary["estimates"],
-        diagnostics=summary["diagnostics"], baseline=_describe(baseline),
+        diagnostics=summary["diagnostics"], baseline=_baseline(baseline, summary),
         baseline_estimates=summary["baseline"], difference=summary["difference"],
         excluded=dict(p.excluded), warnings=warnings, settings=s.to_dict(),
         segments=None if by is None else _segments(p, bounds, s, by),
@@ -498,9 +535,12 @@ def sweep(
                        "diagnostics": {k: summary["diagnostics"][k] for k in
                                        ("ess", "max_weight", "max_weight_share",
                                         "support_deficit")}})  # fmt: skip
+    if baseline is not None:  # the same baseline weights at every point
+        top.extend(_cannot_answer(summary, baseline=True))
+        warnings.extend(_baseline_warnings(summary, baseline, has_dr, s.reward_range))
     return SweepReport(
         param=param, values=grid, points=points,
-        baseline={**_describe(baseline), "estimates": base_estimates},
+        baseline={**_baseline(baseline, summary), "estimates": base_estimates},
         settings={**s.to_dict(), "overrides": fixed, "stream": stream_name, "reward": reward},
         warnings=_excluded_warnings(p, reward) + warnings + s.notes(), n=p.n, ok=not top,
         alerts=top,

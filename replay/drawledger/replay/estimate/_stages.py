@@ -123,17 +123,21 @@ class Group:
     moments: est.Moments
     boot: np.ndarray | None  # (B, columns) Poisson bootstrap sums
     boot_n: np.ndarray | None  # (B,) Poisson bootstrap counts
-    deficit: float  # sum of the known support deficits
+    deficit: float  # sum of the target's known support deficits
     known: int
     zeros: int  # records of weight 0
+    base_deficit: float  # the baseline's (0 for the logging policy)
+    base_known: int
 
     @classmethod
-    def of(cls, z: np.ndarray, deficit: np.ndarray, keys: np.ndarray, plan: SumPlan) -> Group:
-        known = ~np.isnan(deficit)
+    def of(cls, z: np.ndarray, deficit: np.ndarray, base_deficit: np.ndarray, keys: np.ndarray,
+           plan: SumPlan) -> Group:  # fmt: skip
+        known, base_known = ~np.isnan(deficit), ~np.isnan(base_deficit)
         boot, boot_n = (est.bootstrap_sums(z, keys, plan.bootstrap, plan.seed)
                         if plan.bootstrap else (None, None))  # fmt: skip
         return cls(est.Moments.of(z), boot, boot_n, float(deficit[known].sum()),
-                   int(known.sum()), int((z[:, est.W] == 0.0).sum()))  # fmt: skip
+                   int(known.sum()), int((z[:, est.W] == 0.0).sum()),
+                   float(base_deficit[base_known].sum()), int(base_known.sum()))  # fmt: skip
 
     @staticmethod
     def combine(groups: Sequence[Group]) -> Group:
@@ -143,7 +147,8 @@ class Group:
             boot_n = np.sum([g.boot_n for g in groups if g.boot_n is not None], axis=0)
         return Group(est.Moments.combine(g.moments for g in groups), boot, boot_n,
                      float(sum(g.deficit for g in groups)), sum(g.known for g in groups),
-                     sum(g.zeros for g in groups))  # fmt: skip
+                     sum(g.zeros for g in groups), float(sum(g.base_deficit for g in groups)),
+                     sum(g.base_known for g in groups))  # fmt: skip
 
 
 @dataclass
@@ -160,7 +165,7 @@ def sum_piece(data: PieceData, plan: SumPlan) -> Sums:
     n = data.facts.n
     width = 2 * est.WIDTH
     if not n:
-        empty = Group.of(np.zeros((0, width)), np.zeros(0), data.keys, plan)
+        empty = Group.of(np.zeros((0, width)), np.zeros(0), np.zeros(0), data.keys, plan)
         return Sums([empty] * (len(data.p) - 1), {}, np.zeros(0) if plan.weights else None)
     q = code = None
     if plan.model is not None and plan.schema is not None:
@@ -176,14 +181,15 @@ def sum_piece(data: PieceData, plan: SumPlan) -> Sums:
         cols.append(est.policy_columns(w, data.r, cap=plan.cap, dr=dr))
     base = cols[-1]
     deficits = [np.zeros(n) if d is None else d for d in data.deficit]
-    pairs = [Group.of(np.hstack([c, base]), deficits[j], data.keys, plan)
+    pairs = [Group.of(np.hstack([c, base]), deficits[j], deficits[-1], data.keys, plan)
              for j, c in enumerate(cols[:-1])]  # fmt: skip
     segments = {}
     if plan.segments and data.label is not None:
         z = np.hstack([cols[0], base])
         for i, value in enumerate(data.facts.labels):
             rows = data.label == i
-            segments[value] = Group.of(z[rows], deficits[0][rows], data.keys[rows], plan)
+            segments[value] = Group.of(z[rows], deficits[0][rows], deficits[-1][rows],
+                                       data.keys[rows], plan)  # fmt: skip
     return Sums(pairs, segments, cols[0][:, est.W].copy() if plan.weights else None)
 
 
