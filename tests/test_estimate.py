@@ -162,6 +162,28 @@ def test_segments_by_an_input_field_split_the_records(cards, cards_rows):
     assert "segments by ctx.segment" in str(report)
 
 
+def test_a_segment_too_small_to_read_is_marked_without_failing_the_estimate(tmp_path):
+    """300 family sessions and 8 budget ones: 8 records are below the ESS floor of 100, so that
+    row reads "read with care" (its alerts in the JSON); the estimate over all 308 stands."""
+    led = dl.Ledger(tmp_path / "segments.db")
+    shop.use(led, seed=6)
+    for i in range(308):
+        card = shop.feature_card(shop.context(0 if i < 300 else 3), decision_id=f"d{i}")
+        led.outcome(f"d{i}", "checkout", float(card == "taco-night"))
+    led.close()
+    report = estimate(tmp_path / "segments.db", reward="checkout",
+                      overrides={"temperature": 0.6}, by="ctx.segment")  # fmt: skip
+    assert ([], True) == (report.alerts, report.ok)
+    budget, family = report.segments["groups"]
+    assert ("budget", 8, "family", []) == (budget["value"], budget["n"], family["value"],
+                                           family["alerts"])  # fmt: skip
+    assert budget["alerts"][0].startswith("effective sample size")
+    rows = {line.split()[0]: line for line in str(report).splitlines()
+            if line.strip().startswith(("budget", "family"))}  # fmt: skip
+    assert rows["budget"].rstrip().endswith("read with care")
+    assert not rows["family"].rstrip().endswith("read with care")
+
+
 def test_sweep_gives_a_curve_with_bands_and_a_figure(cards, tmp_path):
     report = sweep(cards, reward="checkout", param="temperature", values=[0.3, 0.7, 1.2])
     assert [0.3, 0.7, 1.2] == [p["value"] for p in report.points]

@@ -235,6 +235,7 @@ class EstimateReport:
     def _tables(self) -> list[Any]:
         from rich.box import SIMPLE
         from rich.table import Table
+        from rich.text import Text
 
         # Two narrow tables rather than one wide one: an 80-column terminal shows every digit.
         title = f"{_policy_text(self.target)}: {self.n} verified records, "
@@ -277,15 +278,23 @@ class EstimateReport:
         if self.segments is not None:
             s = Table(title=shown(f"segments by {self.segments['by']}"), title_justify="left",
                       box=SIMPLE)  # fmt: skip
-            for col in ("segment", "n", "snips", "interval", "ess", "deficit"):
-                s.add_column(col, justify="left" if col == "segment" else "right",
+            for col in ("segment", "n", "snips", "interval", "ess", "deficit", ""):
+                s.add_column(col, justify="left" if col in ("segment", "") else "right",
                              overflow="fold")  # fmt: skip
             for seg in self.segments["groups"]:
                 e = seg["estimates"]["snips"]
                 s.add_row(shown(seg["value"]), str(seg["n"]), _fmt(e["value"]), _span(e),
                           f"{seg['diagnostics']['ess']:.1f}",
-                          _fmt(seg["diagnostics"]["support_deficit"]))  # fmt: skip
+                          _fmt(seg["diagnostics"]["support_deficit"]),
+                          "read with care" if seg["alerts"] else "")  # fmt: skip
             out.append(s)
+            if any(seg["alerts"] for seg in self.segments["groups"]):
+                out.append(
+                    Text(
+                        "read with care: the segment's support deficit or uneven "
+                        "weights (its alerts in the JSON); segments do not change ok"
+                    )
+                )
         return out
 
     def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:

@@ -344,8 +344,8 @@ def _segments(p: Pass, bounds: tuple[float, float], s: _Settings, by: str) -> di
     groups = []
     for value in sorted(p.segments):
         summary = _summary(p.segments[value], p.dr[0] and p.dr[-1], bounds, s)
-        groups.append({"value": value, "n": summary["n"], "estimates": summary["estimates"],
-                       "difference": summary["difference"],
+        groups.append({"value": value, "n": summary["n"], "alerts": _cannot_answer(summary),
+                       "estimates": summary["estimates"], "difference": summary["difference"],
                        "diagnostics": {k: summary["diagnostics"][k] for k in
                                        ("ess", "max_weight", "max_weight_share",
                                         "support_deficit")}})  # fmt: skip
