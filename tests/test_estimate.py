@@ -778,6 +778,15 @@ def test_bernstein_without_a_given_range_says_it_has_no_guarantee(small):
     assert given.ok == observed.ok  # a note, not a refusal
 
 
+def test_a_callable_whose_probabilities_sum_above_one_is_refused(small, monkeypatch):
+    """Probability 0.5 on each of six cards sums to 3: not a policy (its weights would be
+    inflated), refused naming the decision, whatever the logged card was."""
+    monkeypatch.setattr(shop, "half_each", lambda inputs, action: 0.5, raising=False)
+    with pytest.raises(ReplayError, match=r"estimate_shop:half_each gives the actions of .* "
+                                          r"sum to 3; a policy's sum to at most 1"):  # fmt: skip
+        estimate(small, reward="checkout", target="estimate_shop:half_each")
+
+
 def test_a_callable_returning_no_probability_is_refused(small, monkeypatch):
     monkeypatch.setattr(shop, "best_card", lambda inputs, action: -0.5)
     with pytest.raises(ReplayError, match="must return a probability"):
