@@ -573,15 +573,20 @@ def test_several_outcomes_of_a_decision_are_summed_and_said(tmp_path):
     assert report.warnings[0].startswith("40 of 200 records used have several 'checkout' outcomes")
 
 
-def test_one_draw_propensities_are_said_on_both_sides(tmp_path):
-    """A code out of 10,000 (more than the budget of 4096): each propensity is that of the
-    draw's value, not proven to be the action's; the estimate says so for each policy."""
-    led = dl.Ledger(tmp_path / "codes.db")
-    shop.use(led, seed=2)
-    for i in range(60):
+def _coupons(path, n, *, seed):
+    """``n`` coupon codes out of 10,000, each redeemed when odd."""
+    led = dl.Ledger(path)
+    shop.use(led, seed=seed)
+    for i in range(n):
         code = shop.coupon_code(decision_id=f"d{i}")
         led.outcome(f"d{i}", "redeemed", float(code % 2))
     led.close()
+
+
+def test_one_draw_propensities_are_said_on_both_sides(tmp_path):
+    """A code out of 10,000 (more than the budget of 4096): each propensity is that of the
+    draw's value, not proven to be the action's; the estimate says so for each policy."""
+    _coupons(tmp_path / "codes.db", 60, seed=2)
     report = estimate(tmp_path / "codes.db", reward="redeemed", overrides={"codes": 8000})
     said = [w for w in report.warnings if "one-draw" in w]
     assert 2 == len(said), report.warnings
@@ -598,12 +603,7 @@ def test_a_baseline_the_data_cannot_answer_is_said_at_the_top(tmp_path):
     read. Too many codes to list, so the deficit is sampled, one target draw per record: a
     binomial share, within 4 standard deviations of 1/6 (sqrt(p(1-p)/300) = 0.0215). The
     target (8000 codes) is fine; the logging baseline needs no check."""
-    led = dl.Ledger(tmp_path / "codes.db")
-    shop.use(led, seed=4)
-    for i in range(300):
-        code = shop.coupon_code(decision_id=f"d{i}")
-        led.outcome(f"d{i}", "redeemed", float(code % 2))
-    led.close()
+    _coupons(tmp_path / "codes.db", 300, seed=4)
     wide = {"codes": 12_000}
     report = estimate(tmp_path / "codes.db", reward="redeemed", overrides={"codes": 8000},
                       baseline=wide)  # fmt: skip
