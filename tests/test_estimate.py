@@ -787,6 +787,16 @@ def test_a_callable_whose_probabilities_sum_above_one_is_refused(small, monkeypa
         estimate(small, reward="checkout", target="estimate_shop:half_each")
 
 
+def test_a_callable_target_that_calls_a_decision_is_refused_and_records_nothing(small, monkeypatch):
+    def asks_a_decision(inputs, action):
+        return 1.0 if shop.send_reminder() else 0.0  # a decision: it would record
+
+    monkeypatch.setattr(shop, "asks_a_decision", asks_a_decision, raising=False)
+    inside = r"estimate_shop:send_reminder was called inside target estimate_shop:asks_a"
+    with pytest.raises(ReplayError, match=inside):
+        estimate(small, reward="checkout", target="estimate_shop:asks_a_decision")
+
+
 def test_a_callable_returning_no_probability_is_refused(small, monkeypatch):
     monkeypatch.setattr(shop, "best_card", lambda inputs, action: -0.5)
     with pytest.raises(ReplayError, match="must return a probability"):

@@ -16,6 +16,7 @@ import time
 import warnings
 import weakref
 from collections.abc import Callable, Mapping, Sequence
+from contextvars import ContextVar
 from pathlib import Path
 from typing import Any, Generic, ParamSpec, TypeVar
 
@@ -33,6 +34,7 @@ from drawledger.exceptions import (
     LedgerClosedError,
     LedgerError,
     NotSerializableError,
+    ReplayError,
     UnreplayableDecisionWarning,
 )
 
@@ -52,6 +54,10 @@ DRAW_KINDS = frozenset(
 # Every decision function registered in this process, by "module:qualname". Replay accepts
 # only objects found here (docs/replay.md, safe imports).
 REGISTRY: dict[str, Decision[Any]] = {}
+
+# What is being re-executed in this context (a decision replayed, a target policy asked): a
+# decision called inside it raises instead of recording (docs/replay.md, "Reasons").
+REPLAYING: ContextVar[str | None] = ContextVar("drawledger_replaying", default=None)
 
 _LEDGERS: weakref.WeakSet[Ledger] = weakref.WeakSet()
 
@@ -120,11 +126,16 @@ class Decision(Generic[R]):
     def run(self, draw: Draw, inputs: Mapping[str, Any], params: Mapping[str, Any]) -> R:
         """Call the function with a given ``Draw``, inputs by name and policy parameters.
 
-        Nothing is recorded; replay and estimation use this to re-execute a decision.
+        Nothing is recorded; replay and estimation use this to re-execute a decision. A
+        decision that the function calls raises ``ReplayError`` instead of recording.
         """
         args = [inputs[name] for name in self.inputs]
         args.insert(self._draw_index, draw)
-        return self.fn(*args, **{**self.params, **params})
+        token = REPLAYING.set(f"decision {self.name}")
+        try:
+            return self.fn(*args, **{**self.params, **params})
+        finally:
+            REPLAYING.reset(token)
 
     def _bind(
         self, args: tuple[Any, ...], kwargs: dict[str, Any]
@@ -149,6 +160,15 @@ class Decision(Generic[R]):
 
     def __call__(self, *args: Any, unit: str | None = None, decision_id: str | None = None,
                  **kwargs: Any) -> R:  # fmt: skip
+        replaying = REPLAYING.get()
+        if replaying is not None:
+            raise ReplayError(
+                f"decision {self.name} was called inside {replaying}, which was being "
+                "re-executed: a decision that calls another cannot be replayed (the inner "
+                "one's draws are recorded apart, under its own seed), and a replay records "
+                "nothing; give the inner decision's action to the outer one as an input, or "
+                "make its draws with the outer one's Draw"
+            )
         ledger = self.ledger
         if type(decision_id) is str and decision_id in ledger._recent:
             ledger._refuse(decision_id)  # before the function runs: nothing is drawn

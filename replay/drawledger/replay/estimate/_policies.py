@@ -24,7 +24,7 @@ from drawledger._probability import CONTINUOUS_KINDS, density, distribution
 from drawledger._records import from_json, to_json
 from drawledger.draw import Draw, DrawRecord
 from drawledger.exceptions import DrawledgerError, ReplayError
-from drawledger.ledger import Decision
+from drawledger.ledger import REPLAYING, Decision
 from drawledger.replay.propensity import (
     DEFAULT_BUDGET,
     DENSITY,
@@ -96,11 +96,14 @@ class Target:
 
     def probability(self, inputs: Mapping[str, Any], action_json: str, where: str) -> float:
         assert self.fn is not None
+        token = REPLAYING.set(f"target {self.spec}")
         try:
             p = self.fn(inputs, from_json(action_json))
         except Exception as exc:
             raise ReplayError(f"target {self.spec} raised {type(exc).__name__} on {where}: "
                               f"{exc}") from None  # fmt: skip
+        finally:
+            REPLAYING.reset(token)
         if isinstance(p, bool) or not isinstance(p, (int, float)) or not math.isfinite(p) \
                 or p < 0.0:  # fmt: skip
             raise ReplayError(f"target {self.spec} returned {p!r} on {where}; it must return "
