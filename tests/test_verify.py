@@ -132,29 +132,34 @@ def test_propensities_not_proven_by_every_branch_are_noted(tmp_path: Path) -> No
     assert report.method_notes()[0] in report.render()
 
 
-def test_a_decision_calling_another_is_unreplayable_and_its_replay_records_nothing(
+def test_decision_code_that_records_is_unreplayable_and_its_replay_records_nothing(
     tmp_path: Path,
 ) -> None:
-    """Before, each replay of the outer decision recorded the inner one into the ledger again;
-    now the inner call raises, the outer record is a replay-error naming both, and the ledger
-    holds what the service recorded, however often it is verified."""
+    """Before, each replay of a decision that calls another recorded the inner one into the
+    ledger again (and one that records an outcome, the outcome); now the inner call raises,
+    the record is a replay-error naming both, and the ledger holds what the service recorded,
+    however often it is verified."""
     import nested_decisions as nd
 
     led = dl.Ledger(tmp_path / "nested.db")
     nd.use(led)
     for i in range(6):
         nd.checkout_banner(decision_id=f"banner-{i}")
+    nd.send_reminder(decision_id="reminder-0")
     led.flush()  # the service keeps running (and its ledger open) while verify runs
     for _ in range(2):
         report = verify(tmp_path / "nested.db")
     led.close()
     with sqlite3.connect(tmp_path / "nested.db") as conn:
         stored = dict(conn.execute("SELECT stream, COUNT(*) FROM decisions GROUP BY stream"))
-    assert {"free-delivery": 6, "checkout-banner": 6} == stored
-    assert (6, {"replay-error": 6}) == (report.verified, report.by_reason)
-    detail = dict(report.examples["replay-error"])["banner-0"]
-    assert "nested_decisions:free_delivery was called inside decision " in detail
-    assert "nested_decisions:checkout_banner, which was being re-executed" in detail
+        outcomes = conn.execute("SELECT COUNT(*) FROM outcomes").fetchone()[0]
+    assert ({"free-delivery": 6, "checkout-banner": 6, "reminder-sent": 1}, 1) == (
+        stored, outcomes)  # fmt: skip
+    assert (6, {"replay-error": 7}) == (report.verified, report.by_reason)
+    details = report.rows.set_index("decision_id")["detail"]
+    assert "nested_decisions:free_delivery was called inside decision " in details["banner-0"]
+    assert "nested_decisions:checkout_banner, which was being re-executed" in details["banner-0"]
+    assert "ledger.outcome was called inside decision " in details["reminder-0"]
 
 
 def _shop_ledger(path: Path, n: int = 12, *, format: str | None = None) -> dl.Ledger:

@@ -16,7 +16,6 @@ import time
 import warnings
 import weakref
 from collections.abc import Callable, Mapping, Sequence
-from contextvars import ContextVar
 from pathlib import Path
 from typing import Any, Generic, ParamSpec, TypeVar
 
@@ -24,6 +23,7 @@ from drawledger import _checks, _lifecycle, _records, _sinks, _stream
 from drawledger._chain import Chain
 from drawledger._code import code_hash, function_source, module_file
 from drawledger._probability import decision_propensity
+from drawledger._replaying import INNER_DECISION, RECORDS_INSIDE, REPLAYING, refuse
 from drawledger._spill import SpillFile
 from drawledger._writer import FORK_WAIT, Stats, Writer
 from drawledger.draw import Draw, DrawRecord, bucket_assign
@@ -34,7 +34,6 @@ from drawledger.exceptions import (
     LedgerClosedError,
     LedgerError,
     NotSerializableError,
-    ReplayError,
     UnreplayableDecisionWarning,
 )
 
@@ -55,9 +54,6 @@ DRAW_KINDS = frozenset(
 # only objects found here (docs/replay.md, safe imports).
 REGISTRY: dict[str, Decision[Any]] = {}
 
-# What is being re-executed in this context (a decision replayed, a target policy asked): a
-# decision called inside it raises instead of recording (docs/replay.md, "Reasons").
-REPLAYING: ContextVar[str | None] = ContextVar("drawledger_replaying", default=None)
 
 _LEDGERS: weakref.WeakSet[Ledger] = weakref.WeakSet()
 
@@ -160,15 +156,8 @@ class Decision(Generic[R]):
 
     def __call__(self, *args: Any, unit: str | None = None, decision_id: str | None = None,
                  **kwargs: Any) -> R:  # fmt: skip
-        replaying = REPLAYING.get()
-        if replaying is not None:
-            raise ReplayError(
-                f"decision {self.name} was called inside {replaying}, which was being "
-                "re-executed: a decision that calls another cannot be replayed (the inner "
-                "one's draws are recorded apart, under its own seed), and a replay records "
-                "nothing; give the inner decision's action to the outer one as an input, or "
-                "make its draws with the outer one's Draw"
-            )
+        if REPLAYING.get() is not None:
+            refuse(f"decision {self.name}", INNER_DECISION)
         ledger = self.ledger
         if type(decision_id) is str and decision_id in ledger._recent:
             ledger._refuse(decision_id)  # before the function runs: nothing is drawn
@@ -451,6 +440,8 @@ class Ledger:
         self, decision_id: str, name: str, value: float, *, ts: float | None = None
     ) -> None:
         """Record an outcome (a reward) of a decision, by its decision id."""
+        if REPLAYING.get() is not None:
+            refuse("ledger.outcome", RECORDS_INSIDE)
         if not isinstance(decision_id, str) or not decision_id:
             raise NotSerializableError("outcome: decision_id must be a non-empty string")
         if not isinstance(name, str) or not name:
@@ -480,6 +471,8 @@ class Ledger:
         The assignment is recorded as a decision of ``stream`` (default: the salt) with one
         ``bucket`` draw, so the audit can check the arm ratios.
         """
+        if REPLAYING.get() is not None:
+            refuse("ledger.bucket", RECORDS_INSIDE)
         arm, u, prob, arms, probs = bucket_assign(unit, shares, salt)
         salt_text = salt if isinstance(salt, str) else salt.hex()
         args = {"unit": unit, "shares": dict(zip(arms, probs, strict=True)), "salt": salt_text}
@@ -507,6 +500,8 @@ class Ledger:
 
         Declared draws cannot be replayed, only audited. Returns the decision id.
         """
+        if REPLAYING.get() is not None:
+            refuse("ledger.record_draw", RECORDS_INSIDE)
         if kind not in DRAW_KINDS:
             raise DrawArgumentError(f"declared draw: unknown kind {kind!r}")
         if not isinstance(stream, str) or not stream:

@@ -1,6 +1,6 @@
-"""A decision that calls another decision: the inner one records apart, so the outer one
-cannot be replayed. The decisions are registered on a placeholder ledger; ``use(ledger)``
-points them at a test's own."""
+"""A decision that calls another decision (the inner one records apart, so the outer one
+cannot be replayed) and one that records an outcome from inside. They are registered on a
+placeholder ledger; ``use(ledger)`` points them at a test's own."""
 
 from __future__ import annotations
 
@@ -25,6 +25,14 @@ def checkout_banner(draw: dl.Draw) -> str:
     return draw.categorical(["recipes", "deals"], [0.5, 0.5], name="banner")
 
 
+@_placeholder.decision("reminder-sent")
+def send_reminder(draw: dl.Draw, *, p: float = 0.5) -> bool:
+    """Records an "exposure" outcome of its own decision from inside: a record in a replay."""
+    sent = draw.bernoulli(p, name="send")
+    send_reminder.ledger.outcome("exposure", "shown", float(sent))
+    return sent
+
+
 def use(ledger: dl.Ledger) -> None:
-    free_delivery.ledger = ledger
-    checkout_banner.ledger = ledger
+    for decision in (free_delivery, checkout_banner, send_reminder):
+        decision.ledger = ledger

@@ -22,9 +22,10 @@ import numpy as np
 
 from drawledger._probability import CONTINUOUS_KINDS, density, distribution
 from drawledger._records import from_json, to_json
+from drawledger._replaying import REPLAYING
 from drawledger.draw import Draw, DrawRecord
 from drawledger.exceptions import DrawledgerError, ReplayError
-from drawledger.ledger import REPLAYING, Decision
+from drawledger.ledger import Decision
 from drawledger.replay.propensity import (
     DEFAULT_BUDGET,
     DENSITY,
