@@ -251,6 +251,7 @@ def test_non_serializable_inputs_raise_and_record_nothing(
     assert 0 == cap.decisions[0].seq
 
 
+@pytest.mark.filterwarnings("ignore:decision .* is a numpy array")  # its own test
 @pytest.mark.parametrize(
     ("bad_input", "where"),
     [
@@ -564,6 +565,26 @@ def test_a_decision_defined_in_main_warns_that_replay_cannot_import_it(
     feature_card.__module__ = "__main__"
     with pytest.warns(dl.UnreplayableDecisionWarning, match="defined in __main__.*cannot be verif"):
         ledger.decision("recipe-card-script")(feature_card)
+
+
+def test_a_numpy_array_input_without_an_array_annotation_warns_once(ledger: dl.Ledger) -> None:
+    """Recorded as a JSON list, it comes back as a list in a replay: the writer's first call
+    says so; an input annotated np.ndarray is rebuilt as an array and does not warn."""
+
+    def bare(scores, draw: dl.Draw) -> bool:  # type: ignore[no-untyped-def]
+        return draw.bernoulli(float(scores.mean()), name="show")
+
+    def typed(scores: np.ndarray, draw: dl.Draw) -> bool:
+        return draw.bernoulli(float(scores.mean()), name="show")
+
+    warned = ledger.decision("array-bare")(bare)
+    with pytest.warns(dl.UnreplayableDecisionWarning, match="input scores is a numpy array"):
+        warned(np.array([0.2, 0.4]))
+    quiet = ledger.decision("array-typed")(typed)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        warned(np.array([0.2, 0.4]))  # once per writer and decision
+        quiet(np.array([0.2, 0.4]))
 
 
 def test_a_decision_defined_in_a_module_does_not_warn(ledger: dl.Ledger) -> None:

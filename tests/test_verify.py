@@ -162,6 +162,28 @@ def test_decision_code_that_records_is_unreplayable_and_its_replay_records_nothi
     assert "ledger.outcome was called inside decision " in details["reminder-0"]
 
 
+def test_numpy_array_inputs_annotated_as_arrays_come_back_as_arrays(tmp_path: Path) -> None:
+    """np.ndarray and npt.NDArray[np.float32] inputs are recorded as JSON lists and rebuilt
+    with numpy.asarray and the annotated dtype (before, verify stopped with pydantic's
+    traceback: it has no schema for numpy arrays). An annotation pydantic cannot build fails
+    its own records with the reason, not the run."""
+    import array_decisions as ad
+    import numpy as np
+
+    led = dl.Ledger(tmp_path / "arrays.db")
+    ad.use(led)
+    for i in range(4):
+        ad.feature_card(np.array([1.0, 2.0, 3.0 + i]), decision_id=f"card-{i}")
+        ad.feature_card_32(np.array([0.5, 1.5, 1.0], dtype=np.float32), decision_id=f"c32-{i}")
+    ad.remind(ad.Basket(items=2), decision_id="basket-0")
+    led.close()
+    report = verify(tmp_path / "arrays.db")
+    assert (9, 8, {"replay-error": 1}) == (report.decisions, report.verified, report.by_reason)
+    detail = report.rows.set_index("decision_id")["detail"]["basket-0"]
+    assert "input basket: its annotation <class 'array_decisions.Basket'> cannot be rebuilt" in (
+        detail)  # fmt: skip
+
+
 def _shop_ledger(path: Path, n: int = 12, *, format: str | None = None) -> dl.Ledger:
     """Every grocery decision of tests/support/shop_decisions.py, n times, plus a bucket and a
     declared draw."""

@@ -1,25 +1,33 @@
-"""Checks of the values a recording call is given, their redaction, and the memory of recent
-decision ids."""
+"""Checks of the values a recording call is given, their redaction, the memory of recent
+decision ids, and numpy array inputs that replay could not rebuild."""
 
 from __future__ import annotations
 
 import hashlib
 import math
 import numbers
+import typing
+import warnings
 from collections import deque
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 from drawledger import _records
-from drawledger.exceptions import DrawArgumentError, NotSerializableError
+from drawledger.exceptions import (
+    DrawArgumentError,
+    NotSerializableError,
+    UnreplayableDecisionWarning,
+)
 
 __all__ = [
     "RecentIds",
     "declared_uniforms",
     "finite_number",
+    "is_array_annotation",
     "plain_text",
     "redact",
     "timestamp",
+    "warn_array_inputs",
 ]
 
 
@@ -120,3 +128,32 @@ def redact(obj: Any, path: list[str], key: bytes) -> None:
     elif isinstance(obj, list):
         for item in obj:
             redact(item, path, key)
+
+
+def is_array_annotation(hint: Any) -> bool:
+    """Whether an annotation is a numpy array (``np.ndarray``, ``npt.NDArray[np.float32]``)."""
+    origin = typing.get_origin(hint) or hint
+    return bool(getattr(origin, "__module__", None) == "numpy"
+                and getattr(origin, "__name__", None) == "ndarray")  # fmt: skip
+
+
+def warn_array_inputs(fn: Callable[..., Any], name: str, inputs: Mapping[str, Any]) -> None:
+    """Warn about numpy array inputs whose parameter is not annotated as one: recorded as JSON
+    lists, they come back as lists in a replay (checked at a writer's first call of ``fn``)."""
+    arrays = [k for k, v in inputs.items()
+              if type(v).__name__ == "ndarray" and type(v).__module__ == "numpy"]  # fmt: skip
+    if not arrays:
+        return
+    try:
+        hints = typing.get_type_hints(fn)
+    except Exception:  # unresolvable annotations: none of them is an array
+        hints = {}
+    bare = [k for k in arrays if not is_array_annotation(hints.get(k))]
+    if bare:
+        warnings.warn(
+            f"decision {name}: input {', '.join(bare)} is a numpy array, recorded as a JSON "
+            "list; replay gives the function a list unless the parameter is annotated as an "
+            "array (np.ndarray or npt.NDArray[...])",
+            UnreplayableDecisionWarning,
+            stacklevel=3,
+        )

@@ -9,6 +9,7 @@ registered with ``@ledger.decision`` (present in ``drawledger.ledger.REGISTRY``)
 
 from __future__ import annotations
 
+import functools
 import importlib
 import importlib.machinery
 import math
@@ -16,12 +17,13 @@ import os
 import re
 import sys
 import typing
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from pathlib import Path
 from typing import Any
 
 from pydantic import TypeAdapter, ValidationError
 
+from drawledger._checks import is_array_annotation
 from drawledger._records import from_json
 from drawledger.exceptions import (
     BadRecordError,
@@ -152,37 +154,67 @@ def resolve_decision(
 
 
 # -- rebuilding inputs and parameters -------------------------------------------------------
-_ADAPTERS: dict[int, tuple[Decision[Any], dict[str, TypeAdapter[Any] | None]]] = {}
+Builder = Callable[[Any], Any]
+_BUILDERS: dict[int, tuple[Decision[Any], dict[str, Builder | None]]] = {}
 
 
-def _adapters(decision: Decision[Any]) -> dict[str, TypeAdapter[Any] | None]:
-    """One pydantic adapter per typed input and policy parameter (``None``: keep the JSON)."""
-    cached = _ADAPTERS.get(id(decision))
+def _builders(decision: Decision[Any]) -> dict[str, Builder | None]:
+    """How each typed input and policy parameter is rebuilt (``None``: keep the JSON)."""
+    cached = _BUILDERS.get(id(decision))
     if cached is not None and cached[0] is decision:
         return cached[1]
     try:
         hints = typing.get_type_hints(decision.fn)
     except Exception:  # unresolvable annotations: keep every value as recorded JSON
         hints = {}
-    out: dict[str, TypeAdapter[Any] | None] = {}
+    out: dict[str, Builder | None] = {}
     for name in [*decision.inputs, *decision.params]:
         hint = hints.get(name)
-        out[name] = None if hint is None or hint is Any or hint is object else TypeAdapter(hint)
-    _ADAPTERS[id(decision)] = (decision, out)
+        out[name] = None if hint is None or hint is Any or hint is object else _builder(hint)
+    _BUILDERS[id(decision)] = (decision, out)
     return out
 
 
-def _build(adapter: TypeAdapter[Any] | None, value: Any, what: str) -> Any:
-    if adapter is None:
+def _builder(hint: Any) -> Builder:
+    """A numpy array annotation (``np.ndarray``, ``npt.NDArray[np.float32]``) rebuilds with
+    ``numpy.asarray`` and its dtype; any other with pydantic. A type that pydantic cannot build
+    fails each record that needs it (a ``replay-error``), not the run."""
+    if is_array_annotation(hint):
+        import numpy as np
+
+        args = typing.get_args(hint)
+        dtypes = typing.get_args(args[1]) if len(args) == 2 else ()
+        dtype = dtypes[0] if dtypes and isinstance(dtypes[0], type) else None
+        return functools.partial(np.asarray, dtype=dtype)
+    try:
+        return TypeAdapter(hint).validate_python
+    except Exception as exc:  # pydantic has no schema for the type
+        reason = f"{type(exc).__name__}: {str(exc).splitlines()[0]}"
+
+        def cannot(value: Any) -> Any:
+            raise ReplayError(
+                f"its annotation {hint!r} cannot be rebuilt from the recorded JSON ({reason}); "
+                "annotate it with a JSON type, a dataclass, a pydantic model or a numpy array"
+            )
+
+        return cannot
+
+
+def _build(builder: Builder | None, value: Any, what: str) -> Any:
+    if builder is None:
         return value
     try:
-        return adapter.validate_python(value)
+        return builder(value)
     except ValidationError as exc:
         first = exc.errors()[0]
         where = ".".join(str(x) for x in first["loc"])
         raise BadRecordError(
             f"{what}{'.' + where if where else ''}: {first['msg']} (recorded {value!r:.60})"
         ) from None
+    except (ValueError, TypeError) as exc:  # numpy.asarray of a ragged or text value
+        raise BadRecordError(f"{what}: {exc} (recorded {value!r:.60})") from None
+    except ReplayError as exc:
+        raise ReplayError(f"{what}: {exc}") from None
 
 
 def parse_object(text: Any, what: str) -> dict[str, Any]:
@@ -210,12 +242,12 @@ def load_inputs(decision: Decision[Any], inputs_json: str) -> dict[str, Any]:
 
 def build_inputs(decision: Decision[Any], raw: Mapping[str, Any]) -> dict[str, Any]:
     """``load_inputs`` from the already parsed JSON object."""
-    adapters = _adapters(decision)
+    builders = _builders(decision)
     out = {}
     for name in decision.inputs:
         if name not in raw:
             raise BadRecordError(f"inputs: {name!r} is missing")
-        out[name] = _build(adapters[name], raw[name], f"input {name}")
+        out[name] = _build(builders[name], raw[name], f"input {name}")
     return out
 
 
@@ -234,7 +266,7 @@ def load_params(
         if isinstance(params_json, Mapping)
         else parse_object(params_json, "params")
     )
-    adapters = _adapters(decision)
+    builders = _builders(decision)
     out = {}
     for name, value in raw.items():
         if name not in decision.params:
@@ -242,7 +274,7 @@ def load_params(
         if isinstance(value, float) and not math.isfinite(value):
             raise BadRecordError(f"params: {name!r} is {value!r}")
         try:
-            out[name] = _build(adapters[name], value, f"param {name}")
+            out[name] = _build(builders[name], value, f"param {name}")
         except BadRecordError:
             if not given:
                 raise
