@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import datetime
 import inspect
 import math
 import threading
@@ -425,7 +426,10 @@ def test_pydantic_model_inputs_are_recorded_as_objects(ledger: dl.Ledger) -> Non
     def feature(ctx: CardContext, draw: dl.Draw) -> str:
         return draw.softmax(CARDS, ctx.scores, temperature=0.7)
 
-    with capture(ledger) as cap:
+    # a class of the test's own: its name cannot be resolved from the annotation, so a
+    # replay could not rebuild it either, and the first call says so
+    unresolved = "annotations cannot be resolved: NameError: name 'CardContext'"
+    with capture(ledger) as cap, pytest.warns(dl.UnreplayableDecisionWarning, match=unresolved):
         feature(CardContext(segment="family", scores=SCORES))
     assert {"ctx": {"segment": "family", "scores": SCORES}} == cap.decisions[0].inputs
 
@@ -567,9 +571,10 @@ def test_a_decision_defined_in_main_warns_that_replay_cannot_import_it(
         ledger.decision("recipe-card-script")(feature_card)
 
 
-def test_a_numpy_array_input_without_an_array_annotation_warns_once(ledger: dl.Ledger) -> None:
-    """Recorded as a JSON list, it comes back as a list in a replay: the writer's first call
-    says so; an input annotated np.ndarray is rebuilt as an array and does not warn."""
+def test_inputs_replay_cannot_rebuild_without_an_annotation_warn_once(ledger: dl.Ledger) -> None:
+    """A numpy array is recorded as a JSON list and a datetime as text: without an annotation
+    they come back as such in a replay, so the writer's first call says so. Annotated ones
+    (np.ndarray, datetime) are rebuilt and do not warn; numpy scalars need nothing."""
 
     def bare(scores, draw: dl.Draw) -> bool:  # type: ignore[no-untyped-def]
         return draw.bernoulli(float(scores.mean()), name="show")
@@ -577,14 +582,25 @@ def test_a_numpy_array_input_without_an_array_annotation_warns_once(ledger: dl.L
     def typed(scores: np.ndarray, draw: dl.Draw) -> bool:
         return draw.bernoulli(float(scores.mean()), name="show")
 
+    def at(when, draw: dl.Draw) -> bool:  # type: ignore[no-untyped-def]
+        return draw.bernoulli(0.7 if when.hour < 12 else 0.3, name="early")
+
+    def at_typed(when: datetime.datetime, share: float, draw: dl.Draw) -> bool:
+        return draw.bernoulli(share if when.hour < 12 else 0.3, name="early")
+
     warned = ledger.decision("array-bare")(bare)
     with pytest.warns(dl.UnreplayableDecisionWarning, match="input scores is a numpy array"):
         warned(np.array([0.2, 0.4]))
+    nine = datetime.datetime(2026, 12, 4, 9)
+    with pytest.warns(dl.UnreplayableDecisionWarning, match="input when is a datetime"):
+        ledger.decision("slot-bare")(at)(nine)
     quiet = ledger.decision("array-typed")(typed)
+    quiet_at = ledger.decision("slot-typed")(at_typed)
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         warned(np.array([0.2, 0.4]))  # once per writer and decision
         quiet(np.array([0.2, 0.4]))
+        quiet_at(nine, np.float64(0.6))
 
 
 def test_a_decision_defined_in_a_module_does_not_warn(ledger: dl.Ledger) -> None:

@@ -749,6 +749,21 @@ def test_typed_rows_of_damaged_records_still_export(actions: list, stamps: list)
             assert n == len(pd.read_csv(written) if suffix == ".csv" else pd.read_parquet(written))
 
 
+@pytest.mark.parametrize("action", ["{}", '{"options":{}}', "[[{}]]"])
+def test_actions_parquet_cannot_hold_as_such_are_exported_as_json_text(action: str) -> None:
+    """An empty object becomes an Arrow struct without fields, which Parquet cannot write
+    (pyarrow refuses it; found by the hypothesis test above): such actions are exported as
+    their JSON text, as mixed ones are."""
+    from drawledger.replay.verify._export import BASE_COLUMNS, typed_rows, write_export
+
+    base = {c: [None, None] for c in BASE_COLUMNS}
+    base.update(decision_id=["d-0", "d-1"], action=[action, action], ts=[1.0, 2.0],
+                propensity_method=["exact", "exact"])  # fmt: skip
+    with tempfile.TemporaryDirectory() as folder:
+        written = write_export(typed_rows(pd.DataFrame(base)), Path(folder) / "x.parquet")
+        assert [action, action] == pd.read_parquet(written)["action"].tolist()
+
+
 def test_rows_can_be_left_out(ledger_path: Path) -> None:
     _shop_ledger(ledger_path, n=2)
     report = verify(ledger_path, keep_rows=False)

@@ -1,5 +1,5 @@
 """Checks of the values a recording call is given, their redaction, the memory of recent
-decision ids, and numpy array inputs that replay could not rebuild."""
+decision ids, and inputs that replay could not rebuild."""
 
 from __future__ import annotations
 
@@ -27,7 +27,7 @@ __all__ = [
     "plain_text",
     "redact",
     "timestamp",
-    "warn_array_inputs",
+    "warn_unrebuilt_inputs",
 ]
 
 
@@ -137,23 +137,34 @@ def is_array_annotation(hint: Any) -> bool:
                 and getattr(origin, "__name__", None) == "ndarray")  # fmt: skip
 
 
-def warn_array_inputs(fn: Callable[..., Any], name: str, inputs: Mapping[str, Any]) -> None:
-    """Warn about numpy array inputs whose parameter is not annotated as one: recorded as JSON
-    lists, they come back as lists in a replay (checked at a writer's first call of ``fn``)."""
-    arrays = [k for k, v in inputs.items()
-              if type(v).__name__ == "ndarray" and type(v).__module__ == "numpy"]  # fmt: skip
-    if not arrays:
+def warn_unrebuilt_inputs(fn: Callable[..., Any], name: str, inputs: Mapping[str, Any]) -> None:
+    """Warn about inputs that replay would give the function as plain JSON values: objects of
+    other types (a datetime, a tuple, a dataclass) whose parameter has no annotation, and numpy
+    arrays whose parameter is not annotated as one (checked at a writer's first call)."""
+    odd = {k: v for k, v in inputs.items()
+           if not (v is None or isinstance(v, (str, int, float, list, dict)))}  # fmt: skip
+    if not odd:
         return
+    unresolved = None
     try:
         hints = typing.get_type_hints(fn)
-    except Exception:  # unresolvable annotations: none of them is an array
+    except Exception as exc:  # unresolvable annotations: replay rebuilds nothing either
         hints = {}
-    bare = [k for k in arrays if not is_array_annotation(hints.get(k))]
-    if bare:
+        unresolved = f"the function's annotations cannot be resolved: {type(exc).__name__}: {exc}"
+    found = []
+    for key, value in odd.items():
+        kind, hint = type(value), hints.get(key)
+        if kind.__module__ == "numpy":  # numpy scalars come back as Python numbers
+            if kind.__name__ == "ndarray" and not is_array_annotation(hint):
+                found.append(f"{key} is a numpy array ({unresolved or 'annotate it np.ndarray'})")
+        elif hint is None or hint is Any or hint is object:
+            found.append(f"{key} is a {kind.__name__} "
+                         f"({unresolved or 'annotate it ' + kind.__name__})")  # fmt: skip
+    if found:
         warnings.warn(
-            f"decision {name}: input {', '.join(bare)} is a numpy array, recorded as a JSON "
-            "list; replay gives the function a list unless the parameter is annotated as an "
-            "array (np.ndarray or npt.NDArray[...])",
+            f"decision {name}: input {'; '.join(found)}: it is recorded as JSON, and replay "
+            "gives the function the plain JSON value (text, a list, an object) unless the "
+            "parameter's annotation says what to rebuild",
             UnreplayableDecisionWarning,
             stacklevel=3,
         )

@@ -183,7 +183,7 @@ class Decision(Generic[R]):
         prop, kind = decision_propensity(draws, single, _PROB)
         if self not in ledger._versions:
             ledger._note_version(self)
-            _checks.warn_array_inputs(self.fn, self.name, inputs)
+            _checks.warn_unrebuilt_inputs(self.fn, self.name, inputs)
         ledger._append_decision(
             decision_id, self.stream, unit, None, self.name, self.code_hash, inputs_json,
             params_json, action_json, prop, kind, draw.seed.hex(), draws, (action, action_json),

@@ -164,15 +164,28 @@ def _parquet_ready(rows: pd.DataFrame) -> pd.DataFrame:
             continue
         if col == "action":
             try:
-                pa.array(out[col].tolist(), from_pandas=True)
-                continue
+                if _writable(pa.array(out[col].tolist(), from_pandas=True).type):
+                    continue
             except (pa.ArrowInvalid, pa.ArrowTypeError, TypeError, OverflowError):
-                out[col] = out[col].map(_as_text).astype(object)
-                continue
+                pass
+            out[col] = out[col].map(_as_text).astype(object)
+            continue
         kinds = {type(v) for v in out[col].dropna()}
         if len(kinds) > 1:
             out[col] = out[col].map(lambda v: v if v is None else str(v))
     return out
+
+
+def _writable(kind: Any) -> bool:
+    """Whether Parquet can hold an Arrow type: no struct without fields (an action ``{}``),
+    at any depth."""
+    import pyarrow as pa
+
+    if pa.types.is_struct(kind):
+        return kind.num_fields > 0 and all(_writable(f.type) for f in kind)
+    if pa.types.is_list(kind) or pa.types.is_large_list(kind):
+        return _writable(kind.value_type)
+    return True
 
 
 # A number as a spreadsheet reads it: text cells like this are left as they are.
