@@ -283,7 +283,8 @@ def _evaluate_callable(t: Target, res: Evaluated, i: int, inputs: Mapping[str, A
         return
     dist = {a: t.probability(inputs, a, where) for a, q in lrun.dist.items() if q > 0.0}
     total = math.fsum(dist.values())
-    if total > 1.0 + 1e-9:  # discrete actions: probabilities, not densities
+    # discrete actions: probabilities, not densities; 1e-9 for float rounding (common practice)
+    if total > 1.0 + 1e-9:
         raise ReplayError(f"target {t.spec} gives the actions of {where} probabilities "
                           f"that sum to {total:.6g}; a policy's sum to at most 1")  # fmt: skip
     res.deficit[i] = max(0.0, 1.0 - total)

@@ -277,37 +277,29 @@ def _deficit_warning(deficit: float, reward_range: tuple[float, float], dr: bool
             f"{toward:.3g}); {fill} (biased up or down by up to {either:.3g})")  # fmt: skip
 
 
-def _baseline_warnings(summary: dict[str, Any], baseline: Policy, dr: bool,
-                       reward_range: tuple[float, float]) -> list[str]:  # fmt: skip
-    """The deficit and weight warnings of a baseline other than the logging policy."""
-    if baseline is None:
-        return []
-    d = summary["baseline_diagnostics"]
+def _weight_warnings(summary: dict[str, Any], reward_range: tuple[float, float], dr: bool,
+                     baseline: bool = False) -> list[str]:  # fmt: skip
+    """The support-deficit and uneven-weight warnings of the target's weights; with
+    ``baseline``, of a baseline other than the logging policy (weighted too)."""
+    d = summary["baseline_diagnostics" if baseline else "diagnostics"]
+    policy, who = ("baseline", "baseline: ") if baseline else ("target", "")
     out = []
     if d["support_deficit"] is not None and d["support_deficit"] > 0.0:
-        deficit = _deficit_warning(d["support_deficit"], reward_range, dr, "baseline")
-        out.append(f"baseline: {deficit}")
+        out.append(who + _deficit_warning(d["support_deficit"], reward_range, dr, policy))
     uneven = est.overlap_problems(d["ess"], summary["n"], d["max_weight_share"])
     if uneven:
-        out.append(f"baseline: {'; '.join(uneven)}: its estimate rests on few records or a few "
-                   "heavy weights, so the intervals may be too narrow")  # fmt: skip
+        out.append(f"{who}{'; '.join(uneven)}: the estimate rests on few records or a few "
+                   "heavy weights, so its intervals may be too narrow")  # fmt: skip
     return out
 
 
 def _warnings(summary: dict[str, Any], methods: Counter[str], dr: bool,
               reward_range: tuple[float, float]) -> list[str]:  # fmt: skip
     out = []
-    d = summary["diagnostics"]
-    deficit = d["support_deficit"]
-    if deficit is None:
+    if summary["diagnostics"]["support_deficit"] is None:
         out.append("the support deficit could not be computed (Monte Carlo propensities or a "
                    "callable target on continuous actions)")  # fmt: skip
-    elif deficit > 0.0:
-        out.append(_deficit_warning(deficit, reward_range, dr))
-    uneven = est.overlap_problems(d["ess"], summary["n"], d["max_weight_share"])
-    if uneven:
-        out.append(f"{'; '.join(uneven)}: the estimate rests on few records or a few heavy "
-                   "weights, so its intervals may be too narrow")  # fmt: skip
+    out += _weight_warnings(summary, reward_range, dr)
     if methods.get(ONE_DRAW, 0):
         out.append(_one_draw_warning(f"{methods[ONE_DRAW]} target propensities"))
     mc = methods.get(MONTE_CARLO, 0)
@@ -443,7 +435,8 @@ def estimate(
     summary = _summary(p.pairs[0], has_dr, bounds, s, p.weights)
     warnings = [*_excluded_warnings(p, reward),
                 *_warnings(summary, p.methods[0], has_dr, s.reward_range),
-                *_baseline_warnings(summary, baseline, has_dr, s.reward_range),
+                *(_weight_warnings(summary, s.reward_range, has_dr, baseline=True)
+                  if baseline is not None else []),
                 *s.notes()]  # fmt: skip
     top = [*alerts(p.failures, p.integrity, reward, missing_reward, p.n),
            *_cannot_answer(summary),
@@ -537,7 +530,7 @@ def sweep(
                                         "support_deficit")}})  # fmt: skip
     if baseline is not None:  # the same baseline weights at every point
         top.extend(_cannot_answer(summary, baseline=True))
-        warnings.extend(_baseline_warnings(summary, baseline, has_dr, s.reward_range))
+        warnings.extend(_weight_warnings(summary, s.reward_range, has_dr, baseline=True))
     return SweepReport(
         param=param, values=grid, points=points,
         baseline={**_baseline(baseline, summary), "estimates": base_estimates},
